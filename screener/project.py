@@ -1,0 +1,352 @@
+"""Project file (TOML) to validated, typed settings.
+
+The schema below is the single source of every setting, its type, its default and
+its meaning; the user guide's settings table is generated from it
+(:func:`settings_table_markdown`).  Unknown keys are errors that name the nearest
+valid key; paths are resolved relative to the project file.
+"""
+
+from __future__ import annotations
+
+import copy
+import glob
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+
+from screener.errors import ProjectError, suggest
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+__all__ = ["SCHEMA", "Settings", "load_project", "settings_from_dict", "settings_table_markdown"]
+
+_ANY = object()
+
+#: section -> key -> (type(s), default, description).  ``Path`` marks a path relative
+#: to the project file; ``[Path]`` a list of paths or glob patterns.
+SCHEMA: dict = {
+    "project": {
+        "name": (str, "screener project", "Name shown in the report and field sheets."),
+        "random_state": (int, 0, "Seed for every random draw (background, tests, weights)."),
+        "taxa": (list, [], "Only these taxa (default: every taxon in the record file)."),
+    },
+    "occurrences": {
+        "path": (Path, None, "Record CSV: taxon + longitude/latitude (WGS84) or x/y (grid CRS)."),
+        "taxon_column": (str, "taxon", "Name of the taxon column."),
+        "encoding": (str, "", "Text encoding of the file when it is not UTF-8, e.g. latin-1."),
+        "decimal": (str, "", 'Decimal mark: "." or ","; detected when empty.'),
+        "min_records": (int, 3, "A taxon with fewer kept records stops the run."),
+        "thin_km": (float, 0.0, "Thin records so none are closer than this (km); 0 = off."),
+        "sensitive": ((bool, list), False, "Generalise these taxa's coordinates (true = all)."),
+    },
+    "layers": {
+        "paths": ([Path], None, "Single-band rasters on one grid (glob patterns allowed)."),
+        "elevation": (str, "", "Name (file stem) of the elevation layer in metres, if any."),
+        "derive": (list, [], 'Terrain layers derived from elevation: "slope", "aspect".'),
+        "exclude": (list, [], "Layer names read but not used as predictors."),
+        "categorical": (list, [], "Categorical layers, expanded to 0/1 indicator layers."),
+        "cell_budget": (int, 50_000_000, "Refuse grids with more cells than this."),
+    },
+    "background": {
+        "buffer_km": (float, 50.0, "Accessible area: cells within this distance of a record (km)."),
+        "max_points": (int, 10_000, "Background cells drawn from the accessible area."),
+    },
+    "models": {
+        "families": (list, ["ellipsoid"], "Model families to fit and combine."),
+        "ellipsoid": (dict, {}, "Parameters of the ellipsoid (Mahalanobis) family."),
+        "ppm": (dict, {}, "Parameters of the point-process (maximum-entropy) family."),
+        "envelope": (dict, {}, "Parameters of the environmental-envelope family."),
+        "forest": (dict, {}, "Parameters of the down-sampled random forest."),
+    },
+    "evaluation": {
+        "jackknife_below": (int, 25, "Use the jackknife below this many records."),
+        "n_null": (int, 99, "Null-model replicates for the AUC test (0 = off)."),
+    },
+    "thresholds": {
+        "relax": (float, 0.1, "Relaxed threshold = MTP x (1 - relax)."),
+        "use": (str, "mtp", 'Threshold that defines suitable cells: "mtp" or "relaxed".'),
+    },
+    "overlap": {
+        "n_replicates": (int, 100, "Replicates of the equivalency and similarity tests."),
+        "alternative": (str, "greater", '"greater" (conservatism) or "lower" (divergence).'),
+        "resolution": (int, 100, "Cells per axis of the environmental-space grid."),
+        "geographic_tests": (str, "auto", '"auto", "on" or "off": refit maps per replicate.'),
+    },
+    "isolation": {
+        "min_gap_km": (float, 5.0, "Unsuitable gap (km) from which a patch is isolated."),
+        "min_patch_km2": (float, 1.0, "Smallest suitable patch considered (km2)."),
+        "within_range_min_km": (float, 10.0, "Within-range sites lie this far from records (km)."),
+        "resistance": (str, "linear", '"linear" (1 - s) or "log" (-ln s).'),
+    },
+    "access": {
+        "start_points": (Path, None, "CSV of start points: name, longitude, latitude."),
+        "off_track": (bool, True, "Walking off track (Tobler speed x 0.6)."),
+        "max_walk_hours": (float, 0.0, "Leave out sites farther than this walk (0 = off)."),
+    },
+    "survey": {
+        "surveyed": (Path, None, "CSV of places already surveyed: longitude, latitude[, found]."),
+        "records_as_surveys": (bool, True, "Count record localities as surveyed places."),
+    },
+    "ranking": {
+        "top_k": (int, 10, "Rank robustness: share of weight draws keeping a site in the top k."),
+        "n_draws": (int, 1000, "Random weight draws for rank robustness."),
+        "weights": (dict, {}, "Score component weights (see the methods)."),
+    },
+    "outputs": {
+        "field_sheets": (int, 10, "Field sheets for this many top sites."),
+        "page_size": (str, "A4", '"A4" or "letter".'),
+        "sampling_points": (int, 5, "Suggested sampling points per site."),
+        "generalise_deg": (float, 0.1, "Grid (degrees) for generalised sensitive coordinates."),
+        "generalise_sites": (bool, False, "Also generalise site coordinates."),
+        "full_precision": (bool, False, "Write sensitive coordinates at full precision."),
+    },
+    "compute": {
+        "scheduler": (str, "serial", '"serial", "processes", or a Dask scheduler address.'),
+        "n_workers": (int, 0, "Worker processes (0 = all cores)."),
+    },
+}
+
+#: keys that must be present (section, key)
+REQUIRED = [("occurrences", "path"), ("layers", "paths")]
+
+
+class Section(dict):
+    """A settings section: a dict whose keys are also attributes."""
+
+    def __getattr__(self, name):
+        try:
+            return self[name]
+        except KeyError:
+            raise AttributeError(name) from None
+
+
+@dataclass
+class Settings:
+    """Validated settings of a project.
+
+    Attributes
+    ----------
+    sections : dict of str to Section
+        Every section of :data:`SCHEMA`, with defaults filled in.
+    path : Path or None
+        The project file.
+    base_dir : Path
+        Folder that relative paths are resolved against.
+    """
+
+    sections: dict
+    path: Path | None
+    base_dir: Path
+
+    def __getattr__(self, name):
+        sections = self.__dict__.get("sections", {})
+        if name in sections:
+            return sections[name]
+        raise AttributeError(name)
+
+    def as_dict(self) -> dict:
+        """Plain, JSON-friendly copy (paths as strings)."""
+
+        def conv(v):
+            if isinstance(v, Path):
+                return str(v)
+            if isinstance(v, list):
+                return [conv(x) for x in v]
+            if isinstance(v, dict):
+                return {k: conv(x) for k, x in v.items()}
+            return v
+
+        return {s: conv(dict(v)) for s, v in self.sections.items()}
+
+
+def _type_name(t) -> str:
+    if t is Path:
+        return "path"
+    if isinstance(t, list):
+        return "list of paths"
+    if isinstance(t, tuple):
+        return " or ".join(_type_name(x) for x in t)
+    return {str: "string", int: "integer", float: "number", bool: "true/false",
+            list: "list", dict: "table"}.get(t, t.__name__)
+
+
+def _check_value(section, key, value, spec, base_dir, where):
+    t, _, _ = spec
+    loc = f"[{section}] {key}"
+    if t is Path:
+        if not isinstance(value, str):
+            raise ProjectError(f"{where}: {loc} must be a path string, got {value!r}.")
+        p = Path(value)
+        p = p if p.is_absolute() else base_dir / p
+        if not p.exists():
+            raise ProjectError(
+                f"{where}: {loc} = {value!r}: {p} does not exist. Paths are relative to "
+                "the project file."
+            )
+        return p
+    if isinstance(t, list):
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+            raise ProjectError(f"{where}: {loc} must be a list of path strings.")
+        out = []
+        for pattern in value:
+            full = pattern if Path(pattern).is_absolute() else str(base_dir / pattern)
+            matches = sorted(glob.glob(full))
+            if not matches:
+                raise ProjectError(
+                    f"{where}: {loc}: {pattern!r} matches no file (looked for {full}). "
+                    "Paths are relative to the project file."
+                )
+            out.extend(Path(m) for m in matches)
+        return list(dict.fromkeys(out))
+    types = t if isinstance(t, tuple) else (t,)
+    if float in types and isinstance(value, int) and not isinstance(value, bool):
+        value = float(value)
+    if bool not in types and isinstance(value, bool):
+        raise ProjectError(f"{where}: {loc} must be a {_type_name(t)}, got {value!r}.")
+    if not isinstance(value, types):
+        raise ProjectError(f"{where}: {loc} must be a {_type_name(t)}, got {value!r}.")
+    return value
+
+
+def settings_from_dict(data: dict, *, base_dir=".", where="project file") -> Settings:
+    """Validate a project dictionary (as read from TOML) into :class:`Settings`.
+
+    Raises
+    ------
+    ProjectError
+        Unknown section or key (the nearest valid name is suggested), wrong type,
+        missing required key, or a path that does not exist.
+    """
+    base_dir = Path(base_dir)
+    if not isinstance(data, dict):
+        raise ProjectError(f"{where}: expected a TOML table at the top level.")
+    for section, body in data.items():
+        if section not in SCHEMA:
+            raise ProjectError(
+                f"{where}: unknown section [{section}]." + suggest(section, SCHEMA)
+                + f" Valid sections: {', '.join(SCHEMA)}."
+            )
+        if not isinstance(body, dict):
+            raise ProjectError(f"{where}: [{section}] must be a table of settings.")
+        for key in body:
+            if key not in SCHEMA[section]:
+                raise ProjectError(
+                    f"{where}: unknown key {key!r} in [{section}]."
+                    + suggest(key, SCHEMA[section])
+                    + f" Valid keys: {', '.join(SCHEMA[section])}."
+                )
+    for section, key in REQUIRED:
+        if key not in data.get(section, {}):
+            raise ProjectError(f"{where}: [{section}] {key} is required.")
+    sections = {}
+    for section, spec in SCHEMA.items():
+        body = data.get(section, {})
+        sec = Section()
+        for key, kspec in spec.items():
+            if key in body:
+                sec[key] = _check_value(section, key, body[key], kspec, base_dir, where)
+            else:
+                sec[key] = copy.deepcopy(kspec[1])
+        sections[section] = sec
+    _check_choices(sections, where)
+    return Settings(sections, None, base_dir)
+
+
+def _check_choices(s, where):
+    choices = [
+        ("thresholds", "use", ("mtp", "relaxed")),
+        ("overlap", "alternative", ("greater", "lower")),
+        ("overlap", "geographic_tests", ("auto", "on", "off")),
+        ("isolation", "resistance", ("linear", "log")),
+        ("outputs", "page_size", ("A4", "letter")),
+    ]
+    for section, key, allowed in choices:
+        v = s[section][key]
+        if v not in allowed:
+            raise ProjectError(
+                f"{where}: [{section}] {key} = {v!r} is not one of "
+                f"{', '.join(map(repr, allowed))}." + suggest(v, allowed)
+            )
+    for section, key, lo in [
+        ("occurrences", "min_records", 1),
+        ("background", "max_points", 10),
+        ("overlap", "resolution", 10),
+        ("ranking", "top_k", 1),
+    ]:
+        if s[section][key] < lo:
+            raise ProjectError(f"{where}: [{section}] {key} must be at least {lo}.")
+    if not 0 <= s["thresholds"]["relax"] < 1:
+        raise ProjectError(f"{where}: [thresholds] relax must be in [0, 1).")
+    if s["background"]["buffer_km"] <= 0:
+        raise ProjectError(f"{where}: [background] buffer_km must be positive.")
+    fams = s["models"]["families"]
+    if not fams:
+        raise ProjectError(f"{where}: [models] families must name at least one family.")
+    known = [k for k in SCHEMA["models"] if k != "families"]
+    for f in fams:
+        if f not in known:
+            raise ProjectError(
+                f"{where}: [models] families: unknown family {f!r}." + suggest(f, known)
+                + f" Known families: {', '.join(known)}."
+            )
+    for d in s["layers"]["derive"]:
+        if d not in ("slope", "aspect"):
+            raise ProjectError(
+                f"{where}: [layers] derive: {d!r} is not 'slope' or 'aspect'."
+                + suggest(d, ["slope", "aspect"])
+            )
+    if s["layers"]["derive"] and not s["layers"]["elevation"]:
+        raise ProjectError(
+            f"{where}: [layers] derive needs [layers] elevation to name the elevation layer."
+        )
+
+
+def load_project(path) -> Settings:
+    """Read and validate a project file.
+
+    Parameters
+    ----------
+    path : path-like
+        TOML project file.
+
+    Returns
+    -------
+    Settings
+
+    Raises
+    ------
+    ProjectError
+        Missing file, TOML syntax error (with line), or any schema problem.
+    """
+    p = Path(path)
+    if not p.exists():
+        raise ProjectError(f"Project file {p} does not exist.")
+    try:
+        data = tomllib.loads(p.read_text(encoding="utf-8"))
+    except UnicodeDecodeError:
+        raise ProjectError(f"Project file {p} is not UTF-8 text.") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise ProjectError(f"Project file {p} is not valid TOML: {exc}.") from None
+    settings = settings_from_dict(data, base_dir=p.resolve().parent, where=str(p))
+    settings.path = p.resolve()
+    return settings
+
+
+def settings_table_markdown() -> str:
+    """Every setting with its type, default and meaning, as a Markdown table."""
+    lines = ["| setting | type | default | meaning |", "| --- | --- | --- | --- |"]
+    for section, spec in SCHEMA.items():
+        for key, (t, default, doc) in spec.items():
+            if (section, key) in REQUIRED:
+                d = "required"
+            elif default is None:
+                d = "none"
+            else:
+                d = f"`{default!r}`".replace("|", "\\|")
+            lines.append(f"| `[{section}] {key}` | {_type_name(t)} | {d} | {doc} |")
+    return "\n".join(lines)

@@ -1,0 +1,571 @@
+"""Occurrence-record intake: read, check every row, keep one record per cell.
+
+Every row that is not kept is reported with its line number and reason; nothing is
+dropped silently.  Only :func:`read_records` touches files; :func:`validate_records`
+works on rows already in memory.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import logging
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from screener.errors import RecordsError
+from screener.grid import Grid
+from screener.results import RecordDrop, TaxonRecords
+
+__all__ = [
+    "RecordSet",
+    "RawRecords",
+    "read_records",
+    "parse_records_text",
+    "validate_records",
+    "parse_coordinate",
+    "thin_by_distance",
+]
+
+log = logging.getLogger(__name__)
+
+#: Fewest records a taxon may keep before the run stops (configurable).
+MIN_RECORDS = 3
+
+
+@dataclass
+class RawRecords:
+    """Rows of a record file before validation.
+
+    Attributes
+    ----------
+    path : str
+        Where they came from (for messages).
+    columns : list of str
+        Header, as written.
+    taxon, a, b : list of str
+        Raw cells of the taxon column and of the two coordinate columns.
+    lines : list of int
+        Line number of each row (header is line 1).
+    coords : str
+        ``"lonlat"`` (WGS84 longitude/latitude) or ``"xy"`` (grid CRS).
+    extra : dict of str to list
+        Other columns, kept for the updated record file after a survey.
+    """
+
+    path: str
+    columns: list
+    taxon: list
+    a: list
+    b: list
+    lines: list
+    coords: str
+    decimal_comma: bool = False
+    extra: dict = field(default_factory=dict)
+
+
+@dataclass
+class RecordSet:
+    """Validated records of every taxon.
+
+    Attributes
+    ----------
+    taxa : dict of str to TaxonRecords
+        In order of first appearance in the file.
+    dropped : list of RecordDrop
+        Every row not kept, with line number and reason.
+    n_rows : int
+        Data rows read.
+    path : str
+    """
+
+    taxa: dict
+    dropped: list
+    n_rows: int
+    path: str = ""
+
+    def summary_lines(self) -> list:
+        """Plain-words lines for the console and the report."""
+        out = []
+        per_taxon = {}
+        for d in self.dropped:
+            per_taxon.setdefault(d.taxon, []).append(d)
+        for name, rec in self.taxa.items():
+            n_drop = len(per_taxon.get(name, []))
+            out.append(f"{name}: {rec.n} kept, {n_drop} dropped")
+        for d in self.dropped:
+            who = d.taxon or "(no taxon)"
+            out.append(f"  line {d.line} ({who}): {d.reason}")
+        return out
+
+
+_HEMI = re.compile(r"^\s*([NSEW]|[nsew](?=\s))?\s*(.*?)\s*([NSEW]|(?<=\s)[nsew])?\s*$")
+_DMS_SEP = re.compile(r"[°º'′\"″:dms\s]+")
+def parse_coordinate(text: str, *, decimal_comma: bool = False):
+    """Parse a coordinate written in decimal degrees or degrees-minutes-seconds.
+
+    Parameters
+    ----------
+    text : str
+        E.g. ``"-8.25"``, ``"8°15'00\\"S"``, ``"8 15 0 S"``, ``"S 8° 15.5'"``.
+    decimal_comma : bool, default False
+        Read ``"8,25"`` as 8.25.
+
+    Returns
+    -------
+    value : float or None
+        Decimal degrees (negative south/west), None when unreadable.
+    how : str
+        ``"decimal"`` or ``"dms"``, or the reason it could not be read.
+
+    Examples
+    --------
+    >>> parse_coordinate("8°15'36\\"S")
+    (-8.26, 'dms')
+    >>> parse_coordinate("12,5", decimal_comma=True)
+    (12.5, 'decimal')
+    """
+    s = (text or "").strip()
+    if not s:
+        return None, "is empty"
+    t = s.replace(",", ".") if decimal_comma else s
+    try:
+        v = float(t)
+    except ValueError:
+        pass
+    else:
+        if not math.isfinite(v):
+            return None, f"{s!r} is not a finite number"
+        return v, "decimal"
+    if "," in s and not decimal_comma and re.fullmatch(r"[-+]?\d+,\d+", s):
+        return None, f"{s!r} uses a decimal comma; set decimal = \",\" under [occurrences]"
+    m = _HEMI.match(s)
+    body = m.group(2) if m else s
+    hem1, hem2 = (m.group(1), m.group(3)) if m else (None, None)
+    if hem1 and hem2:
+        return None, f"{s!r} names two hemispheres"
+    hem = (hem1 or hem2 or "").upper()
+    sign = 1.0
+    if body.startswith("-"):
+        sign, body = -1.0, body[1:]
+    parts = [p for p in _DMS_SEP.split(body) if p]
+    looks_dms = bool(hem) or any(ch in s for ch in "°º'′\"″:")
+    if looks_dms and 1 <= len(parts) <= 3:
+        try:
+            nums = [float(p.replace(",", ".")) for p in parts]
+        except ValueError:
+            nums = None
+        if nums is not None:
+            deg = nums[0]
+            mnt = nums[1] if len(nums) > 1 else 0.0
+            sec = nums[2] if len(nums) > 2 else 0.0
+            if mnt >= 60 or sec >= 60 or mnt < 0 or sec < 0:
+                return None, f"{s!r} has minutes or seconds outside 0-60"
+            v = sign * (deg + mnt / 60.0 + sec / 3600.0)
+            if hem in ("S", "W"):
+                if sign < 0:
+                    return None, f"{s!r} has both a minus sign and hemisphere {hem}"
+                v = -v
+            return round(v, 10), "dms"
+    return None, f"{s!r} is not a number or a degrees-minutes-seconds coordinate"
+
+
+def _decode(data: bytes, path: str, encoding: str | None) -> str:
+    if encoding:
+        try:
+            return data.decode(encoding)
+        except (UnicodeDecodeError, LookupError) as exc:
+            raise RecordsError(
+                f"{path} cannot be read with encoding {encoding!r} ({exc}); "
+                "check [occurrences] encoding."
+            ) from None
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = data[: exc.start].count(b"\n") + 1
+        raise RecordsError(
+            f"{path} is not valid UTF-8 (byte 0x{data[exc.start]:02x} on line {line}). "
+            "Save the file as UTF-8, or name its encoding under [occurrences], "
+            'e.g. encoding = "latin-1".'
+        ) from None
+
+
+def parse_records_text(
+    text: str,
+    path: str = "<records>",
+    *,
+    taxon_column: str = "taxon",
+    decimal: str | None = None,
+) -> RawRecords:
+    """Split record text into columns and find the taxon and coordinate columns.
+
+    Accepts comma, semicolon or tab separated text; a semicolon file whose numbers
+    use decimal commas is read as such.  Columns are matched without regard to case
+    or surrounding spaces.
+
+    Raises
+    ------
+    RecordsError
+        Empty file, header only, or missing columns (with the nearest name offered).
+    """
+    if not text.strip():
+        raise RecordsError(f"{path} is empty: it needs a header row and one row per record.")
+    lines = text.splitlines()
+    first = next((ln for ln in lines if ln.strip()), "")
+    counts = {d: first.count(d) for d in (",", ";", "\t")}
+    delim = max(counts, key=counts.get)
+    if counts[delim] == 0:
+        delim = ","
+    reader = csv.reader(io.StringIO(text), delimiter=delim)
+    try:
+        rows = list(reader)
+    except csv.Error as exc:
+        raise RecordsError(f"{path} is not a readable CSV file ({exc}).") from None
+    line_no = 0
+    header = None
+    body = []
+    for row in rows:
+        line_no += 1
+        if header is None:
+            if not any(c.strip() for c in row):
+                continue
+            header = [c.strip() for c in row]
+            header_line = line_no
+            continue
+        body.append((line_no, row))
+    # csv line numbers ignore embedded newlines: reader.line_num is exact
+    if header is None:
+        raise RecordsError(f"{path} is empty: it needs a header row and one row per record.")
+    lower = [h.lower() for h in header]
+    body = [(ln, r) for ln, r in body if any(c.strip() for c in r)]
+    if not body:
+        raise RecordsError(
+            f"{path} has a header (line {header_line}) but no records below it."
+        )
+
+    def find(name):
+        return lower.index(name.lower()) if name.lower() in lower else None
+
+    it = find(taxon_column)
+    if it is None:
+        raise RecordsError(
+            f"{path} has no {taxon_column!r} column (columns: {', '.join(header)})."
+            + _misspelt(taxon_column, header)
+        )
+    ilon, ilat, ix, iy = find("longitude"), find("latitude"), find("x"), find("y")
+    if ilon is not None and ilat is not None:
+        ia, ib, coords = ilon, ilat, "lonlat"
+    elif ix is not None and iy is not None:
+        ia, ib, coords = ix, iy, "xy"
+    else:
+        missing = [c for c, i in (("longitude", ilon), ("latitude", ilat)) if i is None]
+        hint = "".join(_misspelt(m, header) for m in missing)
+        raise RecordsError(
+            f"{path} needs columns longitude and latitude (WGS84 degrees) or x and y "
+            f"(grid CRS); it has {', '.join(header)}." + hint
+        )
+    a_vals = [r[ia] if ia < len(r) else "" for _, r in body]
+    b_vals = [r[ib] if ib < len(r) else "" for _, r in body]
+    if decimal is None:
+        # decimal commas: semicolon or tab files whose coordinates look like "12,5"
+        pat = re.compile(r"^\s*[-+]?\d+,\d+\s*$")
+        n_comma = sum(bool(pat.match(v)) for v in a_vals + b_vals)
+        decimal_comma = delim != "," and n_comma > 0
+    else:
+        decimal_comma = decimal == ","
+    extra = {
+        h: [r[i] if i < len(r) else "" for _, r in body]
+        for i, h in enumerate(header)
+        if i not in (it, ia, ib)
+    }
+    return RawRecords(
+        path=str(path),
+        columns=header,
+        taxon=[(r[it] if it < len(r) else "").strip() for _, r in body],
+        a=a_vals,
+        b=b_vals,
+        lines=[ln for ln, _ in body],
+        coords=coords,
+        decimal_comma=decimal_comma,
+        extra=extra,
+    )
+
+
+def _misspelt(expected: str, header) -> str:
+    """`` Column 'longitud' looks like 'longitude' (did you mean 'longitude'?).``"""
+    import difflib
+
+    m = difflib.get_close_matches(expected.lower(), [h.lower() for h in header], 1, 0.6)
+    if not m:
+        return ""
+    found = header[[h.lower() for h in header].index(m[0])]
+    return f" Column {found!r} looks misspelt: did you mean {expected!r}? Rename it."
+
+
+def read_records(path, *, encoding=None, taxon_column="taxon", decimal=None) -> RawRecords:
+    """Read a record CSV file into :class:`RawRecords` (no validation yet).
+
+    Raises
+    ------
+    RecordsError
+        Missing file, undecodable bytes, empty file, missing columns.
+    """
+    p = Path(path)
+    if not p.exists():
+        raise RecordsError(f"Record file {p} does not exist; check [occurrences] path.")
+    if p.is_dir():
+        raise RecordsError(f"Record path {p} is a folder; give the CSV file itself.")
+    text = _decode(p.read_bytes(), str(p), encoding)
+    return parse_records_text(text, str(p), taxon_column=taxon_column, decimal=decimal)
+
+
+def validate_records(
+    raw: RawRecords,
+    grid: Grid,
+    *,
+    min_records: int = MIN_RECORDS,
+    thin_km: float = 0.0,
+    sensitive=(),
+    taxa=None,
+    random_state=0,
+) -> RecordSet:
+    """Check every row, place records on the grid, keep one per cell per taxon.
+
+    Parameters
+    ----------
+    raw : RawRecords
+    grid : Grid
+        Records must fall on its valid cells.
+    min_records : int, default 3
+        A taxon keeping fewer records stops the run.
+    thin_km : float, default 0
+        If > 0, thin each taxon so no two records are closer than this (km).
+    sensitive : bool or sequence of str, default ()
+        Taxa whose coordinates are generalised in shareable outputs (True = all).
+    taxa : sequence of str, optional
+        Only these taxa (others are reported as dropped with the reason).
+    random_state : int, default 0
+        Seed of the thinning shuffles.
+
+    Returns
+    -------
+    RecordSet
+
+    Raises
+    ------
+    RecordsError
+        A taxon is left with fewer than ``min_records`` records, or nothing is left.
+    """
+    dropped: list = []
+    keep_taxon, keep_a, keep_b, keep_line = [], [], [], []
+    wanted = set(taxa) if taxa else None
+    for t, a, b, line in zip(raw.taxon, raw.a, raw.b, raw.lines):
+        if not t:
+            dropped.append(RecordDrop(line, "", "the taxon cell is empty"))
+            continue
+        if wanted is not None and t not in wanted:
+            dropped.append(RecordDrop(line, t, "taxon not in [project] taxa"))
+            continue
+        va, why_a = parse_coordinate(a, decimal_comma=raw.decimal_comma)
+        vb, why_b = parse_coordinate(b, decimal_comma=raw.decimal_comma)
+        na, nb = ("longitude", "latitude") if raw.coords == "lonlat" else ("x", "y")
+        if va is None or vb is None:
+            parts = []
+            if va is None:
+                parts.append(f"{na} {why_a}")
+            if vb is None:
+                parts.append(f"{nb} {why_b}")
+            dropped.append(RecordDrop(line, t, "; ".join(parts)))
+            continue
+        if raw.coords == "lonlat":
+            if abs(vb) > 90:
+                if abs(va) <= 90 and abs(vb) <= 180:
+                    reason = (
+                        f"latitude {vb:g} is beyond +/-90 and longitude {va:g} would be a "
+                        "valid latitude: longitude and latitude look swapped"
+                    )
+                else:
+                    reason = f"latitude {vb:g} is beyond +/-90"
+                dropped.append(RecordDrop(line, t, reason))
+                continue
+            if abs(va) > 180:
+                dropped.append(RecordDrop(line, t, f"longitude {va:g} is beyond +/-180"))
+                continue
+        keep_taxon.append(t)
+        keep_a.append(va)
+        keep_b.append(vb)
+        keep_line.append(line)
+
+    a = np.asarray(keep_a, dtype=float)
+    b = np.asarray(keep_b, dtype=float)
+    if raw.coords == "lonlat":
+        lon, lat = a, b
+        x, y = grid.from_lonlat(lon, lat) if a.size else (a, b)
+        x, y = np.asarray(x, float), np.asarray(y, float)
+    else:
+        x, y = a, b
+        lon, lat = grid.to_lonlat(x, y) if a.size else (a, b)
+        lon, lat = np.asarray(lon, float), np.asarray(lat, float)
+    rows, cols, inside = grid.rowcol(x, y) if a.size else (a, a, a.astype(bool))
+
+    # swapped coordinates that still parse: does the swapped point land on the grid?
+    swapped_on_grid = np.zeros(a.size, dtype=bool)
+    if raw.coords == "lonlat" and a.size and (~inside).any():
+        out = ~inside & (np.abs(lon) <= 90)
+        if out.any():
+            sx, sy = grid.from_lonlat(lat[out], lon[out])
+            sr, sc, sin = grid.rowcol(sx, sy)
+            ok = sin & grid.mask[sr, sc]
+            swapped_on_grid[np.flatnonzero(out)[ok]] = True
+
+    per_taxon: dict = {}
+    seen_exact: dict = {}
+    seen_cell: dict = {}
+    for i, (t, line) in enumerate(zip(keep_taxon, keep_line)):
+        coord_txt = (
+            f"({lon[i]:.5f}, {lat[i]:.5f})" if raw.coords == "lonlat" else f"({x[i]:g}, {y[i]:g})"
+        )
+        if not inside[i]:
+            reason = f"{coord_txt} is outside the grid"
+            if swapped_on_grid[i]:
+                reason += (
+                    "; with longitude and latitude swapped it would fall on the grid: "
+                    "check the column order"
+                )
+            dropped.append(RecordDrop(line, t, reason))
+            continue
+        r, c = int(rows[i]), int(cols[i])
+        if not grid.mask[r, c]:
+            dropped.append(
+                RecordDrop(line, t, f"{coord_txt} falls on a nodata cell (row {r}, col {c})")
+            )
+            continue
+        key = (t, keep_a[i], keep_b[i])
+        if key in seen_exact:
+            dropped.append(RecordDrop(line, t, f"exact duplicate of line {seen_exact[key]}"))
+            continue
+        seen_exact[key] = line
+        ck = (t, r, c)
+        if ck in seen_cell:
+            dropped.append(
+                RecordDrop(
+                    line,
+                    t,
+                    f"same grid cell as line {seen_cell[ck]} (one record per cell is kept)",
+                )
+            )
+            continue
+        seen_cell[ck] = line
+        per_taxon.setdefault(t, []).append(i)
+
+    if sensitive is True:
+        sens = set(per_taxon)
+    else:
+        sens = set(sensitive or ())
+    taxa_out = {}
+    for t, idx in per_taxon.items():
+        idx = np.asarray(idx, dtype=int)
+        if thin_km and thin_km > 0 and idx.size > 1:
+            kept = thin_by_distance(lon[idx], lat[idx], thin_km, random_state=random_state)
+            for j in np.setdiff1d(np.arange(idx.size), kept):
+                dropped.append(
+                    RecordDrop(
+                        keep_line[idx[j]],
+                        t,
+                        f"thinned: closer than {thin_km:g} km to another kept record",
+                    )
+                )
+            idx = idx[np.sort(kept)]
+        taxa_out[t] = TaxonRecords(
+            taxon=t,
+            lon=lon[idx],
+            lat=lat[idx],
+            x=x[idx],
+            y=y[idx],
+            rows=rows[idx].astype(np.int64),
+            cols=cols[idx].astype(np.int64),
+            lines=np.asarray(keep_line, dtype=np.int64)[idx],
+            sensitive=t in sens,
+        )
+    dropped.sort(key=lambda d: d.line)
+    result = RecordSet(taxa_out, dropped, len(raw.lines), raw.path)
+
+    named = list(dict.fromkeys(raw.taxon))
+    named = [t for t in named if t and (wanted is None or t in wanted)]
+    if not named:
+        raise RecordsError(f"{raw.path} has no rows with a taxon name.")
+    few = [(t, taxa_out[t].n if t in taxa_out else 0) for t in named]
+    few = [(t, n) for t, n in few if n < min_records]
+    if few:
+        detail = "; ".join(f"{t}: {n} kept" for t, n in few)
+        reasons = _reason_digest(dropped, {t for t, _ in few})
+        raise RecordsError(
+            f"Too few usable records in {raw.path} ({detail}); at least {min_records} "
+            f"per taxon are needed.{reasons} Fix the rows above, lower [occurrences] "
+            "min_records, or leave the taxon out with [project] taxa.",
+            result,
+        )
+    return result
+
+
+def _reason_digest(dropped, taxa) -> str:
+    rows = [d for d in dropped if d.taxon in taxa][:8]
+    if not rows:
+        return ""
+    return " Dropped rows: " + "; ".join(f"line {d.line}: {d.reason}" for d in rows) + "."
+
+
+def thin_by_distance(lon, lat, min_km: float, *, n_repeats: int = 20, random_state=0):
+    """Indices of a largest-found subset with no two points closer than ``min_km``.
+
+    Greedy removal repeated over random orders, keeping the largest set found
+    (Aiello-Lammens et al. 2015, Ecography 38:541).  Distances are geodesic (WGS84).
+
+    Parameters
+    ----------
+    lon, lat : ndarray of shape (n,)
+        Degrees.
+    min_km : float
+        Minimum distance between kept records, km.
+    n_repeats : int, default 20
+    random_state : int, default 0
+
+    Returns
+    -------
+    ndarray of int
+        Indices of kept points (sorted).
+
+    References
+    ----------
+    .. [1] Aiello-Lammens, M. E. et al. (2015). spThin: an R package for spatial
+       thinning of species occurrence records. Ecography 38:541-545.
+    """
+    from screener.grid import geodesic_distance_km
+
+    lon = np.asarray(lon, float)
+    lat = np.asarray(lat, float)
+    n = lon.size
+    if n < 2:
+        return np.arange(n)
+    d = geodesic_distance_km(lon[:, None], lat[:, None], lon[None, :], lat[None, :])
+    close = (d < min_km) & ~np.eye(n, dtype=bool)
+    rng = np.random.default_rng(random_state)
+    best = None
+    for _ in range(n_repeats):
+        alive = np.ones(n, dtype=bool)
+        order = rng.permutation(n)
+        while True:
+            deg = (close & alive[:, None] & alive[None, :]).sum(axis=1) * alive
+            if deg.max() == 0:
+                break
+            top = deg == deg.max()
+            # among the most-crowded, remove the first in this repeat's random order
+            victim = order[np.isin(order, np.flatnonzero(top))][0]
+            alive[victim] = False
+        if best is None or alive.sum() > best.sum():
+            best = alive
+    return np.flatnonzero(best)

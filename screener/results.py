@@ -1,0 +1,184 @@
+"""Typed values handed from stage to stage and to the writers.
+
+Every stage returns plain values (numpy arrays, pandas/geopandas frames, dataclasses);
+:class:`RunResult` gathers what one run produced so writers, the report and a notebook
+user see the same objects.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+__all__ = ["RecordDrop", "TaxonRecords", "Threshold", "TaxonResult", "RunResult"]
+
+
+@dataclass(frozen=True)
+class RecordDrop:
+    """One record row that intake did not keep, and why.
+
+    Attributes
+    ----------
+    line : int
+        Line number in the source file (the header is line 1).
+    taxon : str
+        Taxon named on the row ("" when the taxon cell itself was bad).
+    reason : str
+        Plain-words reason, e.g. "latitude 95.0 is beyond +/-90".
+    """
+
+    line: int
+    taxon: str
+    reason: str
+
+
+@dataclass(eq=False)
+class TaxonRecords:
+    """The kept records of one taxon, one per grid cell.
+
+    Attributes
+    ----------
+    taxon : str
+    lon, lat : ndarray of float, shape (n,)
+        WGS84 degrees.
+    x, y : ndarray of float, shape (n,)
+        Grid CRS coordinates.
+    rows, cols : ndarray of int, shape (n,)
+        Grid cells.
+    lines : ndarray of int, shape (n,)
+        Source line numbers.
+    sensitive : bool
+        True when coordinates must be generalised in shareable outputs.
+    """
+
+    taxon: str
+    lon: np.ndarray
+    lat: np.ndarray
+    x: np.ndarray
+    y: np.ndarray
+    rows: np.ndarray
+    cols: np.ndarray
+    lines: np.ndarray
+    sensitive: bool = False
+
+    @property
+    def n(self) -> int:
+        return int(len(self.rows))
+
+
+@dataclass(frozen=True)
+class Threshold:
+    """A suitability threshold, its area and its omission of training records.
+
+    Attributes
+    ----------
+    name : str
+        "mtp", "p10", "relaxed" or "maxsss".
+    value : float
+        Suitability cut-off; a cell is suitable when its value is >= this.
+    area_km2 : float
+        Ground area of the cells at or above the cut-off.
+    training_omission : float
+        Share of training records below the cut-off.
+    """
+
+    name: str
+    value: float
+    area_km2: float
+    training_omission: float
+
+
+@dataclass(eq=False)
+class TaxonResult:
+    """What the model stage produced for one taxon.
+
+    Attributes
+    ----------
+    taxon : str
+    records : TaxonRecords
+    suitability : ndarray of float32, shape (n_rows, n_cols)
+        Consensus suitability in [0, 1], NaN outside the valid mask.
+    family_maps : dict of str to ndarray
+        Per-family suitability maps (same convention).
+    agreement : ndarray or None
+        Share of families that call a cell suitable at their own threshold.
+    mess : ndarray or None
+        Multivariate environmental similarity surface; < 0 is novel environment.
+    most_dissimilar : ndarray of int16 or None
+        Index of the layer that is most dissimilar at each cell (-1 outside mask).
+    thresholds : dict of str to Threshold
+        Consensus-map thresholds ("mtp", "relaxed", ...).
+    accessible : ndarray of bool
+        The accessible area (calibration area) used for background.
+    evaluation : list of dict
+        Rows of evaluation.csv for this taxon (one per family plus the ensemble).
+    """
+
+    taxon: str
+    records: TaxonRecords
+    suitability: np.ndarray
+    family_maps: dict = field(default_factory=dict)
+    agreement: np.ndarray | None = None
+    mess: np.ndarray | None = None
+    most_dissimilar: np.ndarray | None = None
+    thresholds: dict = field(default_factory=dict)
+    accessible: np.ndarray | None = None
+    evaluation: list = field(default_factory=list)
+    figures: dict = field(default_factory=dict)
+
+
+@dataclass(eq=False)
+class RunResult:
+    """Everything one run produced, for writers, the report and notebooks.
+
+    Attributes
+    ----------
+    grid : screener.grid.Grid
+    layer_names : list of str
+    elevation : ndarray or None
+        Elevation in metres where an elevation layer is named, else None.
+    taxa : dict of str to TaxonResult
+    dropped : list of RecordDrop
+        Every record row intake did not keep.
+    overlap : pandas.DataFrame
+        Rows of overlap.csv.
+    overlap_readings : list of str
+        Plain-words reading per pair.
+    sites : geopandas.GeoDataFrame
+        Candidate sites, best first (rank 1 first), polygons in the grid CRS, with the
+        columns of candidates.csv.
+    paths : geopandas.GeoDataFrame or None
+        Least-cost paths as LineStrings, one per isolated / near-range site.
+    barrier : ndarray or None
+        Barrier map (float32), NaN where no barrier.
+    access_hours : ndarray or None
+        Walking hours from the nearest start point.
+    sampling_points : pandas.DataFrame or None
+        Suggested sampling points per site: site_id, point_id, longitude, latitude, x, y,
+        suitability.
+    settings : dict
+        The resolved settings of the run.
+    provenance : dict
+        Versions, input hashes, seeds, timings, warnings.
+    warnings : list of str
+        Warnings raised during the run, in plain words.
+    """
+
+    grid: object
+    layer_names: list
+    taxa: dict
+    sites: object
+    dropped: list = field(default_factory=list)
+    overlap: object = None
+    overlap_readings: list = field(default_factory=list)
+    paths: object = None
+    barrier: np.ndarray | None = None
+    elevation: np.ndarray | None = None
+    hillshade: np.ndarray | None = None
+    access_hours: np.ndarray | None = None
+    sampling_points: object = None
+    settings: dict = field(default_factory=dict)
+    provenance: dict = field(default_factory=dict)
+    warnings: list = field(default_factory=list)
+    figures: dict = field(default_factory=dict)

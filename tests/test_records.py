@@ -1,0 +1,152 @@
+"""Record intake: every row is checked and every drop has a line number and reason."""
+
+import numpy as np
+import pytest
+from affine import Affine
+
+from screener.errors import RecordsError
+from screener.grid import Grid
+from screener.records import (
+    parse_coordinate,
+    parse_records_text,
+    read_records,
+    thin_by_distance,
+    validate_records,
+)
+
+
+@pytest.fixture
+def grid():
+    # 0.01-degree grid over lon 10-10.4, lat -5 to -5.3, with one nodata cell
+    mask = np.ones((30, 40), bool)
+    mask[0, 0] = False
+    return Grid("EPSG:4326", Affine(0.01, 0, 10.0, 0, -0.01, -5.0), (30, 40), mask)
+
+
+def run(text, grid, **kw):
+    return validate_records(parse_records_text(text, "rec.csv"), grid, **kw)
+
+
+def test_good_rows_are_kept_with_cells(grid):
+    text = "taxon,longitude,latitude\nA,10.055,-5.105\nA,10.155,-5.205\nA,10.255,-5.255\n"
+    rs = run(text, grid)
+    rec = rs.taxa["A"]
+    assert rec.n == 3 and not rs.dropped
+    assert rec.rows.tolist() == [10, 20, 25] and rec.cols.tolist() == [5, 15, 25]
+    assert rec.lines.tolist() == [2, 3, 4]
+
+
+@pytest.mark.parametrize(
+    "row, reason",
+    [
+        ("A,abc,-5.1", "not a number"),
+        ("A,,-5.1", "longitude is empty"),
+        ("A,10.1,-95", "beyond +/-90"),
+        ("A,-5.1,10.1", "outside the grid"),
+        ("A,11.5,-5.1", "outside the grid"),
+        ("A,10.005,-5.005", "nodata cell"),
+        ("A,10.055,-5.105", "exact duplicate of line 2"),
+        ("A,10.056,-5.106", "same grid cell as line 2"),
+        (",10.2,-5.2", "taxon cell is empty"),
+    ],
+)
+def test_each_rejection_is_reported_with_line_and_reason(grid, row, reason):
+    text = (
+        "taxon,longitude,latitude\nA,10.055,-5.105\n"
+        + row
+        + "\nA,10.155,-5.205\nA,10.255,-5.255\n"
+    )
+    rs = run(text, grid)
+    assert len(rs.dropped) == 1
+    d = rs.dropped[0]
+    assert d.line == 3
+    assert reason in d.reason
+
+
+def test_swapped_coordinates_are_named(grid):
+    text = "taxon,longitude,latitude\nA,-5.105,10.055\nA,10.1,-5.1\nA,10.2,-5.2\nA,10.3,-5.25\n"
+    rs = run(text, grid)
+    assert "swapped" in rs.dropped[0].reason
+    text = "taxon,longitude,latitude\nA,-5.1,100\nA,10.1,-5.1\nA,10.2,-5.2\nA,10.3,-5.25\n"
+    rs = run(text, grid)
+    assert "look swapped" in rs.dropped[0].reason
+
+
+def test_too_few_records_stops_with_reasons(grid):
+    text = "taxon,longitude,latitude\nA,10.1,-5.1\nA,10.2,-5.2\nA,99,-5.2\nB,10.1,-5.1\n"
+    with pytest.raises(RecordsError, match=r"A: 2 kept.*B: 1 kept.*line 4"):
+        run(text, grid)
+    rs = run(text, grid, min_records=1)
+    assert set(rs.taxa) == {"A", "B"}
+
+
+def test_dms_and_decimal_comma(grid):
+    text = (
+        "taxon;longitude;latitude\nA;10,055;-5,105\nA;10°09'18\"E;5°12'18\"S\n"
+        "A;10,255;-5,255\n"
+    )
+    rs = run(text, grid)
+    assert rs.taxa["A"].n == 3
+    assert rs.taxa["A"].lon[1] == pytest.approx(10 + 9 / 60 + 18 / 3600)
+
+
+def test_xy_columns_in_grid_crs(grid):
+    rs = run("taxon,x,y\nA,10.055,-5.105\nA,10.155,-5.205\nA,10.255,-5.255\n", grid)
+    assert rs.taxa["A"].cols.tolist() == [5, 15, 25]
+
+
+@pytest.mark.parametrize(
+    "text, match",
+    [
+        ("", "empty"),
+        ("taxon,longitude,latitude\n", "no records"),
+        ("taxa,longitude,latitude\nA,1,2\n", "did you mean 'taxon'"),
+        ("taxon,longitud,latitude\nA,1,2\n", "did you mean 'longitude'"),
+    ],
+)
+def test_file_level_problems(text, match):
+    with pytest.raises(RecordsError, match=match):
+        parse_records_text(text, "rec.csv")
+
+
+def test_non_utf8_bytes_name_the_line(tmp_path):
+    p = tmp_path / "r.csv"
+    p.write_bytes(b"taxon,longitude,latitude\nA,10.1,-5.1\nB\xe9,10.2,-5.2\n")
+    with pytest.raises(RecordsError, match=r"not valid UTF-8 .*line 3.*encoding"):
+        read_records(p)
+    raw = read_records(p, encoding="latin-1")
+    assert raw.taxon[1] == "Bé"
+
+
+def test_missing_file(tmp_path):
+    with pytest.raises(RecordsError, match="does not exist"):
+        read_records(tmp_path / "nope.csv")
+
+
+@pytest.mark.parametrize(
+    "text, value",
+    [
+        ("-8.25", -8.25),
+        ("8°15'S", -8.25),
+        ("8 15 36 S", -8.26),
+        ("W 70° 30'", -70.5),
+        ("115:30:00 E", 115.5),
+    ],
+)
+def test_parse_coordinate(text, value):
+    v, _ = parse_coordinate(text)
+    assert v == pytest.approx(value)
+
+
+def test_thinning_keeps_no_close_pair():
+    # Greedy thinning (Aiello-Lammens et al. 2015): result has no pair closer than d.
+    from screener.grid import geodesic_distance_km
+
+    rng = np.random.default_rng(3)
+    lon = 10 + rng.uniform(0, 0.3, 60)
+    lat = -5 - rng.uniform(0, 0.3, 60)
+    kept = thin_by_distance(lon, lat, 5.0, random_state=0)
+    d = geodesic_distance_km(lon[kept, None], lat[kept, None], lon[None, kept], lat[None, kept])
+    d[np.eye(kept.size, dtype=bool)] = np.inf
+    assert d.min() >= 5.0
+    assert kept.size >= 3
