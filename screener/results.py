@@ -113,6 +113,13 @@ class TaxonResult:
         The accessible area (calibration area) used for background.
     evaluation : list of dict
         Rows of evaluation.csv for this taxon (one per family plus the ensemble).
+    presence_env, background_env : ndarray or None
+        Predictor values at the records, shape (n, p), and at the background cells,
+        shape (m, p), as used for calibration.
+    background_cells : tuple of ndarray or None
+        ``(rows, cols)`` of the background cells.
+    seed : int or None
+        Seed of this taxon's random draws.
     """
 
     taxon: str
@@ -126,6 +133,10 @@ class TaxonResult:
     accessible: np.ndarray | None = None
     evaluation: list = field(default_factory=list)
     figures: dict = field(default_factory=dict)
+    presence_env: np.ndarray | None = None
+    background_env: np.ndarray | None = None
+    background_cells: tuple | None = None
+    seed: int | None = None
 
 
 @dataclass(eq=False)
@@ -163,6 +174,14 @@ class RunResult:
         Versions, input hashes, seeds, timings, warnings.
     warnings : list of str
         Warnings raised during the run, in plain words.
+    intake_summary : list of str
+        Plain-words lines on the grid, layers and records (what intake kept/dropped).
+    comparisons : list
+        :class:`screener.overlap.PairComparison` per pair (null distributions etc.).
+    candidates : screener.isolation.CandidateSet or None
+        Rasters behind the sites (patch labels, cost surfaces).
+    clade_mess : ndarray or None
+        MESS against the pooled calibration background of all taxa.
     """
 
     grid: object
@@ -182,3 +201,7 @@ class RunResult:
     provenance: dict = field(default_factory=dict)
     warnings: list = field(default_factory=list)
     figures: dict = field(default_factory=dict)
+    intake_summary: list = field(default_factory=list)
+    comparisons: list = field(default_factory=list)
+    candidates: object = None
+    clade_mess: np.ndarray | None = None

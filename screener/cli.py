@@ -1,0 +1,280 @@
+"""Command line: parse, call the pipeline, print.  No science here.
+
+Commands
+--------
+``screener run PROJECT.toml --out DIR``      the whole analysis
+``screener check PROJECT.toml``              validate inputs without fitting anything
+``screener demo --out DIR``                  write the invented demo scenario and run it
+``screener debrief FIELD.csv --run DIR --out DIR2``   score predictions after a survey
+``screener reproduce DIR/run.json --out DIR2``        rerun from a run's provenance
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import logging
+import sys
+from pathlib import Path
+
+import click
+
+from screener import __version__
+from screener.errors import InputError, OutputError, ScreenerError
+
+log = logging.getLogger("screener")
+
+debug_opt = click.option(
+    "--debug", is_flag=True, help="Show full tracebacks for errors (for bug reports)."
+)
+out_opt = click.option(
+    "--out", "out", required=True, type=click.Path(file_okay=False, path_type=Path),
+    help="Output folder (must not exist unless --overwrite).",
+)
+overwrite_opt = click.option(
+    "--overwrite", is_flag=True, help="Replace the output folder if it exists."
+)
+scheduler_opt = click.option(
+    "--scheduler", default=None, metavar="serial|processes|dask|ADDRESS",
+    help="Where independent work runs: serial, local processes, a local Dask cluster, "
+    "or a Dask scheduler address (tcp://host:8786). Default: [compute] scheduler.",
+)
+cache_opt = click.option(
+    "--cache-dir", default=None, type=click.Path(file_okay=False, path_type=Path),
+    help="Stage cache folder (default: .screener-cache beside the project file).",
+)
+nocache_opt = click.option("--no-cache", is_flag=True, help="Neither read nor write the cache.")
+
+
+def _echo_err(text):
+    click.echo(text, err=True)
+
+
+def handle_errors(fn):
+    """Turn screener errors into a short message and exit code 2 (bad input)."""
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        debug = kwargs.get("debug", False)
+        try:
+            return fn(*args, **kwargs)
+        except KeyboardInterrupt:
+            _echo_err(
+                "Interrupted. Nothing was written to the output folder; finished stages "
+                "are cached, so running the same command again resumes."
+            )
+            sys.exit(130)
+        except (ScreenerError, click.ClickException):
+            if debug:
+                raise
+            exc = sys.exc_info()[1]
+            if isinstance(exc, click.ClickException):
+                raise
+            _echo_err(f"Error: {exc.args[0] if exc.args else exc}")
+            sys.exit(2 if isinstance(exc, (InputError, OutputError)) else 1)
+        except MemoryError:
+            if debug:
+                raise
+            _echo_err(
+                "Error: out of memory. Use a coarser grid or a smaller region, or lower "
+                "[background] max_points."
+            )
+            sys.exit(1)
+        except OSError as exc:
+            if debug:
+                raise
+            _echo_err(f"Error: {exc.strerror or exc} ({exc.filename or 'file system'}).")
+            sys.exit(1)
+        except Exception as exc:
+            if debug:
+                raise
+            _echo_err(
+                f"Internal error ({type(exc).__name__}: {exc}). This is a bug in the "
+                "screener, not in your data: rerun with --debug and report the traceback."
+            )
+            sys.exit(1)
+
+    return wrapper
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="screener")
+@click.option("-v", "--verbose", count=True, help="More log output (repeatable).")
+@click.option("-q", "--quiet", count=True, help="Less output.")
+@click.pass_context
+def main(ctx, verbose, quiet):
+    """Rank places to survey for unknown populations and undescribed lineages.
+
+    Predictions are hypotheses for survey, not evidence of presence or absence.
+    """
+    level = max(10, 30 - 10 * verbose + 10 * quiet)
+    logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s",
+                        stream=sys.stderr)
+    ctx.ensure_object(dict)
+    ctx.obj["quiet"] = quiet > 0
+
+
+def _cache_arg(cache_dir, no_cache):
+    if no_cache:
+        return None
+    return cache_dir if cache_dir is not None else "auto"
+
+
+@main.command()
+@click.argument("project", type=click.Path(dir_okay=False, path_type=Path))
+@out_opt
+@overwrite_opt
+@scheduler_opt
+@cache_opt
+@nocache_opt
+@debug_opt
+@click.pass_context
+@handle_errors
+def run(ctx, project, out, overwrite, scheduler, cache_dir, no_cache, debug):
+    """Run PROJECT (a TOML file) and write every output into --out."""
+    from screener.pipeline import run_project
+    from screener.project import load_project
+
+    settings = load_project(project)
+    echo = None if ctx.obj.get("quiet") else _echo_err
+    result = run_project(settings, out, overwrite=overwrite, echo=echo, scheduler=scheduler,
+                         cache_dir=_cache_arg(cache_dir, no_cache))
+    _print_summary(result, out)
+
+
+def _print_summary(result, out):
+    sites = result.sites
+    click.echo(f"Wrote {out}")
+    if len(sites):
+        click.echo("Top sites (hypotheses for survey, not proof of presence):")
+        for _, row in sites.head(5).iterrows():
+            click.echo(
+                f"  #{int(row['rank'])} site {int(row['site_id'])}: {row['kind']}, "
+                f"{row['area_km2']:.1f} km2, nearest {row['nearest_taxon']}, "
+                f"gap {row['gap_km']:.1f} km, score {row['score']:.2f}"
+            )
+    else:
+        click.echo("No candidate sites were found at these thresholds.")
+    click.echo(f"Open {Path(out) / 'report.html'} for the full plan.")
+
+
+@main.command()
+@click.argument("project", type=click.Path(dir_okay=False, path_type=Path))
+@debug_opt
+@handle_errors
+def check(project, debug):
+    """Validate PROJECT without fitting: grid, layers, records kept and dropped."""
+    from screener.pipeline import check_project
+    from screener.project import load_project
+
+    for line in check_project(load_project(project)):
+        click.echo(line)
+
+
+@main.command()
+@out_opt
+@overwrite_opt
+@click.option("--size", type=click.Choice(["full", "small"]), default="full",
+              show_default=True, help="Scenario size (small is for quick tries).")
+@scheduler_opt
+@debug_opt
+@click.pass_context
+@handle_errors
+def demo(ctx, out, overwrite, size, scheduler, debug):
+    """Write the invented demo scenario into --out/scenario and run it into --out/results."""
+    import shutil
+    import tempfile
+
+    from screener.demo import write_demo_scenario
+    from screener.outputs.staging import check_output_folder
+    from screener.pipeline import run_project
+    from screener.project import load_project
+
+    out = check_output_folder(out, overwrite=overwrite)
+    echo = None if ctx.obj.get("quiet") else _echo_err
+    with tempfile.TemporaryDirectory(prefix="screener-demo-") as tmp:
+        scen = Path(tmp) / "scenario"
+        if echo:
+            echo(f"Writing the invented demo scenario ({size})")
+        project = write_demo_scenario(scen, size=size)
+        settings = load_project(project)
+        results_tmp = Path(tmp) / "results"
+        result = run_project(settings, results_tmp, echo=echo, scheduler=scheduler,
+                             cache_dir=None)
+        stage = out.parent / f".{out.name}.partial-demo"
+        if stage.exists():
+            shutil.rmtree(stage)
+        stage.mkdir()
+        try:
+            shutil.copytree(scen, stage / "scenario")
+            shutil.copytree(results_tmp, stage / "results")
+        except BaseException:
+            shutil.rmtree(stage, ignore_errors=True)
+            raise
+        if out.exists():
+            shutil.rmtree(out)
+        stage.rename(out)
+    _print_summary(result, out / "results")
+
+
+@main.command()
+@click.argument("field_results", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--run", "run_dir", required=True,
+              type=click.Path(file_okay=False, exists=True, path_type=Path),
+              help="Output folder of the run whose predictions were surveyed.")
+@out_opt
+@overwrite_opt
+@debug_opt
+@handle_errors
+def debrief(field_results, run_dir, out, overwrite, debug):
+    """Score a run's predictions against FIELD_RESULTS after a survey."""
+    from screener.debrief import debrief_run
+
+    summary = debrief_run(field_results, run_dir, out, overwrite=overwrite)
+    for line in summary:
+        click.echo(line)
+
+
+@main.command()
+@click.argument("run_json", type=click.Path(dir_okay=False, exists=True, path_type=Path))
+@out_opt
+@overwrite_opt
+@scheduler_opt
+@click.option("--allow-changed-inputs", is_flag=True,
+              help="Run even if input files no longer match the recorded hashes.")
+@debug_opt
+@click.pass_context
+@handle_errors
+def reproduce(ctx, run_json, out, overwrite, scheduler, allow_changed_inputs, debug):
+    """Rerun a run from its run.json (same settings, seeds and inputs)."""
+    from screener.pipeline import file_sha256, run_project
+    from screener.project import settings_from_dict
+
+    prov = json.loads(Path(run_json).read_text(encoding="utf-8"))
+    changed = []
+    for path, h in prov.get("input_hashes", {}).items():
+        p = Path(path)
+        if not p.exists():
+            changed.append(f"{path} (missing)")
+        elif file_sha256(p) != h:
+            changed.append(f"{path} (changed)")
+    if changed and not allow_changed_inputs:
+        raise InputError(
+            "Inputs differ from the recorded run: " + "; ".join(changed)
+            + ". Restore them, or pass --allow-changed-inputs to run anyway."
+        )
+    data = {
+        sec: {k: v for k, v in body.items() if v is not None}
+        for sec, body in prov["settings"].items()
+    }
+    project_file = prov.get("project_file")
+    base = Path(project_file).parent if project_file else Path.cwd()
+    settings = settings_from_dict(data, base_dir=base, where=str(run_json))
+    echo = None if ctx.obj.get("quiet") else _echo_err
+    result = run_project(settings, out, overwrite=overwrite, echo=echo,
+                         scheduler=scheduler or prov.get("scheduler"), cache_dir=None)
+    _print_summary(result, out)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

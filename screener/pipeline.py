@@ -1,0 +1,1100 @@
+"""Run the stages in order: intake, models, overlap, candidate sites, outputs.
+
+This module and :mod:`screener.cli` are the only places that put stages together;
+each stage is a plain function that a notebook user can call on the same values.
+Work is cached by input hashes and settings (:mod:`screener.cache`), so a rerun with
+new ranking weights refits nothing, and a run interrupted with Ctrl-C resumes
+without redoing finished stages.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import platform
+import time
+import warnings
+import zlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from screener import __version__
+from screener.background import accessible_area, draw_background
+from screener.errors import InputError, LayerError, ScreenerWarning
+from screener.layers import LayerStack, check_layers, hillshade, read_layers, slope_aspect
+from screener.project import Settings
+from screener.records import RecordSet, read_records, validate_records
+from screener.results import RunResult, TaxonResult
+
+__all__ = [
+    "Intake",
+    "Progress",
+    "load_inputs",
+    "model_taxon",
+    "compare_taxa",
+    "plan_sites",
+    "run_project",
+    "check_project",
+    "taxon_seed",
+    "file_sha256",
+]
+
+log = logging.getLogger(__name__)
+
+
+class Progress:
+    """Stage-by-stage progress messages (to a callable such as ``print``).
+
+    ``Progress(None)`` is silent.  ``stage(text)`` starts a stage; ``done()`` prints
+    its duration; ``step(text)`` reports within a stage.
+    """
+
+    def __init__(self, echo=None, n_stages: int = 5):
+        self.echo = echo
+        self.n_stages = n_stages
+        self.i = 0
+        self.t0 = None
+        self.timings: dict = {}
+        self._name = None
+
+    def stage(self, name: str):
+        self.done()
+        self.i += 1
+        self._name = name
+        self.t0 = time.perf_counter()
+        if self.echo:
+            self.echo(f"[{self.i}/{self.n_stages}] {name}")
+
+    def step(self, text: str):
+        if self.echo:
+            self.echo(f"      {text}")
+
+    def done(self):
+        if self._name is not None and self.t0 is not None:
+            dt = time.perf_counter() - self.t0
+            self.timings[self._name] = round(dt, 3)
+            if self.echo:
+                self.echo(f"      done in {dt:.1f} s")
+        self._name = None
+
+
+def file_sha256(path) -> str:
+    """SHA-256 of a file's bytes (hex)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def taxon_seed(random_state: int, taxon: str) -> int:
+    """Seed of one taxon's random draws: adding a taxon does not change the others'."""
+    ss = np.random.SeedSequence([int(random_state) & 0xFFFFFFFF, zlib.crc32(taxon.encode())])
+    return int(ss.generate_state(1)[0])
+
+
+@dataclass(eq=False)
+class Intake:
+    """Validated inputs of a run.
+
+    Attributes
+    ----------
+    settings : Settings
+    stack : LayerStack
+        Every layer read or derived.
+    predictors : list of str
+        Layers used as model predictors (constant and excluded layers left out).
+    layer_report : screener.layers.LayerReport
+    records : RecordSet
+    elevation : ndarray or None
+    input_hashes : dict of str to str
+        SHA-256 of every input file.
+    warnings : list of str
+    """
+
+    settings: Settings
+    stack: LayerStack
+    predictors: list
+    layer_report: object
+    records: RecordSet
+    elevation: np.ndarray | None
+    input_hashes: dict
+    warnings: list = field(default_factory=list)
+    start_points: object = None
+    surveyed: object = None
+
+    @property
+    def grid(self):
+        return self.stack.grid
+
+    def predictor_stack(self) -> LayerStack:
+        return self.stack.select(self.predictors)
+
+    def summary_lines(self) -> list:
+        g = self.grid
+        kind = "geographic (lon/lat)" if g.is_geographic else "projected"
+        area = float(np.asarray(g.cell_area_km2, float)[g.mask].sum())
+        out = [
+            f"Grid: {g.pyproj_crs.to_string()} ({kind}), {g.n_rows} rows x {g.n_cols} cols, "
+            f"cell {g.res[0]:g} x {g.res[1]:g} CRS units; {g.n_valid:,} valid cells, "
+            f"{area:,.1f} km2",
+            f"Layers ({len(self.stack.names)}): {', '.join(self.stack.names)}",
+            f"Predictors ({len(self.predictors)}): {', '.join(self.predictors)}",
+        ]
+        rep = self.layer_report
+        if rep.constant:
+            out.append(f"Constant layers (left out): {', '.join(rep.constant)}")
+        for a, b, r in rep.collinear:
+            out.append(f"Collinear pair (|r| > 0.7, common practice): {a} / {b}, r = {r:+.2f}")
+        out.append(
+            f"Records: {self.records.n_rows} rows in {self.records.path}; "
+            f"{sum(t.n for t in self.records.taxa.values())} kept, "
+            f"{len(self.records.dropped)} dropped"
+        )
+        out.extend(self.records.summary_lines())
+        return out
+
+
+def _read_points_csv(path, what: str, need=("longitude", "latitude")):
+    """Read a small CSV of points (start points, surveyed places) with checks."""
+    import pandas as pd
+
+    from screener.records import _decode
+
+    text = _decode(Path(path).read_bytes(), str(path), None)
+    import io
+
+    try:
+        df = pd.read_csv(io.StringIO(text))
+    except Exception as exc:  # pandas raises several parser errors
+        raise InputError(f"{path} ({what}) is not a readable CSV file: {exc}") from None
+    df.columns = [str(c).strip().lower() for c in df.columns]
+    for c in need:
+        if c not in df.columns:
+            from screener.errors import suggest
+
+            raise InputError(
+                f"{path} ({what}) needs a {c!r} column; it has {', '.join(df.columns)}."
+                + suggest(c, df.columns)
+            )
+    for c in need:
+        vals = pd.to_numeric(df[c], errors="coerce")
+        bad = np.flatnonzero(vals.isna().to_numpy())
+        if bad.size:
+            raise InputError(
+                f"{path} ({what}) line {int(bad[0]) + 2}: {c} {df[c].iloc[bad[0]]!r} is not "
+                "a number (decimal degrees, WGS84)."
+            )
+        df[c] = vals
+    if (df["latitude"].abs() > 90).any() or (df["longitude"].abs() > 180).any():
+        i = int(np.flatnonzero((df["latitude"].abs() > 90) | (df["longitude"].abs() > 180))[0])
+        raise InputError(
+            f"{path} ({what}) line {i + 2}: coordinates out of range (longitude and "
+            "latitude swapped?)."
+        )
+    return df
+
+
+def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Intake:
+    """Read and check layers and records (no model is fitted).
+
+    Raises
+    ------
+    screener.errors.InputError
+        Any problem with the inputs, with file, row or layer named.
+    """
+    progress = progress or Progress(None)
+    s = settings
+    caught: list = []
+    with warnings.catch_warnings(record=True) as wlist:
+        warnings.simplefilter("always", ScreenerWarning)
+        stack = read_layers(
+            s.layers.paths,
+            categorical=s.layers.categorical,
+            cell_budget=s.layers.cell_budget,
+        )
+        elevation = None
+        if s.layers.elevation:
+            if s.layers.elevation not in stack.names:
+                from screener.errors import suggest
+
+                raise LayerError(
+                    f"[layers] elevation = {s.layers.elevation!r} names no layer; layers "
+                    f"are {', '.join(stack.names)}." + suggest(s.layers.elevation, stack.names)
+                )
+            elevation = stack.layer(s.layers.elevation).astype(np.float64)
+            if s.layers.derive:
+                slope, aspect = slope_aspect(stack.grid, elevation)
+                extra = {"slope": slope, "aspect": aspect}
+                add = [d for d in s.layers.derive if d not in stack.names]
+                if add:
+                    data = np.concatenate(
+                        [stack.data] + [extra[d][None] for d in add], axis=0
+                    )
+                    data[:, ~stack.grid.mask] = np.nan
+                    stack = LayerStack(
+                        stack.grid,
+                        stack.names + add,
+                        data,
+                        stack.paths + [None] * len(add),
+                        stack.units + ["degrees"] * len(add),
+                    )
+        for name in s.layers.exclude:
+            if name not in stack.names:
+                from screener.errors import suggest
+
+                raise LayerError(
+                    f"[layers] exclude names {name!r}, which is not a layer."
+                    + suggest(name, stack.names)
+                )
+        report = check_layers(stack, random_state=s.project.random_state)
+        predictors = [
+            n for n in stack.names if n not in report.constant and n not in s.layers.exclude
+        ]
+        if not predictors:
+            raise LayerError("No usable predictor layers are left (all constant or excluded).")
+        raw = read_records(
+            s.occurrences.path,
+            encoding=s.occurrences.encoding or None,
+            taxon_column=s.occurrences.taxon_column,
+            decimal=s.occurrences.decimal or None,
+        )
+        records = validate_records(
+            raw,
+            stack.grid,
+            min_records=s.occurrences.min_records,
+            thin_km=s.occurrences.thin_km,
+            sensitive=s.occurrences.sensitive,
+            taxa=s.project.taxa or None,
+            random_state=s.project.random_state,
+        )
+        caught.extend(str(w.message) for w in wlist if issubclass(w.category, ScreenerWarning))
+    if len(records.taxa) < 1:
+        raise InputError("No taxon has usable records.")
+    start_points = surveyed = None
+    if s.access.start_points is not None:
+        start_points = _read_points_csv(s.access.start_points, "start points")
+    if s.survey.surveyed is not None:
+        surveyed = _read_points_csv(s.survey.surveyed, "surveyed places")
+    hashes = {}
+    for p in list(s.layers.paths) + [s.occurrences.path, s.access.start_points,
+                                      s.survey.surveyed]:
+        if p is not None:
+            hashes[str(p)] = file_sha256(p)
+    if settings.path is not None:
+        hashes[str(settings.path)] = file_sha256(settings.path)
+    return Intake(
+        settings=s,
+        stack=stack,
+        predictors=predictors,
+        layer_report=report,
+        records=records,
+        elevation=elevation,
+        input_hashes=hashes,
+        warnings=caught,
+        start_points=start_points,
+        surveyed=surveyed,
+    )
+
+
+def check_project(settings: Settings) -> list:
+    """Validate a project without fitting anything; return the summary lines."""
+    intake = load_inputs(settings)
+    lines = intake.summary_lines()
+    lines.extend(f"Warning: {w}" for w in intake.warnings)
+    return lines
+
+
+# --------------------------------------------------------------------------- models
+def predict_map(model, stack: LayerStack, *, max_cells: int = 1 << 20) -> np.ndarray:
+    """Predict a fitted model over the grid block by block (float32, NaN off-mask)."""
+    out = np.full(stack.grid.shape, np.nan, dtype=np.float32)
+    for sl, X, valid in stack.iter_blocks(max_cells):
+        if X.shape[0]:
+            block = out[sl]
+            block[valid] = model.predict(X).astype(np.float32)
+    return out
+
+
+def _family_params(settings: Settings, family: str) -> dict:
+    params = dict(settings.models.get(family, {}) or {})
+    return params
+
+
+def model_taxon(
+    intake: Intake,
+    taxon: str,
+    *,
+    progress: Progress | None = None,
+    map_fn=map,
+) -> TaxonResult:
+    """Fit, evaluate, threshold and map every model family for one taxon.
+
+    Parameters
+    ----------
+    intake : Intake
+    taxon : str
+    progress : Progress, optional
+    map_fn : callable, default builtin map
+        ``map``-like callable for independent evaluation tasks (a parallel
+        executor's ``map``).
+
+    Returns
+    -------
+    TaxonResult
+    """
+    from screener.evaluation import evaluate_family
+    from screener.models import make_model
+    from screener.models.base import training_presence_scores
+    from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean
+    from screener.novelty import mess
+    from screener.thresholds import compute_thresholds
+
+    progress = progress or Progress(None)
+    s = intake.settings
+    grid = intake.grid
+    rec = intake.records.taxa[taxon]
+    seed = taxon_seed(s.project.random_state, taxon)
+    stack = intake.predictor_stack()
+    acc = accessible_area(grid, rec.lon, rec.lat, s.background.buffer_km)
+    acc[rec.rows, rec.cols] = True
+    bg = draw_background(grid, acc, max_points=s.background.max_points, random_state=seed)
+    P = stack.values_at(rec.rows, rec.cols)
+    B = stack.values_at(bg.rows, bg.cols)
+    bg_xy = np.column_stack(grid.lonlat(bg.rows, bg.cols))
+    rec_xy = np.column_stack([rec.lon, rec.lat])
+    areas = np.asarray(grid.cell_area_km2, float)
+
+    family_maps, evaluations, thresholds_by_family, rec_scores = {}, {}, {}, {}
+    bg_scores = {}
+    for family in s.models.families:
+        params = _family_params(s, family)
+        progress.step(f"{taxon}: {family} model ({rec.n} records, {bg.n} background)")
+        model = make_model(family, random_state=seed, **params) if _takes_seed(
+            family
+        ) else make_model(family, **params)
+        model.fit(P, B)
+        ev = evaluate_family(
+            family,
+            {**params, **({"random_state": seed} if _takes_seed(family) else {})},
+            P,
+            B,
+            presence_xy=rec_xy,
+            background_xy=bg_xy,
+            study_area=B,
+            jackknife_below=s.evaluation.jackknife_below,
+            n_null=s.evaluation.n_null,
+            random_state=seed,
+            map_fn=map_fn,
+        )
+        m = predict_map(model, stack)
+        scores = training_presence_scores(model, P)
+        b_scores = model.predict(B)
+        th = compute_thresholds(
+            scores, m, areas, relax=s.thresholds.relax, background_scores=b_scores
+        )
+        family_maps[family] = m
+        evaluations[family] = ev
+        thresholds_by_family[family] = th
+        rec_scores[family] = scores
+        bg_scores[family] = b_scores
+
+    weights = ensemble_weights(evaluations)
+    consensus = weighted_mean(family_maps, weights)
+    c_rec = sum(weights[f] * rec_scores[f] for f in family_maps)
+    c_bg = sum(weights[f] * bg_scores[f] for f in family_maps)
+    c_th = compute_thresholds(
+        c_rec, consensus, areas, relax=s.thresholds.relax, background_scores=c_bg
+    )
+    agreement = agreement_map(
+        family_maps, {f: thresholds_by_family[f]["mtp"].value for f in family_maps}
+    )
+    novelty, most = _mess_map(stack, B)
+
+    rows = []
+    for family, ev in evaluations.items():
+        row = {"taxon": taxon, "algorithm": family}
+        row.update({k: v for k, v in ev.as_row().items() if k not in ("family", "taxon")})
+        row.setdefault("n_records", rec.n)
+        th = thresholds_by_family[family]
+        row.update(_threshold_columns(th))
+        row["ensemble_weight"] = weights[family]
+        rows.append(row)
+    from screener.evaluation import auc as auc_fn
+
+    ens = {
+        "taxon": taxon,
+        "algorithm": "ensemble",
+        "n_records": rec.n,
+        "method": "training",
+        "auc_train": auc_fn(c_rec, c_bg),
+    }
+    ens.update(_threshold_columns(c_th))
+    ens["ensemble_weight"] = 1.0
+    rows.append(ens)
+    return TaxonResult(
+        taxon=taxon,
+        records=rec,
+        suitability=consensus.astype(np.float32),
+        family_maps=family_maps,
+        agreement=agreement,
+        mess=novelty,
+        most_dissimilar=most,
+        thresholds=c_th,
+        accessible=acc,
+        evaluation=rows,
+        presence_env=P,
+        background_env=B,
+        background_cells=(bg.rows, bg.cols),
+        seed=seed,
+    )
+
+
+def _takes_seed(family: str) -> bool:
+    import inspect
+
+    from screener.models import FAMILIES
+
+    return "random_state" in inspect.signature(FAMILIES[family].__init__).parameters
+
+
+def _threshold_columns(th: dict) -> dict:
+    out = {}
+    for name, t in th.items():
+        out[f"threshold_{name}"] = t.value
+        out[f"area_km2_{name}"] = t.area_km2
+        out[f"training_omission_{name}"] = t.training_omission
+    if "mtp" in th:
+        out["omission_mtp_train"] = th["mtp"].training_omission
+    return out
+
+
+def _mess_map(stack: LayerStack, reference: np.ndarray, max_cells: int = 1 << 20):
+    from screener.novelty import mess
+
+    out = np.full(stack.grid.shape, np.nan, dtype=np.float32)
+    most = np.full(stack.grid.shape, -1, dtype=np.int16)
+    for sl, X, valid in stack.iter_blocks(max_cells):
+        if X.shape[0]:
+            m, idx = mess(reference, X)
+            ob = out[sl]
+            ob[valid] = m
+            mb = most[sl]
+            mb[valid] = idx
+    return out, most
+
+
+# --------------------------------------------------------------------------- overlap
+class GeographicRefit:
+    """Refit a model family to a re-split of pooled records and map it (picklable).
+
+    Used by the geographic-space equivalency test: ``self(index)`` fits the family
+    to the pooled presence rows ``index`` against the pooled background and returns
+    the suitability map.
+    """
+
+    def __init__(self, family, params, presence, background, stack_values, mask):
+        self.family = family
+        self.params = params
+        self.presence = presence
+        self.background = background
+        self.stack_values = stack_values
+        self.mask = mask
+
+    def __call__(self, index):
+        from screener.models import make_model
+
+        model = make_model(self.family, **self.params).fit(
+            self.presence[np.asarray(index)], self.background
+        )
+        out = np.full(self.mask.shape, np.nan, dtype=np.float32)
+        out[self.mask] = model.predict(self.stack_values).astype(np.float32)
+        return out
+
+
+def compare_taxa(intake: Intake, taxa: dict, *, executor=None, progress=None):
+    """Niche overlap and its tests for every pair of taxa.
+
+    Returns
+    -------
+    overlap : pandas.DataFrame
+        Rows of overlap.csv.
+    readings : list of str
+        Plain-words reading per pair.
+    comparisons : list
+        The :class:`screener.overlap.PairComparison` objects (for figures).
+    """
+    import itertools
+
+    import pandas as pd
+
+    from screener.overlap import compare_pair
+
+    progress = progress or Progress(None)
+    s = intake.settings
+    grid = intake.grid
+    names = list(taxa)
+    rows, readings, comparisons = [], [], []
+    areas = np.asarray(grid.cell_area_km2, float)
+    for a, b in itertools.combinations(names, 2):
+        ta, tb = taxa[a], taxa[b]
+        seed = int(np.random.SeedSequence(
+            [s.project.random_state, zlib.crc32(f"{a}\x00{b}".encode())]
+        ).generate_state(1)[0])
+        refit = _geographic_refit(intake, ta, tb, progress)
+        progress.step(
+            f"{a} vs {b}: {s.overlap.n_replicates} replicates"
+            + (" (environmental and geographic)" if refit else " (environmental)")
+        )
+        cmp = compare_pair(
+            a,
+            b,
+            map_a=ta.suitability,
+            map_b=tb.suitability,
+            cell_area_km2=areas,
+            env_records_a=ta.presence_env,
+            env_records_b=tb.presence_env,
+            env_background_a=ta.background_env,
+            env_background_b=tb.background_env,
+            n_replicates=s.overlap.n_replicates,
+            alternative=s.overlap.alternative,
+            resolution=s.overlap.resolution,
+            random_state=seed,
+            executor=executor,
+            geographic_fit_predict=refit,
+        )
+        comparisons.append(cmp)
+        rows.extend(cmp.rows())
+        readings.append(cmp.plain_reading())
+    from screener.outputs.tables import OVERLAP_COLUMNS
+
+    df = pd.DataFrame(rows) if rows else pd.DataFrame(columns=OVERLAP_COLUMNS)
+    return df, readings, comparisons
+
+
+def _geographic_refit(intake, ta, tb, progress):
+    """The refitting callable for geographic tests, or None when switched off."""
+    s = intake.settings
+    mode = s.overlap.geographic_tests
+    if mode == "off" or s.overlap.n_replicates <= 0:
+        return None
+    family = s.models.families[0]
+    params = _family_params(s, family)
+    if _takes_seed(family):
+        params = {**params, "random_state": ta.seed}
+    stack = intake.predictor_stack()
+    X = stack.data[:, intake.grid.mask].T.astype(np.float32)
+    presence = np.vstack([ta.presence_env, tb.presence_env])
+    background = np.vstack([ta.background_env, tb.background_env])
+    refit = GeographicRefit(family, params, presence, background, X, intake.grid.mask)
+    t0 = time.perf_counter()
+    refit(np.arange(ta.presence_env.shape[0]))
+    per = time.perf_counter() - t0
+    # equivalency needs 2 maps per replicate, each similarity test one more
+    estimate = per * s.overlap.n_replicates * 4
+    if mode == "auto" and estimate > 120:
+        progress.step(
+            f"geographic-space tests would take about {estimate / 60:.0f} min "
+            f"(refitting {family} {4 * s.overlap.n_replicates} times); skipped. "
+            "Set [overlap] geographic_tests = \"on\" to run them."
+        )
+        return None
+    return refit
+
+
+# --------------------------------------------------------------------------- sites
+def _clade_mess(intake: Intake, taxa: dict):
+    """MESS of every cell against the pooled calibration background of the clade."""
+    ref = np.vstack([t.background_env for t in taxa.values()])
+    return _mess_map(intake.predictor_stack(), ref)
+
+
+def plan_sites(intake: Intake, taxa: dict, *, progress=None) -> dict:
+    """Candidate sites, least-cost paths, barriers, access and the ranked plan.
+
+    Returns
+    -------
+    dict
+        ``sites`` (GeoDataFrame, best first), ``paths`` (GeoDataFrame), ``barrier``,
+        ``access_hours``, ``candidates`` (the :class:`screener.isolation.CandidateSet`),
+        ``clade_mess``.
+    """
+    from screener.isolation import find_candidates, paths_geodataframe, sites_geodataframe
+    from screener.ranking import group_sites, rank_sites
+
+    progress = progress or Progress(None)
+    s = intake.settings
+    grid = intake.grid
+    use = s.thresholds.use
+    suit = {n: t.suitability for n, t in taxa.items()}
+    th_main = {n: t.thresholds[use].value for n, t in taxa.items()}
+    th_relaxed = None
+    if use == "mtp":
+        th_relaxed = {n: t.thresholds["relaxed"].value for n, t in taxa.items()}
+    records = {n: (t.records.rows, t.records.cols) for n, t in taxa.items()}
+    agreement = None
+    ags = [t.agreement for t in taxa.values() if t.agreement is not None]
+    if ags:
+        agreement = np.nanmax(np.stack(ags), axis=0)
+    clade_mess, _ = _clade_mess(intake, taxa)
+    progress.step("patches, known ranges and cost distance")
+    cand = find_candidates(
+        grid,
+        suit,
+        th_main,
+        records,
+        relaxed_thresholds=th_relaxed,
+        min_gap_km=s.isolation.min_gap_km,
+        min_patch_km2=s.isolation.min_patch_km2,
+        within_range_min_km=s.isolation.within_range_min_km,
+        resistance=s.isolation.resistance,
+        agreement=agreement,
+        novelty=clade_mess,
+        elevation=intake.elevation,
+    )
+    sites = cand.sites.copy()
+    access_hours = None
+    if intake.start_points is not None and intake.elevation is not None:
+        from screener.access import walking_hours
+
+        progress.step("walking time from start points (Tobler's hiking function)")
+        sp = intake.start_points
+        x, y = grid.from_lonlat(sp["longitude"].to_numpy(), sp["latitude"].to_numpy())
+        r, c, inside = grid.rowcol(x, y)
+        ok = inside & grid.mask[r, c]
+        if not ok.any():
+            raise InputError(
+                f"None of the start points in {s.access.start_points} lies on a valid "
+                "cell of the grid; check their coordinates."
+            )
+        access_hours = walking_hours(
+            grid,
+            intake.elevation,
+            np.column_stack([r[ok], c[ok]]),
+            off_track=s.access.off_track,
+        )
+        sites["walk_hours"] = access_hours[
+            sites["row"].to_numpy(int), sites["col"].to_numpy(int)
+        ]
+    else:
+        sites["walk_hours"] = np.nan
+    surveyed = _surveyed_points(intake, taxa)
+    progress.step(f"ranking {len(sites)} sites ({s.ranking.n_draws} weight draws)")
+    ranked = rank_sites(
+        sites,
+        s.ranking.weights or None,
+        top_k=s.ranking.top_k,
+        n_draws=s.ranking.n_draws,
+        random_state=s.project.random_state,
+        max_walk_hours=s.access.max_walk_hours or None,
+        surveyed=surveyed,
+    )
+    ranked = group_sites(grid, ranked, cand)
+    gdf = sites_geodataframe(grid, cand)
+    keep_cols = [c for c in ranked.columns if c not in gdf.columns or c == "site_id"]
+    gdf = gdf[["site_id", "geometry"]].merge(ranked[keep_cols], on="site_id", how="right")
+    gdf = gdf.sort_values("rank", kind="stable").reset_index(drop=True)
+    import geopandas as gpd
+
+    gdf = gpd.GeoDataFrame(gdf, geometry="geometry", crs=grid.pyproj_crs)
+    paths = paths_geodataframe(grid, cand)
+    return {
+        "sites": gdf,
+        "paths": paths,
+        "barrier": cand.barrier,
+        "access_hours": access_hours,
+        "candidates": cand,
+        "clade_mess": clade_mess,
+    }
+
+
+def _surveyed_points(intake: Intake, taxa: dict):
+    """Longitude/latitude of places already surveyed (file and/or record localities)."""
+    pts = []
+    if intake.surveyed is not None:
+        pts.append(intake.surveyed[["longitude", "latitude"]].to_numpy(float))
+    if intake.settings.survey.records_as_surveys:
+        for t in taxa.values():
+            pts.append(np.column_stack([t.records.lon, t.records.lat]))
+    return np.vstack(pts) if pts else None
+
+
+# --------------------------------------------------------------------------- run
+def _safe_name(name: str) -> str:
+    import re
+
+    return re.sub(r"[^A-Za-z0-9._-]+", "_", name).strip("_") or "taxon"
+
+
+def _versions() -> dict:
+    import importlib.metadata as md
+
+    out = {"screener": __version__, "python": platform.python_version()}
+    for pkg in ["numpy", "scipy", "scikit-learn", "scikit-image", "geopandas", "rasterio",
+                "pyproj", "shapely", "matplotlib", "pandas"]:
+        try:
+            out[pkg] = md.version(pkg)
+        except md.PackageNotFoundError:
+            out[pkg] = None
+    try:
+        import rasterio
+
+        out["gdal"] = rasterio.__gdal_version__
+    except Exception:  # pragma: no cover
+        out["gdal"] = None
+    return out
+
+
+def make_run_executor(scheduler: str, n_workers: int = 0):
+    """Executor for a run: "serial", "processes", "dask" (local) or a Dask address."""
+    from screener.parallel import make_executor
+
+    n = n_workers or None
+    if scheduler in ("serial", "processes"):
+        return make_executor(scheduler, n_workers=n)
+    if scheduler in ("dask", "dask-local"):
+        return make_executor("dask", n_workers=n)
+    return make_executor("dask", address=scheduler)
+
+
+def _taxon_key(intake: Intake, taxon: str) -> str:
+    from screener.cache import digest
+
+    s = intake.settings
+    rec = intake.records.taxa[taxon]
+    layer_hashes = [intake.input_hashes.get(str(p)) for p in s.layers.paths]
+    return digest(
+        "taxon-model",
+        taxon,
+        layer_hashes,
+        dict(s.layers),
+        intake.predictors,
+        rec.rows,
+        rec.cols,
+        rec.lon,
+        rec.lat,
+        s.project.random_state,
+        dict(s.background),
+        dict(s.models),
+        dict(s.evaluation),
+        dict(s.thresholds),
+    )
+
+
+def run_analysis(
+    settings: Settings,
+    *,
+    echo=None,
+    scheduler: str | None = None,
+    cache_dir=None,
+    intake: Intake | None = None,
+) -> RunResult:
+    """Run every analysis stage and return the :class:`RunResult` (writes nothing).
+
+    Parameters
+    ----------
+    settings : Settings
+    echo : callable, optional
+        Receives progress lines (e.g. ``print``).
+    scheduler : str, optional
+        Overrides ``[compute] scheduler``.
+    cache_dir : path-like, optional
+        Stage cache folder; None caches nothing.
+    intake : Intake, optional
+        Already loaded inputs.
+    """
+    from screener.cache import StageCache, digest
+
+    s = settings
+    progress = Progress(echo, n_stages=5)
+    cache = StageCache(cache_dir)
+    t_start = time.perf_counter()
+    progress.stage("Reading and checking layers and records")
+    if intake is None:
+        intake = load_inputs(s, progress=progress)
+    for line in intake.summary_lines()[:3]:
+        progress.step(line)
+    sched = scheduler or s.compute.scheduler
+    with make_run_executor(sched, s.compute.n_workers) as executor:
+        progress.stage(
+            f"Fitting {', '.join(s.models.families)} for {len(intake.records.taxa)} taxa"
+        )
+        taxa = {}
+        for name in intake.records.taxa:
+            key = _taxon_key(intake, name)
+            res = cache.get("taxon", key)
+            if res is None:
+                res = model_taxon(intake, name, progress=progress, map_fn=executor.map)
+                cache.put("taxon", key, res)
+            else:
+                progress.step(f"{name}: reused cached models")
+            taxa[name] = res
+        progress.stage("Niche overlap between sister taxa")
+        if len(taxa) >= 2:
+            okey = digest("overlap", [_taxon_key(intake, n) for n in taxa], dict(s.overlap),
+                          dict(s.models), s.project.random_state)
+            got = cache.get("overlap", okey)
+            if got is None:
+                got = compare_taxa(intake, taxa, executor=executor, progress=progress)
+                cache.put("overlap", okey, got)
+            else:
+                progress.step("reused cached overlap tests")
+            overlap, readings, comparisons = got
+        else:
+            import pandas as pd
+
+            from screener.outputs.tables import OVERLAP_COLUMNS
+
+            overlap, readings, comparisons = pd.DataFrame(columns=OVERLAP_COLUMNS), [], []
+            progress.step("one taxon only: no overlap to measure")
+    progress.stage("Candidate sites, barriers and the ranked plan")
+    plan = plan_sites(intake, taxa, progress=progress)
+    progress.done()
+    shade = hillshade(intake.grid, intake.elevation) if intake.elevation is not None else None
+    warns = list(intake.warnings)
+    novel = plan["sites"]["novel_share"].fillna(0) > 0 if len(plan["sites"]) else []
+    if len(plan["sites"]) and np.any(novel):
+        ids = plan["sites"].loc[novel, "site_id"].tolist()
+        warns.append(
+            f"{len(ids)} sites include novel environments (MESS < 0): predictions there "
+            "extrapolate beyond the calibration data; treat them with extra caution."
+        )
+    provenance = {
+        "screener_version": __version__,
+        "versions": _versions(),
+        "settings": s.as_dict(),
+        "project_file": str(s.path) if s.path else None,
+        "input_hashes": intake.input_hashes,
+        "seeds": {"random_state": s.project.random_state,
+                  **{n: t.seed for n, t in taxa.items()}},
+        "timings_s": dict(progress.timings),
+        "elapsed_s": round(time.perf_counter() - t_start, 3),
+        "scheduler": sched,
+        "cache": {"folder": str(cache_dir) if cache_dir else None,
+                  "hits": cache.hits, "misses": cache.misses},
+        "warnings": warns,
+        "platform": platform.platform(),
+    }
+    return RunResult(
+        grid=intake.grid,
+        layer_names=intake.predictors,
+        taxa=taxa,
+        sites=plan["sites"],
+        dropped=intake.records.dropped,
+        overlap=overlap,
+        overlap_readings=readings,
+        paths=plan["paths"],
+        barrier=plan["barrier"],
+        elevation=intake.elevation,
+        hillshade=shade,
+        access_hours=plan["access_hours"],
+        sampling_points=None,
+        settings=s.as_dict(),
+        provenance=provenance,
+        warnings=warns,
+        intake_summary=intake.summary_lines(),
+        comparisons=comparisons,
+        candidates=plan["candidates"],
+        clade_mess=plan["clade_mess"],
+    )
+
+
+def write_outputs(result: RunResult, folder, *, progress=None) -> list:
+    """Write every output of a run into ``folder`` (which must exist).
+
+    Returns the list of files written (relative to ``folder``).
+    """
+    from screener.outputs import gpx, report, sheets
+    from screener.outputs.rasters import write_raster
+    from screener.outputs.tables import (
+        CANDIDATE_COLUMNS,
+        EVALUATION_COLUMNS,
+        OVERLAP_COLUMNS,
+        write_csv,
+    )
+
+    import pandas as pd
+
+    progress = progress or Progress(None)
+    folder = Path(folder)
+    grid = result.grid
+    s = result.settings
+    written = []
+
+    def rel(p):
+        written.append(str(Path(p).relative_to(folder)))
+
+    for sub in ("suitability", "ranges", "novelty"):
+        (folder / sub).mkdir(exist_ok=True)
+    progress.step("rasters")
+    for name, t in result.taxa.items():
+        safe = _safe_name(name)
+        rel(write_raster(folder / "suitability" / f"{safe}.tif", t.suitability, grid,
+                         description=f"consensus suitability of {name}"))
+        for fam, m in t.family_maps.items():
+            rel(write_raster(folder / "suitability" / f"{safe}.{fam}.tif", m, grid,
+                             description=f"{fam} suitability of {name}"))
+        if t.agreement is not None:
+            rel(write_raster(folder / "suitability" / f"{safe}.agreement.tif", t.agreement,
+                             grid, description="share of families calling the cell suitable"))
+        for key, th in t.thresholds.items():
+            if key in ("mtp", "relaxed"):
+                binary = np.where(grid.mask, t.suitability >= th.value, False)
+                rel(write_raster(folder / "ranges" / f"{safe}.{key}.tif", binary, grid,
+                                 description=f"suitable at {key} = {th.value:.4f}"))
+        if t.mess is not None:
+            rel(write_raster(folder / "novelty" / f"{safe}.mess.tif", t.mess, grid,
+                             description="MESS; < 0 = novel environment"))
+        if t.most_dissimilar is not None:
+            rel(write_raster(folder / "novelty" / f"{safe}.most_dissimilar.tif",
+                             t.most_dissimilar.astype(np.int32), grid,
+                             description="index of the most dissimilar layer: "
+                             + ", ".join(f"{i}={n}" for i, n in enumerate(result.layer_names))))
+    if result.barrier is not None:
+        rel(write_raster(folder / "barrier.tif", result.barrier, grid,
+                         description="depth of unsuitable gaps between sister ranges"))
+    if result.access_hours is not None:
+        ah = np.where(np.isfinite(result.access_hours), result.access_hours, np.nan)
+        rel(write_raster(folder / "access_hours.tif", ah, grid,
+                         description="walking hours from the nearest start point"))
+    progress.step("tables")
+    ev = pd.DataFrame([r for t in result.taxa.values() for r in t.evaluation])
+    rel(write_csv(folder / "evaluation.csv", ev, EVALUATION_COLUMNS))
+    rel(write_csv(folder / "overlap.csv", result.overlap, OVERLAP_COLUMNS))
+    if len(result.taxa) > 2 and result.comparisons:
+        from screener.overlap import pairwise_table
+
+        pw = pairwise_table(result.comparisons)
+        pw.to_csv(folder / "overlap_pairwise.csv", float_format="%.10g", lineterminator="\n")
+        rel(folder / "overlap_pairwise.csv")
+    dropped = pd.DataFrame(
+        [{"line": d.line, "taxon": d.taxon, "reason": d.reason} for d in result.dropped],
+        columns=["line", "taxon", "reason"],
+    )
+    rel(write_csv(folder / "dropped_records.csv", dropped))
+    shareable = result
+    try:
+        from screener.outputs.privacy import shareable_result
+
+        shareable = shareable_result(result)
+    except ImportError:  # pragma: no cover
+        pass
+    sites = shareable.sites
+    rel(write_csv(folder / "candidates.csv", sites, CANDIDATE_COLUMNS))
+    gpkg = folder / "candidates.gpkg"
+    if len(sites):
+        sites.to_file(gpkg, layer="sites", driver="GPKG")
+    else:
+        import geopandas as gpd
+
+        gpd.GeoDataFrame({"site_id": []}, geometry=[], crs=grid.pyproj_crs).to_file(
+            gpkg, layer="sites", driver="GPKG"
+        )
+    if result.paths is not None and len(result.paths):
+        result.paths.to_file(gpkg, layer="least_cost_paths", driver="GPKG")
+    rel(gpkg)
+    progress.step("waypoints, field sheets and report")
+    rel(gpx.write_gpx(folder / "sites.gpx", sites, shareable.sampling_points))
+    so = s.get("outputs", {})
+    rel(sheets.write_field_sheets(
+        folder / "field_sheets.pdf", shareable, top_n=so.get("field_sheets", 10),
+        page_size=so.get("page_size", "A4"),
+    ))
+    html = report.render_report(shareable)
+    (folder / "report.html").write_text(html, encoding="utf-8")
+    rel(folder / "report.html")
+    prov = dict(result.provenance)
+    prov["outputs"] = sorted(written + ["run.json"])
+    (folder / "run.json").write_text(json.dumps(_jsonable(prov), indent=2, sort_keys=True)
+                                     + "\n", encoding="utf-8")
+    return sorted(written + ["run.json"])
+
+
+def _jsonable(obj):
+    if isinstance(obj, dict):
+        return {str(k): _jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_jsonable(v) for v in obj]
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (np.floating, float)):
+        v = float(obj)
+        return v if np.isfinite(v) else None
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj
+
+
+def _add_sampling_points(result: RunResult) -> None:
+    """Suggested sampling points for the top sites (for sheets and GPX)."""
+    import pandas as pd
+
+    from screener.outputs.sheets import suggest_sampling_points
+
+    so = result.settings.get("outputs", {})
+    n_pts = int(so.get("sampling_points", 5))
+    top = int(so.get("field_sheets", 10))
+    cand = result.candidates
+    if cand is None or not len(result.sites) or n_pts <= 0:
+        return
+    clade = np.nanmax(np.stack([t.suitability for t in result.taxa.values()]), axis=0)
+    frames = []
+    for _, site in result.sites.head(top).iterrows():
+        site_mask = cand.patch_labels == int(site["site_id"])
+        if not site_mask.any():
+            continue
+        pts = suggest_sampling_points(result.grid, site_mask, clade, n=n_pts)
+        pts["site_id"] = int(site["site_id"])
+        frames.append(pts)
+    if frames:
+        result.sampling_points = pd.concat(frames, ignore_index=True)
+
+
+def run_project(
+    settings: Settings,
+    out_dir,
+    *,
+    overwrite: bool = False,
+    echo=None,
+    scheduler: str | None = None,
+    cache_dir="auto",
+) -> RunResult:
+    """Run a project end to end and write its outputs into ``out_dir``.
+
+    Everything is written into a staging folder beside ``out_dir`` and renamed into
+    place at the end, so a failed or interrupted run leaves no half-written folder.
+
+    Parameters
+    ----------
+    settings : Settings
+    out_dir : path-like
+    overwrite : bool, default False
+        Replace an existing ``out_dir``.
+    echo : callable, optional
+        Receives progress lines.
+    scheduler : str, optional
+        "serial", "processes", "dask" or a Dask scheduler address.
+    cache_dir : path-like, "auto" or None, default "auto"
+        "auto" = ``.screener-cache`` beside the project file; None = no cache.
+
+    Returns
+    -------
+    RunResult
+    """
+    from screener.outputs.staging import check_output_folder, staged_output
+
+    out = check_output_folder(out_dir, overwrite=overwrite)
+    if cache_dir == "auto":
+        cache_dir = (settings.base_dir / ".screener-cache") if settings.path else None
+    result = run_analysis(settings, echo=echo, scheduler=scheduler, cache_dir=cache_dir)
+    _add_sampling_points(result)
+    progress = Progress(echo, n_stages=5)
+    progress.i = 4
+    progress.stage(f"Writing outputs to {out}")
+    with staged_output(out, overwrite=overwrite) as stage:
+        write_outputs(result, stage, progress=progress)
+    progress.done()
+    return result
