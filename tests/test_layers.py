@@ -1,0 +1,125 @@
+"""Layer intake: one grid, nodata union, reports, terrain with true metre spacing."""
+
+import numpy as np
+import pytest
+from affine import Affine
+from numpy.testing import assert_allclose
+
+from screener.errors import CollinearityWarning, GridMismatchError, LayerError, ScreenerWarning
+from screener.grid import Grid
+from screener.layers import check_layers, read_layers, slope_aspect
+
+
+def test_union_of_nodata_defines_valid_cells(small_layers, tif_writer, tmp_path):
+    stack = read_layers(small_layers)
+    assert stack.names == ["alpha", "beta", "gamma"]
+    assert not stack.grid.mask[:3, :3].any()
+    assert stack.grid.mask.sum() == 30 * 40 - 9
+    assert np.isnan(stack.data[:, 0, 0]).all()
+
+
+@pytest.mark.parametrize(
+    "kw, what",
+    [
+        ({"crs": "EPSG:32633"}, "CRS"),
+        ({"transform": Affine(0.02, 0, 10.0, 0, -0.02, -5.0)}, "resolution"),
+        ({"transform": Affine(0.01, 0, 10.5, 0, -0.01, -5.0)}, "origin"),
+        ({"shape": (31, 40)}, "shape"),
+    ],
+)
+def test_mismatched_grids_name_both_files_and_the_difference(small_layers, tif_writer, kw, what):
+    shape = kw.pop("shape", (30, 40))
+    bad = tif_writer(small_layers[0].parent / "zeta.tif", np.ones(shape, np.float32), **kw)
+    with pytest.raises(GridMismatchError) as err:
+        read_layers([small_layers[0], bad])
+    msg = str(err.value)
+    assert "alpha.tif" in msg and "zeta.tif" in msg and what in msg
+
+
+def test_all_nodata_layer_is_refused(small_layers, tif_writer):
+    bad = tif_writer(small_layers[0].parent / "empty.tif", np.full((30, 40), np.nan, np.float32))
+    with pytest.raises(LayerError, match="no data at all"):
+        read_layers([small_layers[0], bad])
+
+
+def test_nan_without_nodata_value_is_nodata(small_layers, tif_writer):
+    arr = np.ones((30, 40), np.float32)
+    arr[5, 5] = np.nan
+    p = tif_writer(small_layers[0].parent / "nanonly.tif", arr, nodata=None)
+    stack = read_layers([small_layers[1], p])
+    assert not stack.grid.mask[5, 5]
+
+
+def test_integer_sentinel_nodata(small_layers, tif_writer):
+    arr = np.arange(1200, dtype=np.int16).reshape(30, 40)
+    arr[7, 7] = -32768
+    p = tif_writer(small_layers[0].parent / "ints.tif", arr, nodata=-32768, dtype="int16")
+    stack = read_layers([small_layers[1], p])
+    assert not stack.grid.mask[7, 7] and stack.grid.mask[7, 8]
+
+
+def test_categorical_layer_warns_then_expands(small_layers, tif_writer):
+    arr = (np.arange(1200).reshape(30, 40) % 3 + 1).astype(np.int16)
+    p = tif_writer(small_layers[0].parent / "soil.tif", arr, nodata=0, dtype="int16")
+    with pytest.warns(ScreenerWarning, match="categorical"):
+        read_layers([small_layers[1], p])
+    stack = read_layers([small_layers[1], p], categorical=["soil"])
+    assert stack.names == ["beta", "soil=1", "soil=2", "soil=3"]
+    assert_allclose(stack.data[1:].sum(axis=0)[stack.grid.mask], 1.0)
+
+
+def test_cell_budget(small_layers):
+    with pytest.raises(LayerError, match="cell budget"):
+        read_layers(small_layers, cell_budget=100)
+
+
+def test_missing_and_multiband_files(tmp_path, small_layers):
+    with pytest.raises(LayerError, match="does not exist"):
+        read_layers([tmp_path / "none.tif"])
+    import rasterio
+
+    p = tmp_path / "two.tif"
+    with rasterio.open(p, "w", driver="GTiff", width=4, height=4, count=2, dtype="float32",
+                       crs="EPSG:4326", transform=Affine(1, 0, 0, 0, -1, 4)) as dst:
+        dst.write(np.ones((2, 4, 4), np.float32))
+    with pytest.raises(LayerError, match="2 bands"):
+        read_layers([p])
+
+
+def test_constant_and_collinear_are_reported(small_layers, tif_writer):
+    const = tif_writer(small_layers[0].parent / "flat.tif", np.full((30, 40), 3.0, np.float32))
+    twin = tif_writer(small_layers[0].parent / "twin.tif",
+                      read_layers([small_layers[0]]).data[0] * 2 + 1)
+    stack = read_layers([small_layers[0], const, twin, small_layers[2]])
+    with pytest.warns(ScreenerWarning):
+        rep = check_layers(stack)
+    assert rep.constant == ["flat"]
+    assert [(a, b) for a, b, _ in rep.collinear] == [("alpha", "twin")]
+    # scipy reference for the correlation itself
+    from scipy.stats import pearsonr
+
+    m = stack.grid.mask
+    assert rep.collinear[0][2] == pytest.approx(pearsonr(stack.data[0][m], stack.data[2][m])[0])
+    assert issubclass(CollinearityWarning, ScreenerWarning)
+
+
+def test_slope_uses_true_metre_spacing_on_lat_lon_grid():
+    # A plane rising 1 m per metre eastward has slope 45 degrees wherever it is; on a
+    # lat/lon grid the east-west spacing comes from pyproj's geodesic cell width.
+    from pyproj import Geod
+
+    g = Grid("EPSG:4326", Affine(0.001, 0, 30.0, 0, -0.001, 60.0), (20, 20))
+    geod = Geod(ellps="WGS84")
+    lat = 60.0 - 0.0005 - 0.001 * np.arange(20)
+    _, _, w = geod.inv(np.zeros(20), lat, np.full(20, 0.001), lat)
+    east_m = np.cumsum(np.ones((20, 20)) * w[:, None], axis=1)
+    slope, aspect = slope_aspect(g, east_m)
+    assert_allclose(slope[:, 1:-1], 45.0, atol=1e-6)
+    # downslope faces west (col * width(row) also varies slightly with row, hence atol)
+    assert_allclose(aspect[:, 1:-1], 270.0, atol=0.05)
+    # north-facing: elevation rising southward
+    _, _, h = geod.inv(np.zeros(19), lat[:-1], np.zeros(19), lat[1:])
+    south_m = np.r_[0, np.cumsum(h)][:, None] * np.ones((1, 20))
+    slope2, aspect2 = slope_aspect(g, south_m)
+    assert_allclose(slope2[1:-1], 45.0, atol=1e-6)
+    assert_allclose(aspect2[1:-1], 0.0, atol=1e-6)

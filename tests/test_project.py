@@ -1,0 +1,78 @@
+"""Project file: the minimal file from the design works; typos get suggestions."""
+
+import pytest
+
+from screener.errors import ProjectError
+from screener.project import SCHEMA, load_project, settings_from_dict, settings_table_markdown
+
+MINIMAL = """
+[occurrences]
+path = "occurrences.csv"      # columns: taxon + longitude, latitude (WGS84) or x, y (grid CRS)
+
+[layers]
+paths = ["layers/*.tif"]      # single-band rasters on one grid
+"""
+
+
+@pytest.fixture
+def project_dir(small_layers):
+    folder = small_layers[0].parent.parent
+    (folder / "occurrences.csv").write_text("taxon,longitude,latitude\nA,10.1,-5.1\n")
+    return folder
+
+
+def test_minimal_project_file_as_written_in_the_design(project_dir):
+    p = project_dir / "project.toml"
+    p.write_text(MINIMAL)
+    s = load_project(p)
+    assert [x.name for x in s.layers.paths] == ["alpha.tif", "beta.tif", "gamma.tif"]
+    assert s.occurrences.path == project_dir / "occurrences.csv"
+    # every other setting has its documented default
+    for section, spec in SCHEMA.items():
+        for key, (_, default, _) in spec.items():
+            if key not in ("path", "paths"):
+                assert s.sections[section][key] == default
+
+
+@pytest.mark.parametrize(
+    "extra, match",
+    [
+        ("[layer]\nelevation = 'x'\n", "unknown section \\[layer\\]. Did you mean 'layers'"),
+        ("[isolation]\nmin_gap = 3\n", "unknown key 'min_gap'.*Did you mean 'min_gap_km'"),
+        ("[isolation]\nmin_gap_km = 'far'\n", "must be a number"),
+        ("[overlap]\nalternative = 'greatr'\n", "Did you mean 'greater'"),
+        ("[models]\nfamilies = ['elipsoid']\n", "Did you mean 'ellipsoid'"),
+        ("[thresholds]\nrelax = 1.5\n", "relax must be in"),
+    ],
+)
+def test_typos_and_bad_values(project_dir, extra, match):
+    p = project_dir / "project.toml"
+    p.write_text(MINIMAL + extra)
+    with pytest.raises(ProjectError, match=match):
+        load_project(p)
+
+
+def test_missing_paths_and_required_keys(project_dir):
+    with pytest.raises(ProjectError, match="does not exist"):
+        settings_from_dict({"occurrences": {"path": "nope.csv"}, "layers": {"paths": ["*.tif"]}},
+                           base_dir=project_dir)
+    with pytest.raises(ProjectError, match="matches no file"):
+        settings_from_dict(
+            {"occurrences": {"path": "occurrences.csv"}, "layers": {"paths": ["x/*.tif"]}},
+            base_dir=project_dir)
+    with pytest.raises(ProjectError, match="required"):
+        settings_from_dict({"occurrences": {"path": "occurrences.csv"}}, base_dir=project_dir)
+
+
+def test_toml_syntax_error_names_the_file(project_dir):
+    p = project_dir / "bad.toml"
+    p.write_text("[occurrences\npath = 1\n")
+    with pytest.raises(ProjectError, match="bad.toml is not valid TOML"):
+        load_project(p)
+
+
+def test_settings_table_lists_every_key():
+    table = settings_table_markdown()
+    for section, spec in SCHEMA.items():
+        for key in spec:
+            assert f"`[{section}] {key}`" in table
