@@ -349,7 +349,7 @@ def model_taxon(
     from screener.evaluation import evaluate_family
     from screener.models import make_model
     from screener.models.base import training_presence_scores
-    from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean
+    from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
     from screener.novelty import mess
     from screener.thresholds import compute_thresholds
 
@@ -379,7 +379,7 @@ def model_taxon(
         model.fit(P, B)
         ev = evaluate_family(
             family,
-            {**params, **({"random_state": seed} if _takes_seed(family) else {})},
+            params,
             P,
             B,
             presence_xy=rec_xy,
@@ -402,8 +402,8 @@ def model_taxon(
         rec_scores[family] = scores
         bg_scores[family] = b_scores
 
-    weights = ensemble_weights(evaluations)
-    consensus = weighted_mean(family_maps, weights)
+    weights = ensemble_weights({f: ev.auc for f, ev in evaluations.items()})
+    consensus = weighted_mean_map(family_maps, weights)
     c_rec = sum(weights[f] * rec_scores[f] for f in family_maps)
     c_bg = sum(weights[f] * bg_scores[f] for f in family_maps)
     c_th = compute_thresholds(
@@ -454,11 +454,9 @@ def model_taxon(
 
 
 def _takes_seed(family: str) -> bool:
-    import inspect
+    from screener.models import accepts_random_state
 
-    from screener.models import FAMILIES
-
-    return "random_state" in inspect.signature(FAMILIES[family].__init__).parameters
+    return accepts_random_state(family)
 
 
 def _threshold_columns(th: dict) -> dict:
@@ -638,7 +636,9 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None) -> dict:
     agreement = None
     ags = [t.agreement for t in taxa.values() if t.agreement is not None]
     if ags:
-        agreement = np.nanmax(np.stack(ags), axis=0)
+        stacked = np.stack(ags)
+        agreement = np.full(grid.shape, np.nan, dtype=np.float32)
+        agreement[grid.mask] = stacked[:, grid.mask].max(axis=0)
     clade_mess, _ = _clade_mess(intake, taxa)
     progress.step("patches, known ranges and cost distance")
     cand = find_candidates(
@@ -690,12 +690,11 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None) -> dict:
         n_draws=s.ranking.n_draws,
         random_state=s.project.random_state,
         max_walk_hours=s.access.max_walk_hours or None,
-        surveyed=surveyed,
+        surveys=surveyed,
     )
-    ranked = group_sites(grid, ranked, cand)
+    ranked = group_sites(ranked)
     gdf = sites_geodataframe(grid, cand)
-    keep_cols = [c for c in ranked.columns if c not in gdf.columns or c == "site_id"]
-    gdf = gdf[["site_id", "geometry"]].merge(ranked[keep_cols], on="site_id", how="right")
+    gdf = gdf[["site_id", "geometry"]].merge(ranked, on="site_id", how="right")
     gdf = gdf.sort_values("rank", kind="stable").reset_index(drop=True)
     import geopandas as gpd
 
@@ -719,7 +718,10 @@ def _surveyed_points(intake: Intake, taxa: dict):
     if intake.settings.survey.records_as_surveys:
         for t in taxa.values():
             pts.append(np.column_stack([t.records.lon, t.records.lat]))
-    return np.vstack(pts) if pts else None
+    if not pts:
+        return None
+    both = np.vstack(pts)
+    return both[:, 0], both[:, 1]
 
 
 # --------------------------------------------------------------------------- run
@@ -1040,7 +1042,9 @@ def _add_sampling_points(result: RunResult) -> None:
     cand = result.candidates
     if cand is None or not len(result.sites) or n_pts <= 0:
         return
-    clade = np.nanmax(np.stack([t.suitability for t in result.taxa.values()]), axis=0)
+    from screener.isolation import clade_suitability
+
+    clade = clade_suitability({n: t.suitability for n, t in result.taxa.items()})
     frames = []
     for _, site in result.sites.head(top).iterrows():
         site_mask = cand.patch_labels == int(site["site_id"])
