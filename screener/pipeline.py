@@ -1009,6 +1009,7 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     (folder / "report.html").write_text(html, encoding="utf-8")
     rel(folder / "report.html")
     prov = dict(result.provenance)
+    prov["taxa"] = {name: _safe_name(name) for name in result.taxa}
     prov["outputs"] = sorted(written + ["run.json"])
     (folder / "run.json").write_text(json.dumps(_jsonable(prov), indent=2, sort_keys=True)
                                      + "\n", encoding="utf-8")
