@@ -1,0 +1,132 @@
+"""The whole pipeline on the (small) invented demo: contract, isolated massif, debrief."""
+
+import json
+
+import geopandas as gpd
+import numpy as np
+import pandas as pd
+import pytest
+from click.testing import CliRunner
+
+from screener.cli import main
+from screener.demo import DEMO_TRUTH, write_demo_scenario
+from screener.outputs.tables import CANDIDATE_COLUMNS, EVALUATION_COLUMNS, OVERLAP_COLUMNS
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory):
+    base = tmp_path_factory.mktemp("demo")
+    project = write_demo_scenario(base / "scenario", size="small")
+    text = project.read_text()
+    # fewer replicates keep the suite quick; the demo command itself uses the defaults
+    text += "\n[overlap]\nn_replicates = 19\n\n[evaluation]\nn_null = 9\n"
+    project.write_text(text)
+    out = base / "results"
+    result = CliRunner().invoke(main, ["-q", "run", str(project), "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    return project, out, result.output
+
+
+def test_outputs_follow_the_contract(demo_run):
+    project, out, _ = demo_run
+    truth = DEMO_TRUTH["small"]
+    for taxon in truth.taxa:
+        assert (out / "suitability" / f"{taxon.replace(' ', '_')}.tif").exists()
+    for name in ["evaluation.csv", "overlap.csv", "candidates.csv", "candidates.gpkg",
+                 "report.html", "field_sheets.pdf", "sites.gpx", "run.json"]:
+        assert (out / name).stat().st_size > 0, name
+    ev = pd.read_csv(out / "evaluation.csv")
+    assert list(ev.columns[: len(EVALUATION_COLUMNS)]) == EVALUATION_COLUMNS
+    assert set(ev["algorithm"]) >= {"ellipsoid", "ensemble"}
+    ov = pd.read_csv(out / "overlap.csv")
+    assert list(ov.columns[: len(OVERLAP_COLUMNS)]) == OVERLAP_COLUMNS
+    assert set(ov["space"]) == {"geographic", "environmental"}
+    assert len(ov) == 2 * 3  # three pairs of three taxa, two spaces
+    assert ov[["D", "I"]].apply(lambda c: c.between(0, 1)).all().all()
+    cand = pd.read_csv(out / "candidates.csv")
+    assert list(cand.columns[: len(CANDIDATE_COLUMNS)]) == CANDIDATE_COLUMNS
+    assert cand["rank"].tolist() == sorted(cand["rank"])
+    assert set(cand["kind"]) <= {"within-range", "near-range", "isolated"}
+    gdf = gpd.read_file(out / "candidates.gpkg", layer="sites")
+    assert gdf.crs is not None and len(gdf) == len(cand)
+
+
+def test_unrecorded_massif_is_the_top_isolated_site(demo_run):
+    _, out, _ = demo_run
+    truth = DEMO_TRUTH["small"].unrecorded
+    cand = pd.read_csv(out / "candidates.csv")
+    iso = cand[cand["kind"] == "isolated"].sort_values("rank")
+    assert len(iso)
+    top = iso.iloc[0]
+    lo_lon, lo_lat, hi_lon, hi_lat = truth.bbox
+    assert lo_lon <= top["longitude"] <= hi_lon and lo_lat <= top["latitude"] <= hi_lat
+    assert top["gap_km"] >= 5.0
+    # no recorded massif is reported as isolated: every isolated site is far from records
+    assert (iso["nearest_record_km"] > 5.0).all()
+
+
+def test_run_json_is_provenance(demo_run):
+    project, out, _ = demo_run
+    prov = json.loads((out / "run.json").read_text())
+    for key in ["versions", "settings", "input_hashes", "seeds", "timings_s", "warnings"]:
+        assert key in prov
+    assert str(project) in prov["input_hashes"]
+    assert prov["settings"]["overlap"]["n_replicates"] == 19
+
+
+def test_no_partial_folders_left(demo_run):
+    _, out, _ = demo_run
+    leftovers = [p.name for p in out.parent.iterdir() if ".partial" in p.name]
+    assert leftovers == []
+
+
+def test_existing_output_folder_is_kept(demo_run):
+    project, out, _ = demo_run
+    before = (out / "candidates.csv").read_bytes()
+    r = CliRunner().invoke(main, ["-q", "run", str(project), "--out", str(out)])
+    assert r.exit_code == 2
+    assert "already exists" in r.output and "--overwrite" in r.output
+    assert (out / "candidates.csv").read_bytes() == before
+
+
+def test_rerun_from_cache_is_identical(demo_run, tmp_path):
+    # Changing only ranking weights refits nothing (models and overlap come from the
+    # cache) and leaves the model outputs byte-identical.
+    project, out, _ = demo_run
+    out2 = tmp_path / "again"
+    r = CliRunner().invoke(main, ["-q", "run", str(project), "--out", str(out2)])
+    assert r.exit_code == 0, r.output
+    prov = json.loads((out2 / "run.json").read_text())
+    assert "taxon" in prov["cache"]["hits"] and "taxon" not in prov["cache"]["misses"]
+    for name in ["evaluation.csv", "overlap.csv", "candidates.csv"]:
+        assert (out2 / name).read_bytes() == (out / name).read_bytes(), name
+
+
+def test_debrief_scores_a_survey(demo_run, tmp_path):
+    project, out, _ = demo_run
+    cand = pd.read_csv(out / "candidates.csv")
+    first = int(cand.iloc[0]["site_id"])
+    field = tmp_path / "field.csv"
+    field.write_text(
+        "site_id,longitude,latitude,date,taxon,outcome,effort_hours\n"
+        f"{first},,,2027-03-02,Nebrivex sp.,new-lineage,6\n"
+    )
+    deb = tmp_path / "debrief"
+    r = CliRunner().invoke(main, ["debrief", str(field), "--run", str(out), "--out", str(deb)])
+    assert r.exit_code == 0, r.output
+    upd = pd.read_csv(deb / "records_updated.csv")
+    orig = pd.read_csv(project.parent / "occurrences.csv")
+    assert len(upd) == len(orig) + 1
+    # the input record file itself is untouched
+    assert len(pd.read_csv(project.parent / "occurrences.csv")) == len(orig)
+    summary = json.loads((deb / "debrief.json").read_text())
+    assert summary["n_visited"] == 1 and summary["n_hits"] == 1
+    assert 0 < summary["area_share"] < 1
+    # the binomial p-value of one hit in one visit equals the predicted area share
+    # (P(X >= 1), X ~ Bin(1, p) = p; scipy.stats.binomtest reference)
+    from scipy.stats import binomtest
+
+    assert summary["binomial_p"] == pytest.approx(
+        binomtest(1, 1, summary["area_share"], alternative="greater").pvalue
+    )
+    assert np.isfinite(summary["auc"])
