@@ -1,0 +1,894 @@
+"""Candidate survey sites: suitable patches cut off from the known ranges.
+
+The stage works on the thresholded suitability maps of a clade of sister taxa:
+
+1. A cell is *suitable for the clade* when any taxon's map reaches that taxon's
+   threshold (``s_t >= threshold_t``, inclusive, so every record cell passes its MTP).
+2. *Patches* are 8-connected components of suitable cells (``scipy.ndimage.label``);
+   unoccupied patches smaller than ``min_patch_km2`` (geodesic area) are dropped.
+3. *Known ranges* are patches holding records of any taxon.
+4. *Resistance* comes from the clade's suitability ``s = max over taxa``: ``1 - s``
+   (``"linear"``, default) or ``-ln(max(s, eps))`` (``"log"``); cells outside the grid
+   mask and user-given impassable cells cannot be crossed.
+5. Accumulated cost distance (:mod:`screener.costdistance`) from each taxon's ranges
+   (and their record cells); the cost from all ranges is the cell-wise minimum.
+6. Each unoccupied patch gets its least-cost distance, the nearest taxon, the
+   least-cost path from the patch's cheapest cell back to that taxon's range and,
+   along the path, the **gap** (longest run of unsuitable cells as ground length) and
+   the **barrier depth** (lowest suitability crossed).  Kinds:
+
+   ``within-range``
+       suitable cells inside a known range's patch farther than ``within_range_min_km``
+       from every record, grouped into 8-connected sub-patches: likely unrecorded
+       populations of a known taxon.
+   ``near-range``
+       an unoccupied patch reached across a gap shorter than ``min_gap_km``.
+   ``isolated``
+       an unoccupied patch whose gap is at least ``min_gap_km``, or that no path over
+       valid cells reaches (an island across the sea); for the latter the cost
+       distance is ``inf`` and ``gap_km`` is the straight-line geodesic distance to the
+       nearest range cell.
+
+The analysis runs at the caller's MTP thresholds and, optionally, at relaxed
+thresholds; the ``stability`` column says where a site was found.
+
+Predictions are hypotheses for survey, not evidence of presence or of an undescribed
+lineage.  Isolated patches are often remote: plan for field safety, obtain permits and
+landholder or community consent, clean gear between sites (biosecurity), and treat the
+coordinates of new finds as sensitive.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass, field
+from itertools import combinations
+
+import numpy as np
+import pandas as pd
+from pyproj import Transformer
+from scipy import ndimage as ndi
+from scipy.spatial import cKDTree
+
+from screener.costdistance import CostGraph, least_cost_path, step_lengths_km
+from screener.errors import InputError, RecordsError
+from screener.grid import Grid
+
+__all__ = [
+    "CandidateSet",
+    "PathProfile",
+    "clade_suitability",
+    "find_candidates",
+    "path_profile",
+    "paths_geodataframe",
+    "resistance_from_suitability",
+    "sites_geodataframe",
+    "suitable_cells",
+]
+
+log = logging.getLogger(__name__)
+
+#: Default minimum area of an unoccupied patch, km².  About what one survey day can
+#: cover on foot; smaller patches are mostly single-cell noise of the maps.
+MIN_PATCH_KM2 = 1.0
+#: Default minimum gap (km of unsuitable ground on the least-cost path) for a patch to
+#: count as ``isolated`` rather than ``near-range`` (common practice for small
+#: terrestrial vertebrates and plants with limited dispersal; adjust per clade).
+MIN_GAP_KM = 5.0
+#: Default distance from every record beyond which suitable cells inside a known
+#: range count as a ``within-range`` site, km.
+WITHIN_RANGE_MIN_KM = 10.0
+#: Default slack of the least-cost corridor between two taxa's ranges (fraction of
+#: the least cost between them); see :func:`find_candidates`.
+CORRIDOR_SLACK = 0.05
+#: Floor of suitability in the negative-log resistance.
+LOG_EPS = 1e-3
+
+_EIGHT = np.ones((3, 3), dtype=bool)
+_KIND_ORDER = {"isolated": 0, "near-range": 1, "within-range": 2}
+
+
+# --------------------------------------------------------------------------------------
+# small building blocks
+
+
+def clade_suitability(suitability: dict) -> np.ndarray:
+    """Cell-wise maximum over the taxa's suitability maps (NaN where all are NaN).
+
+    Parameters
+    ----------
+    suitability : dict of str to ndarray (n_rows, n_cols)
+
+    Returns
+    -------
+    ndarray of float64
+    """
+    maps = [np.asarray(v, dtype=np.float64) for v in suitability.values()]
+    return np.fmax.reduce(maps) if len(maps) > 1 else maps[0].copy()
+
+
+def suitable_cells(grid: Grid, suitability: dict, thresholds: dict) -> np.ndarray:
+    """Cells where any taxon's suitability reaches its threshold (inclusive).
+
+    Returns
+    -------
+    ndarray of bool, shape (n_rows, n_cols); False outside ``grid.mask``.
+    """
+    out = np.zeros(grid.shape, dtype=bool)
+    for taxon, s in suitability.items():
+        with np.errstate(invalid="ignore"):
+            out |= np.asarray(s) >= thresholds[taxon]
+    return out & grid.mask
+
+
+def resistance_from_suitability(
+    suitability: np.ndarray, kind: str = "linear", eps: float = LOG_EPS
+) -> np.ndarray:
+    """Resistance (cost per km) from suitability in [0, 1].
+
+    Parameters
+    ----------
+    suitability : ndarray
+        NaN cells stay NaN (impassable downstream).
+    kind : {"linear", "log"}, default "linear"
+        ``"linear"``: ``r = 1 - s``; ``"log"``: ``r = -ln(max(s, eps))``.
+    eps : float, default 1e-3
+
+    Examples
+    --------
+    >>> resistance_from_suitability(np.array([0.0, 0.5, 1.0])).tolist()
+    [1.0, 0.5, 0.0]
+    """
+    s = np.asarray(suitability, dtype=np.float64)
+    if kind == "linear":
+        return 1.0 - s
+    if kind == "log":
+        with np.errstate(invalid="ignore"):
+            return -np.log(np.where(np.isnan(s), np.nan, np.maximum(s, eps)))
+    raise InputError(f"resistance must be 'linear' or 'log'; got {kind!r}.")
+
+
+@dataclass(frozen=True)
+class PathProfile:
+    """What a least-cost path crosses.
+
+    Attributes
+    ----------
+    gap_km : float
+        Ground length of the longest run of unsuitable cells, km.
+    barrier_depth : float
+        Lowest suitability on the path.
+    length_km : float
+        Ground length of the whole path, km (sum of its step lengths).
+    n_unsuitable : int
+        Unsuitable cells on the path.
+    """
+
+    gap_km: float
+    barrier_depth: float
+    length_km: float
+    n_unsuitable: int
+
+
+def path_profile(
+    grid: Grid, path, suitable: np.ndarray, suitability: np.ndarray
+) -> PathProfile:
+    """Gap length and barrier depth along a path of 8-neighbour cells.
+
+    Parameters
+    ----------
+    grid : Grid
+    path : ndarray of shape (n, 2)
+        (row, col) cells.
+    suitable : ndarray of bool, shape (n_rows, n_cols)
+    suitability : ndarray of shape (n_rows, n_cols)
+        Clade suitability.
+
+    Notes
+    -----
+    Each cell owns half of the step before it and half of the step after it, so a run
+    of ``k`` unsuitable cells crossed in a straight line measures ``k`` cell widths:
+    the ground between the edges of the suitable cells on either side.  Step lengths
+    are the grid's geodesic centre-to-centre distances.
+    """
+    path = np.asarray(path, dtype=np.int64)
+    if len(path) == 0:
+        return PathProfile(np.nan, np.nan, np.nan, 0)
+    steps = step_lengths_km(grid, path)
+    share = np.zeros(len(path))
+    share[:-1] += steps / 2
+    share[1:] += steps / 2
+    bad = ~suitable[path[:, 0], path[:, 1]]
+    gap = 0.0
+    if bad.any():
+        lab, n = ndi.label(bad)
+        gap = float(np.max(ndi.sum(share, lab, np.arange(1, n + 1))))
+    depth = float(np.nanmin(np.asarray(suitability, float)[path[:, 0], path[:, 1]]))
+    return PathProfile(gap, depth, float(steps.sum()), int(bad.sum()))
+
+
+class _Nearest:
+    """Nearest of a set of cells by geodesic distance (KD-tree on ECEF, then Geod)."""
+
+    _ecef = Transformer.from_crs("EPSG:4326", "EPSG:4978", always_xy=True)
+
+    def __init__(self, grid: Grid, rows, cols):
+        self.grid = grid
+        self.lon, self.lat = grid.lonlat(np.asarray(rows), np.asarray(cols))
+        self.lon = np.atleast_1d(self.lon)
+        self.lat = np.atleast_1d(self.lat)
+        self.tree = cKDTree(self._xyz(self.lon, self.lat)) if self.lon.size else None
+
+    def _xyz(self, lon, lat):
+        x, y, z = self._ecef.transform(lon, lat, np.zeros_like(lon))
+        return np.column_stack([x, y, z])
+
+    def query(self, rows, cols):
+        """Geodesic km to the nearest cell of the set, and its index."""
+        lon, lat = self.grid.lonlat(np.asarray(rows), np.asarray(cols))
+        lon, lat = np.atleast_1d(lon), np.atleast_1d(lat)
+        if self.tree is None or lon.size == 0:
+            return np.full(lon.size, np.inf), np.full(lon.size, -1)
+        _, j = self.tree.query(self._xyz(lon, lat))
+        _, _, d = self.grid.geod.inv(lon, lat, self.lon[j], self.lat[j])
+        return np.asarray(d, float) / 1000.0, j
+
+
+def _boundary(mask: np.ndarray) -> np.ndarray:
+    return mask & ~ndi.binary_erosion(mask, structure=_EIGHT, border_value=0)
+
+
+# --------------------------------------------------------------------------------------
+# results
+
+
+@dataclass(frozen=True, eq=False)
+class CandidateSet:
+    """Candidate survey sites and the rasters behind them.
+
+    Attributes
+    ----------
+    sites : pandas.DataFrame
+        One row per site (columns listed in :func:`find_candidates`).
+    patch_labels : ndarray of int32, shape (n_rows, n_cols)
+        ``site_id`` on a site's cells, ``-range_id`` on known-range patches at the MTP
+        thresholds, 0 elsewhere.
+    paths : dict of int to ndarray (n, 2)
+        Least-cost path (row, col) per site, from the site's cheapest cell to the
+        range; absent for within-range and unreached sites.
+    barrier : ndarray of float32, shape (n_rows, n_cols)
+        ``1 - s`` (clade suitability) on unsuitable cells of least-cost corridors
+        between different taxa's ranges, 0 elsewhere on valid cells, NaN off the mask.
+    cost : dict of str to ndarray
+        Accumulated cost from each taxon's ranges at the MTP thresholds.
+    cost_all : ndarray
+        Accumulated cost from all ranges (cell-wise minimum of ``cost``).
+    ranges : pandas.DataFrame
+        Known-range patches at the MTP thresholds: ``range_id``, ``taxa``,
+        ``area_km2``, ``n_cells``, ``n_records``.
+    """
+
+    sites: pd.DataFrame
+    patch_labels: np.ndarray
+    paths: dict
+    barrier: np.ndarray
+    cost: dict
+    cost_all: np.ndarray
+    ranges: pd.DataFrame
+    thresholds: dict = field(default_factory=dict)
+    relaxed_thresholds: dict | None = None
+
+
+@dataclass
+class _Stage:
+    """Everything found at one set of thresholds."""
+
+    suitable: np.ndarray
+    labels: np.ndarray
+    range_ids: np.ndarray
+    range_taxa: dict
+    cost: dict
+    site_cells: np.ndarray  # local site number per cell, 0 elsewhere
+    rows: list
+    paths: dict
+    barrier: np.ndarray
+    cost_all: np.ndarray
+    records_per_range: dict
+    patch_area: np.ndarray
+
+
+# --------------------------------------------------------------------------------------
+# the analysis
+
+
+def _check_inputs(grid, suitability, thresholds, records, name):
+    if not suitability:
+        raise InputError("`suitability` is empty: give one map per taxon.")
+    taxa = list(suitability)
+    for t in taxa:
+        s = np.asarray(suitability[t])
+        if s.shape != grid.shape:
+            raise InputError(
+                f"The suitability map of {t!r} has shape {s.shape}, but the grid is "
+                f"{grid.shape}; predict every taxon on the same grid."
+            )
+    missing = [t for t in taxa if t not in thresholds]
+    if missing:
+        raise InputError(
+            f"`{name}` has no threshold for {missing}; give one per taxon "
+            f"(keys: {sorted(thresholds)})."
+        )
+    missing = [t for t in taxa if t not in records]
+    if missing:
+        raise RecordsError(
+            f"No records given for {missing}; every taxon with a suitability map needs "
+            "its (rows, cols) records."
+        )
+    out = {}
+    for t in taxa:
+        rows, cols = (np.atleast_1d(np.asarray(v)).astype(np.int64) for v in records[t])
+        if rows.shape != cols.shape or rows.size == 0:
+            raise RecordsError(
+                f"Records of {t!r} must be two equal-length, non-empty arrays (rows, "
+                f"cols); got {rows.shape} and {cols.shape}."
+            )
+        bad = (rows < 0) | (rows >= grid.n_rows) | (cols < 0) | (cols >= grid.n_cols)
+        if bad.any():
+            raise RecordsError(
+                f"{int(bad.sum())} records of {t!r} lie outside the grid {grid.shape} "
+                f"(first: row {rows[bad][0]}, col {cols[bad][0]}); check the CRS and "
+                "the (row, col) order."
+            )
+        off = ~grid.mask[rows, cols]
+        if off.any():
+            log.warning("%d records of %r fall on nodata cells", int(off.sum()), t)
+        out[t] = (rows, cols)
+    return taxa, out
+
+
+def _site_stats(grid, site_cells, n_sites, clade, agreement, novelty, elevation):
+    idx = np.arange(1, n_sites + 1)
+    area = np.ascontiguousarray(grid.cell_area_km2, dtype=np.float64)
+    s = np.where(np.isfinite(clade), clade, 0.0)
+    n_cells = ndi.sum(np.ones(grid.shape), site_cells, idx)
+    a = ndi.sum(area, site_cells, idx)
+    stats = {
+        "area_km2": a,
+        "n_cells": n_cells.astype(np.int64),
+        "mean_suitability": ndi.sum(s * area, site_cells, idx) / a,
+        "max_suitability": ndi.maximum(s, site_cells, idx),
+    }
+
+    def nanmean(x):
+        x = np.asarray(x, float)
+        ok = np.isfinite(x)
+        num = ndi.sum(np.where(ok, x, 0.0), site_cells, idx)
+        den = ndi.sum(ok.astype(float), site_cells, idx)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.where(den > 0, num / np.where(den > 0, den, 1), np.nan)
+
+    stats["agreement"] = (
+        nanmean(agreement) if agreement is not None else np.full(n_sites, np.nan)
+    )
+    if novelty is not None:
+        nov = np.asarray(novelty, float)
+        stats["novel_share"] = nanmean(
+            np.where(np.isfinite(nov), (nov < 0).astype(float), np.nan)
+        )
+    else:
+        stats["novel_share"] = np.full(n_sites, np.nan)
+    if elevation is not None:
+        e = np.asarray(elevation, float)
+        ok = np.isfinite(e)
+        stats["elevation_min"] = ndi.minimum(np.where(ok, e, np.inf), site_cells, idx)
+        stats["elevation_max"] = ndi.maximum(np.where(ok, e, -np.inf), site_cells, idx)
+        for k in ("elevation_min", "elevation_max"):
+            stats[k] = np.where(np.isfinite(stats[k]), stats[k], np.nan)
+    else:
+        stats["elevation_min"] = np.full(n_sites, np.nan)
+        stats["elevation_max"] = np.full(n_sites, np.nan)
+    best = ndi.maximum_position(
+        np.where(np.isfinite(clade), clade, -np.inf), site_cells, idx
+    )
+    best = np.array(best, dtype=np.int64).reshape(-1, 2)
+    return stats, best
+
+
+def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
+    suitable = suitable_cells(grid, suitability, thresholds)
+    labels, n_patches = ndi.label(suitable, structure=_EIGHT)
+    area = np.ascontiguousarray(grid.cell_area_km2, dtype=np.float64)
+    patch_area = np.atleast_1d(ndi.sum(area, labels, np.arange(1, n_patches + 1)))
+
+    # known ranges and sources per taxon
+    range_taxa: dict[int, list] = {}
+    sources = {}
+    for t in taxa:
+        rows, cols = records[t]
+        pids = np.unique(labels[rows, cols])
+        pids = pids[pids > 0]
+        for pid in pids:
+            range_taxa.setdefault(int(pid), []).append(t)
+        src = np.isin(labels, pids) if pids.size else np.zeros(grid.shape, bool)
+        src[rows, cols] = True
+        sources[t] = src & grid.mask
+    range_ids = np.array(sorted(range_taxa), dtype=np.int64)
+    cost = {t: graph.run(sources[t]) for t in taxa}
+    cost_all = np.minimum.reduce([cost[t].cost for t in taxa])
+    all_src = np.logical_or.reduce([sources[t] for t in taxa])
+
+    # records, for distances
+    rec_r = np.concatenate([records[t][0] for t in taxa])
+    rec_c = np.concatenate([records[t][1] for t in taxa])
+    rec_taxon = np.concatenate([[t] * len(records[t][0]) for t in taxa])
+    near_rec = _Nearest(grid, rec_r, rec_c)
+
+    site_cells = np.zeros(grid.shape, dtype=np.int32)
+    # unoccupied patches
+    is_range = np.zeros(n_patches + 1, bool)
+    is_range[range_ids] = True
+    keep = (~is_range[1:]) & (patch_area >= p["min_patch_km2"])
+    cand = np.flatnonzero(keep) + 1
+    lut = np.zeros(n_patches + 1, dtype=np.int32)
+    lut[cand] = np.arange(1, cand.size + 1)
+    site_cells = lut[labels]
+    n_unocc = cand.size
+
+    # within-range sub-patches
+    in_range = is_range[labels] & suitable
+    if in_range.any():
+        rr, cc = np.nonzero(in_range)
+        d, _ = near_rec.query(rr, cc)
+        far = np.zeros(grid.shape, bool)
+        far[rr, cc] = d > p["within_range_min_km"]
+        sub, n_sub = ndi.label(far, structure=_EIGHT)
+        if n_sub:
+            sub_area = ndi.sum(area, sub, np.arange(1, n_sub + 1))
+            ok = np.flatnonzero(sub_area >= p["min_patch_km2"]) + 1
+            lut2 = np.zeros(n_sub + 1, dtype=np.int32)
+            lut2[ok] = np.arange(n_unocc + 1, n_unocc + 1 + ok.size)
+            site_cells = np.where(sub > 0, lut2[sub], site_cells)
+    n_sites = int(site_cells.max()) if site_cells.size else 0
+    idx = np.arange(1, n_sites + 1)
+
+    stats, best = _site_stats(
+        grid, site_cells, n_sites, clade, p["agreement"], p["novelty"], p["elevation"]
+    )
+    cost_to = {}
+    cheapest = {}
+    for t in taxa:
+        c = cost[t].cost
+        cost_to[t] = (
+            np.atleast_1d(ndi.minimum(c, site_cells, idx)) if n_sites else np.zeros(0)
+        )
+        cheapest[t] = (
+            np.array(ndi.minimum_position(c, site_cells, idx), dtype=np.int64).reshape(
+                -1, 2
+            )
+            if n_sites
+            else np.zeros((0, 2), np.int64)
+        )
+
+    # nearest record per site (min over the site's cells)
+    rows_all, cols_all = np.nonzero(site_cells)
+    d_all, j_all = near_rec.query(rows_all, cols_all)
+    lab_all = site_cells[rows_all, cols_all]
+    nearest_record = np.full(n_sites, np.inf)
+    nearest_rec_taxon = np.array([None] * n_sites, dtype=object)
+    if rows_all.size:
+        order = np.lexsort((d_all, lab_all))
+        first = order[np.r_[True, np.diff(lab_all[order]) != 0]]
+        nearest_record[lab_all[first] - 1] = d_all[first]
+        nearest_rec_taxon[lab_all[first] - 1] = rec_taxon[j_all[first]]
+
+    # straight-line distance to ranges, for sites no path reaches
+    range_edge = _boundary(all_src)
+    near_range = _Nearest(grid, *np.nonzero(range_edge))
+    er, ec = np.nonzero(range_edge)
+    edge_taxon = np.empty(er.size, dtype=object)
+    for t in taxa[::-1]:  # first taxon wins on shared cells
+        edge_taxon[sources[t][er, ec]] = t
+
+    rows_out = []
+    paths = {}
+    for k in range(n_sites):
+        sid = k + 1
+        costs_k = {t: float(cost_to[t][k]) for t in taxa}
+        rec = {"_local": sid, "row": int(best[k, 0]), "col": int(best[k, 1])}
+        for t in taxa:
+            rec[f"cost_to_{t}"] = costs_k[t]
+        if sid > n_unocc:
+            rec["kind"] = "within-range"
+            rec["cost_distance"] = 0.0
+            rec["nearest_taxon"] = nearest_rec_taxon[k]
+            rec["gap_km"] = 0.0
+            rec["barrier_depth"] = np.nan
+            rec["path_km"] = 0.0
+        else:
+            t_best = min(taxa, key=lambda t: costs_k[t])  # ties: first taxon
+            cd = costs_k[t_best]
+            rec["cost_distance"] = cd
+            if np.isfinite(cd):
+                end = cheapest[t_best][k]
+                path = least_cost_path(cost[t_best], end)[::-1].copy()
+                prof = path_profile(grid, path, suitable, clade)
+                paths[sid] = path
+                rec["nearest_taxon"] = t_best
+                rec["gap_km"] = prof.gap_km
+                rec["barrier_depth"] = prof.barrier_depth
+                rec["path_km"] = prof.length_km
+                rec["kind"] = (
+                    "near-range" if prof.gap_km < p["min_gap_km"] else "isolated"
+                )
+            else:
+                cells = np.nonzero(site_cells == sid)
+                cells = (
+                    cells[0][_boundary(site_cells == sid)[cells]],
+                    cells[1][_boundary(site_cells == sid)[cells]],
+                )
+                d, j = near_range.query(*cells)
+                i = int(np.argmin(d)) if d.size else -1
+                rec["nearest_taxon"] = (
+                    edge_taxon[j[i]] if i >= 0 and j[i] >= 0 else None
+                )
+                rec["gap_km"] = float(d[i]) if i >= 0 else np.inf
+                rec["barrier_depth"] = np.nan
+                rec["path_km"] = np.nan
+                rec["kind"] = "isolated"
+        rec["nearest_record_km"] = float(nearest_record[k])
+        for key, v in stats.items():
+            rec[key] = v[k]
+        rows_out.append(rec)
+
+    # least-cost corridors between different taxa's ranges
+    corridor = np.zeros(grid.shape, bool)
+    for a, b in combinations(taxa, 2):
+        tot = cost[a].cost + cost[b].cost
+        lcd = float(np.min(tot))
+        if not np.isfinite(lcd) or lcd <= 0:
+            continue  # unconnected, or the two ranges touch: no gap between them
+        corridor |= tot <= lcd * (1 + p["corridor_slack"])
+    between = (
+        np.atleast_1d(ndi.maximum(corridor.astype(np.int8), site_cells, idx)) > 0
+        if n_sites
+        else np.zeros(0, bool)
+    )
+    for k, rec in enumerate(rows_out):
+        rec["between_ranges"] = bool(between[k])
+    barrier = np.where(corridor & ~suitable & grid.mask, 1.0 - clade, 0.0)
+    barrier = np.where(grid.mask, barrier, np.nan).astype(np.float32)
+
+    per_range = {
+        int(pid): int(np.sum(labels[rec_r, rec_c] == pid)) for pid in range_ids
+    }
+    return _Stage(
+        suitable,
+        labels,
+        range_ids,
+        range_taxa,
+        {t: cost[t].cost for t in taxa},
+        site_cells,
+        rows_out,
+        paths,
+        barrier,
+        cost_all,
+        per_range,
+        patch_area,
+    )
+
+
+def find_candidates(
+    grid: Grid,
+    suitability: dict,
+    thresholds: dict,
+    records: dict,
+    *,
+    relaxed_thresholds: dict | None = None,
+    min_gap_km: float = MIN_GAP_KM,
+    min_patch_km2: float = MIN_PATCH_KM2,
+    within_range_min_km: float = WITHIN_RANGE_MIN_KM,
+    resistance="linear",
+    impassable=None,
+    corridor_slack: float = CORRIDOR_SLACK,
+    agreement=None,
+    novelty=None,
+    elevation=None,
+    backend: str = "auto",
+) -> CandidateSet:
+    """Find suitable patches cut off from the known ranges of a clade.
+
+    Parameters
+    ----------
+    grid : Grid
+    suitability : dict of str to ndarray (n_rows, n_cols)
+        One map per taxon in [0, 1], NaN outside ``grid.mask``.
+    thresholds : dict of str to float
+        Per-taxon threshold (e.g. minimum training presence); inclusive.
+    records : dict of str to tuple (rows, cols)
+        Record cells per taxon.
+    relaxed_thresholds : dict of str to float, optional
+        A second, broader set; sites found only there are ``relaxed-only``.
+    min_gap_km : float, default 5.0
+        Gaps at least this long (km) make an unoccupied patch ``isolated``.
+    min_patch_km2 : float, default 1.0
+        Smallest unoccupied patch or within-range sub-patch kept, km².
+    within_range_min_km : float, default 10.0
+        Suitable cells of a known range farther than this (km, geodesic) from every
+        record form ``within-range`` sites.
+    resistance : {"linear", "log"} or ndarray, default "linear"
+        Resistance from the clade suitability, or a resistance raster.
+    impassable : ndarray of bool, optional
+        Cells no path may cross (e.g. open water for a terrestrial taxon).
+    corridor_slack : float, default 0.05
+        A cell lies on the least-cost corridor between taxa A and B when
+        ``cost_A + cost_B <= (1 + corridor_slack) * min(cost_A + cost_B)``.
+        ``between_ranges`` is True for a site with a cell on such a corridor.  Pairs
+        whose ranges share a patch (least cost 0) or are not connected are skipped.
+    agreement, novelty, elevation : ndarray (n_rows, n_cols), optional
+        Model agreement (mean reported), MESS (share of cells < 0 reported) and
+        elevation (min and max reported).
+    backend : {"auto", "mcp", "dijkstra"}, default "auto"
+
+    Returns
+    -------
+    CandidateSet
+        ``sites`` columns: ``site_id, kind, threshold_set, row, col, x, y, longitude,
+        latitude, area_km2, n_cells, mean_suitability, max_suitability, agreement,
+        novel_share, elevation_min, elevation_max, cost_distance, cost_to_<taxon>,
+        nearest_taxon, gap_km, barrier_depth, path_km, nearest_record_km,
+        between_ranges, stability, relaxed_block``.  ``row``/``col`` is the site's
+        most suitable cell; ``mean_suitability`` is area-weighted; ``stability`` is
+        ``"both"`` (a candidate at both threshold sets), ``"mtp-only"``,
+        ``"relaxed-only"`` or ``"untested"`` (no relaxed thresholds);
+        ``relaxed_block`` is the patch holding the site at the relaxed thresholds
+        (used by :func:`screener.ranking.group_sites`).
+
+    Raises
+    ------
+    InputError, RecordsError
+        On mismatched shapes, missing thresholds or records off the grid.
+
+    References
+    ----------
+    .. [1] Adriaensen, F. et al. (2003). Landscape and Urban Planning 64:233-247
+       (least-cost modelling).
+    .. [2] Pearson, R. G. et al. (2007). J. Biogeography 34:102-117 (lowest presence
+       threshold).
+    """
+    taxa, recs = _check_inputs(grid, suitability, thresholds, records, "thresholds")
+    if relaxed_thresholds is not None:
+        _check_inputs(
+            grid, suitability, relaxed_thresholds, records, "relaxed_thresholds"
+        )
+    for name, v in (
+        ("min_gap_km", min_gap_km),
+        ("min_patch_km2", min_patch_km2),
+        ("within_range_min_km", within_range_min_km),
+        ("corridor_slack", corridor_slack),
+    ):
+        if not np.isfinite(v) or v < 0:
+            raise InputError(f"`{name}` must be a finite number >= 0; got {v!r}.")
+    clade = clade_suitability(suitability)
+    clade = np.where(grid.mask, clade, np.nan)
+    if isinstance(resistance, str):
+        res = resistance_from_suitability(clade, resistance)
+    else:
+        res = np.asarray(resistance, dtype=np.float64)
+    if impassable is not None:
+        res = np.where(np.asarray(impassable, bool), np.inf, res)
+    graph = CostGraph(grid, res, backend=backend)  # built once, run per source set
+    p = {
+        "min_gap_km": float(min_gap_km),
+        "min_patch_km2": float(min_patch_km2),
+        "within_range_min_km": float(within_range_min_km),
+        "corridor_slack": float(corridor_slack),
+        "agreement": agreement,
+        "novelty": novelty,
+        "elevation": elevation,
+    }
+
+    mtp = _run_stage(grid, graph, suitability, clade, thresholds, recs, taxa, p)
+    relaxed = None
+    if relaxed_thresholds is not None:
+        relaxed = _run_stage(
+            grid, graph, suitability, clade, relaxed_thresholds, recs, taxa, p
+        )
+
+    rows, paths_out = [], {}
+    site_lab = np.zeros(grid.shape, dtype=np.int32)
+    entries = []
+    for rec in mtp.rows:
+        cells = mtp.site_cells == rec["_local"]
+        if relaxed is None:
+            stab = "untested"
+            block = int(mtp.labels[rec["row"], rec["col"]])
+        else:
+            stab = "both" if (relaxed.site_cells[cells] > 0).any() else "mtp-only"
+            block = int(relaxed.labels[rec["row"], rec["col"]])
+        entries.append((rec, "mtp", stab, block, cells, mtp.paths.get(rec["_local"])))
+    if relaxed is not None:
+        mtp_any = mtp.site_cells > 0
+        for rec in relaxed.rows:
+            cells = relaxed.site_cells == rec["_local"]
+            if mtp_any[cells].any():
+                continue
+            block = int(relaxed.labels[rec["row"], rec["col"]])
+            entries.append(
+                (
+                    rec,
+                    "relaxed",
+                    "relaxed-only",
+                    block,
+                    cells,
+                    relaxed.paths.get(rec["_local"]),
+                )
+            )
+    entries.sort(
+        key=lambda e: (
+            e[1] != "mtp",
+            _KIND_ORDER[e[0]["kind"]],
+            -e[0]["area_km2"],
+            e[0]["row"],
+            e[0]["col"],
+        )
+    )
+    for sid, (rec, tset, stab, block, cells, path) in enumerate(entries, start=1):
+        row = {k: v for k, v in rec.items() if k != "_local"}
+        row.update(
+            site_id=sid,
+            threshold_set=tset,
+            stability=stab,
+            relaxed_block=block if block > 0 else -1,
+        )
+        rows.append(row)
+        site_lab[cells] = sid
+        if path is not None:
+            paths_out[sid] = path
+    for pid in mtp.range_ids:
+        site_lab[(mtp.labels == pid) & (site_lab == 0)] = -int(pid)
+
+    cols = (
+        [
+            "site_id",
+            "kind",
+            "threshold_set",
+            "row",
+            "col",
+            "x",
+            "y",
+            "longitude",
+            "latitude",
+            "area_km2",
+            "n_cells",
+            "mean_suitability",
+            "max_suitability",
+            "agreement",
+            "novel_share",
+            "elevation_min",
+            "elevation_max",
+            "cost_distance",
+        ]
+        + [f"cost_to_{t}" for t in taxa]
+        + [
+            "nearest_taxon",
+            "gap_km",
+            "barrier_depth",
+            "path_km",
+            "nearest_record_km",
+            "between_ranges",
+            "stability",
+            "relaxed_block",
+        ]
+    )
+    sites = pd.DataFrame(
+        rows, columns=[c for c in cols if c not in ("x", "y", "longitude", "latitude")]
+    )
+    if len(sites):
+        r_ = sites["row"].to_numpy()
+        c_ = sites["col"].to_numpy()
+        x, y = grid.xy(r_, c_)
+        lon, lat = grid.lonlat(r_, c_)
+        sites["x"], sites["y"] = np.atleast_1d(x), np.atleast_1d(y)
+        sites["longitude"], sites["latitude"] = np.atleast_1d(lon), np.atleast_1d(lat)
+    else:
+        for c in ("x", "y", "longitude", "latitude"):
+            sites[c] = pd.Series(dtype=float)
+    sites = sites[cols]
+    for c in ("nearest_taxon",):
+        sites[c] = sites[c].astype(object)
+
+    ranges = pd.DataFrame(
+        {
+            "range_id": mtp.range_ids.astype(np.int64),
+            "taxa": [",".join(mtp.range_taxa[int(i)]) for i in mtp.range_ids],
+            "area_km2": [float(mtp.patch_area[i - 1]) for i in mtp.range_ids],
+            "n_cells": [int(np.sum(mtp.labels == i)) for i in mtp.range_ids],
+            "n_records": [mtp.records_per_range[int(i)] for i in mtp.range_ids],
+        }
+    )
+    log.info(
+        "%d candidate sites (%s)",
+        len(sites),
+        sites["kind"].value_counts().to_dict() if len(sites) else {},
+    )
+    return CandidateSet(
+        sites=sites,
+        patch_labels=site_lab,
+        paths=paths_out,
+        barrier=mtp.barrier,
+        cost=mtp.cost,
+        cost_all=mtp.cost_all,
+        ranges=ranges,
+        thresholds=dict(thresholds),
+        relaxed_thresholds=None
+        if relaxed_thresholds is None
+        else dict(relaxed_thresholds),
+    )
+
+
+# --------------------------------------------------------------------------------------
+# vector views
+
+
+def sites_geodataframe(grid: Grid, candidates: CandidateSet):
+    """Site polygons (cells dissolved per site) with the site attributes.
+
+    Returns
+    -------
+    geopandas.GeoDataFrame
+        One (Multi)Polygon per site in the grid's CRS.
+    """
+    import geopandas as gpd
+    from rasterio.features import shapes
+    from shapely.geometry import shape
+
+    lab = candidates.patch_labels.astype(np.int32)
+    geoms, ids = [], []
+    for geom, value in shapes(
+        lab, mask=lab > 0, transform=grid.transform, connectivity=8
+    ):
+        geoms.append(shape(geom))
+        ids.append(int(value))
+    crs = grid.pyproj_crs
+    if not geoms:
+        return gpd.GeoDataFrame(candidates.sites.copy(), geometry=[], crs=crs)
+    parts = gpd.GeoDataFrame({"site_id": ids}, geometry=geoms, crs=crs)
+    merged = parts.dissolve(by="site_id").reset_index()
+    out = merged.merge(candidates.sites, on="site_id", how="right")
+    return gpd.GeoDataFrame(out, geometry="geometry", crs=crs)
+
+
+def paths_geodataframe(grid: Grid, candidates: CandidateSet):
+    """Least-cost paths as LineStrings through the cell centres (grid CRS).
+
+    Returns
+    -------
+    geopandas.GeoDataFrame
+        Columns ``site_id``, ``kind``, ``nearest_taxon``, ``gap_km``, ``path_km``,
+        geometry.
+    """
+    import geopandas as gpd
+    from shapely.geometry import LineString, Point
+
+    recs, geoms = [], []
+    info = candidates.sites.set_index("site_id")
+    for sid, path in candidates.paths.items():
+        x, y = grid.xy(path[:, 0], path[:, 1])
+        x, y = np.atleast_1d(x), np.atleast_1d(y)
+        geoms.append(
+            LineString(np.column_stack([x, y])) if len(x) > 1 else Point(x[0], y[0])
+        )
+        row = info.loc[sid]
+        recs.append(
+            {
+                "site_id": int(sid),
+                "kind": row["kind"],
+                "nearest_taxon": row["nearest_taxon"],
+                "gap_km": row["gap_km"],
+                "path_km": row["path_km"],
+            }
+        )
+    df = pd.DataFrame(
+        recs, columns=["site_id", "kind", "nearest_taxon", "gap_km", "path_km"]
+    )
+    return gpd.GeoDataFrame(df, geometry=geoms, crs=grid.pyproj_crs)
