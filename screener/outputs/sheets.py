@@ -1,0 +1,564 @@
+"""Field sheets: one printed page per top-ranked site, as a multi-page PDF.
+
+Each page holds a locator map, a zoomed map of the site (hillshade with elevation
+contours where an elevation layer exists), the representative point in decimal degrees
+and in UTM (zone and latitude band), the elevation band, suitability and agreement, the
+kind of site and why it ranks where it does (its weighted score components), the
+estimated walking time, suggested sampling points and the cautions.  Greys, hatching,
+line styles and markers carry every distinction, so a black-and-white print reads the
+same as the screen.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+import os
+import textwrap
+from dataclasses import dataclass
+from pathlib import Path
+
+import matplotlib
+import numpy as np
+import pandas as pd
+from matplotlib.backends.backend_pdf import PdfPages
+from matplotlib.figure import Figure
+from pyproj import Transformer
+
+from screener.errors import InputError, OutputError
+from screener.grid import geodesic_distance_km
+from screener.outputs import maps
+from screener.outputs.cautions import cautions_short
+from screener.outputs.gpx import elevation_band, point_waypoint_name, site_waypoint_name
+from screener.outputs.privacy import FULL_PRECISION_MARKER, has_full_precision_sensitive
+
+__all__ = [
+    "PAGE_SIZES_IN",
+    "UTMPosition",
+    "utm_zone",
+    "utm_position",
+    "suggest_sampling_points",
+    "site_cell_mask",
+    "site_sampling_points",
+    "write_field_sheets",
+]
+
+log = logging.getLogger(__name__)
+
+#: Page sizes in inches (width, height): ISO A4 (210 x 297 mm) and US letter.
+PAGE_SIZES_IN = {"A4": (210 / 25.4, 297 / 25.4), "letter": (8.5, 11.0)}
+
+_BANDS = "CDEFGHJKLMNPQRSTUVWX"  # 8-degree latitude bands from 80S; I and O skipped
+
+
+@dataclass(frozen=True)
+class UTMPosition:
+    """A point in the Universal Transverse Mercator grid (WGS84 datum).
+
+    Attributes
+    ----------
+    zone : int
+        Zone number, 1-60.
+    band : str
+        Latitude band letter (C-X, without I and O).
+    hemisphere : str
+        "N" or "S"; southern northings carry the 10,000 km false northing.
+    easting, northing : float
+        Metres.
+    epsg : int
+        EPSG code of the zone's CRS (326zz north, 327zz south).
+    """
+
+    zone: int
+    band: str
+    hemisphere: str
+    easting: float
+    northing: float
+    epsg: int
+
+    def __str__(self) -> str:
+        return f"{self.zone}{self.band} {self.easting:.0f} E {self.northing:.0f} N"
+
+
+def utm_zone(lon: float, lat: float) -> tuple[int, str]:
+    """UTM zone number and latitude band of a point.
+
+    Zones are 6 degrees wide from 180 W; the exceptions of southern Norway (zone 32V
+    widened to 3 E) and Svalbard (zones 31X, 33X, 35X, 37X) are applied.
+
+    Parameters
+    ----------
+    lon, lat : float
+        WGS84 degrees; latitude within [-80, 84] (UTM's range; polar areas use UPS).
+
+    Returns
+    -------
+    (int, str)
+
+    Raises
+    ------
+    screener.errors.InputError
+        Latitude outside the UTM range or coordinates not finite.
+
+    Examples
+    --------
+    >>> utm_zone(-0.1, 51.5), utm_zone(36.8, -1.3), utm_zone(5.3, 60.4)
+    ((30, 'U'), (37, 'M'), (32, 'V'))
+    """
+    lon = float(lon)
+    lat = float(lat)
+    if not (math.isfinite(lon) and math.isfinite(lat)) or not -80 <= lat <= 84:
+        raise InputError(
+            f"point ({lon!r}, {lat!r}) is outside the UTM range (latitude -80 to 84); "
+            "give polar positions in decimal degrees only."
+        )
+    lon = (lon + 180.0) % 360.0 - 180.0
+    zone = int(math.floor((lon + 180.0) / 6.0)) + 1
+    zone = min(zone, 60)
+    band = _BANDS[min(int(math.floor((lat + 80.0) / 8.0)), len(_BANDS) - 1)]
+    if band == "V" and 3.0 <= lon < 12.0:
+        zone = 32
+    if band == "X" and 0.0 <= lon < 42.0:
+        zone = 31 if lon < 9 else 33 if lon < 21 else 35 if lon < 33 else 37
+    return zone, band
+
+
+def utm_position(lon: float, lat: float) -> UTMPosition:
+    """Project a WGS84 point into its own UTM zone (with pyproj).
+
+    Examples
+    --------
+    >>> p = utm_position(36.8, -1.3)
+    >>> p.zone, p.band, p.hemisphere, p.epsg
+    (37, 'M', 'S', 32737)
+    """
+    zone, band = utm_zone(lon, lat)
+    south = float(lat) < 0
+    epsg = (32700 if south else 32600) + zone
+    tr = Transformer.from_crs("EPSG:4326", f"EPSG:{epsg}", always_xy=True)
+    e, n = tr.transform(float(lon), float(lat))
+    return UTMPosition(zone, band, "S" if south else "N", float(e), float(n), epsg)
+
+
+# --- sampling points ---------------------------------------------------------------
+def site_cell_mask(grid, geometry) -> np.ndarray:
+    """Boolean (rows, cols) mask of the valid cells whose centres fall in a polygon.
+
+    Small polygons that hold no cell centre fall back to every touched cell.
+    """
+    from rasterio import features
+
+    m = features.geometry_mask(
+        [geometry], out_shape=grid.shape, transform=grid.transform, invert=True
+    )
+    if not m.any():
+        m = features.geometry_mask(
+            [geometry],
+            out_shape=grid.shape,
+            transform=grid.transform,
+            invert=True,
+            all_touched=True,
+        )
+    return m & grid.mask
+
+
+def suggest_sampling_points(
+    grid,
+    site_mask,
+    suitability,
+    n: int = 5,
+    min_spacing_km: float | None = None,
+    *,
+    site_id: str = "",
+) -> pd.DataFrame:
+    """Pick well-spread, highly suitable cells of a site as sampling points.
+
+    The best cell is taken first; every cell closer than ``min_spacing_km`` to it is
+    then set aside and the best remaining cell is taken, until ``n`` points are
+    chosen or no cell is left.  Distances are geodesic (WGS84) between cell centres.
+
+    Parameters
+    ----------
+    grid : screener.grid.Grid
+    site_mask : ndarray of bool, shape (n_rows, n_cols)
+        Cells of the site.
+    suitability : ndarray of float, shape (n_rows, n_cols)
+        NaN cells are never chosen.
+    n : int, default 5
+        Number of points wanted.
+    min_spacing_km : float, optional
+        Minimum distance between chosen points in km.  By default half the side of
+        a square holding the site's area divided by ``n``:
+        ``0.5 * sqrt(area_km2 / n)``.
+    site_id : str, default ""
+        Written into the ``site_id`` column.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``site_id, point_id, longitude, latitude, x, y, suitability, row,
+        col``; ``point_id`` counts from 1 in order of choice (best first).  Fewer than
+        ``n`` rows when the site is too small for the spacing.
+    """
+    if n < 1:
+        raise ValueError(f"n must be at least 1; got {n!r}")
+    site_mask = np.asarray(site_mask, bool)
+    s = np.asarray(suitability, float)
+    if site_mask.shape != tuple(grid.shape) or s.shape != tuple(grid.shape):
+        raise ValueError(
+            f"site_mask {site_mask.shape} and suitability {s.shape} must have the "
+            f"grid's shape {grid.shape}"
+        )
+    cols_out = [
+        "site_id",
+        "point_id",
+        "longitude",
+        "latitude",
+        "x",
+        "y",
+        "suitability",
+        "row",
+        "col",
+    ]
+    cells = site_mask & np.isfinite(s)
+    rows, cols = np.nonzero(cells)
+    if rows.size == 0:
+        return pd.DataFrame(columns=cols_out)
+    vals = s[rows, cols]
+    if min_spacing_km is None:
+        area = float(np.asarray(grid.cell_area_km2)[rows, cols].sum())
+        min_spacing_km = 0.5 * math.sqrt(area / n)
+    if not min_spacing_km >= 0:
+        raise ValueError(f"min_spacing_km must be >= 0; got {min_spacing_km!r}")
+    lon, lat = grid.lonlat(rows, cols)
+    lon = np.atleast_1d(np.asarray(lon, float))
+    lat = np.atleast_1d(np.asarray(lat, float))
+    free = np.ones(rows.size, bool)
+    chosen = []
+    for _ in range(n):
+        if not free.any():
+            break
+        cand = np.flatnonzero(free)
+        i = int(cand[np.argmax(vals[cand])])
+        chosen.append(i)
+        d = np.atleast_1d(geodesic_distance_km(lon[i], lat[i], lon, lat))
+        free &= d >= min_spacing_km
+        free[i] = False
+    idx = np.array(chosen, int)
+    x, y = grid.xy(rows[idx], cols[idx])
+    return pd.DataFrame(
+        {
+            "site_id": [site_id] * idx.size,
+            "point_id": np.arange(1, idx.size + 1),
+            "longitude": lon[idx],
+            "latitude": lat[idx],
+            "x": np.asarray(x, float),
+            "y": np.asarray(y, float),
+            "suitability": vals[idx],
+            "row": rows[idx],
+            "col": cols[idx],
+        }
+    )
+
+
+def _clade_suitability(result) -> np.ndarray:
+    best = np.full(result.grid.shape, np.nan)
+    for t in result.taxa.values():
+        best = np.fmax(best, np.asarray(t.suitability, float))
+    return best
+
+
+def site_sampling_points(
+    result, *, top_n: int | None = None, n: int = 5, min_spacing_km: float | None = None
+) -> pd.DataFrame:
+    """Sampling points for the top sites: the run's own, or suggested here.
+
+    Uses ``result.sampling_points`` for every site it covers and
+    :func:`suggest_sampling_points` on the highest suitability of any taxon for the
+    others.
+    """
+    sites = result.sites if top_n is None else result.sites.iloc[: int(top_n)]
+    have = result.sampling_points
+    suit = None
+    parts = []
+    for site in sites.to_dict("records"):
+        sid = str(site["site_id"])
+        if (
+            have is not None
+            and len(have)
+            and (have["site_id"].astype(str) == sid).any()
+        ):
+            parts.append(have[have["site_id"].astype(str) == sid])
+            continue
+        if suit is None:
+            suit = _clade_suitability(result)
+        mask = site_cell_mask(result.grid, site["geometry"])
+        parts.append(
+            suggest_sampling_points(
+                result.grid, mask, suit, n=n, min_spacing_km=min_spacing_km, site_id=sid
+            )
+        )
+    parts = [p for p in parts if len(p)]
+    if not parts:
+        return pd.DataFrame(
+            columns=[
+                "site_id",
+                "point_id",
+                "longitude",
+                "latitude",
+                "x",
+                "y",
+                "suitability",
+            ]
+        )
+    return pd.concat(parts, ignore_index=True)
+
+
+# --- the page ----------------------------------------------------------------------
+def _num(v, spec=".2f", missing="not estimated"):
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return missing
+    return format(f, spec) if math.isfinite(f) else missing
+
+
+def _facts(site, n_sites) -> list[str]:
+    lon, lat = float(site["longitude"]), float(site["latitude"])
+    try:
+        utm = str(utm_position(lon, lat))
+    except InputError:
+        utm = "outside the UTM range (polar)"
+    walk = site.get("walk_hours")
+    walk_txt = (
+        f"{_num(walk, '.1f')} h from the nearest start (slope-only estimate)"
+        if _num(walk) != "not estimated"
+        else "not estimated"
+    )
+    novel = site.get("novel_share")
+    return [
+        f"Rank {int(site['rank'])} of {n_sites}    kind: {site['kind']}    "
+        f"site id: {site['site_id']}",
+        f"Point (WGS84, decimal degrees): lat {lat:.6f}, lon {lon:.6f}",
+        f"UTM (WGS84): {utm}",
+        f"Elevation band: {elevation_band(site)}    "
+        f"area: {_num(site.get('area_km2'), ',.1f')} km²",
+        f"Suitability: mean {_num(site.get('mean_suitability'))}, max "
+        f"{_num(site.get('max_suitability'))}    agreement "
+        f"{_num(site.get('agreement'))}    novel environment "
+        f"{_num(100 * float(novel) if novel is not None else None, '.0f')}% of site",
+        f"Nearest known taxon: {site.get('nearest_taxon', 'n/a')}    nearest record "
+        f"{_num(site.get('nearest_record_km'), '.1f')} km    gap "
+        f"{_num(site.get('gap_km'), '.1f')} km    barrier depth "
+        f"{_num(site.get('barrier_depth'))}",
+        f"Walking time: {walk_txt}",
+        f"Rank robustness: {_num(site.get('rank_robustness'))} (share of random "
+        "weightings that keep it among the top sites)",
+    ]
+
+
+_HATCHES = ["", "///", "...", "xxx", "\\\\\\", "ooo", "---", "+++"]
+
+
+def _score_panel(ax, site, score_cols):
+    vals = [float(site.get(c, np.nan)) for c in score_cols]
+    names = [c.removeprefix("score_").replace("_", " ") for c in score_cols]
+    y = np.arange(len(vals))[::-1]
+    for yi, v, h in zip(y, vals, _HATCHES * 4, strict=False):
+        ax.barh(
+            yi,
+            v if math.isfinite(v) else 0.0,
+            color="0.75",
+            edgecolor="black",
+            hatch=h,
+            linewidth=0.6,
+        )
+        ax.text(
+            v if math.isfinite(v) else 0.0,
+            yi,
+            f" {_num(v, '.3f', 'n/a')}",
+            va="center",
+            fontsize=7,
+        )
+    ax.set_yticks(y, names, fontsize=7)
+    ax.tick_params(axis="x", labelsize=6)
+    ax.axvline(0, color="black", linewidth=0.6)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    ax.set_title(
+        f"Why it ranks here: weighted score components "
+        f"(total {_num(site.get('score'), '.3f', 'n/a')})",
+        fontsize=8,
+        loc="left",
+    )
+
+
+def _points_table(ax, site, points):
+    ax.axis("off")
+    ax.set_title(
+        "Suggested sampling points (best cells, spread apart)", fontsize=8, loc="left"
+    )
+    if points is None or len(points) == 0:
+        ax.text(
+            0,
+            0.8,
+            "No sampling points could be placed in this site.",
+            fontsize=7,
+            transform=ax.transAxes,
+        )
+        return
+    rows = []
+    for p in points.to_dict("records"):
+        try:
+            u = utm_position(p["longitude"], p["latitude"])
+            utm = f"{u.zone}{u.band} {u.easting:.0f} {u.northing:.0f}"
+        except InputError:
+            utm = "n/a"
+        rows.append(
+            [
+                point_waypoint_name(site["rank"], p["point_id"]),
+                f"{p['latitude']:.6f}",
+                f"{p['longitude']:.6f}",
+                utm,
+                _num(p.get("suitability")),
+            ]
+        )
+    tab = ax.table(
+        cellText=rows,
+        colLabels=["waypoint", "lat", "lon", "UTM (E N)", "suitability"],
+        loc="upper left",
+        cellLoc="left",
+        colLoc="left",
+        colWidths=[0.14, 0.18, 0.18, 0.34, 0.14],
+    )
+    tab.auto_set_font_size(False)
+    tab.set_fontsize(7)
+    for cell in tab.get_celld().values():
+        cell.set_linewidth(0.4)
+
+
+def _page(result, site, points, *, page_size, n_sites, marker, score_cols):
+    w, h = PAGE_SIZES_IN[page_size]
+    fig = Figure(figsize=(w, h))
+    name = site_waypoint_name(site["rank"])
+    fig.text(
+        0.06,
+        0.965,
+        f"Field sheet {name}: candidate site {site['site_id']}",
+        fontsize=13,
+        fontweight="bold",
+        va="top",
+    )
+    fig.text(
+        0.06,
+        0.94,
+        "A hypothesis for survey, not a known locality.",
+        fontsize=8,
+        va="top",
+        style="italic",
+    )
+    if marker:
+        fig.text(
+            0.94,
+            0.965,
+            marker,
+            fontsize=9,
+            fontweight="bold",
+            ha="right",
+            va="top",
+            bbox={"facecolor": "white", "edgecolor": "black"},
+        )
+    loc_ax = fig.add_axes((0.06, 0.66, 0.27, 0.25))
+    maps.plot_locator(result, site, ax=loc_ax)
+    loc_ax.set_title("Locator", fontsize=8, loc="left")
+    zoom_ax = fig.add_axes((0.40, 0.60, 0.54, 0.32))
+    maps.plot_site_zoom(result, site, ax=zoom_ax, points=points, caption=False)
+    zoom_ax.set_title("Site", fontsize=8, loc="left")
+    y = 0.57
+    for line in _facts(site, n_sites):
+        fig.text(0.06, y, line, fontsize=8, va="top")
+        y -= 0.017
+    if score_cols:
+        sc_ax = fig.add_axes((0.22, y - 0.10, 0.5, 0.08))
+        _score_panel(sc_ax, site, score_cols)
+        y -= 0.125
+    pt_ax = fig.add_axes((0.06, y - 0.10, 0.88, 0.09))
+    _points_table(pt_ax, site, points)
+    y -= 0.12
+    fig.text(0.06, y, "Cautions", fontsize=9, fontweight="bold", va="top")
+    y -= 0.017
+    for c in cautions_short():
+        for k, line in enumerate(textwrap.wrap(c, 140)):
+            fig.text(0.06 if k == 0 else 0.075, y, line, fontsize=6.5, va="top")
+            y -= 0.012
+    return fig
+
+
+def write_field_sheets(path, result, *, top_n: int = 10, page_size: str = "A4") -> Path:
+    """Write one field-sheet page per top-ranked site to a PDF.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        Output PDF; overwritten if it exists.
+    result : screener.results.RunResult
+    top_n : int, default 10
+        Number of sites (best first).
+    page_size : {"A4", "letter"}, default "A4"
+
+    Returns
+    -------
+    pathlib.Path
+
+    Raises
+    ------
+    screener.errors.InputError
+        Unknown page size, or a result without sites.
+    screener.errors.OutputError
+        The file cannot be written.
+
+    Notes
+    -----
+    Fonts are embedded as TrueType (``pdf.fonttype`` 42) so the text stays
+    searchable and copyable.  When a sensitive taxon's records are at full precision
+    every page carries the marker "FULL PRECISION: do not share".
+    """
+    if page_size not in PAGE_SIZES_IN:
+        raise InputError(
+            f"page_size {page_size!r} is not known; use one of {sorted(PAGE_SIZES_IN)}."
+        )
+    sites = result.sites
+    if sites is None or len(sites) == 0:
+        raise InputError(
+            "the run found no candidate sites, so there are no field "
+            "sheets to write; relax the threshold or the minimum area."
+        )
+    path = Path(os.fspath(path))
+    top = sites.iloc[: int(top_n)]
+    points = site_sampling_points(result, top_n=top_n)
+    score_cols = [c for c in sites.columns if str(c).startswith("score_")]
+    marker = FULL_PRECISION_MARKER if has_full_precision_sensitive(result) else None
+    meta = {
+        "Title": "Field sheets: candidate survey sites",
+        "Creator": "screener",
+        "Subject": "Survey hypotheses, not known localities",
+    }
+    try:
+        with matplotlib.rc_context({"pdf.fonttype": 42, "font.size": 8}):
+            with PdfPages(path, metadata=meta) as pdf:
+                for site in top.to_dict("records"):
+                    pts = points[points["site_id"].astype(str) == str(site["site_id"])]
+                    fig = _page(
+                        result,
+                        site,
+                        pts,
+                        page_size=page_size,
+                        n_sites=len(sites),
+                        marker=marker,
+                        score_cols=score_cols,
+                    )
+                    pdf.savefig(fig)
+    except OSError as exc:
+        raise OutputError(f"cannot write field sheets to {path}: {exc}") from exc
+    log.info("wrote %d field sheets to %s", len(top), path)
+    return path

@@ -1,0 +1,96 @@
+"""Generalising sensitive coordinates (Chapman 2020, GBIF Secretariat)."""
+
+from decimal import ROUND_FLOOR, Decimal
+
+import numpy as np
+import pytest
+from _synthetic_run import TAXA, make_run
+from hypothesis import given
+from hypothesis import strategies as st
+from pyproj import Geod
+
+from screener.outputs.privacy import (
+    FULL_PRECISION_MARKER,
+    generalise_coordinates,
+    generalised_result,
+    has_full_precision_sensitive,
+    shareable_result,
+)
+
+
+def _decimal_centre(value: float, g: str) -> float:
+    """Cell centre computed in exact decimal arithmetic (independent of the code)."""
+    d, step = Decimal(repr(value)), Decimal(g)
+    k = (d / step).to_integral_value(rounding=ROUND_FLOOR)
+    return float(k * step + step / 2)
+
+
+@pytest.mark.parametrize(
+    "lon, lat",
+    [(12.3456, -3.2111), (-0.01, 45.0), (12.3, 0.0), (-179.99, -89.99), (36.05, -1.25)],
+)
+def test_worked_examples_match_exact_decimal_cells(lon, lat):
+    # Cells of 0.1 degree anchored at (0, 0) as the documented default (Chapman 2020).
+    glon, glat = generalise_coordinates(lon, lat)
+    assert float(glon) == pytest.approx(_decimal_centre(lon, "0.1"), abs=1e-12)
+    assert float(glat) == pytest.approx(_decimal_centre(lat, "0.1"), abs=1e-12)
+
+
+@given(st.floats(-179.999, 179.999), st.floats(-89.999, 89.999))
+def test_displacement_is_at_most_half_a_cell_and_idempotent(lon, lat):
+    glon, glat = generalise_coordinates(lon, lat, 0.1)
+    assert abs(glon - lon) <= 0.05 + 1e-9 and abs(glat - lat) <= 0.05 + 1e-9
+    # Largest displacement: half the cell diagonal, measured on WGS84 with pyproj.
+    _, _, d = Geod(ellps="WGS84").inv(lon, lat, float(glon), float(glat))
+    _, _, half_diag = Geod(ellps="WGS84").inv(0, 0, 0.05, 0.05)
+    assert d <= half_diag + 1e-6
+    again = generalise_coordinates(glon, glat, 0.1)
+    np.testing.assert_allclose(again, (glon, glat), atol=1e-12)
+
+
+def test_poles_and_bad_input():
+    _, lat = generalise_coordinates(0.0, 90.0)
+    assert float(lat) == pytest.approx(89.95)
+    with pytest.raises(ValueError, match="grid_deg"):
+        generalise_coordinates(0, 0, grid_deg=0)
+    with pytest.raises(ValueError, match="latitudes"):
+        generalise_coordinates(0, 91)
+
+
+def test_generalised_result_touches_only_sensitive_records():
+    run = make_run()
+    assert has_full_precision_sensitive(run)
+    assert FULL_PRECISION_MARKER == "FULL PRECISION: do not share"
+    before = run.taxa[TAXA[1]].records.lon.copy()
+    out = generalised_result(run)
+    np.testing.assert_array_equal(run.taxa[TAXA[1]].records.lon, before)  # untouched
+    rec = out.taxa[TAXA[1]].records
+    np.testing.assert_allclose(
+        rec.lon, generalise_coordinates(before, run.taxa[TAXA[1]].records.lat)[0]
+    )
+    assert out.taxa[TAXA[0]].records is run.taxa[TAXA[0]].records  # not sensitive
+    assert not has_full_precision_sensitive(out)
+    assert out.provenance["generalised"]["grid_deg"] == 0.1
+    assert "generalised" not in run.provenance
+
+
+def test_generalised_result_sites():
+    run = make_run()
+    out = generalised_result(run, sites=True)
+    assert out.paths is None
+    glon, glat = generalise_coordinates(run.sites.longitude, run.sites.latitude)
+    np.testing.assert_allclose(out.sites.longitude, glon)
+    # Each polygon is now the generalisation cell: about 0.1 x 0.1 degree in area.
+    lon_lat = out.sites.to_crs("EPSG:4326")
+    for geom, lo, la in zip(lon_lat.geometry, glon, glat, strict=True):
+        assert geom.contains(type(geom.centroid)(lo, la))
+        assert geom.area == pytest.approx(0.01, rel=0.02)
+    assert run.paths is not None and run.sites.geometry.iloc[0].area > 1e6
+
+
+def test_shareable_result():
+    run = make_run(sensitive=False)
+    assert shareable_result(run) is run
+    sens = make_run()
+    out = shareable_result(sens)
+    assert out is not sens and not has_full_precision_sensitive(out)

@@ -1,0 +1,146 @@
+"""Field sheets: UTM against pyproj, sampling points, PDF pages and their text."""
+
+import re
+import subprocess
+import zlib
+
+import numpy as np
+import pytest
+from _synthetic_run import ensure_debian_tool, make_run
+from pyproj import Geod, Proj
+from pyproj.aoi import AreaOfInterest
+from pyproj.database import query_utm_crs_info
+
+from screener.errors import InputError
+from screener.outputs.sheets import (
+    site_cell_mask,
+    suggest_sampling_points,
+    utm_position,
+    utm_zone,
+    write_field_sheets,
+)
+
+
+@pytest.mark.parametrize(
+    "lon, lat, zone, band",
+    [  # The 6-degree zone rule from 180 W and 8-degree bands from 80 S (from memory).
+        (-177.0, 10.0, 1, "P"),
+        (-0.1, 51.5, 30, "U"),
+        (0.0, 0.0, 31, "N"),
+        (36.8, -1.3, 37, "M"),
+        (179.9, -45.0, 60, "G"),
+        (-70.0, -79.9, 19, "C"),
+        (20.0, 83.0, 33, "X"),  # Svalbard exception (from memory)
+        (5.3, 60.4, 32, "V"),  # southern Norway exception (from memory)
+    ],
+)
+def test_utm_zone_rule(lon, lat, zone, band):
+    assert utm_zone(lon, lat) == (zone, band)
+
+
+@pytest.mark.parametrize(
+    "lon, lat",
+    [(-3.0, 40.0), (-4.4, 49.6), (37.0, -1.3), (146.5, -42.0), (-65.0, -10.0)],
+)
+def test_utm_position_matches_pyproj(lon, lat):
+    p = utm_position(lon, lat)
+    # Reference: pyproj's own UTM projection string, and its UTM CRS lookup.
+    ref = Proj(proj="utm", zone=p.zone, south=lat < 0, ellps="WGS84")
+    e, n = ref(lon, lat)
+    np.testing.assert_allclose([p.easting, p.northing], [e, n], atol=1e-3)
+    assert p.hemisphere == ("S" if lat < 0 else "N")
+    if lat < 0:
+        assert p.northing > 5e6  # 10,000 km false northing in the south
+    hits = query_utm_crs_info(
+        datum_name="WGS 84", area_of_interest=AreaOfInterest(lon, lat, lon, lat)
+    )
+    assert str(p.epsg) in {h.code for h in hits}
+
+
+def test_utm_outside_range():
+    with pytest.raises(InputError, match="UTM range"):
+        utm_zone(0.0, 85.0)
+
+
+@pytest.fixture(scope="module")
+def run():
+    return make_run()
+
+
+def test_sampling_points_are_spread_and_best(run):
+    site = run.sites.iloc[0]
+    mask = site_cell_mask(run.grid, site.geometry)
+    s = np.fmax(*[t.suitability.astype(float) for t in run.taxa.values()])
+    pts = suggest_sampling_points(
+        run.grid, mask, s, n=5, min_spacing_km=3.0, site_id=site.site_id
+    )
+    assert len(pts) == 5 and list(pts.point_id) == [1, 2, 3, 4, 5]
+    assert pts.suitability.iloc[0] == pytest.approx(np.nanmax(s[mask]))
+    assert mask[pts.row, pts.col].all()
+    # Spacing checked with pyproj's geodesic on WGS84.
+    g = Geod(ellps="WGS84")
+    for i in range(5):
+        for j in range(i):
+            _, _, d = g.inv(
+                pts.longitude[i], pts.latitude[i], pts.longitude[j], pts.latitude[j]
+            )
+            assert d / 1000 >= 3.0 - 1e-9
+    # Without spacing the choice is the n best cells (argsort as reference).
+    top = suggest_sampling_points(run.grid, mask, s, n=4, min_spacing_km=0.0)
+    best = np.sort(s[mask])[::-1][:4]
+    np.testing.assert_allclose(np.sort(top.suitability)[::-1], best)
+
+
+def _pdf_pages_text(path):
+    """Per-page text: pdftotext (poppler) if available, else the content streams."""
+    exe = ensure_debian_tool("pdftotext", "poppler-utils")
+    if exe:
+        out = subprocess.run(
+            [exe, "-layout", str(path), "-"],
+            capture_output=True,
+            check=True,
+            timeout=60,
+        ).stdout.decode("utf-8", "replace")
+        return [p for p in out.split("\f") if p.strip()]
+    # Fallback: Type 42 fonts write 2-byte codes equal to the character for the
+    # glyphs used here; join the strings of each TJ/Tj operator per stream.
+    data = path.read_bytes()
+    pages = []
+    for raw in re.findall(rb"stream\r?\n(.*?)\r?\nendstream", data, re.S):
+        try:
+            txt = zlib.decompress(raw)
+        except zlib.error:
+            continue
+        if b"BT" not in txt:
+            continue
+        parts = re.findall(rb"\((.*?)(?<!\\)\)", txt, re.S)
+        pages.append(
+            "".join(
+                p.replace(b"\\", b"").decode("latin-1").replace("\x00", "")
+                for p in parts
+            )
+        )
+    if not pages:
+        pytest.skip("no way to extract PDF text (pdftotext absent, streams unreadable)")
+    return pages
+
+
+@pytest.mark.parametrize("page_size", ["A4", "letter"])
+def test_field_sheets_pages_hold_coordinates(tmp_path, run, page_size):
+    path = write_field_sheets(
+        tmp_path / "sheets.pdf", run, top_n=2, page_size=page_size
+    )
+    assert path.read_bytes()[:5] == b"%PDF-"
+    pages = _pdf_pages_text(path)
+    assert len(pages) == 2
+    for page, site in zip(pages, run.sites.itertuples(), strict=False):
+        flat = " ".join(page.split())
+        assert f"lat {site.latitude:.6f}, lon {site.longitude:.6f}" in flat
+        assert f"{utm_position(site.longitude, site.latitude)}" in flat
+        assert "FULL PRECISION: do not share" in flat
+        assert "Biosecurity" in flat and "Field safety" in flat
+
+
+def test_field_sheets_bad_page_size(tmp_path, run):
+    with pytest.raises(InputError, match="page_size"):
+        write_field_sheets(tmp_path / "x.pdf", run, page_size="A3")
