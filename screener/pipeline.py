@@ -977,13 +977,16 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
         columns=["line", "taxon", "reason"],
     )
     rel(write_csv(folder / "dropped_records.csv", dropped))
-    shareable = result
-    try:
-        from screener.outputs.privacy import shareable_result
+    from screener.outputs.privacy import shareable_result
 
-        shareable = shareable_result(result)
-    except ImportError:  # pragma: no cover
-        pass
+    so = s.get("outputs", {})
+    if so.get("full_precision", False):
+        shareable = result  # asked for: every output is marked full precision
+    else:
+        shareable = shareable_result(
+            result, sites=so.get("generalise_sites", False),
+            grid_deg=so.get("generalise_deg", 0.1),
+        )
     sites = shareable.sites
     rel(write_csv(folder / "candidates.csv", sites, CANDIDATE_COLUMNS))
     gpkg = folder / "candidates.gpkg"
@@ -1000,7 +1003,6 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     rel(gpkg)
     progress.step("waypoints, field sheets and report")
     rel(gpx.write_gpx(folder / "sites.gpx", sites, shareable.sampling_points))
-    so = s.get("outputs", {})
     rel(sheets.write_field_sheets(
         folder / "field_sheets.pdf", shareable, top_n=so.get("field_sheets", 10),
         page_size=so.get("page_size", "A4"),
