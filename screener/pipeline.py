@@ -487,26 +487,29 @@ def _mess_map(stack: LayerStack, reference: np.ndarray, max_cells: int = 1 << 20
 
 # --------------------------------------------------------------------------- overlap
 class GeographicRefit:
-    """Refit a model family to a re-split of pooled records and map it (picklable).
+    """Refit a model family to a set of record cells and map it (picklable).
 
-    Used by the geographic-space equivalency test: ``self(index)`` fits the family
-    to the pooled presence rows ``index`` against the pooled background and returns
-    the suitability map.
+    Used by the geographic-space tests: ``self(cells)`` fits the family to the
+    predictor values at the flat cell indices ``cells`` against the pooled background
+    of the pair and returns the suitability map (float32, NaN off the mask).
     """
 
-    def __init__(self, family, params, presence, background, stack_values, mask):
+    def __init__(self, family, params, background, stack_values, mask):
         self.family = family
         self.params = params
-        self.presence = presence
         self.background = background
         self.stack_values = stack_values
         self.mask = mask
+        pos = np.full(mask.size, -1, dtype=np.int64)
+        pos[np.flatnonzero(mask.ravel())] = np.arange(int(mask.sum()))
+        self.pos = pos
 
-    def __call__(self, index):
+    def __call__(self, cells):
         from screener.models import make_model
 
+        rows = self.pos[np.asarray(cells, dtype=np.int64)]
         model = make_model(self.family, **self.params).fit(
-            self.presence[np.asarray(index)], self.background
+            self.stack_values[rows].astype(np.float64), self.background
         )
         out = np.full(self.mask.shape, np.nan, dtype=np.float32)
         out[self.mask] = model.predict(self.stack_values).astype(np.float32)
@@ -563,6 +566,11 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor=None, progress=None):
             random_state=seed,
             executor=executor,
             geographic_fit_predict=refit,
+            cells_a=np.ravel_multi_index((ta.records.rows, ta.records.cols), grid.shape),
+            cells_b=np.ravel_multi_index((tb.records.rows, tb.records.cols), grid.shape),
+            accessible_a=ta.accessible,
+            accessible_b=tb.accessible,
+            geographic_budget_s=float("inf"),
         )
         comparisons.append(cmp)
         rows.extend(cmp.rows())
@@ -585,11 +593,10 @@ def _geographic_refit(intake, ta, tb, progress):
         params = {**params, "random_state": ta.seed}
     stack = intake.predictor_stack()
     X = stack.data[:, intake.grid.mask].T.astype(np.float32)
-    presence = np.vstack([ta.presence_env, tb.presence_env])
     background = np.vstack([ta.background_env, tb.background_env])
-    refit = GeographicRefit(family, params, presence, background, X, intake.grid.mask)
+    refit = GeographicRefit(family, params, background, X, intake.grid.mask)
     t0 = time.perf_counter()
-    refit(np.arange(ta.presence_env.shape[0]))
+    refit(np.ravel_multi_index((ta.records.rows, ta.records.cols), intake.grid.shape))
     per = time.perf_counter() - t0
     # equivalency needs 2 maps per replicate, each similarity test one more
     estimate = per * s.overlap.n_replicates * 4

@@ -1,0 +1,545 @@
+"""Tests of niche overlap (screener.overlap) against published formulas and references.
+
+Sources named beside each check:
+- Schoener (1968) Ecology 49:704 and Warren et al. (2008) Evolution 62:2868 for D and I
+  (formulas from memory, as given in the project's methods reference);
+- Levins (1968) for niche breadth (from memory);
+- scipy.stats.gaussian_kde and sklearn.neighbors.KernelDensity as reference densities;
+- spherical cell area A = R^2 dlon (sin lat_top - sin lat_bottom), R = 6371.0072 km
+  (authalic radius, from memory);
+- permutation-test calibration: under exchangeable records the equivalency test's
+  p-value is uniform on {1/(R+1), ..., 1} (Warren et al. 2008; standard permutation
+  theory).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from affine import Affine
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
+from numpy.testing import assert_allclose
+from scipy.stats import gaussian_kde
+from sklearn.neighbors import KernelDensity
+
+from screener import overlap as ov
+from screener.errors import InputError
+from screener.grid import Grid
+
+# --------------------------------------------------------------------------------------
+# D and I
+# --------------------------------------------------------------------------------------
+
+
+def test_d_and_i_hand_computed():
+    # Schoener 1968: D = 1 - 0.5 sum|p - q|; Warren et al. 2008: I = sum sqrt(p q).
+    p = np.array([0.2, 0.3, 0.5])
+    q = np.array([0.5, 0.3, 0.2])
+    # by hand: |p - q| = (0.3, 0, 0.3) -> D = 1 - 0.3 = 0.7
+    assert ov.schoener_d(p, q) == pytest.approx(0.7, abs=1e-12)
+    # by hand: I = 2 sqrt(0.10) + sqrt(0.09) = 0.632456 + 0.3
+    assert ov.hellinger_i(p, q) == pytest.approx(2 * math.sqrt(0.1) + 0.3, abs=1e-12)
+    # unnormalised input is normalised first: (1, 1) -> (0.5, 0.5)
+    assert ov.schoener_d([1.0, 1.0], [3.0, 0.0]) == pytest.approx(0.5, abs=1e-12)
+    assert ov.hellinger_i([1.0, 1.0], [3.0, 0.0]) == pytest.approx(math.sqrt(0.5))
+
+
+def test_identical_and_disjoint():
+    # Warren et al. 2008: both statistics are 1 for identical and 0 for disjoint niches.
+    rng = np.random.default_rng(3)
+    p = rng.random((6, 7))
+    assert ov.schoener_d(p, 2 * p) == pytest.approx(1.0, abs=1e-12)
+    assert ov.hellinger_i(p, 2 * p) == pytest.approx(1.0, abs=1e-12)
+    a = np.zeros((4, 4))
+    b = np.zeros((4, 4))
+    a[:2] = 1.0
+    b[2:] = 0.7
+    assert ov.schoener_d(a, b) == 0.0
+    assert ov.hellinger_i(a, b) == 0.0
+
+
+def test_i_is_the_bhattacharyya_coefficient():
+    # Warren et al. 2008: I = 1 - H^2/2 = sum sqrt(p q) (Bhattacharyya coefficient).
+    rng = np.random.default_rng(5)
+    for _ in range(5):
+        p = rng.random(50) ** 3
+        q = rng.random(50) ** 3
+        bc = np.sum(np.sqrt(p / p.sum() * q / q.sum()))
+        assert ov.hellinger_i(p, q) == pytest.approx(bc, abs=1e-12)
+
+
+def test_nan_cells_are_ignored():
+    # Warren et al. 2008 normalise over cells valid in both surfaces.
+    p = np.array([[1.0, 2.0, np.nan], [3.0, 4.0, 5.0]])
+    q = np.array([[2.0, 2.0, 9.0], [np.nan, 1.0, 5.0]])
+    keep = np.isfinite(p) & np.isfinite(q)
+    assert ov.schoener_d(p, q) == pytest.approx(ov.schoener_d(p[keep], q[keep]))
+    assert ov.hellinger_i(p, q) == pytest.approx(ov.hellinger_i(p[keep], q[keep]))
+
+
+def test_empty_or_negative_surfaces_are_rejected():
+    with pytest.raises(ValueError, match="zero"):
+        ov.schoener_d(np.zeros(4), np.ones(4))
+    with pytest.raises(ValueError, match="zero"):
+        ov.hellinger_i(np.ones(4), [np.nan, 0.0, 0.0, 0.0])
+    with pytest.raises(ValueError, match="negative"):
+        ov.schoener_d([1.0, -0.1], [1.0, 1.0])
+    with pytest.raises(ValueError, match="same shape"):
+        ov.schoener_d(np.ones(3), np.ones(4))
+
+
+def test_area_weighting_changes_the_answer_on_a_lonlat_grid():
+    # Two 1 x 1 degree cells, one at the equator (0-1 N) and one at 60-61 N.
+    # Spherical cell area A = R^2 dlon (sin top - sin bottom), R = 6371.0072 km
+    # (authalic sphere, from memory); computed here by hand.
+    r = 6371.0072
+    dlon = math.radians(1.0)
+    a0 = r**2 * dlon * (math.sin(math.radians(1)) - math.sin(math.radians(0)))
+    a1 = r**2 * dlon * (math.sin(math.radians(61)) - math.sin(math.radians(60)))
+    p = np.array([1.0, 1.0])  # suitable in both cells
+    q = np.array([1.0, 0.0])  # suitable only at the equator
+    # Unweighted: p = (1/2, 1/2), q = (1, 0) -> D = 0.5.
+    assert ov.schoener_d(p, q) == pytest.approx(0.5)
+    # Weighted: p = (a0, a1)/(a0 + a1) -> D = a0 / (a0 + a1), I = sqrt(a0 / (a0 + a1)).
+    d_expected = a0 / (a0 + a1)
+    assert d_expected == pytest.approx(0.670, abs=0.002)  # visibly not 0.5
+    assert ov.schoener_d(p, q, weights=[a0, a1]) == pytest.approx(d_expected, rel=1e-12)
+    assert ov.hellinger_i(p, q, [a0, a1]) == pytest.approx(math.sqrt(d_expected))
+    # The grid's WGS84 areas give nearly the same answer (sphere vs ellipsoid < 0.5 %).
+    grid = Grid("EPSG:4326", Affine(1.0, 0, 10.0, 0, -1.0, 61.0), (61, 1))
+    areas = grid.cell_area_km2[[60, 0], 0]  # rows: 0-1 N is the last, 60-61 N the first
+    d_grid, i_grid = ov.geographic_overlap(p[:, None], q[:, None], areas[:, None])
+    assert d_grid == pytest.approx(d_expected, rel=5e-3)
+    assert i_grid == pytest.approx(math.sqrt(d_expected), rel=5e-3)
+
+
+_surface = arrays(
+    np.float64, (4, 5), elements=st.floats(0, 1, allow_nan=False, allow_subnormal=False)
+)
+
+
+@settings(max_examples=60, deadline=None)
+@given(_surface, _surface)
+def test_d_and_i_bounded_and_symmetric(p, q):
+    # Warren et al. 2008: D, I in [0, 1] and symmetric in the two taxa.
+    p = p.copy()
+    q = q.copy()
+    p[0, 0] += 0.5  # not all zero
+    q[-1, -1] += 0.5
+    for f in (ov.schoener_d, ov.hellinger_i):
+        v = f(p, q)
+        assert 0.0 <= v <= 1.0
+        assert v == pytest.approx(f(q, p), abs=1e-12)
+    # D <= I always holds for normalised distributions (|p-q| >= (sqrt p - sqrt q)^2).
+    assert ov.schoener_d(p, q) <= ov.hellinger_i(p, q) + 1e-12
+
+
+def test_levins_breadth_hand_computed():
+    # Levins 1968: B = 1 / sum p^2, standardised (B - 1) / (N - 1).
+    assert ov.levins_breadth(np.ones(5)) == pytest.approx(1.0)
+    assert ov.levins_breadth([0.0, 0.0, 3.0]) == pytest.approx(0.0)
+    # p = (1/2, 1/2, 0, 0): B = 2, N = 4 -> 1/3
+    assert ov.levins_breadth([1.0, 1.0, 0.0, 0.0]) == pytest.approx(1 / 3)
+    assert ov.levins_breadth([1.0, 1.0, 0.0, np.nan]) == pytest.approx(1 / 2)
+
+
+# --------------------------------------------------------------------------------------
+# Environmental space
+# --------------------------------------------------------------------------------------
+
+
+def _pair(rng, shift=0.0, n=30, n_bg=600, n_vars=3, spread=0.5):
+    bg_a = rng.normal(size=(n_bg, n_vars))
+    bg_b = rng.normal(size=(n_bg, n_vars))
+    ra = rng.normal(0.0, spread, size=(n, n_vars))
+    rb = rng.normal(0.0, spread, size=(n, n_vars))
+    rb[:, 0] += shift
+    return ra, rb, bg_a, bg_b
+
+
+def _whitened_kde(points, nodes, cov):
+    """Gaussian density with kernel covariance `cov` via sklearn on whitened data."""
+    chol = np.linalg.cholesky(cov)
+    inv = np.linalg.inv(chol)
+    kd = KernelDensity(kernel="gaussian", bandwidth=1.0).fit(points @ inv.T)
+    return np.exp(kd.score_samples(nodes @ inv.T)) / abs(np.linalg.det(chol))
+
+
+def test_kernel_sum_matches_scipy_gaussian_kde():
+    # Reference: scipy.stats.gaussian_kde with its default Scott bandwidth, which is
+    # the sample covariance times n^(-1/3) in two dimensions.
+    rng = np.random.default_rng(11)
+    pts = rng.normal(size=(40, 2)) @ np.array([[1.0, 0.4], [0.0, 0.6]])
+    nodes = rng.uniform(-3, 3, size=(500, 2))
+    ours = ov._kernel_sum(pts, nodes, ov.scott_bandwidth(pts, len(pts))) / len(pts)
+    ref = gaussian_kde(pts.T)(nodes.T)
+    assert_allclose(ours, ref, rtol=1e-10, atol=1e-14)
+
+
+def test_record_densities_match_sklearn_on_the_pca_grid():
+    # Reference: sklearn.neighbors.KernelDensity (Gaussian) with the same kernel
+    # covariance, applied in whitened coordinates; same grid nodes.
+    rng = np.random.default_rng(2)
+    space = ov.environmental_space(*_pair(rng, shift=1.0), resolution=30)
+    nodes = space.nodes
+    ref_a = _whitened_kde(space.scores_records_a, nodes, space.bandwidth_a)
+    ref_b = _whitened_kde(space.scores_records_b, nodes, space.bandwidth_b)
+    assert_allclose(space.z_occ_a.ravel(), ref_a, rtol=1e-8, atol=1e-14)
+    assert_allclose(space.z_occ_b.ravel(), ref_b, rtol=1e-8, atol=1e-14)
+    # the environment density is gaussian_kde of the background, scaled to max 1
+    env = gaussian_kde(space.scores_background_a.T)(nodes.T)
+    assert_allclose(space.z_env_a.ravel(), env / env.max(), rtol=1e-10)
+    # rows follow PC2, columns PC1: the densest record cell sits near the record mean
+    r, c = np.unravel_index(np.argmax(space.z_occ_b), space.z_occ_b.shape)
+    mean = space.scores_records_b.mean(axis=0)
+    assert abs(space.pc1_centres[c] - mean[0]) < 0.6
+    assert abs(space.pc2_centres[r] - mean[1]) < 0.6
+
+
+def test_occupancy_is_density_ratio_on_support():
+    # Broennimann et al. 2012: occupancy = z_occ / z_env where the environment exists.
+    rng = np.random.default_rng(4)
+    space = ov.environmental_space(*_pair(rng), resolution=25)
+    ratio = np.where(space.support_a, space.z_occ_a / space.z_env_a, 0.0)
+    assert_allclose(space.occupancy_a, ratio / ratio.max(), rtol=1e-12)
+    assert space.occupancy_a.max() == pytest.approx(1.0)
+    # support_quantile = 0: every background point's cell lies in the support
+    rows, cols = space.cell_of(space.scores_background_a)
+    assert space.support_a[rows, cols].all()
+    # available environment (5th percentile) is inside the support
+    assert not np.any(space.available_a & ~space.support_a)
+
+
+def test_environmental_overlap_is_unit_free_and_one_for_identical_taxa():
+    # Standardising before the PCA makes the result independent of predictor units.
+    rng = np.random.default_rng(8)
+    ra, rb, ba, bb = _pair(rng, shift=0.8)
+    d1, i1 = ov.environmental_overlap(
+        ov.environmental_space(ra, rb, ba, bb, resolution=30)
+    )
+    scale = np.array([1000.0, 1.0, 0.01])
+    d2, i2 = ov.environmental_overlap(
+        ov.environmental_space(
+            ra * scale, rb * scale, ba * scale, bb * scale, resolution=30
+        )
+    )
+    assert d1 == pytest.approx(d2, abs=1e-6)
+    assert i1 == pytest.approx(i2, abs=1e-6)
+    same = ov.environmental_space(ra, ra, ba, ba, resolution=30)
+    assert ov.environmental_overlap(same) == pytest.approx((1.0, 1.0), abs=1e-12)
+    dyn = ov.niche_dynamics(same)
+    assert dyn["stability"] == pytest.approx(1.0)
+    assert dyn["expansion"] == pytest.approx(0.0, abs=1e-12)
+    assert dyn["unfilling"] == pytest.approx(0.0, abs=1e-12)
+
+
+def test_niche_dynamics_of_disjoint_niches():
+    # Guisan et al. 2014: a niche entirely outside the reference is all expansion and
+    # leaves the reference's niche unfilled.
+    rng = np.random.default_rng(9)
+    bg = rng.normal(size=(1500, 3)) * 2.0
+    ra = rng.normal(-2.5, 0.2, size=(25, 3))
+    rb = rng.normal(2.5, 0.2, size=(25, 3))
+    space = ov.environmental_space(ra, rb, bg, bg, resolution=40)
+    dyn = ov.niche_dynamics(space)
+    assert dyn["expansion"] > 0.9
+    assert dyn["unfilling"] > 0.9
+    assert dyn["stability"] == pytest.approx(1 - dyn["expansion"])
+    assert ov.environmental_overlap(space)[0] < 0.1
+
+
+def test_environmental_space_input_errors():
+    rng = np.random.default_rng(1)
+    ra, rb, ba, bb = _pair(rng)
+    with pytest.raises(InputError, match="NaN"):
+        bad = ra.copy()
+        bad[3, 1] = np.nan
+        ov.environmental_space(bad, rb, ba, bb)
+    with pytest.raises(InputError, match="same predictors"):
+        ov.environmental_space(ra, rb[:, :2], ba, bb)
+    with pytest.raises(InputError, match="at least 2 predictors"):
+        ov.environmental_space(ra[:, :1], rb[:, :1], ba[:, :1], bb[:, :1])
+    with pytest.raises(InputError, match="do not vary"):
+        ov.environmental_space(np.ones((3, 3)), np.ones((3, 3)), ba, bb)
+
+
+# --------------------------------------------------------------------------------------
+# Tests of overlap
+# --------------------------------------------------------------------------------------
+
+
+def test_equivalency_p_value_formula_and_reproducibility():
+    # Warren et al. 2008: p = (1 + #{null <= observed}) / (1 + R).
+    rng = np.random.default_rng(12)
+    space = ov.environmental_space(*_pair(rng, shift=0.7, n=15), resolution=30)
+    res = ov.equivalency_test(space, n_replicates=29, random_state=7)
+    for stat in ("D", "I"):
+        t = res[stat]
+        assert t.null.shape == (29,)
+        assert t.p_value == pytest.approx((1 + np.sum(t.null <= t.observed)) / 30)
+        assert t.alternative == "lower" and t.test == "equivalency"
+    assert res["D"].observed == pytest.approx(ov.environmental_overlap(space)[0])
+    again = ov.equivalency_test(space, n_replicates=29, random_state=7)
+    assert np.array_equal(again["D"].null, res["D"].null)
+    other = ov.equivalency_test(space, n_replicates=29, random_state=8)
+    assert not np.array_equal(other["D"].null, res["D"].null)
+
+
+def _calibration_rate(shift, n_pairs, seed, n_replicates=39):
+    rng = np.random.default_rng(seed)
+    rejected = 0
+    for _ in range(n_pairs):
+        ra, rb, ba, bb = _pair(rng, shift=shift, n=12, n_bg=150, spread=0.6)
+        space = ov.environmental_space(ra, rb, ba, bb, resolution=24)
+        res = ov.equivalency_test(
+            space, n_replicates=n_replicates, random_state=int(rng.integers(2**31))
+        )
+        rejected += res["D"].p_value <= 0.05
+    return rejected / n_pairs
+
+
+def test_equivalency_calibration_under_the_null():
+    # Permutation theory: with R = 39 replicates, P(p <= 0.05) = 2/40 = 5 % exactly
+    # when both taxa's records come from one niche (exchangeable records).  Over 400
+    # pairs the rejection rate must fall in 2 %..8 % (the brief's band; binomial sd
+    # 1.1 %).
+    rate = _calibration_rate(shift=0.0, n_pairs=400, seed=2024)
+    assert 0.02 <= rate <= 0.08
+
+
+def test_equivalency_power_on_different_niches():
+    # Clearly different niches (centres 2.0 apart on one predictor, 3.3 record-sd)
+    # must be rejected in at least 90 % of pairs.
+    rate = _calibration_rate(shift=2.0, n_pairs=60, seed=77)
+    assert rate >= 0.9
+
+
+def test_shifted_density_equals_density_of_shifted_records():
+    # The similarity test moves B's record density by whole grid cells; a Gaussian
+    # kernel is translation invariant, so the window must equal the density of the
+    # moved records (reference: sklearn KernelDensity, whitened).
+    rng = np.random.default_rng(13)
+    space = ov.environmental_space(*_pair(rng, shift=0.5, n=10), resolution=20)
+    ext = ov._extended_density(space, "b")
+    r = space.resolution
+    d1 = space.pc1_edges[1] - space.pc1_edges[0]
+    d2 = space.pc2_edges[1] - space.pc2_edges[0]
+    for s_row, s_col in [(0, 0), (3, -5), (-7, 2), (r - 1, -(r - 1))]:
+        window = ext[
+            r - 1 - s_row : 2 * r - 1 - s_row, r - 1 - s_col : 2 * r - 1 - s_col
+        ]
+        moved = space.scores_records_b + np.array([s_col * d1, s_row * d2])
+        ref = _whitened_kde(moved, space.nodes, space.bandwidth_b).reshape(r, r)
+        assert_allclose(window, ref, rtol=1e-8, atol=1e-14)
+
+
+def test_similarity_detects_conservatism_and_its_p_formula():
+    # Two taxa in the same small corner of broad, different accessible areas: their
+    # niches are more similar than random placements within the backgrounds give
+    # (Warren et al. 2008: p = (1 + #{null >= observed}) / (1 + R)).
+    rng = np.random.default_rng(21)
+    bg_a = rng.normal(size=(800, 3)) * 2.0 + np.array([1.0, 0.0, 0.0])
+    bg_b = rng.normal(size=(800, 3)) * 2.0 - np.array([1.0, 0.0, 0.0])
+    ra = rng.normal(0.0, 0.3, size=(20, 3)) + np.array([0.0, 2.0, 0.0])
+    rb = rng.normal(0.0, 0.3, size=(20, 3)) + np.array([0.0, 2.0, 0.0])
+    space = ov.environmental_space(ra, rb, bg_a, bg_b, resolution=30)
+    for direction in ("ab", "ba"):
+        res = ov.similarity_test(
+            space, direction=direction, n_replicates=49, random_state=1
+        )
+        t = res["D"]
+        assert t.p_value == pytest.approx((1 + np.sum(t.null >= t.observed)) / 50)
+        assert t.p_value < 0.05
+        low = ov.similarity_test(
+            space,
+            direction=direction,
+            alternative="lower",
+            n_replicates=49,
+            random_state=1,
+        )["D"]
+        assert np.array_equal(low.null, t.null)
+        assert low.p_value > 0.5
+    with pytest.raises(InputError, match="alternative"):
+        ov.similarity_test(space, alternative="two-sided")
+
+
+# --------------------------------------------------------------------------------------
+# Geographic tests and the pair entry point
+# --------------------------------------------------------------------------------------
+
+_SHAPE = (20, 24)
+
+
+class _BumpModel:
+    """Invented stand-in for a niche model: a Gaussian bump at the presences' mean."""
+
+    def __init__(self, shape=_SHAPE, width=3.0):
+        self.shape = shape
+        self.width = width
+
+    def __call__(self, cells):
+        rows, cols = np.unravel_index(np.asarray(cells), self.shape)
+        rr, cc = np.indices(self.shape)
+        d2 = (rr - rows.mean()) ** 2 + (cc - cols.mean()) ** 2
+        return np.exp(-0.5 * d2 / self.width**2)
+
+
+def test_geographic_equivalency_detects_separated_ranges():
+    model = _BumpModel()
+    cells_a = np.ravel_multi_index(([2, 3, 4, 3, 2], [2, 3, 2, 4, 4]), _SHAPE)
+    cells_b = np.ravel_multi_index(([16, 17, 15, 16, 17], [20, 21, 19, 19, 20]), _SHAPE)
+    res = ov.geographic_equivalency_test(
+        model, cells_a, cells_b, 1.0, n_replicates=39, random_state=3
+    )
+    t = res["D"]
+    assert t.observed == pytest.approx(
+        ov.geographic_overlap(model(cells_a), model(cells_b), 1.0)[0]
+    )
+    assert t.p_value == pytest.approx(1 / 40)  # every random split overlaps more
+    assert ov.estimate_seconds(model, cells_a, 10) >= 0.0
+
+
+def test_compare_pair_rows_and_reading():
+    rng = np.random.default_rng(30)
+    ra, rb, ba, bb = _pair(rng, shift=1.5, n=15, n_bg=300)
+    model = _BumpModel()
+    cells_a = np.ravel_multi_index(([2, 3, 4], [2, 3, 2]), _SHAPE)
+    cells_b = np.ravel_multi_index(([6, 7, 5], [8, 9, 9]), _SHAPE)
+    res = ov.compare_pair(
+        "Alpha",
+        "Beta",
+        map_a=model(cells_a),
+        map_b=model(cells_b),
+        cell_area_km2=1.0,
+        env_records_a=ra,
+        env_records_b=rb,
+        env_background_a=ba,
+        env_background_b=bb,
+        n_replicates=39,
+        resolution=30,
+        random_state=0,
+    )
+    rows = res.rows()
+    assert [r["space"] for r in rows] == ["geographic", "environmental"]
+    for r in rows:
+        assert tuple(r) == ov.OVERLAP_COLUMNS
+        assert r["n_replicates"] == 39 and r["alternative"] == "greater"
+    geo, env = rows
+    # geographic tests were not run: p-values are NaN, not invented
+    assert all(
+        math.isnan(geo[k])
+        for k in ("equivalency_p", "similarity_p_ab", "similarity_p_ba")
+    )
+    assert math.isnan(geo["stability"])
+    assert geo["D"] == pytest.approx(ov.schoener_d(model(cells_a), model(cells_b)))
+    assert 0 < env["equivalency_p"] <= 1 and 0 < env["similarity_p_ba"] <= 1
+    assert env["stability"] + env["expansion"] == pytest.approx(1.0)
+    reading = res.plain_reading()
+    assert "Alpha and Beta" in reading and "hypothesis" in reading
+    assert "different" in reading  # shift of 1.5 with 15 records: not equivalent
+    # the same call twice gives the same table
+    again = ov.compare_pair(
+        "Alpha",
+        "Beta",
+        map_a=model(cells_a),
+        map_b=model(cells_b),
+        cell_area_km2=1.0,
+        env_records_a=ra,
+        env_records_b=rb,
+        env_background_a=ba,
+        env_background_b=bb,
+        n_replicates=39,
+        resolution=30,
+        random_state=0,
+    )
+    assert again.rows()[1]["equivalency_p"] == env["equivalency_p"]
+
+
+def test_compare_pair_geographic_tests_and_budget():
+    model = _BumpModel()
+    cells_a = np.ravel_multi_index(([2, 3, 4], [2, 3, 2]), _SHAPE)
+    cells_b = np.ravel_multi_index(([3, 4, 2], [3, 2, 4]), _SHAPE)
+    access = np.ones(_SHAPE, bool)
+    kw = dict(
+        map_a=model(cells_a),
+        map_b=model(cells_b),
+        cell_area_km2=1.0,
+        n_replicates=9,
+        geographic_fit_predict=model,
+        cells_a=cells_a,
+        cells_b=cells_b,
+        accessible_a=access,
+        accessible_b=access,
+    )
+    res = ov.compare_pair("A", "B", **kw)
+    assert res.environmental is None
+    (row,) = res.rows()
+    assert all(
+        0 < row[k] <= 1 for k in ("equivalency_p", "similarity_p_ab", "similarity_p_ba")
+    )
+    # near-identical ranges: the equivalency test cannot tell them apart
+    assert row["equivalency_p"] > 0.05
+    assert (
+        "not distinguishable" in res.plain_reading()
+        or "more similar" in res.plain_reading()
+    )
+    skipped = ov.compare_pair("A", "B", geographic_budget_s=0.0, **kw)
+    assert math.isnan(skipped.rows()[0]["equivalency_p"])
+
+
+def test_pairwise_table_is_symmetric():
+    grid_maps = {
+        name: _BumpModel()(np.ravel_multi_index(([r], [c]), _SHAPE))
+        for name, r, c in (("x", 3, 3), ("y", 8, 10), ("z", 15, 20))
+    }
+    names = sorted(grid_maps)
+    results = [
+        ov.compare_pair(a, b, map_a=grid_maps[a], map_b=grid_maps[b], cell_area_km2=1.0)
+        for i, a in enumerate(names)
+        for b in names[i + 1 :]
+    ]
+    table = ov.pairwise_table(results, space="geographic")
+    assert list(table.index) == names and list(table.columns) == names
+    assert_allclose(table.to_numpy(), table.to_numpy().T)
+    assert_allclose(np.diag(table.to_numpy()), 1.0)
+    assert table.loc["x", "z"] < table.loc["x", "y"]  # farther apart, less overlap
+    assert table.loc["y", "z"] == pytest.approx(
+        ov.geographic_overlap(grid_maps["y"], grid_maps["z"], 1.0)[0]
+    )
+
+
+# --------------------------------------------------------------------------------------
+# Figures (artists, not pixels)
+# --------------------------------------------------------------------------------------
+
+
+def test_figures_draw_the_observed_value_and_contours():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from screener.outputs.overlap_figures import plot_null_distribution, plot_occupancy
+
+    rng = np.random.default_rng(40)
+    space = ov.environmental_space(*_pair(rng, shift=0.8, n=12), resolution=25)
+    test = ov.equivalency_test(space, n_replicates=19)["D"]
+    fig = plot_null_distribution(test)
+    ax = fig.axes[0]
+    assert any(np.allclose(line.get_xdata(), test.observed) for line in ax.lines)
+    assert "p = " in ax.get_title()
+    plt.close(fig)
+    fig, axes = plt.subplots(1, 2)
+    out = plot_occupancy(space, names=("Alpha", "Beta"), ax=axes)
+    assert out is fig
+    assert axes[0].get_title().startswith("Alpha") and axes[1].get_title().startswith(
+        "Beta"
+    )
+    assert len(axes[0].images) == 1
+    assert_allclose(axes[1].images[0].get_array(), space.occupancy_b)
+    assert len(axes[0].collections) >= 2  # available-environment contours + records
+    plt.close(fig)

@@ -1,0 +1,107 @@
+"""Tests of the executor seam (screener.parallel): one answer whichever backend runs it.
+
+The reference for "same results" is the serial loop; for seeds, numpy's SeedSequence
+(spawned children are independent streams, numpy documentation).
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import sys
+
+import numpy as np
+import pytest
+
+from screener import overlap as ov
+from screener.errors import InputError
+from screener.parallel import make_executor, spawn_seeds
+
+
+@pytest.fixture(scope="module")
+def process_executor():
+    with make_executor("processes", n_workers=2) as ex:
+        yield ex
+
+
+@pytest.fixture(scope="module")
+def dask_executor():
+    pytest.importorskip("distributed")
+    with make_executor("dask", n_workers=2) as ex:
+        yield ex
+
+
+@pytest.fixture(scope="module")
+def small_space():
+    rng = np.random.default_rng(0)
+    bg_a = rng.normal(size=(300, 3))
+    bg_b = rng.normal(size=(300, 3)) + 0.3
+    ra = rng.normal(0, 0.5, size=(12, 3))
+    rb = rng.normal(0.5, 0.5, size=(14, 3))
+    return ov.environmental_space(ra, rb, bg_a, bg_b, resolution=25)
+
+
+def test_spawn_seeds_reproducible_and_distinct():
+    a = spawn_seeds(42, 200)
+    assert a == spawn_seeds(42, 200)
+    assert len(set(a)) == 200
+    assert all(isinstance(s, int) and 0 <= s < 2**63 for s in a)
+    assert spawn_seeds(43, 5) != a[:5]
+    # a prefix of a longer draw: the first replicates do not depend on R
+    assert spawn_seeds(42, 10) == a[:10]
+    g1 = spawn_seeds(np.random.default_rng(1), 4)
+    assert g1 == spawn_seeds(np.random.default_rng(1), 4)
+    with pytest.raises(InputError, match="random_state"):
+        spawn_seeds("seven", 3)
+
+
+def test_serial_map_preserves_order():
+    with make_executor() as ex:
+        assert ex.kind == "serial" and ex.n_workers == 1
+        assert ex.map(math.sqrt, [9, 4, 1]) == [3.0, 2.0, 1.0]
+        assert ex.map(math.sqrt, []) == []
+    with pytest.raises(RuntimeError, match="closed"):
+        ex.map(math.sqrt, [1])
+
+
+def test_bad_arguments():
+    with pytest.raises(InputError, match="unknown"):
+        make_executor("threads")
+    with pytest.raises(InputError, match="at least 1"):
+        make_executor("processes", n_workers=0)
+    with pytest.raises(InputError, match="only used"):
+        make_executor("processes", address="tcp://127.0.0.1:8786")
+
+
+def test_missing_dask_gives_install_hint(monkeypatch):
+    monkeypatch.setitem(sys.modules, "distributed", None)  # import now fails
+    with pytest.raises(InputError, match=r"pip install 'screener\[dask\]'"):
+        make_executor("dask")
+
+
+def test_process_pool_order_and_one_thread(process_executor):
+    ex = process_executor
+    assert ex.kind == "processes" and ex.n_workers == 2
+    items = list(range(101))
+    assert ex.map(math.factorial, items) == [math.factorial(i) for i in items]
+    # each worker runs with one BLAS/OpenMP thread
+    assert set(ex.map(os.getenv, ["OMP_NUM_THREADS"] * 8)) == {"1"}
+
+
+def test_same_results_on_every_backend(process_executor, dask_executor, small_space):
+    serial = ov.equivalency_test(small_space, n_replicates=40, random_state=5)
+    sim = ov.similarity_test(small_space, n_replicates=40, random_state=6)
+    for ex in (process_executor, dask_executor):
+        got = ov.equivalency_test(
+            small_space, n_replicates=40, random_state=5, executor=ex
+        )
+        for stat in ("D", "I"):
+            assert np.array_equal(got[stat].null, serial[stat].null), ex.kind
+            assert got[stat].p_value == serial[stat].p_value
+        got_sim = ov.similarity_test(
+            small_space, n_replicates=40, random_state=6, executor=ex
+        )
+        assert np.array_equal(got_sim["D"].null, sim["D"].null), ex.kind
+    assert dask_executor.map(math.factorial, range(30)) == [
+        math.factorial(i) for i in range(30)
+    ]
