@@ -774,17 +774,19 @@ def plot_paths(result, *, ax=None, caption: bool = True):
     ax = _prepare(ax)
     grid = result.grid
     handles = []
+    _background(ax, result)
     if result.barrier is not None:
+        barrier = np.where(result.barrier > 0, result.barrier, np.nan)
         im = ax.imshow(
-            result.barrier,
+            barrier,
             extent=_extent(grid),
             cmap="cividis_r",
+            vmin=0.0,
+            vmax=1.0,
             interpolation="nearest",
-            zorder=1,
+            zorder=2,
         )
-        _colorbar(ax, im, "barrier (unsuitability crossed)")
-    else:
-        _background(ax, result)
+        _colorbar(ax, im, "barrier depth (1 - suitability on corridors)")
     if result.paths is not None and len(result.paths):
         result.paths.plot(ax=ax, color="black", linewidth=1.4, zorder=6)
         result.paths.plot(ax=ax, color="white", linewidth=0.5, zorder=6)
@@ -796,8 +798,9 @@ def plot_paths(result, *, ax=None, caption: bool = True):
     text = (
         (
             "Least-cost paths over inverted suitability from the known ranges to "
-            "near-range and isolated sites; the background shows the barriers the "
-            "paths cross."
+            "near-range and isolated sites. Shaded cells are barriers: unsuitable cells "
+            "on the least-cost corridors between different taxa's ranges, darker where "
+            "less suitable (the gaps that may have split the lineages)."
         )
         if caption
         else None

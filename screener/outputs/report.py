@@ -211,7 +211,40 @@ def _overlap(result) -> str:
         "than random reassignment of the records gives; a small similarity p means "
         "they are more alike than their available environments alone explain.</p>"
     )
+    out.extend(_overlap_figures(result))
     return "\n".join(out)
+
+
+def _overlap_figures(result) -> list:
+    """Occupancy surfaces and null distributions of each compared pair."""
+    from screener.outputs import overlap_figures
+
+    out = []
+    for cmp in getattr(result, "comparisons", None) or []:
+        a, b = cmp.taxon_a, cmp.taxon_b
+        if cmp.space is not None:
+            out.append(_safe_figure(
+                lambda cmp=cmp: overlap_figures.plot_occupancy(cmp.space, names=(a, b)),
+                f"Occupancy of {a} and {b} in environmental space (first two principal "
+                "components of the pooled accessible environments); contours outline "
+                "each taxon's available environment.",
+                f"environmental occupancy {a} {b}",
+            ))
+        for sc in (cmp.environmental, cmp.geographic):
+            if sc is None:
+                continue
+            for label, test in (("equivalency", sc.equivalency),
+                                ("similarity A to B", sc.similarity_ab),
+                                ("similarity B to A", sc.similarity_ba)):
+                if not test:
+                    continue
+                out.append(_safe_figure(
+                    lambda t=test["D"]: overlap_figures.plot_null_distribution(t),
+                    f"{a} vs {b}, {sc.space} space, {label} test: null distribution of "
+                    "D with the observed value marked.",
+                    f"null distribution {label} {sc.space} {a} {b}",
+                ))
+    return out
 
 
 def _plan(result) -> str:
