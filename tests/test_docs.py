@@ -58,3 +58,53 @@ def test_benchmarks_are_scripts_not_tests():
     bench = ROOT / "tests" / "benchmarks"
     names = [p.name for p in bench.glob("*.py")]
     assert names and all(re.fullmatch(r"bench_\w+\.py", n) for n in names), names
+
+
+METHOD_DOCS = ["intake", "models", "overlap", "isolation", "outputs"]
+
+
+def _validation_sections():
+    """The "## Validation" section of each docs/methods/*.md, in pipeline order."""
+    parts = []
+    for name in METHOD_DOCS:
+        path = ROOT / "docs" / "methods" / f"{name}.md"
+        if not path.exists():
+            continue
+        text = path.read_text()
+        title = text.splitlines()[0].lstrip("# ").strip()
+        if "## Validation" not in text:
+            continue
+        body = text.split("## Validation", 1)[1]
+        body = re.split(r"\n## ", body, maxsplit=1)[0].strip()
+        parts.append(f"## {title}\n\nFrom [methods/{name}.md](methods/{name}.md).\n\n{body}\n")
+    return parts
+
+
+VALIDATION_HEADER = """# Validation
+
+Every check of the screener against something outside the project: a published formula or
+worked example, a reference library, or real data that a package ships. Each row names the
+check, its source and the tolerance; the test that runs it is in `tests/`. "From memory" marks
+a published value quoted without re-checking the source; "common practice" marks a rule of
+thumb. This page is assembled from the Validation section of each methods page
+(`python tests/test_docs.py --write` regenerates it).
+"""
+
+
+def expected_validation() -> str:
+    return VALIDATION_HEADER + "\n" + "\n".join(_validation_sections())
+
+
+def test_validation_table_is_current():
+    text = (ROOT / "docs" / "validation.md").read_text()
+    assert text == expected_validation(), (
+        "docs/validation.md is out of date: run python tests/test_docs.py --write"
+    )
+
+
+if __name__ == "__main__":
+    import sys
+
+    if "--write" in sys.argv:
+        (ROOT / "docs" / "validation.md").write_text(expected_validation())
+        print("wrote docs/validation.md")
