@@ -1,0 +1,846 @@
+"""Evaluation of niche models: jackknife for small samples, spatial partitions, metrics.
+
+Pure functions over arrays.  The repeated fits (jackknife folds, partition folds and
+null-model replicates) are independent tasks whose seeds are drawn up front in the
+caller, so a parallel ``map_fn`` gives the same numbers as the builtin ``map``.
+
+Good evaluation scores say a model ranks the known records above the background; they
+do not make its predictions facts.  Predicted sites remain hypotheses for survey.
+"""
+
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Callable
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+from scipy.stats import rankdata, spearmanr
+
+from screener.errors import InputError
+from screener.models import accepts_random_state, make_model, training_presence_scores
+from screener.models.base import check_predictors
+from screener.thresholds import percentile_training_presence
+
+__all__ = [
+    "auc",
+    "poisson_binomial_sf",
+    "boyce_index",
+    "tss_max",
+    "omission_rate",
+    "block_partition",
+    "checkerboard_partition",
+    "random_kfold_partition",
+    "JackknifeResult",
+    "jackknife",
+    "null_model_test",
+    "NullModelResult",
+    "FamilyEvaluation",
+    "evaluate_family",
+    "METHODS",
+]
+
+log = logging.getLogger(__name__)
+
+#: Evaluation methods reported in ``FamilyEvaluation.method``.
+METHODS = ("jackknife", "block", "checkerboard", "random-kfold")
+
+
+# --- metrics ------------------------------------------------------------------------
+def _finite_1d(values, name: str) -> np.ndarray:
+    arr = np.asarray(values, dtype=float).ravel()
+    if not np.all(np.isfinite(arr)):
+        raise InputError(f"`{name}` has missing (NaN) or infinite scores.")
+    return arr
+
+
+def auc(presence_scores, background_scores) -> float:
+    """Area under the ROC curve, presences vs background: ``U / (n1 n0)``.
+
+    ``U`` is the Mann-Whitney statistic of the presence scores (mid-ranks for ties, so a
+    tie counts one half).
+
+    Parameters
+    ----------
+    presence_scores : array_like of shape (n1,)
+    background_scores : array_like of shape (n0,)
+
+    Returns
+    -------
+    float in [0, 1], NaN when either group is empty.
+
+    References
+    ----------
+    .. [1] Hanley, J. A. & McNeil, B. J. (1982). The meaning and use of the area under
+       a receiver operating characteristic (ROC) curve. Radiology 143:29-36.
+
+    Examples
+    --------
+    >>> auc([0.9, 0.4], [0.1, 0.4, 0.5])
+    0.75
+    """
+    p = _finite_1d(presence_scores, "presence_scores")
+    b = _finite_1d(background_scores, "background_scores")
+    if p.size == 0 or b.size == 0:
+        return math.nan
+    ranks = rankdata(np.r_[p, b])
+    u = ranks[: p.size].sum() - p.size * (p.size + 1) / 2.0
+    return float(u / (p.size * b.size))
+
+
+def poisson_binomial_sf(k: int, probs) -> float:
+    """``P(X >= k)`` for X the number of successes of independent trials.
+
+    Exact, by dynamic programming over the trials (O(n^2)).
+
+    Parameters
+    ----------
+    k : int
+        Number of successes.
+    probs : array_like of shape (n,)
+        Success probability of each trial, in [0, 1].
+
+    Returns
+    -------
+    float
+
+    References
+    ----------
+    .. [1] Pearson, R. G., Raxworthy, C. J., Nakamura, M. & Peterson, A. T. (2007).
+       Predicting species distributions from small numbers of occurrence records: a
+       test case using cryptic geckos in Madagascar. J. Biogeography 34:102-117.
+
+    Examples
+    --------
+    >>> poisson_binomial_sf(2, [0.5, 0.5])
+    0.25
+    """
+    p = np.asarray(probs, dtype=float).ravel()
+    if np.any(~np.isfinite(p)) or np.any(p < 0) or np.any(p > 1):
+        raise InputError("`probs` must be probabilities in [0, 1].")
+    k = int(k)
+    if k <= 0:
+        return 1.0
+    if k > p.size:
+        return 0.0
+    dist = np.zeros(p.size + 1)
+    dist[0] = 1.0
+    for i, pi in enumerate(p):
+        # After trial i, successes range over 0..i+1.
+        dist[1 : i + 2] = dist[1 : i + 2] * (1.0 - pi) + dist[: i + 1] * pi
+        dist[0] *= 1.0 - pi
+    return float(min(1.0, dist[k:].sum()))
+
+
+def omission_rate(test_scores, threshold: float) -> float:
+    """Share of test records scoring below ``threshold`` (NaN without records)."""
+    s = _finite_1d(test_scores, "test_scores")
+    return float(np.mean(s < threshold)) if s.size else math.nan
+
+
+def boyce_index(
+    presence_scores, background_scores, *, window: float = 0.1, n_windows: int = 101
+) -> float:
+    """Continuous Boyce index: Spearman correlation of P/E with suitability.
+
+    Windows of width ``window * (max - min)`` of the background scores slide over that
+    range (``n_windows`` centres, evenly spaced, ends inclusive).  In each window
+    ``P`` is the share of presences and ``E`` the share of background inside it;
+    windows without background are skipped.
+
+    Parameters
+    ----------
+    presence_scores, background_scores : array_like
+    window : float, default 0.1
+        Window width as a fraction of the suitability range.
+    n_windows : int, default 101
+
+    Returns
+    -------
+    float in [-1, 1]; NaN when fewer than 2 windows remain or P/E is constant.
+
+    References
+    ----------
+    .. [1] Hirzel, A. H., Le Lay, G., Helfer, V., Randin, C. & Guisan, A. (2006).
+       Evaluating the ability of habitat suitability models to predict species
+       presences. Ecological Modelling 199:142-152.
+    """
+    p = np.sort(_finite_1d(presence_scores, "presence_scores"))
+    b = np.sort(_finite_1d(background_scores, "background_scores"))
+    if p.size == 0 or b.size == 0:
+        return math.nan
+    lo, hi = float(b[0]), float(b[-1])
+    if hi <= lo:
+        return math.nan
+    width = float(window) * (hi - lo)
+    centres = np.linspace(lo + width / 2, hi - width / 2, int(n_windows))
+    left, right = centres - width / 2, centres + width / 2
+
+    def share(sorted_vals):
+        inside = np.searchsorted(sorted_vals, right, side="right") - np.searchsorted(
+            sorted_vals, left, side="left"
+        )
+        return inside / sorted_vals.size
+
+    P, E = share(p), share(b)
+    ok = E > 0
+    if ok.sum() < 2:
+        return math.nan
+    ratio = P[ok] / E[ok]
+    if np.ptp(ratio) == 0:
+        return math.nan
+    return float(spearmanr(centres[ok], ratio).statistic)
+
+
+def tss_max(presence_scores, background_scores) -> float:
+    """True skill statistic ``sensitivity + specificity - 1`` at its maximum.
+
+    The threshold ranges over the observed scores (a cell is "present" when its score is
+    ``>=`` the threshold).
+
+    References
+    ----------
+    .. [1] Allouche, O., Tsoar, A. & Kadmon, R. (2006). Assessing the accuracy of
+       species distribution models: prevalence, kappa and the true skill statistic
+       (TSS). J. Applied Ecology 43:1223-1232.
+    """
+    p = np.sort(_finite_1d(presence_scores, "presence_scores"))
+    b = np.sort(_finite_1d(background_scores, "background_scores"))
+    if p.size == 0 or b.size == 0:
+        return math.nan
+    cand = np.unique(np.r_[p, b, np.inf])
+    sens = 1.0 - np.searchsorted(p, cand, side="left") / p.size
+    spec = np.searchsorted(b, cand, side="left") / b.size
+    return float(np.max(sens + spec) - 1.0)
+
+
+# --- partitions ---------------------------------------------------------------------
+def _xy(values, name):
+    arr = np.asarray(values, dtype=float)
+    if arr.ndim != 2 or arr.shape[1] != 2 or not np.all(np.isfinite(arr)):
+        raise InputError(
+            f"`{name}` must be finite coordinates of shape (n, 2) as (x, y) or "
+            f"(longitude, latitude); got shape {arr.shape}."
+        )
+    return arr
+
+
+def block_partition(presence_xy, background_xy) -> tuple[np.ndarray, np.ndarray]:
+    """Four spatial blocks split at the records' median longitude and latitude.
+
+    The records are split at their median x (longitude), then each half at its own
+    median y (latitude), giving four groups of nearly equal size; background points are
+    assigned with the same cut lines.  Points on a cut line go to the lower side.
+
+    Parameters
+    ----------
+    presence_xy : array_like of shape (n, 2)
+        Record coordinates (x, y) in one CRS (e.g. longitude, latitude).
+    background_xy : array_like of shape (m, 2)
+        Background coordinates in the same CRS.
+
+    Returns
+    -------
+    presence_groups, background_groups : ndarray of int in 0..3
+
+    References
+    ----------
+    .. [1] Radosavljevic, A. & Anderson, R. P. (2014). Making better Maxent models of
+       species distributions: complexity, overfitting and evaluation. J. Biogeography
+       41:629-643.
+    """
+    pxy = _xy(presence_xy, "presence_xy")
+    bxy = _xy(background_xy, "background_xy")
+    x_cut = float(np.median(pxy[:, 0]))
+    p_east = pxy[:, 0] > x_cut
+    b_east = bxy[:, 0] > x_cut
+    pg = np.zeros(len(pxy), dtype=int)
+    bg = np.zeros(len(bxy), dtype=int)
+    for half, (pm, bm) in enumerate(((~p_east, ~b_east), (p_east, b_east))):
+        y_cut = float(np.median(pxy[pm, 1])) if pm.any() else 0.0
+        pg[pm] = 2 * half + (pxy[pm, 1] > y_cut)
+        bg[bm] = 2 * half + (bxy[bm, 1] > y_cut)
+    return pg, bg
+
+
+def checkerboard_partition(
+    presence_xy, background_xy, block_size: float
+) -> tuple[np.ndarray, np.ndarray]:
+    """Two groups alternating over square blocks of side ``block_size`` (CRS units).
+
+    Group = ``(floor(x / s) + floor(y / s)) mod 2``, for records and background alike.
+
+    References
+    ----------
+    .. [1] Radosavljevic, A. & Anderson, R. P. (2014). J. Biogeography 41:629-643.
+    """
+    if not (np.isfinite(block_size) and block_size > 0):
+        raise InputError(f"block_size must be a positive length; got {block_size!r}.")
+    pxy = _xy(presence_xy, "presence_xy")
+    bxy = _xy(background_xy, "background_xy")
+
+    def group(xy):
+        return (
+            (np.floor(xy[:, 0] / block_size) + np.floor(xy[:, 1] / block_size)) % 2
+        ).astype(int)
+
+    return group(pxy), group(bxy)
+
+
+def random_kfold_partition(
+    n_presence: int, n_background: int, k: int = 5, random_state=0
+) -> tuple[np.ndarray, np.ndarray]:
+    """Random folds of near-equal size (the non-spatial baseline)."""
+    if int(k) < 2 or int(k) > n_presence:
+        raise InputError(
+            f"k={k!r} folds need 2 <= k <= number of records ({n_presence})."
+        )
+    rng = np.random.default_rng(random_state)
+    pg = rng.permutation(np.arange(n_presence) % k)
+    bg = rng.permutation(np.arange(n_background) % k)
+    return pg, bg
+
+
+# --- fitting tasks (top-level functions so process pools can pickle them) ---------------
+@dataclass
+class _FitTask:
+    family: str
+    params: dict
+    seed: int
+    train: np.ndarray
+    background: np.ndarray
+    test: np.ndarray | None = None
+    test_background: np.ndarray | None = None
+    study_area: np.ndarray | None = None
+    study_area_weights: np.ndarray | None = None
+
+
+def _make(family, params, seed):
+    params = dict(params or {})
+    if accepts_random_state(family):
+        params["random_state"] = int(seed)
+    return make_model(family, **params)
+
+
+def _run_fold(task: _FitTask) -> dict:
+    model = _make(task.family, task.params, task.seed).fit(task.train, task.background)
+    train_scores = np.asarray(training_presence_scores(model, task.train), float)
+    train_scores = train_scores[np.isfinite(train_scores)]
+    if train_scores.size == 0:
+        train_scores = model.predict(task.train)
+    mtp = float(train_scores.min())
+    p10 = percentile_training_presence(train_scores, 10.0)
+    out = {"mtp": mtp, "p10": p10}
+    if task.test is not None:
+        out["test_scores"] = model.predict(task.test)
+    if task.test_background is not None:
+        out["test_background_scores"] = model.predict(task.test_background)
+    if task.study_area is not None:
+        s = model.predict(task.study_area)
+        w = task.study_area_weights
+        suitable = s >= mtp
+        out["share_present"] = float(
+            suitable.mean() if w is None else np.sum(w * suitable) / np.sum(w)
+        )
+    return out
+
+
+def _training_auc(model, presence, background) -> float:
+    """AUC of a model's training scores (out-of-bag for the forest) vs background."""
+    s = np.asarray(training_presence_scores(model, presence), float)
+    return auc(s[np.isfinite(s)], model.predict(background))
+
+
+def _run_null(task: _FitTask) -> float:
+    model = _make(task.family, task.params, task.seed).fit(task.train, task.background)
+    return _training_auc(model, task.train, task.background)
+
+
+# --- jackknife ----------------------------------------------------------------------
+@dataclass
+class JackknifeResult:
+    """Outcome of the leave-one-out jackknife (Pearson et al. 2007).
+
+    Attributes
+    ----------
+    successes : int
+        Left-out records scoring at or above their model's lowest training presence.
+    n : int
+        Number of records (= models).
+    p_value : float
+        ``P(X >= successes)``, X Poisson-binomial with the ``share_present`` values.
+    share_present : ndarray of shape (n,)
+        (Area-weighted) share of the study area each model predicts present.
+    thresholds : ndarray of shape (n,)
+        Each model's lowest training presence.
+    p10_thresholds : ndarray of shape (n,)
+        Each model's 10th-percentile training presence.
+    left_out_scores : ndarray of shape (n,)
+        Score of each left-out record under the model fitted without it.
+    fold_auc : ndarray of shape (n,)
+        Per model, the AUC of its left-out record against the background (the share of
+        background scoring below it, ties one half).
+    """
+
+    successes: int
+    n: int
+    p_value: float
+    share_present: np.ndarray
+    thresholds: np.ndarray
+    p10_thresholds: np.ndarray
+    left_out_scores: np.ndarray
+    fold_auc: np.ndarray
+
+
+def _seeds(rng, size):
+    return [int(s) for s in rng.integers(0, 2**31 - 1, size=size)]
+
+
+def jackknife(
+    family: str,
+    params: dict | None,
+    presence,
+    background,
+    study_area=None,
+    study_area_weights=None,
+    random_state=0,
+    *,
+    map_fn: Callable = map,
+) -> JackknifeResult:
+    """Leave-one-out jackknife test for small samples.
+
+    Model ``i`` is fitted without record ``i`` and thresholded at its own lowest
+    training presence (out-of-bag scores for the forest); it succeeds when record ``i``
+    scores at or above that threshold.  The p-value is ``P(X >= successes)`` with X
+    Poisson-binomial, trial ``i`` succeeding with the share of the study area model
+    ``i`` predicts present (area-weighted when weights are given).
+
+    Parameters
+    ----------
+    family : str
+        Model family key.
+    params : dict or None
+        Family parameters.
+    presence : array_like of shape (n, p), n >= 3
+    background : array_like of shape (m, p)
+    study_area : array_like of shape (c, p), optional
+        Predictor values of the study-area cells (all valid cells of the accessible
+        area, or a sample); the background when omitted.
+    study_area_weights : array_like of shape (c,), optional
+        Cell areas (km²) of those cells; equal weights when omitted.
+    random_state : int, default 0
+        Seed for the per-model seeds, drawn up front.
+    map_fn : callable, default builtin ``map``
+        ``map``-like callable used to run the n fits (e.g. an executor's ``map``).
+
+    Returns
+    -------
+    JackknifeResult
+
+    References
+    ----------
+    .. [1] Pearson, R. G., Raxworthy, C. J., Nakamura, M. & Peterson, A. T. (2007).
+       Predicting species distributions from small numbers of occurrence records: a
+       test case using cryptic geckos in Madagascar. J. Biogeography 34:102-117.
+    """
+    presence = check_predictors(presence, "presence", min_rows=3)
+    background = check_predictors(
+        background, "background", n_features=presence.shape[1]
+    )
+    study_area, weights = _study_area(study_area, study_area_weights, background)
+    n = presence.shape[0]
+    seeds = _seeds(np.random.default_rng(random_state), n)
+    tasks = []
+    for i in range(n):
+        keep = np.arange(n) != i
+        tasks.append(
+            _FitTask(
+                family,
+                params or {},
+                seeds[i],
+                presence[keep],
+                background,
+                test=presence[i : i + 1],
+                test_background=background,
+                study_area=study_area,
+                study_area_weights=weights,
+            )
+        )
+    results = list(map_fn(_run_fold, tasks))
+    thresholds = np.array([r["mtp"] for r in results])
+    p10 = np.array([r["p10"] for r in results])
+    left = np.array([float(r["test_scores"][0]) for r in results])
+    share = np.array([r["share_present"] for r in results])
+    fold_auc = np.array(
+        [
+            auc(left[i : i + 1], r["test_background_scores"])
+            for i, r in enumerate(results)
+        ]
+    )
+    successes = int(np.sum(left >= thresholds))
+    return JackknifeResult(
+        successes=successes,
+        n=n,
+        p_value=poisson_binomial_sf(successes, share),
+        share_present=share,
+        thresholds=thresholds,
+        p10_thresholds=p10,
+        left_out_scores=left,
+        fold_auc=fold_auc,
+    )
+
+
+def _study_area(study_area, weights, background):
+    if study_area is None:
+        return background, None
+    study_area = check_predictors(
+        study_area, "study_area", n_features=background.shape[1]
+    )
+    if weights is None:
+        return study_area, None
+    w = np.asarray(weights, dtype=float).ravel()
+    if w.shape[0] != study_area.shape[0] or not np.all(np.isfinite(w)) or np.any(w < 0):
+        raise InputError(
+            f"`study_area_weights` must be {study_area.shape[0]} non-negative cell "
+            f"areas (km²), one per study-area row; got shape {w.shape}."
+        )
+    return study_area, w
+
+
+# --- null model ---------------------------------------------------------------------
+@dataclass
+class NullModelResult:
+    """Observed training AUC against AUCs of models fitted to random points.
+
+    Attributes
+    ----------
+    observed : float
+    null : ndarray of shape (R,)
+    p_value : float
+        ``(1 + #{null >= observed}) / (1 + R)``.
+    """
+
+    observed: float
+    null: np.ndarray
+    p_value: float
+
+
+def null_model_test(
+    family: str,
+    params: dict | None,
+    presence,
+    background,
+    study_area=None,
+    *,
+    observed_auc: float | None = None,
+    n_null: int = 99,
+    random_state=0,
+    map_fn: Callable = map,
+) -> NullModelResult:
+    """Null-model test of the training AUC (Raes & ter Steege 2007).
+
+    Each replicate draws ``n`` rows at random (without replacement) from the study area
+    (the background when omitted), fits the same family with the same parameters to
+    them against the background, and records its training AUC.  Training scores are
+    those of :func:`screener.models.training_presence_scores` (out-of-bag for the
+    forest, whose in-sample AUC is near 1 for any points).
+
+    Parameters
+    ----------
+    family, params, presence, background
+        As in :func:`jackknife`.
+    study_area : array_like of shape (c, p), optional
+    observed_auc : float, optional
+        Training AUC of the model fitted to the real records; computed when omitted.
+    n_null : int, default 99
+    random_state : int, default 0
+    map_fn : callable, default builtin ``map``
+
+    Returns
+    -------
+    NullModelResult
+
+    References
+    ----------
+    .. [1] Raes, N. & ter Steege, H. (2007). A null-model for significance testing of
+       presence-only species distribution models. Ecography 30:727-736.
+    """
+    presence = check_predictors(presence, "presence", min_rows=2)
+    background = check_predictors(
+        background, "background", n_features=presence.shape[1]
+    )
+    pool, _ = _study_area(study_area, None, background)
+    n = presence.shape[0]
+    if pool.shape[0] < n:
+        raise InputError(
+            f"The study area has {pool.shape[0]} cells, fewer than the {n} records; "
+            "the null model needs at least as many cells as records."
+        )
+    rng = np.random.default_rng(random_state)
+    obs_seed, *seeds = _seeds(rng, int(n_null) + 1)
+    if observed_auc is None:
+        model = _make(family, params, obs_seed).fit(presence, background)
+        observed_auc = _training_auc(model, presence, background)
+    tasks = []
+    for s in seeds:
+        idx = np.random.default_rng(s).choice(pool.shape[0], size=n, replace=False)
+        tasks.append(_FitTask(family, params or {}, s, pool[idx], background))
+    null = np.array(list(map_fn(_run_null, tasks)), dtype=float)
+    p = (1.0 + np.sum(null >= observed_auc)) / (1.0 + null.size)
+    return NullModelResult(observed=float(observed_auc), null=null, p_value=float(p))
+
+
+# --- one entry point ----------------------------------------------------------------
+@dataclass
+class FamilyEvaluation:
+    """Evaluation of one model family for one taxon (a row of evaluation.csv).
+
+    Attributes
+    ----------
+    family : str
+    n_records : int
+    method : str
+        "jackknife", "block", "checkerboard" or "random-kfold".
+    auc : float
+        Test AUC (mean over folds; for the jackknife, the mean over models of the
+        left-out record's AUC against the background).
+    auc_train : float
+        AUC of the model fitted to all records, on its training records (their
+        out-of-bag scores for the forest) against the background.
+    auc_null_p : float
+        Null-model p-value of ``auc_train`` (NaN when not run).
+    omission_mtp, omission_p10 : float
+        Omission of test records at the training MTP and 10th-percentile thresholds.
+    boyce : float
+        Continuous Boyce index on test data (NaN for the jackknife: one test record per
+        model).
+    tss : float
+        Maximum TSS on test data (NaN for the jackknife).
+    jackknife_successes : int or None
+    jackknife_p : float or None
+    threshold_mtp : float
+        MTP of the model fitted to all records (out-of-bag for the forest).
+    n_folds : int
+        Folds that had test records.
+    """
+
+    family: str
+    n_records: int
+    method: str
+    auc: float = math.nan
+    auc_train: float = math.nan
+    auc_null_p: float = math.nan
+    omission_mtp: float = math.nan
+    omission_p10: float = math.nan
+    boyce: float = math.nan
+    tss: float = math.nan
+    jackknife_successes: int | None = None
+    jackknife_p: float | None = None
+    threshold_mtp: float = math.nan
+    n_folds: int = 0
+    extra: dict = field(default_factory=dict, repr=False)
+
+    def as_row(self) -> dict:
+        """A flat dict for evaluation.csv (``family`` is written as ``algorithm``)."""
+        row = asdict(self)
+        row.pop("extra")
+        row["algorithm"] = row.pop("family")
+        order = [
+            "algorithm",
+            "n_records",
+            "method",
+            "auc",
+            "auc_train",
+            "auc_null_p",
+            "threshold_mtp",
+            "omission_mtp",
+            "omission_p10",
+            "boyce",
+            "tss",
+            "jackknife_successes",
+            "jackknife_p",
+            "n_folds",
+        ]
+        return {k: row[k] for k in order}
+
+
+def _nanmean(values) -> float:
+    arr = np.asarray([v for v in values if v is not None], dtype=float)
+    arr = arr[np.isfinite(arr)]
+    return float(arr.mean()) if arr.size else math.nan
+
+
+def evaluate_family(
+    family: str,
+    params: dict | None,
+    presence,
+    background,
+    *,
+    presence_xy=None,
+    background_xy=None,
+    study_area=None,
+    study_area_weights=None,
+    jackknife_below: int = 25,
+    partition: str = "block",
+    k_folds: int = 5,
+    checkerboard_size: float | None = None,
+    n_null: int = 99,
+    random_state=0,
+    map_fn: Callable = map,
+) -> FamilyEvaluation:
+    """Evaluate one family: jackknife below ``jackknife_below`` records, else folds.
+
+    Parameters
+    ----------
+    family : str
+    params : dict or None
+    presence : array_like of shape (n, p)
+    background : array_like of shape (m, p)
+    presence_xy, background_xy : array_like of shape (n, 2) and (m, 2), optional
+        Coordinates (x, y) for the spatial partitions; without them "random-kfold" is
+        used.
+    study_area, study_area_weights : optional
+        Study-area rows and cell areas (km²) for the jackknife and null model.
+    jackknife_below : int, default 25
+        Use the jackknife when ``n < jackknife_below``.
+    partition : {"block", "checkerboard", "random-kfold"}, default "block"
+    k_folds : int, default 5
+        Folds of "random-kfold".
+    checkerboard_size : float, optional
+        Block side (CRS units) of "checkerboard"; default a quarter of the larger side
+        of the records' bounding box.
+    n_null : int, default 99
+        Null-model replicates (0 skips the test).
+    random_state : int, default 0
+    map_fn : callable, default builtin ``map``
+
+    Returns
+    -------
+    FamilyEvaluation
+    """
+    presence = check_predictors(presence, "presence", min_rows=3)
+    background = check_predictors(
+        background, "background", n_features=presence.shape[1]
+    )
+    n = presence.shape[0]
+    rng = np.random.default_rng(random_state)
+    full_seed, jk_seed, part_seed, fold_seed, null_seed = _seeds(rng, 5)
+
+    full = _make(family, params, full_seed).fit(presence, background)
+    train_scores = training_presence_scores(full, presence)
+    bg_scores = full.predict(background)
+    finite = np.asarray(train_scores, float)
+    finite = finite[np.isfinite(finite)]
+    auc_train = auc(finite, bg_scores)
+    ev = FamilyEvaluation(
+        family=family,
+        n_records=n,
+        method="jackknife",
+        auc_train=auc_train,
+        threshold_mtp=float(finite.min()) if finite.size else math.nan,
+    )
+
+    if n < jackknife_below:
+        jk = jackknife(
+            family,
+            params,
+            presence,
+            background,
+            study_area,
+            study_area_weights,
+            random_state=jk_seed,
+            map_fn=map_fn,
+        )
+        ev.auc = float(np.mean(jk.fold_auc))
+        ev.omission_mtp = float(np.mean(jk.left_out_scores < jk.thresholds))
+        ev.omission_p10 = float(np.mean(jk.left_out_scores < jk.p10_thresholds))
+        ev.jackknife_successes = jk.successes
+        ev.jackknife_p = jk.p_value
+        ev.n_folds = n
+        ev.extra["jackknife"] = jk
+    else:
+        method, pg, bgg = _partition(
+            partition,
+            n,
+            background.shape[0],
+            presence_xy,
+            background_xy,
+            k_folds,
+            checkerboard_size,
+            part_seed,
+        )
+        ev.method = method
+        groups = [g for g in np.unique(pg)]
+        seeds = _seeds(np.random.default_rng(fold_seed), len(groups))
+        tasks = []
+        for g, s in zip(groups, seeds, strict=True):
+            tasks.append(
+                _FitTask(
+                    family,
+                    params or {},
+                    s,
+                    presence[pg != g],
+                    background[bgg != g],
+                    test=presence[pg == g],
+                    test_background=background[bgg == g],
+                )
+            )
+        results = list(map_fn(_run_fold, tasks))
+        aucs, om_mtp, om_p10, boyces, tsss = [], [], [], [], []
+        for r in results:
+            t, tb = r["test_scores"], r["test_background_scores"]
+            om_mtp.append(omission_rate(t, r["mtp"]))
+            om_p10.append(omission_rate(t, r["p10"]))
+            if tb.size:
+                aucs.append(auc(t, tb))
+                boyces.append(boyce_index(t, tb))
+                tsss.append(tss_max(t, tb))
+        ev.auc, ev.omission_mtp, ev.omission_p10 = (
+            _nanmean(aucs),
+            _nanmean(om_mtp),
+            _nanmean(om_p10),
+        )
+        ev.boyce, ev.tss = _nanmean(boyces), _nanmean(tsss)
+        ev.n_folds = len(results)
+
+    if n_null and n_null > 0:
+        fixed = dict(params or {})
+        if hasattr(full, "selected_params"):
+            fixed.update(full.selected_params())
+        nm = null_model_test(
+            family,
+            fixed,
+            presence,
+            background,
+            study_area,
+            observed_auc=auc_train,
+            n_null=n_null,
+            random_state=null_seed,
+            map_fn=map_fn,
+        )
+        ev.auc_null_p = nm.p_value
+        ev.extra["null_model"] = nm
+    return ev
+
+
+def _partition(partition, n, m, presence_xy, background_xy, k_folds, size, seed):
+    if partition not in METHODS[1:]:
+        raise InputError(
+            f"Unknown partition {partition!r}; use one of {', '.join(METHODS[1:])}."
+        )
+    if partition != "random-kfold" and (presence_xy is None or background_xy is None):
+        log.info(
+            "No coordinates given for %s partitions; using random k-fold", partition
+        )
+        partition = "random-kfold"
+    if partition == "block":
+        pg, bg = block_partition(presence_xy, background_xy)
+    elif partition == "checkerboard":
+        pxy = _xy(presence_xy, "presence_xy")
+        if size is None:
+            size = float(np.max(np.ptp(pxy, axis=0))) / 4.0 or 1.0
+        pg, bg = checkerboard_partition(pxy, background_xy, size)
+    else:
+        pg, bg = random_kfold_partition(n, m, k_folds, seed)
+    return partition, pg, bg

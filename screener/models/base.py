@@ -1,0 +1,167 @@
+"""The protocol every niche-model family follows, and helpers shared by the families.
+
+A family is a scikit-learn style estimator (:class:`sklearn.base.BaseEstimator`):
+
+- ``__init__`` only stores its keyword parameters;
+- ``fit(presence, background)`` takes predictor values at the records, shape (n, p), and at
+  background cells, shape (m, p), validates them, learns, sets attributes ending in ``_``
+  and returns ``self``;
+- ``predict(X)`` returns suitability in [0, 1], shape (k,), for any number of rows; it works
+  through ``X`` in chunks so that temporaries stay small when ``X`` is a whole raster stack.
+
+Predictions are hypotheses about where a taxon *might* live, to be checked in the field;
+they are not evidence that it does.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from sklearn.base import BaseEstimator
+from sklearn.utils.validation import check_is_fitted
+
+from screener.errors import InputError
+
+__all__ = ["NicheModel", "check_predictors", "training_presence_scores", "CHUNK_ROWS"]
+
+#: Rows handled per chunk in ``predict``: 65,536 rows x 8 float32 predictors is 2 MiB,
+#: small enough for temporaries to stay in cache.
+CHUNK_ROWS = 65_536
+
+
+def check_predictors(
+    values, name: str, *, n_features: int | None = None, min_rows: int = 1
+) -> np.ndarray:
+    """Validate a (rows, predictors) array of predictor values and return it as float.
+
+    Parameters
+    ----------
+    values : array_like of shape (n, p)
+        Predictor values, one row per record or cell.
+    name : str
+        What the array is ("presence", "background", "X"), used in messages.
+    n_features : int, optional
+        Required number of columns.
+    min_rows : int, default 1
+        Fewest rows accepted.
+
+    Returns
+    -------
+    ndarray of float64 (float32 kept as float32), shape (n, p)
+
+    Raises
+    ------
+    screener.errors.InputError
+        Wrong shape, too few rows, or non-finite values.
+    """
+    arr = np.asarray(values)
+    if arr.dtype != np.float32:
+        try:
+            arr = arr.astype(np.float64, copy=False)
+        except (TypeError, ValueError) as exc:
+            raise InputError(
+                f"`{name}` must hold numbers; got dtype {arr.dtype}."
+            ) from exc
+    if arr.ndim == 1 and n_features == 1:
+        arr = arr[:, None]
+    if arr.ndim != 2:
+        raise InputError(
+            f"`{name}` must be 2-D (rows, predictors); got shape {arr.shape}. "
+            "Pass one row per record or cell and one column per layer."
+        )
+    if n_features is not None and arr.shape[1] != n_features:
+        raise InputError(
+            f"`{name}` has {arr.shape[1]} predictors but the model was fitted with "
+            f"{n_features}; use the same layers, in the same order, as in fit."
+        )
+    if arr.shape[0] < min_rows:
+        raise InputError(
+            f"`{name}` has {arr.shape[0]} rows; at least {min_rows} are needed."
+        )
+    if arr.shape[0] and not np.all(np.isfinite(arr)):
+        bad = np.flatnonzero(~np.all(np.isfinite(arr), axis=1))
+        raise InputError(
+            f"`{name}` has missing or infinite predictor values in {bad.size} rows "
+            f"(first: row {int(bad[0])}); drop cells outside the layers' valid mask "
+            "before fitting or predicting."
+        )
+    return arr
+
+
+class NicheModel(BaseEstimator):
+    """Base class of the niche-model families.
+
+    Subclasses implement ``fit`` and ``_predict_chunk(X)``; this class supplies a chunked,
+    validated ``predict``.  Fitted models always have ``n_features_in_``.
+    """
+
+    #: True when ``fit`` makes use of background rows.
+    uses_background = True
+
+    def predict(self, X) -> np.ndarray:
+        """Suitability in [0, 1] for each row of ``X``.
+
+        Parameters
+        ----------
+        X : array_like of shape (k, p)
+            Predictor values (float32 or float64), in the column order used in ``fit``.
+
+        Returns
+        -------
+        ndarray of float64, shape (k,)
+        """
+        check_is_fitted(self)
+        X = check_predictors(X, "X", n_features=self.n_features_in_, min_rows=0)
+        out = np.empty(X.shape[0], dtype=np.float64)
+        for start in range(0, X.shape[0], CHUNK_ROWS):
+            stop = min(start + CHUNK_ROWS, X.shape[0])
+            out[start:stop] = self._predict_chunk(X[start:stop])
+        np.clip(out, 0.0, 1.0, out=out)
+        return out
+
+    def _predict_chunk(self, X: np.ndarray) -> np.ndarray:  # pragma: no cover
+        raise NotImplementedError
+
+    def _check_fit_inputs(self, presence, background, *, min_presence: int = 1):
+        presence = check_predictors(presence, "presence", min_rows=min_presence)
+        p = presence.shape[1]
+        if background is None:
+            if self.uses_background:
+                raise InputError(
+                    f"{type(self).__name__} needs background rows; pass the predictor "
+                    "values of background cells drawn from the accessible area."
+                )
+            return presence, None
+        background = check_predictors(
+            background, "background", n_features=p, min_rows=1
+        )
+        return presence, background
+
+
+def training_presence_scores(model, presence) -> np.ndarray:
+    """Scores of a fitted model at its own training records, fit for thresholds.
+
+    Families that memorise their training rows (the forest) report out-of-bag scores
+    (``oob_presence_``), so that thresholds are not set on in-sample predictions; the
+    others are scored by ``predict``.
+
+    Parameters
+    ----------
+    model : fitted niche model
+    presence : array_like of shape (n, p)
+        The presence rows the model was fitted with, in the same order.
+
+    Returns
+    -------
+    ndarray of float, shape (n,)
+    """
+    check_is_fitted(model)
+    oob = getattr(model, "oob_presence_", None)
+    if oob is not None:
+        oob = np.asarray(oob, dtype=float)
+        if oob.shape[0] != np.shape(presence)[0]:
+            raise InputError(
+                f"The model was fitted with {oob.shape[0]} presences but "
+                f"{np.shape(presence)[0]} were passed; pass the training presences."
+            )
+        return oob
+    return model.predict(presence)

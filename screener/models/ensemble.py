@@ -1,0 +1,131 @@
+"""Ensembles of family maps: an evaluation-weighted mean and an agreement map."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+
+import numpy as np
+
+from screener.errors import InputError
+
+__all__ = ["ensemble_weights", "weighted_mean_map", "agreement_map"]
+
+
+def ensemble_weights(
+    scores: Mapping[str, float], *, baseline: float = 0.5
+) -> dict[str, float]:
+    """Weights ``max(score - baseline, 0)``, normalised to sum 1.
+
+    With AUC as the score (the default ``baseline`` 0.5), a family no better than random
+    gets weight 0.  When every weight is 0 or missing (NaN), all families get equal
+    weight.
+
+    Parameters
+    ----------
+    scores : mapping of str to float
+        Evaluation score per family (e.g. test AUC); NaN counts as 0.
+    baseline : float, default 0.5
+
+    Returns
+    -------
+    dict of str to float
+
+    References
+    ----------
+    .. [1] Araujo, M. B. & New, M. (2007). Ensemble forecasting of species
+       distributions. Trends in Ecology and Evolution 22:42-47.
+
+    Examples
+    --------
+    >>> ensemble_weights({"a": 0.875, "b": 0.625, "c": 0.4})
+    {'a': 0.75, 'b': 0.25, 'c': 0.0}
+    >>> ensemble_weights({"a": float("nan"), "b": 0.5})
+    {'a': 0.5, 'b': 0.5}
+    """
+    if not scores:
+        raise InputError("No family scores given; fit at least one model family.")
+    raw = {}
+    for name, s in scores.items():
+        s = float(s) if s is not None else math.nan
+        raw[name] = max(s - baseline, 0.0) if math.isfinite(s) else 0.0
+    total = sum(raw.values())
+    if total <= 0:
+        return {name: 1.0 / len(raw) for name in raw}
+    return {name: w / total for name, w in raw.items()}
+
+
+def _stack(maps: Mapping[str, np.ndarray]):
+    if not maps:
+        raise InputError("No family maps given; fit at least one model family.")
+    names = list(maps)
+    arrays = [np.asarray(maps[n], dtype=np.float32) for n in names]
+    shape = arrays[0].shape
+    for n, a in zip(names, arrays, strict=True):
+        if a.shape != shape:
+            raise InputError(
+                f"Family map {n!r} has shape {a.shape}, expected {shape}; all family "
+                "maps must be on the same grid."
+            )
+    return names, arrays, shape
+
+
+def weighted_mean_map(
+    maps: Mapping[str, np.ndarray], weights: Mapping[str, float]
+) -> np.ndarray:
+    """Weighted mean of family suitability maps (float32, NaN where any map is NaN).
+
+    Parameters
+    ----------
+    maps : mapping of str to ndarray
+        Family -> suitability map, all the same shape.
+    weights : mapping of str to float
+        Family -> weight (e.g. from :func:`ensemble_weights`); normalised here.
+
+    Returns
+    -------
+    ndarray of float32
+    """
+    names, arrays, shape = _stack(maps)
+    w = np.array([float(weights.get(n, 0.0)) for n in names])
+    if not np.all(np.isfinite(w)) or np.any(w < 0) or w.sum() <= 0:
+        raise InputError(
+            f"Ensemble weights {dict(zip(names, w.tolist(), strict=True))} must be "
+            "non-negative with a positive sum."
+        )
+    w = w / w.sum()
+    out = np.zeros(shape, dtype=np.float32)
+    for wi, a in zip(w, arrays, strict=True):
+        out += np.float32(wi) * a
+    return out
+
+
+def agreement_map(
+    maps: Mapping[str, np.ndarray], thresholds: Mapping[str, float]
+) -> np.ndarray:
+    """Share of families calling each cell suitable at their own threshold.
+
+    Parameters
+    ----------
+    maps : mapping of str to ndarray
+        Family -> suitability map.
+    thresholds : mapping of str to float
+        Family -> threshold value (a cell is suitable when ``map >= threshold``).
+
+    Returns
+    -------
+    ndarray of float32 in [0, 1], NaN where any map is NaN.
+    """
+    names, arrays, shape = _stack(maps)
+    missing = [n for n in names if n not in thresholds]
+    if missing:
+        raise InputError(f"No threshold given for families {missing}.")
+    count = np.zeros(shape, dtype=np.float32)
+    nan = np.zeros(shape, dtype=bool)
+    for n, a in zip(names, arrays, strict=True):
+        nan |= np.isnan(a)
+        with np.errstate(invalid="ignore"):
+            count += a >= np.float32(thresholds[n])
+    out = count / np.float32(len(names))
+    out[nan] = np.nan
+    return out

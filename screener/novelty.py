@@ -1,0 +1,111 @@
+"""Extrapolation: the multivariate environmental similarity surface (MESS).
+
+Where MESS is negative, at least one predictor lies outside the range of the calibration
+(reference) data and any model's prediction there is an extrapolation: treat suitability in
+such cells with extra caution before sending a team there.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from screener.errors import InputError
+from screener.models.base import check_predictors
+
+__all__ = ["mess", "similarity"]
+
+
+def similarity(reference, X) -> np.ndarray:
+    """Per-predictor similarity of each row of ``X`` to the reference, in percent.
+
+    With ``f`` the percent of reference values below ``x`` (strictly),
+    ``min``/``max`` the reference range:
+
+    - ``f == 0``: ``100 (x - min) / (max - min)`` (0 at the minimum, negative below it);
+    - ``0 < f <= 50``: ``2 f``;
+    - ``50 < f < 100``: ``2 (100 - f)``;
+    - ``f == 100``: ``100 (max - x) / (max - min)`` (negative above the maximum).
+
+    A predictor that is constant over the reference has no range: the similarity is 0
+    where ``x`` equals the constant and ``-inf`` elsewhere.
+
+    Parameters
+    ----------
+    reference : array_like of shape (m, p)
+        Calibration rows (records plus background, or background alone).
+    X : array_like of shape (k, p)
+
+    Returns
+    -------
+    ndarray of float64, shape (k, p)
+
+    References
+    ----------
+    .. [1] Elith, J., Kearney, M. & Phillips, S. (2010). The art of modelling
+       range-shifting species. Methods in Ecology and Evolution 1:330-342.
+    """
+    ref = check_predictors(reference, "reference", min_rows=1).astype(np.float64)
+    X = np.asarray(X)
+    if X.ndim != 2 or X.shape[1] != ref.shape[1]:
+        raise InputError(
+            f"`X` must have shape (k, {ref.shape[1]}) like the reference; got {X.shape}."
+        )
+    m, p = ref.shape
+    out = np.empty(X.shape, dtype=np.float64)
+    for j in range(p):
+        r = np.sort(ref[:, j])
+        lo, hi = r[0], r[-1]
+        x = X[:, j].astype(np.float64)
+        f = 100.0 * np.searchsorted(r, x, side="left") / m
+        s = np.where(f <= 50.0, 2.0 * f, 2.0 * (100.0 - f))
+        rng = hi - lo
+        if rng > 0:
+            s = np.where(f == 0.0, 100.0 * (x - lo) / rng, s)
+            s = np.where(f == 100.0, 100.0 * (hi - x) / rng, s)
+        else:
+            s = np.where(x == lo, 0.0, -np.inf)
+        s[~np.isfinite(x)] = np.nan
+        out[:, j] = s
+    return out
+
+
+def mess(reference, X) -> tuple[np.ndarray, np.ndarray]:
+    """MESS and the most dissimilar predictor of each row.
+
+    Parameters
+    ----------
+    reference : array_like of shape (m, p)
+        Calibration rows.
+    X : array_like of shape (k, p)
+        Rows to score (e.g. the valid cells of a raster stack).  Rows with a NaN get
+        MESS NaN and predictor -1.
+
+    Returns
+    -------
+    mess : ndarray of float64, shape (k,)
+        Minimum over predictors of :func:`similarity`; negative = novel environment.
+    most_dissimilar : ndarray of int16, shape (k,)
+        Column index of the predictor attaining that minimum.
+
+    References
+    ----------
+    .. [1] Elith, J., Kearney, M. & Phillips, S. (2010). The art of modelling
+       range-shifting species. Methods in Ecology and Evolution 1:330-342.
+
+    Examples
+    --------
+    >>> ref = np.array([[1.0, 10.0], [2.0, 20.0], [3.0, 30.0], [4.0, 40.0]])
+    >>> m, j = mess(ref, np.array([[2.5, 55.0]]))
+    >>> float(m[0]), int(j[0])
+    (-50.0, 1)
+    """
+    sim = similarity(reference, X)
+    k = sim.shape[0]
+    bad = np.isnan(sim).any(axis=1)
+    filled = np.where(np.isnan(sim), np.inf, sim)
+    idx = np.argmin(filled, axis=1) if sim.shape[1] else np.zeros(k, dtype=int)
+    out = filled[np.arange(k), idx]
+    out[bad] = np.nan
+    idx = idx.astype(np.int16)
+    idx[bad] = -1
+    return out, idx

@@ -1,0 +1,229 @@
+"""Tests of evaluation metrics, partitions, jackknife and the null-model test."""
+
+import itertools
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from numpy.testing import assert_allclose
+from scipy.stats import binom
+from sklearn.metrics import roc_auc_score, roc_curve
+
+from screener.errors import InputError
+from screener.evaluation import (
+    auc,
+    block_partition,
+    boyce_index,
+    checkerboard_partition,
+    evaluate_family,
+    jackknife,
+    null_model_test,
+    poisson_binomial_sf,
+    random_kfold_partition,
+    tss_max,
+)
+
+
+@given(
+    st.lists(st.sampled_from([0.0, 0.1, 0.25, 0.5, 0.9, 1.0]), min_size=1, max_size=12),
+    st.lists(st.sampled_from([0.0, 0.1, 0.3, 0.5, 0.9]), min_size=1, max_size=12),
+)
+@settings(max_examples=60, deadline=None)
+def test_auc_matches_sklearn(pres, bg):
+    """AUC = Mann-Whitney U/(n1 n0); reference sklearn.metrics.roc_auc_score (ties too)."""
+    y = np.r_[np.ones(len(pres)), np.zeros(len(bg))]
+    assert auc(pres, bg) == pytest.approx(roc_auc_score(y, np.r_[pres, bg]), abs=1e-12)
+
+
+def test_poisson_binomial_matches_brute_force():
+    """Exact P(X >= k) vs enumeration of all 2^n outcomes (definition)."""
+    rng = np.random.default_rng(0)
+    probs = rng.uniform(size=9)
+    pmf = np.zeros(10)
+    for outcome in itertools.product([0, 1], repeat=9):
+        o = np.array(outcome)
+        pmf[o.sum()] += np.prod(np.where(o == 1, probs, 1 - probs))
+    for k in range(0, 11):
+        assert poisson_binomial_sf(k, probs) == pytest.approx(pmf[k:].sum(), abs=1e-13)
+
+
+@pytest.mark.parametrize("n, p", [(1, 0.3), (10, 0.05), (25, 0.5), (60, 0.9)])
+def test_poisson_binomial_equal_probs_is_binomial(n, p):
+    """All probabilities equal: scipy.stats.binom.sf(k - 1, n, p)."""
+    for k in range(0, n + 2):
+        assert_allclose(
+            poisson_binomial_sf(k, np.full(n, p)),
+            binom.sf(k - 1, n, p),
+            rtol=1e-10,
+            atol=1e-15,
+        )
+
+
+def test_tss_max_matches_roc_curve():
+    """Max TSS = max(TPR - FPR) over the ROC curve (Youden J; sklearn roc_curve)."""
+    rng = np.random.default_rng(2)
+    pres = np.round(rng.beta(4, 2, size=40), 2)
+    bg = np.round(rng.beta(2, 3, size=300), 2)
+    fpr, tpr, _ = roc_curve(np.r_[np.ones(40), np.zeros(300)], np.r_[pres, bg])
+    assert tss_max(pres, bg) == pytest.approx(np.max(tpr - fpr), abs=1e-12)
+
+
+def test_boyce_on_constructed_cases():
+    """Hirzel et al. 2006 (Ecol. Modelling 199:142): P/E rising with suitability gives
+    +1, falling gives -1, a symmetric hump gives 0."""
+    bg = np.linspace(0, 1, 2001)  # uniform background: E is the same in every window
+    w = bg.copy()
+    rising = np.repeat(bg, np.round(10 * w).astype(int))  # presences ~ suitability
+    falling = np.repeat(bg, np.round(10 * (1 - w)).astype(int))
+    assert boyce_index(rising, bg) == pytest.approx(1.0, abs=1e-9)
+    assert boyce_index(falling, bg) == pytest.approx(-1.0, abs=1e-9)
+    hump = np.repeat(bg, np.round(20 * np.minimum(w, 1 - w)).astype(int))
+    assert abs(boyce_index(hump, bg)) < 0.05
+    # Presences distributed as the background: P/E == 1 everywhere, index undefined.
+    assert math.isnan(boyce_index(bg, bg))
+
+
+def test_block_partition_quarters():
+    rng = np.random.default_rng(3)
+    pxy = rng.uniform(size=(40, 2))
+    bxy = rng.uniform(size=(500, 2))
+    pg, bg = block_partition(pxy, bxy)
+    assert np.bincount(pg).tolist() == [10, 10, 10, 10]
+    x_cut = np.median(pxy[:, 0])
+    assert np.all((pg >= 2) == (pxy[:, 0] > x_cut))
+    assert np.all((bg >= 2) == (bxy[:, 0] > x_cut))
+    for g in range(4):  # the background of a block shares its bounding box
+        pb = pxy[pg == g]
+        side_x = (bxy[bg == g, 0] > x_cut) == (pb[0, 0] > x_cut)
+        assert side_x.all()
+
+
+def test_checkerboard_and_random_kfold():
+    pxy = np.array([[0.5, 0.5], [1.5, 0.5], [0.5, 1.5], [1.5, 1.5]])
+    pg, bg = checkerboard_partition(pxy, pxy + 2.0, block_size=1.0)
+    assert pg.tolist() == [0, 1, 1, 0] and bg.tolist() == [0, 1, 1, 0]
+    pg, bg = random_kfold_partition(23, 100, k=5, random_state=1)
+    assert sorted(np.bincount(pg)) == [4, 4, 5, 5, 5]
+    with pytest.raises(InputError, match="folds"):
+        random_kfold_partition(3, 10, k=5)
+
+
+@pytest.fixture(scope="module")
+def small():
+    # Invented predictor values: 8 records in a corner of a Gaussian background.
+    rng = np.random.default_rng(4)
+    bg = rng.normal(size=(600, 2))
+    pres = rng.normal([1.2, 1.0], 0.3, size=(8, 2))
+    return pres, bg
+
+
+def test_jackknife_by_hand(small):
+    """Pearson et al. 2007 (J. Biogeogr. 34:102): refit without each record, threshold
+    at its lowest training presence; p from the Poisson binomial of area shares."""
+    from screener.models import make_model
+
+    pres, bg = small
+    jk = jackknife("ellipsoid", {}, pres, bg, random_state=0)
+    for i in (0, 5):
+        keep = np.arange(len(pres)) != i
+        m = make_model("ellipsoid").fit(pres[keep], bg)
+        thr = m.predict(pres[keep]).min()
+        assert jk.thresholds[i] == pytest.approx(thr)
+        assert jk.left_out_scores[i] == pytest.approx(m.predict(pres[i : i + 1])[0])
+        assert jk.share_present[i] == pytest.approx(np.mean(m.predict(bg) >= thr))
+    assert jk.successes == int(np.sum(jk.left_out_scores >= jk.thresholds))
+    assert jk.p_value == pytest.approx(
+        poisson_binomial_sf(jk.successes, jk.share_present)
+    )
+    assert jk.p_value < 0.05
+
+
+def test_jackknife_area_weights(small):
+    pres, bg = small
+    # Weight only the cells far from the records: share predicted present drops.
+    far = np.linalg.norm(bg - [1.2, 1.0], axis=1) > 1.5
+    w = np.where(far, 1.0, 0.0)
+    jk_w = jackknife("ellipsoid", {}, pres, bg, study_area=bg, study_area_weights=w)
+    jk = jackknife("ellipsoid", {}, pres, bg, study_area=bg)
+    assert np.all(jk_w.share_present <= jk.share_present)
+    with pytest.raises(InputError, match="non-negative cell"):
+        jackknife("ellipsoid", {}, pres, bg, study_area=bg, study_area_weights=w[:5])
+
+
+def test_parallel_map_gives_same_result(small):
+    """Seeds are drawn up front: a different map (here reversed order) changes nothing."""
+    pres, bg = small
+
+    def reversed_map(fn, items):
+        items = list(items)
+        out = [fn(t) for t in reversed(items)]
+        return list(reversed(out))
+
+    a = jackknife("forest", {"n_estimators": 20}, pres, bg, random_state=7)
+    b = jackknife(
+        "forest", {"n_estimators": 20}, pres, bg, random_state=7, map_fn=reversed_map
+    )
+    assert_allclose(a.left_out_scores, b.left_out_scores)
+    na = null_model_test("ellipsoid", {}, pres, bg, n_null=5, random_state=1)
+    nb = null_model_test(
+        "ellipsoid", {}, pres, bg, n_null=5, random_state=1, map_fn=reversed_map
+    )
+    assert_allclose(na.null, nb.null)
+
+
+def test_null_model_p_value_formula(small):
+    """Raes & ter Steege 2007 (Ecography 30:727): p = (1 + #null >= obs) / (1 + R)."""
+    pres, bg = small
+    nm = null_model_test("ellipsoid", {}, pres, bg, n_null=19, random_state=0)
+    assert nm.null.shape == (19,)
+    assert nm.p_value == pytest.approx((1 + np.sum(nm.null >= nm.observed)) / 20)
+    assert nm.observed > np.median(nm.null)
+
+
+def test_evaluate_family_small_sample_uses_jackknife(small):
+    pres, bg = small
+    ev = evaluate_family("envelope", None, pres, bg, n_null=9)
+    assert ev.method == "jackknife" and ev.n_records == 8
+    assert ev.jackknife_successes is not None and 0 <= ev.jackknife_p <= 1
+    assert math.isnan(ev.boyce) and math.isnan(
+        ev.tss
+    )  # not defined for one test record
+    row = ev.as_row()
+    assert row["algorithm"] == "envelope" and row["method"] == "jackknife"
+    assert 0.1 <= row["auc_null_p"] <= 1.0
+
+
+@pytest.mark.parametrize("partition", ["block", "checkerboard", "random-kfold"])
+def test_evaluate_family_partitions(partition):
+    rng = np.random.default_rng(5)
+    bg = rng.normal(size=(800, 2))
+    bxy = rng.uniform(0, 10, size=(800, 2))
+    pres = rng.normal([1.0, 1.0], 0.4, size=(30, 2))
+    pxy = rng.uniform(0, 10, size=(30, 2))
+    ev = evaluate_family(
+        "ellipsoid",
+        {},
+        pres,
+        bg,
+        presence_xy=pxy,
+        background_xy=bxy,
+        partition=partition,
+        n_null=0,
+    )
+    assert ev.method == partition
+    assert ev.n_folds == {"block": 4, "checkerboard": 2, "random-kfold": 5}[partition]
+    assert 0.8 < ev.auc <= 1.0 and ev.boyce > 0 and 0 < ev.tss <= 1
+    assert 0 <= ev.omission_mtp <= ev.omission_p10 <= 1
+    assert ev.jackknife_p is None and math.isnan(ev.auc_null_p)
+
+
+def test_evaluate_family_without_coordinates_falls_back_to_random():
+    rng = np.random.default_rng(6)
+    bg = rng.normal(size=(300, 2))
+    pres = rng.normal(1.0, 0.4, size=(26, 2))
+    ev = evaluate_family("ellipsoid", {}, pres, bg, n_null=0)
+    assert ev.method == "random-kfold"
+    with pytest.raises(InputError, match="Unknown partition"):
+        evaluate_family("ellipsoid", {}, pres, bg, partition="stripes", n_null=0)

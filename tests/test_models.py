@@ -1,0 +1,278 @@
+"""Tests of the niche-model families: the estimator contract and the fits themselves."""
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+from scipy.special import logsumexp
+from scipy.stats import chi2, spearmanr
+from sklearn.base import clone
+from sklearn.covariance import LedoitWolf
+from sklearn.exceptions import NotFittedError
+from sklearn.linear_model import PoissonRegressor
+from threadpoolctl import threadpool_limits
+
+from screener.errors import InputError
+from screener.models import (
+    FAMILIES,
+    DownsampledForest,
+    EnvelopeNiche,
+    PointProcessNiche,
+    default_feature_classes,
+    fit_taxon_models,
+    make_model,
+    training_presence_scores,
+)
+from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
+from screener.models.inspect import permutation_importance, response_curves
+
+FAST = {"forest": {"n_estimators": 50}, "ppm": {"regularization": (1.0, 2.0)}}
+
+
+@pytest.fixture(scope="module")
+def data():
+    # Invented predictor values: the records sit off-centre in a Gaussian background.
+    rng = np.random.default_rng(0)
+    bg = rng.normal(size=(1500, 3))
+    pres = rng.normal([1.0, -0.5, 0.0], 0.4, size=(30, 3))
+    return pres, bg
+
+
+@pytest.mark.parametrize("family", sorted(FAMILIES))
+def test_contract(family, data):
+    """fit returns self, sets `_` attributes only in fit, clone works, output in [0, 1]."""
+    pres, bg = data
+    model = make_model(family, **FAST.get(family, {}))
+    assert not [k for k in vars(model) if k.endswith("_")]
+    with pytest.raises(NotFittedError):
+        model.predict(bg)
+    assert model.fit(pres, bg) is model
+    fitted = [k for k in vars(model) if k.endswith("_")]
+    assert "n_features_in_" in fitted
+    twin = clone(model)
+    assert not [k for k in vars(twin) if k.endswith("_")]
+    assert twin.get_params() == model.get_params()
+    s = model.predict(bg)
+    assert s.shape == (len(bg),) and np.all((s >= 0) & (s <= 1))
+    # A float32 stack gives the same answer to float32 precision.
+    assert_allclose(model.predict(bg.astype(np.float32)), s, atol=2e-5)
+    # Records sit in better environments than the average background cell.
+    assert training_presence_scores(model, pres).mean() > s.mean()
+    with pytest.raises(InputError, match="predictors but the model was fitted with 3"):
+        model.predict(bg[:, :2])
+
+
+@pytest.mark.parametrize("family", sorted(FAMILIES))
+def test_fit_is_deterministic(family, data):
+    pres, bg = data
+    a = make_model(family, **FAST.get(family, {})).fit(pres, bg).predict(bg[:200])
+    b = make_model(family, **FAST.get(family, {})).fit(pres, bg).predict(bg[:200])
+    assert_allclose(a, b, rtol=0, atol=0)
+
+
+def test_chunked_predict_matches_unchunked(data, monkeypatch):
+    pres, bg = data
+    model = make_model("ppm", feature_classes="LQH", regularization=1.0).fit(pres, bg)
+    whole = model.predict(bg)
+    monkeypatch.setattr("screener.models.base.CHUNK_ROWS", 97)
+    assert_allclose(model.predict(bg), whole, rtol=1e-12)
+
+
+def test_unknown_family_suggests_name():
+    with pytest.raises(InputError, match="Did you mean 'forest'"):
+        make_model("forrest")
+    with pytest.raises(InputError, match="no parameter 'n_tree'"):
+        make_model("forest", n_tree=3)
+
+
+def test_bad_inputs_raise_input_errors(data):
+    pres, bg = data
+    bad = pres.copy()
+    bad[3, 1] = np.nan
+    with pytest.raises(InputError, match="row 3"):
+        make_model("ellipsoid").fit(bad, bg)
+    with pytest.raises(InputError, match="needs background"):
+        make_model("ppm").fit(pres, None)
+    with pytest.raises(InputError, match="feature-class letters"):
+        make_model("ppm", feature_classes="LQX").fit(pres, bg)
+
+
+def test_ellipsoid_matches_chi2_of_ledoit_wolf_distance(data):
+    """Suitability = chi2 sf of D2 under sklearn's Ledoit-Wolf covariance (Etherington 2019)."""
+    pres, bg = data
+    model = make_model("ellipsoid", ridge=0.0).fit(pres, bg)
+    scale = bg.std(axis=0)
+    lw = LedoitWolf().fit(pres / scale)
+    d = (bg - pres.mean(axis=0)) / scale
+    d2 = np.einsum("ij,jk,ik->i", d, np.linalg.inv(lw.covariance_), d)
+    assert_allclose(model.predict(bg), chi2.sf(d2, df=3), rtol=1e-9, atol=1e-300)
+
+
+def test_envelope_percentile_rule():
+    """2*min(F, 1-F) with F the presence percentile (Busby 1991), worked by hand."""
+    pres = np.array([[1.0], [2.0], [3.0], [4.0]])
+    model = EnvelopeNiche().fit(pres)
+    # F at the records: (i - 0.5)/n = 1/8, 3/8, 5/8, 7/8; at 2.5 interpolated to 1/2.
+    got = model.predict(np.array([[1.0], [2.0], [2.5], [4.0], [0.5], [4.5]]))
+    assert_allclose(got, [0.25, 0.75, 1.0, 0.25, 0.0, 0.0])
+
+
+def test_default_feature_classes_follow_published_sample_sizes():
+    # Phillips & Dudik 2008 (Ecography 31:161), from memory: <10 L, 10-14 LQ, 15-79 LQH.
+    assert [default_feature_classes(n) for n in (9, 10, 14, 15, 79, 80)] == [
+        "L",
+        "LQ",
+        "LQ",
+        "LQH",
+        "LQH",
+        "LQPHT",
+    ]
+
+
+def test_ppm_auto_selection_uses_aicc(data):
+    pres, bg = data
+    model = make_model("ppm").fit(pres, bg)
+    aiccs = [c["aicc"] for c in model.selection_]
+    assert model.aicc_ == min(aiccs)
+    assert {c["feature_classes"] for c in model.selection_} == {"L", "LQ", "LQH"}
+    assert model.n_coefficients_ > 0 and model.regularization_ in (0.5, 1.0, 2.0, 4.0)
+
+
+def test_ppm_cloglog_output_uses_entropy(data):
+    """cloglog output = 1 - exp(-exp(H) q(x)) (Phillips et al. 2017, Ecography 40:887)."""
+    pres, bg = data
+    model = make_model("ppm", feature_classes="LQ", regularization=1.0).fit(pres, bg)
+    log_q = model.log_density(bg)
+    assert_allclose(logsumexp(log_q), 0.0, atol=1e-9)
+    q = np.exp(log_q)
+    assert_allclose(model.entropy_, -np.sum(q * log_q), rtol=1e-9)
+    assert_allclose(
+        model.predict(bg), -np.expm1(-np.exp(model.entropy_) * q), rtol=1e-9
+    )
+
+
+def _hand_features(z, zb, classes, n_knots=10):
+    cols = [z]
+    if "Q" in classes:
+        cols.append(z**2)
+    if "H" in classes:
+        levels = np.arange(1, n_knots + 1) / (n_knots + 1)
+        for j in range(z.shape[1]):
+            kn = np.unique(np.quantile(zb[:, j], levels))
+            cols.append(np.maximum(z[:, [j]] - kn, 0))
+            cols.append(np.maximum(kn - z[:, [j]], 0))
+    return np.hstack(cols)
+
+
+@pytest.mark.parametrize(
+    "classes, n_knots, min_rho, max_p95",
+    [("LQ", 10, 0.999, 0.1), ("LQH", 4, 0.999, 0.15), ("LQH", 10, 0.98, 0.6)],
+)
+def test_ppm_matches_poisson_point_process_glm(classes, n_knots, min_rho, max_p95):
+    """Weakly penalised ppm vs an unpenalised Poisson GLM on quadrature points.
+
+    Renner & Warton 2013 (Biometrics 69:274): the background-weighted logistic fit
+    converges on the Poisson point-process model.  Reference: sklearn PoissonRegressor
+    fitted to Berman-Turner quadrature (presences + background, weights w, counts y/w).
+    Tolerances are ours: relative log intensities agree in rank (Spearman) and in
+    value (95th percentile of |difference|) over the background.  Hinge features are
+    nearly collinear, so their tails are less well identified: looser bounds.
+    """
+    rng = np.random.default_rng(1)
+    bg = rng.normal(size=(3000, 2))
+    eta = 1.2 * bg[:, 0] - 0.6 * bg[:, 0] ** 2 + 0.8 * bg[:, 1]
+    idx = rng.choice(len(bg), size=200, p=np.exp(eta - logsumexp(eta)))
+    pres = bg[idx] + rng.normal(scale=0.01, size=(200, 2))
+    model = PointProcessNiche(
+        feature_classes=classes, regularization=0.02, n_knots=n_knots
+    ).fit(pres, bg)
+
+    mu, sd = bg.mean(axis=0), bg.std(axis=0)
+    zb = (bg - mu) / sd
+    F = _hand_features((np.vstack([pres, bg]) - mu) / sd, zb, classes, n_knots)
+    F = (F - F[len(pres) :].mean(axis=0)) / F[len(pres) :].std(axis=0)
+    w = np.r_[np.full(len(pres), 1e-6), np.full(len(bg), 1.0 / len(bg))]
+    y = np.r_[np.ones(len(pres)), np.zeros(len(bg))] / w
+    # One BLAS thread: multi-threaded BLAS is erratic on small problems here.
+    with threadpool_limits(1):
+        glm = PoissonRegressor(
+            alpha=1e-8, max_iter=300, tol=1e-8, solver="newton-cholesky"
+        ).fit(F, y, sample_weight=w)
+    e = F[len(pres) :] @ glm.coef_
+    ref = e - logsumexp(e)
+    got = model.log_density(bg)
+    assert spearmanr(got, ref).statistic > min_rho
+    assert np.percentile(np.abs(got - ref), 95) < max_p95
+
+
+def test_forest_trees_see_balanced_samples(data):
+    pres, bg = data
+    model = DownsampledForest(n_estimators=20, random_state=3).fit(pres, bg)
+    for tree in model.estimators_:
+        counts = tree.tree_.value[0]  # root node class fractions (weighted)
+        assert_allclose(counts.ravel(), [0.5, 0.5])
+    oob = model.oob_presence_
+    assert oob.shape == (len(pres),) and np.all(np.isfinite(oob))
+    # In-sample, fully grown trees score their own records near 1; out-of-bag is lower.
+    assert model.predict(pres).mean() > oob.mean()
+    assert_allclose(training_presence_scores(model, pres), oob)
+
+
+def test_fit_taxon_models_fits_every_family(data):
+    pres, bg = data
+    fitted = fit_taxon_models(
+        pres, bg, {"ellipsoid": {}, "forest": {"n_estimators": 10}}, random_state=5
+    )
+    assert list(fitted) == ["ellipsoid", "forest"]
+    assert fitted["forest"].random_state == 5
+    assert fitted["ellipsoid"].predict(bg[:3]).shape == (3,)
+
+
+def test_ensemble_weights_mean_and_agreement():
+    # Weights max(AUC - 0.5, 0) (Araujo & New 2007, TREE 22:42), equal when all zero.
+    w = ensemble_weights({"a": 0.9, "b": 0.6, "c": 0.45})
+    assert_allclose([w["a"], w["b"], w["c"]], [0.8, 0.2, 0.0])
+    assert ensemble_weights({"a": 0.5, "b": 0.3}) == {"a": 0.5, "b": 0.5}
+    maps = {
+        "a": np.array([[0.2, 0.8], [np.nan, 0.5]]),
+        "b": np.array([[0.6, 0.4], [0.1, 0.5]]),
+    }
+    mean = weighted_mean_map(maps, {"a": 3.0, "b": 1.0})
+    assert mean.dtype == np.float32
+    assert_allclose(mean, [[0.3, 0.7], [np.nan, 0.5]], rtol=1e-6)
+    agree = agreement_map(maps, {"a": 0.5, "b": 0.5})
+    assert_allclose(agree, [[0.5, 0.5], [np.nan, 1.0]])
+    with pytest.raises(InputError, match="same grid"):
+        weighted_mean_map({"a": np.zeros(2), "b": np.zeros(3)}, {"a": 1, "b": 1})
+
+
+def test_response_curves_and_importance(data):
+    pres, bg = data
+    model = make_model("ellipsoid").fit(pres, bg)
+    rc = response_curves(model, bg, n_points=21, names=["a", "b", "c"])
+    assert rc.values.shape == rc.suitability.shape == (21, 3)
+    assert_allclose(rc.values[[0, -1]], [bg.min(axis=0), bg.max(axis=0)])
+    # The curve of predictor 0 peaks near the records' mean on it.
+    peak = rc.values[np.argmax(rc.suitability[:, 0]), 0]
+    assert abs(peak - pres[:, 0].mean()) < 0.5
+    imp = permutation_importance(model, pres, bg, random_state=0, n_repeats=3)
+    # Predictors 0 and 1 separate records from background; predictor 2 does not.
+    assert imp.mean[0] > imp.mean[2] and imp.mean[1] > imp.mean[2]
+    assert imp.drops.shape == (3, 3)
+
+
+def test_model_figures(data):
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    from screener.outputs.model_figures import plot_importance, plot_response_curves
+
+    pres, bg = data
+    model = make_model("envelope").fit(pres)
+    fig = plot_response_curves(response_curves(model, bg, n_points=11))
+    assert len([a for a in fig.axes if a.get_visible()]) == 3
+    assert len(fig.axes[0].lines) == 2  # curve + median marker
+    ax = plot_importance(permutation_importance(model, pres, bg, n_repeats=2))
+    assert len(ax.patches) == 3
+    plt.close("all")
