@@ -11,6 +11,7 @@ Commands
 
 from __future__ import annotations
 
+import errno
 import functools
 import json
 import logging
@@ -20,7 +21,7 @@ from pathlib import Path
 import click
 
 from screener import __version__
-from screener.errors import InputError, OutputError, ScreenerError
+from screener.errors import InputError, OutputError, RecordsError, ScreenerError
 
 log = logging.getLogger("screener")
 
@@ -50,25 +51,54 @@ def _echo_err(text):
     click.echo(text, err=True)
 
 
+#: errno values of file-system failures the user can fix (exit code 2, like bad input)
+_USER_OS_ERRORS = {
+    errno.ENOENT: "no such file or folder",
+    errno.EACCES: "permission denied",
+    errno.EPERM: "operation not permitted",
+    errno.EROFS: "read-only file system",
+    errno.ENOSPC: "the disk is full",
+    errno.EDQUOT: "disk quota exceeded",
+    errno.EISDIR: "is a folder, not a file",
+    errno.ENOTDIR: "a part of the path is a file, not a folder",
+}
+
+
+def _interrupt_message(command: str, cached: bool) -> str:
+    text = "Interrupted. Nothing was written to the output folder"
+    if cached:
+        return (
+            text + "; finished stages are cached, so running the same command again "
+            "resumes where this run stopped."
+        )
+    if command == "run":
+        return text + " (--no-cache: a rerun starts from the beginning)."
+    return text + "; run the same command again to start over."
+
+
 def handle_errors(fn):
-    """Turn screener errors into a short message and exit code 2 (bad input)."""
+    """Turn errors into a short message and an exit code.
+
+    Exit codes: 0 success; 2 bad input or an output folder that cannot be written
+    (the user can fix it; click's usage errors are 2 as well); 1 a bug in the
+    screener; 130 interrupted (Ctrl-C).  ``--debug`` shows the traceback instead.
+    """
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
         debug = kwargs.get("debug", False)
+        cached = fn.__name__ == "run" and not kwargs.get("no_cache", False)
         try:
             return fn(*args, **kwargs)
         except KeyboardInterrupt:
-            _echo_err(
-                "Interrupted. Nothing was written to the output folder; finished stages "
-                "are cached, so running the same command again resumes."
-            )
-            sys.exit(130)
-        except (ScreenerError, click.ClickException):
             if debug:
                 raise
-            exc = sys.exc_info()[1]
-            if isinstance(exc, click.ClickException):
+            _echo_err(_interrupt_message(fn.__name__, cached))
+            sys.exit(130)
+        except click.ClickException:
+            raise
+        except ScreenerError as exc:
+            if debug:
                 raise
             _echo_err(f"Error: {exc.args[0] if exc.args else exc}")
             sys.exit(2 if isinstance(exc, (InputError, OutputError)) else 1)
@@ -83,7 +113,15 @@ def handle_errors(fn):
         except OSError as exc:
             if debug:
                 raise
-            _echo_err(f"Error: {exc.strerror or exc} ({exc.filename or 'file system'}).")
+            what = _USER_OS_ERRORS.get(exc.errno)
+            where = exc.filename or "the file system"
+            if what is not None:
+                _echo_err(
+                    f"Error: {where}: {what}. Check the path and its permissions, or "
+                    "free disk space, then run again."
+                )
+                sys.exit(2)
+            _echo_err(f"Error: {exc.strerror or exc} ({where}).")
             sys.exit(1)
         except Exception as exc:
             if debug:
@@ -167,7 +205,15 @@ def check(project, debug):
     from screener.pipeline import check_project
     from screener.project import load_project
 
-    for line in check_project(load_project(project)):
+    try:
+        lines = check_project(load_project(project))
+    except RecordsError as exc:
+        # list every dropped row before the error, so all can be fixed in one pass
+        found = exc.args[1] if len(exc.args) > 1 else None
+        for line in getattr(found, "summary_lines", lambda: [])():
+            click.echo(line)
+        raise
+    for line in lines:
         click.echo(line)
 
 

@@ -125,24 +125,58 @@ class LayerReport:
     nodata_share: dict = field(default_factory=dict)
 
 
-def _describe_difference(ref, other) -> str:
+def _fmt(values) -> str:
+    return "(" + ", ".join(f"{float(v):.10g}" for v in values) + ")"
+
+
+def _describe_difference(ref, other, ref_name: str, other_name: str) -> str:
+    """What differs between two rasters' grids, each value named by its file."""
     diffs = []
     if ref.crs != other.crs:
-        diffs.append(f"CRS {other.crs} vs {ref.crs}")
+        diffs.append(f"CRS {other.crs} in {other_name} but {ref.crs} in {ref_name}")
     if (ref.width, ref.height) != (other.width, other.height):
         diffs.append(
-            f"shape {other.height} rows x {other.width} cols vs "
-            f"{ref.height} rows x {ref.width} cols"
+            f"shape {other.height} rows x {other.width} cols in {other_name} but "
+            f"{ref.height} rows x {ref.width} cols in {ref_name}"
         )
-    if not np.allclose(ref.res, other.res, rtol=1e-9, atol=0):
-        diffs.append(f"resolution {other.res} vs {ref.res}")
-    if not ref.transform.almost_equals(other.transform, precision=1e-9):
-        if np.allclose(ref.res, other.res, rtol=1e-9, atol=0):
-            diffs.append(
-                f"origin ({other.transform.c}, {other.transform.f}) vs "
-                f"({ref.transform.c}, {ref.transform.f})"
-            )
+    same_res = np.allclose(ref.res, other.res, rtol=1e-9, atol=0)
+    if not same_res:
+        diffs.append(
+            f"resolution {_fmt(other.res)} in {other_name} but {_fmt(ref.res)} in {ref_name}"
+        )
+    if not ref.transform.almost_equals(other.transform, precision=1e-9) and same_res:
+        diffs.append(
+            f"origin {_fmt((other.transform.c, other.transform.f))} in {other_name} but "
+            f"{_fmt((ref.transform.c, ref.transform.f))} in {ref_name}"
+        )
     return "; ".join(diffs)
+
+
+def _untagged_sentinel(values: np.ndarray, dtype) -> float | None:
+    """A common nodata sentinel that is the extreme of an untagged layer, or None.
+
+    Files without a nodata tag sometimes still mark missing cells with the integer
+    type's minimum (or maximum, for unsigned types), -9999, or the float32 minimum.
+    Read as data, such cells would dominate the models.
+    """
+    finite = values[np.isfinite(values)]
+    if finite.size == 0:
+        return None
+    lo, hi = float(finite.min()), float(finite.max())
+    dt = np.dtype(dtype)
+    candidates = [-9999.0]
+    if np.issubdtype(dt, np.signedinteger):
+        candidates.append(float(np.iinfo(dt).min))
+    elif np.issubdtype(dt, np.unsignedinteger):
+        candidates.append(float(np.iinfo(dt).max))
+    else:
+        candidates.append(float(np.finfo(np.float32).min))
+    for c in candidates:
+        if (c == lo or c == hi) and lo != hi:
+            return c
+    if lo <= -1e38:  # float32 minimum written as a float64 or rounded
+        return lo
+    return None
 
 
 def read_layers(
@@ -205,7 +239,8 @@ def read_layers(
             src_ctx = rasterio.open(path)
         except Exception as exc:  # rasterio raises several types for unreadable files
             raise LayerError(
-                f"Layer file {path} cannot be read as a raster ({exc}); "
+                f"Layer file {path} cannot be read as a raster "
+                f"({str(exc).rstrip('.')}); "
                 "give a GeoTIFF or another single-band raster that GDAL opens."
             ) from None
         with src_ctx as src:
@@ -226,7 +261,8 @@ def read_layers(
                     raise LayerError(
                         f"Layer file {path} has {n_cells:,} cells, more than the cell "
                         f"budget of {cell_budget:,}; crop or coarsen the layers, or raise "
-                        "[compute] cell_budget."
+                        "[layers] cell_budget (each cell needs about 4 bytes per layer, "
+                        "several times over)."
                     )
             else:
                 crs, transform, width, height, res = ref_info
@@ -239,16 +275,30 @@ def read_layers(
                     diff = _RefInfo(crs, transform, width, height, res)
                     raise GridMismatchError(
                         f"Layers {ref_path} and {path} are not on the same grid: "
-                        f"{_describe_difference(diff, src)}. Resample one onto the "
+                        f"{_describe_difference(diff, src, ref_path.name, path.name)}."
+                        " Resample one onto the "
                         "other's grid first (e.g. rasterio.warp.reproject or gdalwarp)."
                     )
             raw = src.read(1, masked=True)
             dtype = src.dtypes[0]
+            tagged = src.nodata is not None
             unit = (src.units[0] if src.units else "") or ""
         values = np.ma.filled(raw.astype(np.float32), np.nan)
         if name in nodata_values:
             values[values == np.float32(nodata_values[name])] = np.nan
         values[~np.isfinite(values)] = np.nan
+        if not tagged and name not in nodata_values:
+            sentinel = _untagged_sentinel(values, dtype)
+            if sentinel is not None:
+                n_sent = int(np.count_nonzero(values == np.float32(sentinel)))
+                raise LayerError(
+                    f"Layer file {path} has no nodata value, but {n_sent:,} cells hold "
+                    f"{sentinel:.9g}, a common nodata marker, as its "
+                    f"{'minimum' if sentinel == np.nanmin(values) else 'maximum'}. "
+                    "Read as data they would distort every model. If they are nodata, "
+                    f"tag the file (e.g. gdal_edit -a_nodata {sentinel:.9g} {path.name}); "
+                    "if they are real values, rescale the layer."
+                )
         if np.isnan(values).all():
             raise LayerError(
                 f"Layer {name!r} ({path}) has no data at all (every cell is nodata); "

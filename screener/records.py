@@ -274,7 +274,10 @@ def parse_records_text(
         # decimal commas: semicolon or tab files whose coordinates look like "12,5"
         pat = re.compile(r"^\s*[-+]?\d+,\d+\s*$")
         n_comma = sum(bool(pat.match(v)) for v in a_vals + b_vals)
-        decimal_comma = delim != "," and n_comma > 0
+        # A quoted "84,5" in a comma file can only be a decimal comma for degrees;
+        # for x/y (metres) it could be a thousands separator, so only there the
+        # delimiter decides.
+        decimal_comma = n_comma > 0 and (delim != "," or coords == "lonlat")
     else:
         decimal_comma = decimal == ","
     extra = {
@@ -494,10 +497,22 @@ def validate_records(
     dropped.sort(key=lambda d: d.line)
     result = RecordSet(taxa_out, dropped, len(raw.lines), raw.path)
 
-    named = list(dict.fromkeys(raw.taxon))
-    named = [t for t in named if t and (wanted is None or t in wanted)]
-    if not named:
-        raise RecordsError(f"{raw.path} has no rows with a taxon name.")
+    in_file = [t for t in dict.fromkeys(raw.taxon) if t]
+    named = [t for t in in_file if wanted is None or t in wanted]
+    if not in_file:
+        raise RecordsError(
+            f"{raw.path} has no rows with a taxon name: fill in the taxon column."
+        )
+    if wanted is not None:
+        from screener.errors import suggest
+
+        absent = [t for t in (taxa or ()) if t not in in_file]
+        if absent:
+            raise RecordsError(
+                f"[project] taxa names {absent[0]!r}, which does not appear in "
+                f"{raw.path}." + suggest(absent[0], in_file)
+                + f" Taxa in the file: {', '.join(in_file)}."
+            )
     few = [(t, taxa_out[t].n if t in taxa_out else 0) for t in named]
     few = [(t, n) for t, n in few if n < min_records]
     if few:
@@ -505,18 +520,59 @@ def validate_records(
         reasons = _reason_digest(dropped, {t for t, _ in few})
         raise RecordsError(
             f"Too few usable records in {raw.path} ({detail}); at least {min_records} "
-            f"per taxon are needed.{reasons} Fix the rows above, lower [occurrences] "
-            "min_records, or leave the taxon out with [project] taxa.",
+            f"per taxon are needed.{reasons} Fix those rows (`screener check` lists "
+            "every dropped row), lower [occurrences] min_records, or leave the taxon "
+            "out with [project] taxa.",
             result,
         )
     return result
 
 
+#: (substring of a drop reason, short description of the kind, advice shown once)
+_DROP_KINDS = [
+    ("would fall on the grid", "outside the grid that would be on it with longitude "
+     "and latitude swapped", "check which column holds which coordinate"),
+    ("look swapped", "with longitude and latitude apparently swapped",
+     "check which column holds which coordinate"),
+    ("decimal comma", "written with a decimal comma", 'set decimal = "," under [occurrences]'),
+    ("outside the grid", "outside the grid",
+     "check the coordinates (longitude/latitude are WGS84 degrees, x/y are in the "
+     "layers' CRS) and the layers' extent"),
+    ("nodata cell", "on nodata cells of the layers", ""),
+    ("is empty", "with an empty coordinate", ""),
+    ("not a number", "with a coordinate that is not a number", ""),
+    ("beyond", "with latitude beyond +/-90 or longitude beyond +/-180", ""),
+    ("duplicate", "exact duplicates", ""),
+    ("same grid cell", "in a grid cell already taken (one record per cell is kept)", ""),
+    ("thinned", "thinned", "lower [occurrences] thin_km"),
+    ("not in [project] taxa", "of taxa not listed in [project] taxa", ""),
+]
+
+
+def _drop_kind(reason: str):
+    for needle, kind, advice in _DROP_KINDS:
+        if needle in reason:
+            return kind, advice
+    return reason, ""
+
+
 def _reason_digest(dropped, taxa) -> str:
-    rows = [d for d in dropped if d.taxon in taxa][:8]
+    """Short summary of why rows of ``taxa`` were dropped: counts by kind, lines, advice."""
+    rows = [d for d in dropped if d.taxon in taxa]
     if not rows:
         return ""
-    return " Dropped rows: " + "; ".join(f"line {d.line}: {d.reason}" for d in rows) + "."
+    groups: dict = {}
+    for d in rows:
+        kind, advice = _drop_kind(d.reason)
+        groups.setdefault((kind, advice), []).append(d)
+    parts = []
+    for (kind, advice), ds in sorted(groups.items(), key=lambda kv: -len(kv[1])):
+        lines = ", ".join(str(d.line) for d in ds[:5]) + (", ..." if len(ds) > 5 else "")
+        text = f"{len(ds)} {kind} (line{'s' if len(ds) > 1 else ''} {lines})"
+        if advice:
+            text += f": {advice}"
+        parts.append(text)
+    return f" Dropped rows of these taxa: {'; '.join(parts)}."
 
 
 def thin_by_distance(lon, lat, min_km: float, *, n_repeats: int = 20, random_state=0):

@@ -1,5 +1,7 @@
 """Layer intake: one grid, nodata union, reports, terrain with true metre spacing."""
 
+import re
+
 import numpy as np
 import pytest
 from affine import Affine
@@ -123,3 +125,28 @@ def test_slope_uses_true_metre_spacing_on_lat_lon_grid():
     slope2, aspect2 = slope_aspect(g, south_m)
     assert_allclose(slope2[1:-1], 45.0, atol=1e-6)
     assert_allclose(aspect2[1:-1], 0.0, atol=1e-6)
+
+
+@pytest.mark.parametrize(
+    "dtype, sentinel",
+    [("int16", -32768), ("uint8", 255), ("uint16", 65535), ("float32", -9999.0),
+     ("float32", float(np.finfo(np.float32).min))],
+)
+def test_untagged_sentinel_is_refused(small_layers, tif_writer, dtype, sentinel):
+    arr = (np.arange(1200).reshape(30, 40) % 97).astype(dtype)
+    arr[0, :5] = sentinel
+    p = tif_writer(small_layers[0].parent / "untagged.tif", arr, nodata=None, dtype=dtype)
+    expected = re.escape(f"no nodata value, but 5 cells hold {sentinel:.9g}")
+    with pytest.raises(LayerError, match=expected):
+        read_layers([small_layers[1], p])
+    # once tagged, the same cells are nodata
+    p = tif_writer(small_layers[0].parent / "tagged.tif", arr, nodata=sentinel, dtype=dtype)
+    stack = read_layers([small_layers[1], p])
+    assert not stack.grid.mask[0, :5].any() and stack.grid.mask[0, 5:].all()
+
+
+def test_untagged_layer_without_sentinel_is_read(small_layers, tif_writer):
+    arr = np.linspace(-500.0, 800.0, 1200, dtype=np.float32).reshape(30, 40)
+    p = tif_writer(small_layers[0].parent / "plain.tif", arr, nodata=None)
+    stack = read_layers([small_layers[1], p])
+    np.testing.assert_array_equal(stack.layer("plain"), arr)

@@ -1,0 +1,583 @@
+"""The catalogue of bad inputs (docs/errors.md), each run through the command line.
+
+Every case checks what a user sees: a short message that says what is wrong, where
+and what to do; exit code 2 for input the user can fix; no traceback unless
+``--debug``; and no output folder, partial or complete, left behind.  Inputs that
+are unusual but legal (degrees-minutes-seconds, decimal commas, NaN without a nodata
+tag, integer sentinels, categorical layers) must be read correctly instead.
+
+The scenario is the invented small demo (``screener.demo``), copied per test and then
+damaged in one way.
+"""
+
+from __future__ import annotations
+
+import csv
+import errno
+import io
+import json
+import re
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+import rasterio
+from affine import Affine
+from click.testing import CliRunner
+
+import screener.pipeline
+from screener.cli import main
+from screener.demo import write_demo_scenario
+
+# A quick project: few replicates and weight draws (the defaults are for real runs).
+FAST = """
+[overlap]
+n_replicates = 9
+
+[evaluation]
+n_null = 0
+
+[ranking]
+n_draws = 50
+"""
+
+
+@pytest.fixture(scope="module")
+def demo_base(tmp_path_factory) -> Path:
+    folder = tmp_path_factory.mktemp("demo") / "scen"
+    project = write_demo_scenario(folder, size="small")
+    project.write_text(project.read_text(encoding="utf-8") + FAST, encoding="utf-8")
+    return folder
+
+
+@pytest.fixture
+def scen(tmp_path, demo_base) -> Path:
+    """A fresh copy of the quick demo scenario (without any cache)."""
+    d = tmp_path / "scen"
+    shutil.copytree(demo_base, d, ignore=shutil.ignore_patterns(".screener-cache"))
+    return d
+
+
+def invoke(*args):
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+def leftovers(out: Path) -> list:
+    """Output folder and any staging folders beside it."""
+    parent = out.parent
+    if not parent.is_dir():
+        return []
+    return sorted(p.name for p in parent.iterdir()
+                  if p.name == out.name or p.name.startswith(f".{out.name}."))
+
+
+def assert_refused(result, out: Path, pattern: str, code: int = 2):
+    """Exit code, message, no traceback, nothing written."""
+    text = result.output
+    assert result.exit_code == code, text
+    assert re.search(pattern, text), text
+    assert "Traceback" not in text
+    assert "Error:" in text or "Interrupted" in text
+    assert leftovers(out) == []
+
+
+def read_rows(scen: Path) -> list:
+    return list(csv.reader(io.StringIO((scen / "occurrences.csv").read_text("utf-8"))))
+
+
+def write_rows(scen: Path, rows, **fmt) -> None:
+    buf = io.StringIO()
+    csv.writer(buf, lineterminator="\n", **fmt).writerows(rows)
+    (scen / "occurrences.csv").write_text(buf.getvalue(), encoding="utf-8")
+
+
+def rewrite_layer(path: Path, fn=None, **profile) -> None:
+    """Rewrite a GeoTIFF with its values passed through ``fn`` and profile changes."""
+    with rasterio.open(path) as src:
+        arr = src.read(1)
+        prof = src.profile.copy()
+    if fn is not None:
+        arr = fn(arr)
+    prof.update(profile)
+    if np.issubdtype(np.dtype(prof["dtype"]), np.integer):
+        prof["predictor"] = 1  # floating-point predictor is for float types only
+    path.unlink()
+    with rasterio.open(path, "w", **prof) as dst:
+        dst.write(arr.astype(prof["dtype"]), 1)
+    path.with_suffix(".tif.aux.xml").unlink(missing_ok=True)
+
+
+def add_settings(scen: Path, text: str) -> None:
+    p = scen / "project.toml"
+    p.write_text(p.read_text(encoding="utf-8") + "\n" + text + "\n", encoding="utf-8")
+
+
+def set_in_section(scen: Path, section: str, line: str) -> None:
+    """Add ``line`` directly under ``[section]`` of the project file."""
+    p = scen / "project.toml"
+    text = p.read_text(encoding="utf-8")
+    assert f"[{section}]\n" in text
+    p.write_text(text.replace(f"[{section}]\n", f"[{section}]\n{line}\n", 1), "utf-8")
+
+
+# ------------------------------------------------------------------ damaged inputs
+def _empty(s):
+    (s / "occurrences.csv").write_text("", encoding="utf-8")
+
+
+def _header_only(s):
+    (s / "occurrences.csv").write_text("taxon,longitude,latitude\n", encoding="utf-8")
+
+
+def _misspelt_latitude(s):
+    rows = read_rows(s)
+    rows[0][2] = "latitud"
+    write_rows(s, rows)
+
+
+def _misspelt_taxon(s):
+    rows = read_rows(s)
+    rows[0][0] = "Taxa"
+    write_rows(s, rows)
+
+
+def _no_coordinate_columns(s):
+    write_rows(s, [[r[0], r[3]] for r in read_rows(s)])
+
+
+def _latin1_bytes(s):
+    text = (s / "occurrences.csv").read_text("utf-8").replace("MVNC 8299", "Museo Ñ 8299")
+    (s / "occurrences.csv").write_bytes(text.encode("latin-1"))
+
+
+def _decimal_comma_xy_file(s):
+    # comma-separated x/y with quoted "84,8": could be a thousands separator in metres
+    rows = read_rows(s)
+    rows[0][1:3] = ["x", "y"]
+    write_rows(s, [rows[0]] + [[r[0], r[1].replace(".", ","), r[2].replace(".", ","), r[3]]
+                               for r in rows[1:]], quoting=csv.QUOTE_ALL)
+
+
+def _swapped(s):
+    # the header still says longitude, latitude, but the values are swapped
+    rows = read_rows(s)
+    write_rows(s, [rows[0]] + [[r[0], r[2], r[1], r[3]] for r in rows[1:]])
+
+
+def _taxon_all_dropped(s):
+    rows = read_rows(s)
+    write_rows(s, [rows[0]] + [[r[0], "120.0" if "quennomae" in r[0] else r[1], r[2], r[3]]
+                               for r in rows[1:]])
+
+
+def _single_record(s):
+    rows = read_rows(s)
+    seen = []
+    keep = [rows[0]]
+    for r in rows[1:]:
+        if "quennomae" in r[0]:
+            if seen:
+                continue
+            seen.append(r)
+        keep.append(r)
+    write_rows(s, keep)
+
+
+def _unknown_taxon_filter(s):
+    set_in_section(s, "project", 'taxa = ["Nebrivex tarvelli", "Nebrivex sorakensis"]')
+
+
+def _layer_crs(s):
+    rewrite_layer(s / "layers" / "moisture.tif", crs="EPSG:32745")
+
+
+def _layer_origin(s):
+    with rasterio.open(s / "layers" / "moisture.tif") as src:
+        t = src.transform
+    rewrite_layer(s / "layers" / "moisture.tif", transform=Affine(t.a, 0, t.c + 0.1, 0, t.e, t.f))
+
+
+def _layer_resolution(s):
+    with rasterio.open(s / "layers" / "moisture.tif") as src:
+        t = src.transform
+    rewrite_layer(s / "layers" / "moisture.tif",
+                  transform=Affine(2 * t.a, 0, t.c, 0, 2 * t.e, t.f))
+
+
+def _layer_shape(s):
+    rewrite_layer(s / "layers" / "moisture.tif", fn=lambda a: a[:-1], height=99)
+
+
+def _layer_all_nodata(s):
+    rewrite_layer(s / "layers" / "moisture.tif", fn=lambda a: np.full_like(a, -9999.0))
+
+
+def _layer_not_a_raster(s):
+    (s / "layers" / "moisture.tif").write_text("not a raster", encoding="utf-8")
+
+
+def _layer_untagged_sentinel(s):
+    rewrite_layer(
+        s / "layers" / "moisture.tif",
+        fn=lambda a: np.where(a == -9999, -32768, np.round(a * 10)),
+        dtype="int16", nodata=None,
+    )
+
+
+def _cell_budget(s):
+    set_in_section(s, "layers", "cell_budget = 1000")
+
+
+def _unknown_key(s):
+    add_settings(s, "[isolation]\nmin_gap = 3")
+
+
+def _unknown_section(s):
+    add_settings(s, "[isolaton]\nmin_gap_km = 3")
+
+
+def _wrong_type(s):
+    add_settings(s, '[isolation]\nmin_gap_km = "far"')
+
+
+def _toml_syntax(s):
+    add_settings(s, "[isolation\nmin_gap_km = 3")
+
+
+def _missing_records_file(s):
+    (s / "occurrences.csv").unlink()
+
+
+def _layer_glob_matches_nothing(s):
+    p = s / "project.toml"
+    p.write_text(p.read_text("utf-8").replace("layers/*.tif", "layer/*.tif"), "utf-8")
+
+
+def _missing_start_points(s):
+    (s / "start_points.csv").unlink()
+
+
+def _unknown_elevation_layer(s):
+    p = s / "project.toml"
+    p.write_text(p.read_text("utf-8").replace('elevation = "elevation"',
+                                              'elevation = "elevaton"'), "utf-8")
+
+
+CASES = [
+    (_empty, r"occurrences\.csv is empty: it needs a header row"),
+    (_header_only, r"has a header \(line 1\) but no records below it"),
+    (_misspelt_latitude, r"Column 'latitud' looks misspelt: did you mean 'latitude'\?"),
+    (_misspelt_taxon, r"no 'taxon' column .*Column 'Taxa' looks misspelt: did you mean 'taxon'"),
+    (_no_coordinate_columns, r"needs columns longitude and latitude .* or x and y"),
+    (_latin1_bytes, r"not valid UTF-8 \(byte 0xd1 on line 3\).*encoding = \"latin-1\""),
+    (_decimal_comma_xy_file, r"written with a decimal comma .*set decimal = \",\""),
+    (_swapped, r"with longitude and latitude swapped.*check which column holds"),
+    (_taxon_all_dropped, r"Nebrivex quennomae: 0 kept\).*9 outside the grid \(lines 4, 17,"),
+    (_single_record, r"Nebrivex quennomae: 1 kept\); at least 3 per taxon.*min_records"),
+    (_unknown_taxon_filter, r"names 'Nebrivex sorakensis'.*Did you mean 'Nebrivex sorrakensis'"),
+    (_layer_crs, r"not on the same grid: CRS EPSG:32745 in moisture\.tif but EPSG:4326 in "),
+    (_layer_origin, r"not on the same grid: origin \(84\.775, -14\.5\) in moisture\.tif but "
+                    r"\(84\.675, -14\.5\) in"),
+    (_layer_resolution, r"resolution \(0\.01, 0\.01\) in moisture\.tif but \(0\.005, 0\.005\)"),
+    (_layer_shape, r"shape 99 rows x 130 cols in moisture\.tif but 100 rows x 130 cols"),
+    (_layer_all_nodata, r"Layer 'moisture' .* has no data at all"),
+    (_layer_not_a_raster, r"moisture\.tif cannot be read as a raster"),
+    (_layer_untagged_sentinel, r"moisture\.tif has no nodata value, but .* hold -32768.*"
+                               r"gdal_edit -a_nodata -32768"),
+    (_cell_budget, r"13,000 cells, more than the cell budget of 1,000.*\[layers\] cell_budget"),
+    (_unknown_key, r"unknown key 'min_gap' in \[isolation\]\. Did you mean 'min_gap_km'\?"),
+    (_unknown_section, r"unknown section \[isolaton\]\. Did you mean 'isolation'\?"),
+    (_wrong_type, r"\[isolation\] min_gap_km must be a number, got 'far'"),
+    (_toml_syntax, r"project\.toml is not valid TOML"),
+    (_missing_records_file, r"\[occurrences\] path = 'occurrences\.csv': .* does not exist"),
+    (_layer_glob_matches_nothing, r"'layer/\*\.tif' matches no file"),
+    (_missing_start_points, r"\[access\] start_points .* does not exist"),
+    (_unknown_elevation_layer, r"elevation = 'elevaton' names no layer.*Did you mean 'elevation'"),
+]
+
+
+@pytest.mark.parametrize("damage, pattern", CASES, ids=[c[0].__name__[1:] for c in CASES])
+def test_bad_input_is_refused_with_a_message_and_no_output(scen, damage, pattern):
+    damage(scen)
+    out = scen.parent / "out"
+    result = invoke("run", scen / "project.toml", "--out", out)
+    assert_refused(result, out, pattern)
+    assert not (scen / ".screener-cache").exists()  # refused before any stage ran
+
+
+def test_debug_shows_the_exception(scen):
+    from screener.errors import RecordsError
+
+    _empty(scen)
+    result = invoke("run", scen / "project.toml", "--out", scen.parent / "out", "--debug")
+    assert isinstance(result.exception, RecordsError)
+
+
+def test_missing_project_file(tmp_path):
+    result = invoke("check", tmp_path / "nope.toml")
+    assert result.exit_code == 2 and "Project file" in result.output
+    assert "does not exist" in result.output and "Traceback" not in result.output
+
+
+def test_check_lists_every_dropped_row_before_refusing(scen):
+    _taxon_all_dropped(scen)
+    result = invoke("check", scen / "project.toml")
+    assert result.exit_code == 2
+    listed = re.findall(r"line (\d+) \(Nebrivex quennomae\): \(120\.00000", result.output)
+    assert len(listed) == 9  # every row of the taxon, not only the first five
+
+
+# ------------------------------------------------------------------ legal oddities
+def _check_lines(scen) -> str:
+    result = invoke("check", scen / "project.toml")
+    assert result.exit_code == 0, result.output
+    return result.output
+
+
+@pytest.fixture(scope="module")
+def baseline(demo_base, tmp_path_factory) -> str:
+    d = tmp_path_factory.mktemp("baseline") / "scen"
+    shutil.copytree(demo_base, d)
+    return _check_lines(d)
+
+
+def _kept(text: str) -> dict:
+    return {m[0]: int(m[1]) for m in re.findall(r"^(Nebrivex \w+): (\d+) kept", text, re.M)}
+
+
+def _valid_cells(text: str) -> str:
+    return re.search(r"([\d,]+) valid cells", text).group(1)
+
+
+def _to_dms(v: float, pos: str, neg: str) -> str:
+    # degrees + minutes/60 + seconds/3600, hemisphere letter for the sign
+    h = pos if v >= 0 else neg
+    v = abs(v)
+    deg = int(v)
+    mins = int((v - deg) * 60)
+    sec = (v - deg - mins / 60) * 3600
+    return f"{deg}°{mins:02d}'{sec:06.3f}\"{h}"
+
+
+def test_degrees_minutes_seconds_are_parsed(scen, baseline):
+    rows = read_rows(scen)
+    write_rows(scen, [rows[0]] + [[r[0], _to_dms(float(r[1]), "E", "W"),
+                                   _to_dms(float(r[2]), "N", "S"), r[3]] for r in rows[1:]])
+    text = _check_lines(scen)
+    assert _kept(text) == _kept(baseline)
+    assert "dropped" in text and _kept(text)
+
+
+def test_decimal_commas_in_a_semicolon_file(scen, baseline):
+    rows = read_rows(scen)
+    write_rows(scen, [rows[0]] + [[r[0], r[1].replace(".", ","), r[2].replace(".", ","), r[3]]
+                                  for r in rows[1:]], delimiter=";")
+    assert _kept(_check_lines(scen)) == _kept(baseline)
+
+
+def test_quoted_decimal_commas_in_a_comma_file(scen, baseline):
+    # "84,8" in degrees cannot be a thousands separator, so it reads as 84.8
+    rows = read_rows(scen)
+    write_rows(scen, [rows[0]] + [[r[0], r[1].replace(".", ","), r[2].replace(".", ","), r[3]]
+                                  for r in rows[1:]], quoting=csv.QUOTE_ALL)
+    assert _kept(_check_lines(scen)) == _kept(baseline)
+
+
+def test_latin1_file_with_its_encoding_named(scen, baseline):
+    _latin1_bytes(scen)
+    set_in_section(scen, "occurrences", 'encoding = "latin-1"')
+    assert _kept(_check_lines(scen)) == _kept(baseline)
+
+
+def test_nan_without_nodata_tag_is_nodata(scen, baseline):
+    rewrite_layer(scen / "layers" / "moisture.tif",
+                  fn=lambda a: np.where(a == -9999, np.nan, a), nodata=None)
+    text = _check_lines(scen)
+    assert _valid_cells(text) == _valid_cells(baseline)
+
+
+def test_integer_layer_with_tagged_sentinel(scen, baseline):
+    rewrite_layer(scen / "layers" / "moisture.tif",
+                  fn=lambda a: np.where(a == -9999, -32768, np.round(a * 10)),
+                  dtype="int16", nodata=-32768)
+    text = _check_lines(scen)
+    assert _valid_cells(text) == _valid_cells(baseline)
+    assert "Predictors (4)" in text
+
+
+def test_constant_layer_is_left_out_with_a_warning(scen):
+    rewrite_layer(scen / "layers" / "cloud.tif", fn=lambda a: np.where(a == -9999, a, 5.0))
+    text = _check_lines(scen)
+    assert "Constant layers (left out): cloud" in text
+    assert "Predictors (3): elevation, moisture, temperature" in text
+    assert "Warning: Layer 'cloud' is constant" in text
+
+
+def _three_classes(a):
+    v = a[a != -9999]
+    cls = 1 + (a > np.median(v)) + (a > np.percentile(v, 80))
+    return np.where(a == -9999, 0, cls)
+
+
+def test_categorical_layer_warns_until_declared(scen):
+    rewrite_layer(scen / "layers" / "cloud.tif", fn=_three_classes, dtype="uint8", nodata=0)
+    text = _check_lines(scen)
+    assert "only 3 distinct values" in text and "[layers] categorical" in text
+    set_in_section(scen, "layers", 'categorical = ["cloud"]')
+    text = _check_lines(scen)
+    assert "cloud=1, cloud=2, cloud=3" in text
+    assert "distinct values" not in text
+
+
+# ------------------------------------------------------------------ output folder
+@pytest.fixture(scope="module")
+def warm(demo_base, tmp_path_factory):
+    """A scenario run once, so its cache makes later runs fast."""
+    d = tmp_path_factory.mktemp("warm") / "scen"
+    shutil.copytree(demo_base, d)
+    first = d.parent / "first"
+    result = invoke("run", d / "project.toml", "--out", first)
+    assert result.exit_code == 0, result.output
+    return d
+
+
+def test_existing_output_folder_is_kept_without_overwrite(warm, tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "notes.txt").write_text("field notes", encoding="utf-8")
+    result = invoke("run", warm / "project.toml", "--out", out)
+    assert result.exit_code == 2
+    assert "already exists and won't be replaced without --overwrite" in result.output
+    assert (out / "notes.txt").read_text(encoding="utf-8") == "field notes"
+
+
+def test_overwrite_interrupted_while_writing_keeps_the_old_folder(warm, tmp_path, monkeypatch):
+    from screener.outputs import gpx
+
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "notes.txt").write_text("previous run", encoding="utf-8")
+
+    def interrupted(*a, **k):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(gpx, "write_gpx", interrupted)
+    result = invoke("run", warm / "project.toml", "--out", out, "--overwrite")
+    assert result.exit_code == 130 and "Interrupted" in result.output
+    assert sorted(p.name for p in out.iterdir()) == ["notes.txt"]
+    assert leftovers(out) == ["out"]  # no staging folder left beside it
+    monkeypatch.undo()
+    result = invoke("run", warm / "project.toml", "--out", out, "--overwrite")
+    assert result.exit_code == 0, result.output
+    assert not (out / "notes.txt").exists() and (out / "run.json").exists()
+
+
+def test_output_parent_is_a_file(warm, tmp_path):
+    # simulates an unwritable location without relying on permissions (tests run as root)
+    blocker = tmp_path / "blocker"
+    blocker.write_text("", encoding="utf-8")
+    out = blocker / "out"
+    result = invoke("run", warm / "project.toml", "--out", out)
+    assert result.exit_code == 2 and "is a file, not a folder" in result.output
+    assert "Traceback" not in result.output
+
+
+def test_output_parent_not_writable(warm, tmp_path, monkeypatch):
+    # root ignores chmod, so the permission check itself is simulated with os.access
+    import screener.outputs.staging as staging
+
+    real_access = staging.os.access
+    out = tmp_path / "out"
+    monkeypatch.setattr(staging.os, "access", lambda path, mode, **k: (
+        False if Path(path) == out.parent else real_access(path, mode, **k)))
+    result = invoke("run", warm / "project.toml", "--out", out)
+    assert_refused(result, out, r"Cannot write in .* \(permission denied\); choose another --out")
+
+
+def test_full_disk_while_writing(warm, tmp_path, monkeypatch):
+    from screener.outputs import gpx
+
+    def full(path, *a, **k):
+        raise OSError(errno.ENOSPC, "No space left on device", str(path))
+
+    monkeypatch.setattr(gpx, "write_gpx", full)
+    out = tmp_path / "out"
+    result = invoke("run", warm / "project.toml", "--out", out)
+    assert_refused(result, out, r"The disk is full while writing .*sites\.gpx; free some space")
+
+
+def test_read_only_file_system_while_writing(warm, tmp_path, monkeypatch):
+    from screener.outputs import tables
+
+    def refused(path, *a, **k):
+        raise OSError(errno.EROFS, "Read-only file system", str(path))
+
+    monkeypatch.setattr(tables, "write_csv", refused)
+    out = tmp_path / "out"
+    result = invoke("run", warm / "project.toml", "--out", out)
+    assert_refused(result, out, r"Cannot write .*: Read-only file system; choose another --out")
+
+
+def test_a_bug_is_reported_as_one_and_leaves_nothing(warm, tmp_path, monkeypatch):
+    def broken(*a, **k):
+        raise ZeroDivisionError("division by zero")
+
+    monkeypatch.setattr(screener.pipeline, "plan_sites", broken)
+    out = tmp_path / "out"
+    result = invoke("run", warm / "project.toml", "--out", out)
+    assert_refused(result, out, r"Internal error \(ZeroDivisionError.*rerun with --debug",
+                   code=1)
+
+
+# ------------------------------------------------------------------ Ctrl-C and resume
+def test_interrupt_then_resume_from_the_cache(scen, monkeypatch):
+    calls = []
+    real_model, real_compare = screener.pipeline.model_taxon, screener.pipeline.compare_taxa
+
+    def model_interrupted_at_second(intake, taxon, **kw):
+        calls.append(taxon)
+        if len(calls) == 2:
+            raise KeyboardInterrupt
+        return real_model(intake, taxon, **kw)
+
+    def compare_interrupted(*a, **k):
+        raise KeyboardInterrupt
+
+    out = scen.parent / "out"
+    project = scen / "project.toml"
+    # 1. Ctrl-C while fitting the second taxon
+    monkeypatch.setattr(screener.pipeline, "model_taxon", model_interrupted_at_second)
+    result = invoke("run", project, "--out", out)
+    assert_refused(result, out, r"Interrupted\. Nothing was written .* resumes", code=130)
+    assert len(calls) == 2
+    # 2. Ctrl-C during the overlap tests: the first taxon comes from the cache
+    calls.clear()
+    monkeypatch.setattr(screener.pipeline, "model_taxon",
+                        lambda intake, taxon, **kw: calls.append(taxon) or real_model(
+                            intake, taxon, **kw))
+    monkeypatch.setattr(screener.pipeline, "compare_taxa", compare_interrupted)
+    result = invoke("run", project, "--out", out)
+    assert_refused(result, out, r"Interrupted", code=130)
+    assert calls == ["Nebrivex sorrakensis", "Nebrivex quennomae"]
+    # 3. rerun: no model is refitted; overlap computed once
+    calls.clear()
+    monkeypatch.setattr(screener.pipeline, "compare_taxa", real_compare)
+    result = invoke("run", project, "--out", out)
+    assert result.exit_code == 0, result.output
+    assert calls == []
+    prov = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    assert prov["cache"]["hits"] == ["taxon"] * 3
+    assert prov["cache"]["misses"] == ["overlap"]
+    assert leftovers(out) == ["out"]
+
+
+def test_interrupt_without_cache_says_a_rerun_starts_over(scen, monkeypatch):
+    def interrupted(*a, **k):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(screener.pipeline, "model_taxon", interrupted)
+    out = scen.parent / "out"
+    result = invoke("run", scen / "project.toml", "--out", out, "--no-cache")
+    assert_refused(result, out, r"--no-cache: a rerun starts from the beginning", code=130)
+    assert not (scen / ".screener-cache").exists()
