@@ -215,6 +215,7 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Inta
             s.layers.paths,
             categorical=s.layers.categorical,
             cell_budget=s.layers.cell_budget,
+            nodata_values=s.layers.nodata,
         )
         elevation = None
         if s.layers.elevation:
@@ -368,8 +369,10 @@ def model_taxon(
     rec_xy = np.column_stack([rec.lon, rec.lat])
     areas = np.asarray(grid.cell_area_km2, float)
 
+    from screener.models.inspect import permutation_importance, response_curves
+
     family_maps, evaluations, thresholds_by_family, rec_scores = {}, {}, {}, {}
-    bg_scores = {}
+    bg_scores, curves, importance = {}, {}, {}
     for family in s.models.families:
         params = _family_params(s, family)
         progress.step(f"{taxon}: {family} model ({rec.n} records, {bg.n} background)")
@@ -398,6 +401,10 @@ def model_taxon(
         )
         family_maps[family] = m
         evaluations[family] = ev
+        curves[family] = response_curves(model, B, names=stack.names)
+        importance[family] = permutation_importance(
+            model, P, B, random_state=seed, names=stack.names
+        )
         thresholds_by_family[family] = th
         rec_scores[family] = scores
         bg_scores[family] = b_scores
@@ -446,6 +453,7 @@ def model_taxon(
         thresholds=c_th,
         accessible=acc,
         evaluation=rows,
+        figures={"response_curves": curves, "importance": importance},
         presence_env=P,
         background_env=B,
         background_cells=(bg.rows, bg.cols),
@@ -775,11 +783,12 @@ def _taxon_key(intake: Intake, taxon: str) -> str:
     s = intake.settings
     rec = intake.records.taxa[taxon]
     layer_hashes = [intake.input_hashes.get(str(p)) for p in s.layers.paths]
+    layer_settings = {k: v for k, v in s.layers.items() if k != "paths"}
     return digest(
         "taxon-model",
         taxon,
         layer_hashes,
-        dict(s.layers),
+        layer_settings,
         intake.predictors,
         rec.rows,
         rec.cols,
@@ -1103,6 +1112,8 @@ def run_project(
     out = check_output_folder(out_dir, overwrite=overwrite)
     if cache_dir == "auto":
         cache_dir = (settings.base_dir / ".screener-cache") if settings.path else None
+    if cache_dir is not None:
+        log.info("stage cache: %s (safe to delete)", cache_dir)
     result = run_analysis(settings, echo=echo, scheduler=scheduler, cache_dir=cache_dir)
     _add_sampling_points(result)
     progress = Progress(echo, n_stages=5)

@@ -48,6 +48,7 @@ SCHEMA: dict = {
         "derive": (list, [], 'Terrain layers derived from elevation: "slope", "aspect".'),
         "exclude": (list, [], "Layer names read but not used as predictors."),
         "categorical": (list, [], "Categorical layers, expanded to 0/1 indicator layers."),
+        "nodata": (dict, {}, "Nodata value per layer name, for files that lack a nodata tag."),
         "cell_budget": (int, 50_000_000, "Refuse grids with more cells than this."),
     },
     "background": {
@@ -55,7 +56,7 @@ SCHEMA: dict = {
         "max_points": (int, 10_000, "Background cells drawn from the accessible area."),
     },
     "models": {
-        "families": (list, ["ellipsoid"], "Model families to fit and combine."),
+        "families": (list, ["ellipsoid", "envelope"], "Model families to fit and combine."),
         "ellipsoid": (dict, {}, "Parameters of the ellipsoid (Mahalanobis) family."),
         "ppm": (dict, {}, "Parameters of the point-process (maximum-entropy) family."),
         "envelope": (dict, {}, "Parameters of the environmental-envelope family."),

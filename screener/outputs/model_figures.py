@@ -12,14 +12,26 @@ from screener.models.inspect import Importance, ResponseCurves
 __all__ = ["plot_response_curves", "plot_importance"]
 
 
+class _NoPyplot:
+    """The two pyplot calls used here, built on Figure so no global state is kept."""
+
+    @staticmethod
+    def subplots(*args, **kwargs):
+        from matplotlib.figure import Figure
+
+        fig_kw = {k: kwargs.pop(k) for k in ("figsize", "dpi", "layout", "constrained_layout") if k in kwargs}
+        fig = Figure(**fig_kw)
+        return fig, fig.subplots(*args, **kwargs)
+
+    @staticmethod
+    def get_cmap(name):
+        import matplotlib
+
+        return matplotlib.colormaps[name]
+
+
 def _pyplot():
-    try:
-        import matplotlib.pyplot as plt
-    except ImportError as exc:  # pragma: no cover - matplotlib is a dependency
-        raise ImportError(
-            "Model figures require matplotlib; install it with `pip install matplotlib`."
-        ) from exc
-    return plt
+    return _NoPyplot
 
 
 def plot_response_curves(curves: ResponseCurves, *, axes=None, ncols: int = 3):

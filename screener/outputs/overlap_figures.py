@@ -11,14 +11,26 @@ import numpy as np
 __all__ = ["plot_null_distribution", "plot_occupancy"]
 
 
+class _NoPyplot:
+    """The two pyplot calls used here, built on Figure so no global state is kept."""
+
+    @staticmethod
+    def subplots(*args, **kwargs):
+        from matplotlib.figure import Figure
+
+        fig_kw = {k: kwargs.pop(k) for k in ("figsize", "dpi", "layout", "constrained_layout") if k in kwargs}
+        fig = Figure(**fig_kw)
+        return fig, fig.subplots(*args, **kwargs)
+
+    @staticmethod
+    def get_cmap(name):
+        import matplotlib
+
+        return matplotlib.colormaps[name]
+
+
 def _pyplot():
-    try:
-        import matplotlib.pyplot as plt
-    except ImportError as err:  # pragma: no cover - matplotlib is a dependency
-        raise ImportError(
-            "overlap figures need matplotlib; install it with pip install matplotlib"
-        ) from err
-    return plt
+    return _NoPyplot
 
 
 def plot_null_distribution(test, *, ax=None, bins: int = 30):

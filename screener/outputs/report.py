@@ -168,6 +168,23 @@ def _taxon_section(result, name, tr) -> str:
         )
     if tr.evaluation:
         out.append(html_table(tr.evaluation, caption="Evaluation"))
+    figs = getattr(tr, "figures", None) or {}
+    from screener.outputs import model_figures
+
+    for family, curves in (figs.get("response_curves") or {}).items():
+        out.append(_safe_figure(
+            lambda c=curves: model_figures.plot_response_curves(c),
+            f"Response curves of the {family} model for {name}: suitability along each "
+            "layer with the others held at their background median.",
+            f"response curves {family} {name}",
+        ))
+    for family, imp in (figs.get("importance") or {}).items():
+        out.append(_safe_figure(
+            lambda i=imp: model_figures.plot_importance(i),
+            f"Permutation importance of each layer in the {family} model for {name}: the "
+            "drop in training AUC when that layer's values are shuffled.",
+            f"permutation importance {family} {name}",
+        ))
     th = [
         {
             "threshold": t.name,
