@@ -33,9 +33,45 @@ log = logging.getLogger(__name__)
 COLLINEARITY_R = 0.7
 
 
+@dataclass(frozen=True)
+class LayerSource:
+    """Where one layer's values come from on disk, and how to read them.
+
+    Attributes
+    ----------
+    path : Path
+    nodata_extra : float or None
+        A further nodata sentinel (for files without a nodata tag).
+    category : float or None
+        For an indicator layer of a categorical raster: the class value.
+    """
+
+    path: Path
+    nodata_extra: float | None = None
+    category: float | None = None
+
+    def read(self, src, window=None) -> np.ndarray:
+        """Read from an open dataset as float32, NaN for nodata."""
+        raw = src.read(1, window=window, masked=True)
+        values = np.ma.filled(raw.astype(np.float32), np.nan)
+        if self.nodata_extra is not None:
+            values[values == np.float32(self.nodata_extra)] = np.nan
+        values[~np.isfinite(values)] = np.nan
+        if self.category is not None:
+            values = np.where(
+                np.isnan(values), np.nan, (values == np.float32(self.category))
+            ).astype(np.float32)
+        return values
+
+
 @dataclass(eq=False)
 class LayerStack:
-    """Predictor layers on one grid.
+    """Predictor layers on one grid, in memory or streamed from disk.
+
+    A stack either holds every layer in ``data`` or, for grids larger than the
+    memory budget, reads them window by window from ``sources`` (``data`` is None).
+    Both kinds offer the same methods; per-cell stages use :meth:`iter_blocks`,
+    whose memory is bounded by its ``max_cells``, not by the grid.
 
     Attributes
     ----------
@@ -43,28 +79,41 @@ class LayerStack:
         Shared grid; ``grid.mask`` is True where every layer has data.
     names : list of str
         One name per layer (the file stem unless given).
-    data : ndarray of float32, shape (n_layers, n_rows, n_cols)
-        Values, NaN outside ``grid.mask``.
+    data : ndarray of float32, shape (n_layers, n_rows, n_cols), or None
+        Values, NaN outside ``grid.mask``; None for a streamed stack.
     paths : list of Path
         Source file of each layer (None for derived layers).
     units : list of str
         Unit text per layer where known ("" otherwise).
+    sources : list of LayerSource or None
+        Streamed stacks: how to read each layer (None for in-memory layers).
+    in_memory : dict of str to ndarray
+        Streamed stacks: layers held in memory (derived terrain layers).
+    nodata_share : dict of str to float
+        Share of the grid each source layer leaves without data.
     """
 
     grid: Grid
     names: list
-    data: np.ndarray
+    data: np.ndarray | None
     paths: list = field(default_factory=list)
     units: list = field(default_factory=list)
+    sources: list | None = None
+    in_memory: dict = field(default_factory=dict)
+    nodata_share: dict = field(default_factory=dict)
 
     @property
     def n_layers(self) -> int:
         return len(self.names)
 
-    def layer(self, name: str) -> np.ndarray:
-        """One layer by name, shape (n_rows, n_cols)."""
+    @property
+    def streamed(self) -> bool:
+        """True when the values are read from disk window by window."""
+        return self.data is None
+
+    def _index(self, name: str) -> int:
         try:
-            return self.data[self.names.index(name)]
+            return self.names.index(name)
         except ValueError:
             from screener.errors import suggest
 
@@ -73,22 +122,105 @@ class LayerStack:
                 + suggest(name, self.names)
             ) from None
 
-    def values_at(self, rows, cols) -> np.ndarray:
+    def read_rows(self, rows: slice) -> np.ndarray:
+        """Values of every layer in a band of rows, shape (n_layers, n, n_cols)."""
+        if self.data is not None:
+            return self.data[:, rows]
+        import rasterio
+        from rasterio.windows import Window
+
+        r0, r1 = rows.start or 0, min(rows.stop, self.grid.n_rows)
+        win = Window(0, r0, self.grid.n_cols, r1 - r0)
+        out = np.empty((self.n_layers, r1 - r0, self.grid.n_cols), dtype=np.float32)
+        opened: dict = {}
+        try:
+            for i, name in enumerate(self.names):
+                if name in self.in_memory:
+                    out[i] = self.in_memory[name][r0:r1]
+                    continue
+                src_info = self.sources[i]
+                if src_info.path not in opened:
+                    opened[src_info.path] = rasterio.open(src_info.path)
+                out[i] = src_info.read(opened[src_info.path], window=win)
+        finally:
+            for ds in opened.values():
+                ds.close()
+        out[:, ~self.grid.mask[r0:r1]] = np.nan
+        return out
+
+    def _rows_per_block(self, max_cells: int) -> int:
+        return max(1, int(max_cells) // max(self.grid.n_cols, 1))
+
+    def layer(self, name: str) -> np.ndarray:
+        """One layer by name, shape (n_rows, n_cols), float32."""
+        i = self._index(name)
+        if self.data is not None:
+            return self.data[i]
+        if name in self.in_memory:
+            return self.in_memory[name]
+        import rasterio
+
+        with rasterio.open(self.sources[i].path) as src:
+            values = self.sources[i].read(src)
+        values[~self.grid.mask] = np.nan
+        return values
+
+    def values_at(self, rows, cols, *, max_cells: int = 1 << 22) -> np.ndarray:
         """Predictor values at cells, shape (n, n_layers), float64."""
         rows = np.asarray(rows, dtype=np.int64)
         cols = np.asarray(cols, dtype=np.int64)
-        return self.data[:, rows, cols].T.astype(np.float64)
+        if self.data is not None:
+            return self.data[:, rows, cols].T.astype(np.float64)
+        out = np.empty((rows.size, self.n_layers), dtype=np.float64)
+        step = self._rows_per_block(max_cells // max(self.n_layers, 1))
+        block_of = rows // step
+        for b in np.unique(block_of):
+            pick = np.flatnonzero(block_of == b)
+            lo, hi = int(rows[pick].min()), int(rows[pick].max()) + 1
+            band = self.read_rows(slice(lo, hi))
+            out[pick] = band[:, rows[pick] - lo, cols[pick]].T
+        return out
 
     def select(self, names) -> LayerStack:
         """A stack holding only ``names``, in that order (the data are not copied)."""
-        idx = [self.names.index(n) for n in names]
+        idx = [self._index(n) for n in names]
         return LayerStack(
             self.grid,
             [self.names[i] for i in idx],
-            self.data[idx],
+            self.data[idx] if self.data is not None else None,
             [self.paths[i] if self.paths else None for i in idx],
             [self.units[i] if self.units else "" for i in idx],
+            [self.sources[i] for i in idx] if self.sources is not None else None,
+            {n: self.in_memory[n] for n in names if n in self.in_memory},
+            {n: v for n, v in self.nodata_share.items() if n in names},
         )
+
+    def with_layers(self, arrays: dict, units=None) -> LayerStack:
+        """A stack with further in-memory layers (e.g. slope) appended.
+
+        Cells where a new layer has no value leave the valid mask, so every valid cell
+        still has a value in every layer.
+        """
+        units = list(units) if units is not None else [""] * len(arrays)
+        new_mask = self.grid.mask.copy()
+        for arr in arrays.values():
+            new_mask &= np.isfinite(arr)
+        grid = self.grid.with_mask(new_mask)
+        names = self.names + list(arrays)
+        paths = self.paths + [None] * len(arrays)
+        units_all = self.units + units
+        if self.data is not None:
+            data = np.concatenate(
+                [self.data] + [np.asarray(a, np.float32)[None] for a in arrays.values()]
+            )
+            data[:, ~new_mask] = np.nan
+            return LayerStack(grid, names, data, paths, units_all,
+                              nodata_share=dict(self.nodata_share))
+        mem = dict(self.in_memory)
+        mem.update({k: np.asarray(v, np.float32) for k, v in arrays.items()})
+        sources = list(self.sources) + [None] * len(arrays)
+        return LayerStack(grid, names, None, paths, units_all, sources, mem,
+                          dict(self.nodata_share))
 
     def iter_blocks(self, max_cells: int = 1 << 20):
         """Yield ``(row_slice, X, valid)`` blocks of whole rows for prediction.
@@ -97,13 +229,17 @@ class LayerStack:
         block's (rows, n_cols) mask, so ``out[row_slice][valid] = predict(X)``.
         Memory per block is bounded by ``max_cells * n_layers`` values.
         """
-        n_rows, n_cols = self.grid.shape
-        step = max(1, int(max_cells) // max(n_cols, 1))
+        n_rows = self.grid.n_rows
+        step = self._rows_per_block(max_cells)
         for r0 in range(0, n_rows, step):
             sl = slice(r0, min(n_rows, r0 + step))
             valid = self.grid.mask[sl]
-            X = self.data[:, sl][:, valid].T
+            X = self.read_rows(sl)[:, valid].T
             yield sl, np.ascontiguousarray(X, dtype=np.float32), valid
+
+    def valid_matrix(self) -> np.ndarray:
+        """Values at every valid cell, shape (n_valid, n_layers), float32, row-major."""
+        return np.concatenate([X for _, X, _ in self.iter_blocks()], axis=0)
 
 
 @dataclass
@@ -152,31 +288,58 @@ def _describe_difference(ref, other, ref_name: str, other_name: str) -> str:
     return "; ".join(diffs)
 
 
-def _untagged_sentinel(values: np.ndarray, dtype) -> float | None:
-    """A common nodata sentinel that is the extreme of an untagged layer, or None.
+class _LayerStats:
+    """Per-layer statistics gathered block by block while reading."""
 
-    Files without a nodata tag sometimes still mark missing cells with the integer
-    type's minimum (or maximum, for unsigned types), -9999, or the float32 minimum.
-    Read as data, such cells would dominate the models.
-    """
-    finite = values[np.isfinite(values)]
-    if finite.size == 0:
-        return None
-    lo, hi = float(finite.min()), float(finite.max())
-    dt = np.dtype(dtype)
-    candidates = [-9999.0]
-    if np.issubdtype(dt, np.signedinteger):
-        candidates.append(float(np.iinfo(dt).min))
-    elif np.issubdtype(dt, np.unsignedinteger):
-        candidates.append(float(np.iinfo(dt).max))
-    else:
-        candidates.append(float(np.finfo(np.float32).min))
-    for c in candidates:
-        if (c == lo or c == hi) and lo != hi:
-            return c
-    if lo <= -1e38:  # float32 minimum written as a float64 or rounded
-        return lo
-    return None
+    def __init__(self, dtype):
+        self.dtype = np.dtype(dtype)
+        self.n_finite = 0
+        self.lo = np.inf
+        self.hi = -np.inf
+        self.n_lo = 0
+        self.n_hi = 0
+        self.classes: set | None = set()
+
+    def add(self, values: np.ndarray):
+        finite = values[np.isfinite(values)]
+        if not finite.size:
+            return
+        self.n_finite += finite.size
+        lo, hi = float(finite.min()), float(finite.max())
+        n_lo, n_hi = int(np.count_nonzero(finite == lo)), int(np.count_nonzero(finite == hi))
+        if lo < self.lo:
+            self.lo, self.n_lo = lo, n_lo
+        elif lo == self.lo:
+            self.n_lo += n_lo
+        if hi > self.hi:
+            self.hi, self.n_hi = hi, n_hi
+        elif hi == self.hi:
+            self.n_hi += n_hi
+        if self.classes is not None:
+            self.classes.update(np.unique(finite[:1_000_000]).tolist())
+            if len(self.classes) > 64:
+                self.classes = None  # too many values to be categorical
+
+    def sentinel(self):
+        """A common nodata marker at an extreme of an untagged layer, and its count."""
+        if self.n_finite == 0 or self.lo == self.hi:
+            return None, 0
+        dt = self.dtype
+        candidates = [-9999.0]
+        if np.issubdtype(dt, np.signedinteger):
+            candidates.append(float(np.iinfo(dt).min))
+        elif np.issubdtype(dt, np.unsignedinteger):
+            candidates.append(float(np.iinfo(dt).max))
+        else:
+            candidates.append(float(np.finfo(np.float32).min))
+        for c in candidates:
+            if c == self.lo:
+                return c, self.n_lo
+            if c == self.hi:
+                return c, self.n_hi
+        if self.lo <= -1e38:  # float32 minimum written as a float64 or rounded
+            return self.lo, self.n_lo
+        return None, 0
 
 
 def read_layers(
@@ -186,6 +349,8 @@ def read_layers(
     categorical=(),
     cell_budget: int | None = None,
     nodata_values: dict | None = None,
+    memory_mb: float | None = None,
+    block_cells: int = 1 << 22,
 ) -> LayerStack:
     """Read single-band rasters that share one grid into a :class:`LayerStack`.
 
@@ -202,6 +367,12 @@ def read_layers(
         Refuse grids with more cells than this (protects memory).
     nodata_values : dict of str to float, optional
         Extra nodata sentinel per layer name, for files that lack a nodata tag.
+    memory_mb : float, optional
+        Memory the layer values may take.  A stack larger than half of it is
+        streamed from disk window by window instead of held in memory.  No limit
+        when omitted.
+    block_cells : int, default 4194304
+        Cells per layer read at a time while checking the files.
 
     Returns
     -------
@@ -217,6 +388,7 @@ def read_layers(
         both files and what differs.
     """
     import rasterio
+    from rasterio.windows import Window
 
     paths = [Path(p) for p in paths]
     if not paths:
@@ -229,9 +401,10 @@ def read_layers(
         )
     nodata_values = dict(nodata_values or {})
     categorical = set(categorical)
-    arrays, out_names, out_paths, units = [], [], [], []
-    ref = None
-    ref_path = None
+
+    # -- 1. metadata: every file readable, single band, with a CRS, on one grid ---------
+    meta = []
+    ref_info = ref_path = None
     for path, name in zip(paths, names):
         if not path.exists():
             raise LayerError(f"Layer file {path} does not exist; check [layers] paths.")
@@ -253,8 +426,8 @@ def read_layers(
                 raise LayerError(
                     f"Layer file {path} has no CRS; assign one (e.g. gdal_edit -a_srs)."
                 )
-            if ref is None:
-                ref, ref_path = src, path
+            if ref_info is None:
+                ref_path = path
                 ref_info = (src.crs, src.transform, src.width, src.height, src.res)
                 n_cells = src.width * src.height
                 if cell_budget is not None and n_cells > cell_budget:
@@ -279,72 +452,105 @@ def read_layers(
                         " Resample one onto the "
                         "other's grid first (e.g. rasterio.warp.reproject or gdalwarp)."
                     )
-            raw = src.read(1, masked=True)
-            dtype = src.dtypes[0]
-            tagged = src.nodata is not None
-            unit = (src.units[0] if src.units else "") or ""
-        values = np.ma.filled(raw.astype(np.float32), np.nan)
-        if name in nodata_values:
-            values[values == np.float32(nodata_values[name])] = np.nan
-        values[~np.isfinite(values)] = np.nan
-        if not tagged and name not in nodata_values:
-            sentinel = _untagged_sentinel(values, dtype)
+            meta.append({
+                "path": path,
+                "name": name,
+                "dtype": src.dtypes[0],
+                "tagged": src.nodata is not None,
+                "unit": (src.units[0] if src.units else "") or "",
+            })
+    crs, transform, width, height, _ = ref_info
+    n_cells = width * height
+    n_guess = len(paths)
+    in_memory = memory_mb is None or n_guess * n_cells * 4 <= 0.5 * memory_mb * 1e6
+
+    # -- 2. values: one pass, block by block (the whole grid at once in memory) -------
+    step = height if in_memory else max(1, block_cells // max(width, 1))
+    stats = [_LayerStats(m["dtype"]) for m in meta]
+    sources = [LayerSource(m["path"], nodata_values.get(m["name"])) for m in meta]
+    mask = np.ones((height, width), dtype=bool)
+    full = [None] * len(meta)
+    n_nan = [0] * len(meta)
+    for r0 in range(0, height, step):
+        win = Window(0, r0, width, min(step, height - r0))
+        for i, m in enumerate(meta):
+            with rasterio.open(m["path"]) as src:
+                values = sources[i].read(src, window=win)
+            stats[i].add(values)
+            nan = np.isnan(values)
+            n_nan[i] += int(nan.sum())
+            mask[r0:r0 + win.height] &= ~nan
+            if in_memory:
+                full[i] = values
+
+    # -- 3. per-layer checks ------------------------------------------------------------
+    out_names, out_paths, units, out_sources, arrays = [], [], [], [], []
+    for i, m in enumerate(meta):
+        path, name, st = m["path"], m["name"], stats[i]
+        if not m["tagged"] and name not in nodata_values:
+            sentinel, n_sent = st.sentinel()
             if sentinel is not None:
-                n_sent = int(np.count_nonzero(values == np.float32(sentinel)))
                 raise LayerError(
                     f"Layer file {path} has no nodata value, but {n_sent:,} cells hold "
                     f"{sentinel:.9g}, a common nodata marker, as its "
-                    f"{'minimum' if sentinel == np.nanmin(values) else 'maximum'}. "
+                    f"{'minimum' if sentinel == st.lo else 'maximum'}. "
                     "Read as data they would distort every model. If they are nodata, "
                     f"tag the file (e.g. gdal_edit -a_nodata {sentinel:.9g} {path.name}); "
                     "if they are real values, rescale the layer."
                 )
-        if np.isnan(values).all():
+        if st.n_finite == 0:
             raise LayerError(
                 f"Layer {name!r} ({path}) has no data at all (every cell is nodata); "
                 "check its nodata value or leave it out."
             )
-        is_int = np.issubdtype(np.dtype(dtype), np.integer)
+        is_int = np.issubdtype(np.dtype(m["dtype"]), np.integer)
         if name in categorical:
-            classes = np.unique(values[np.isfinite(values)])
-            if classes.size > 50:
+            if st.classes is None or len(st.classes) > 50:
                 raise LayerError(
-                    f"Layer {name!r} ({path}) is declared categorical but has "
-                    f"{classes.size} classes; more than 50 is unlikely to be categorical."
+                    f"Layer {name!r} ({path}) is declared categorical but has more than "
+                    "50 classes; more than 50 is unlikely to be categorical."
                 )
-            for c in classes:
-                ind = np.where(np.isnan(values), np.nan, (values == c).astype(np.float32))
-                arrays.append(ind.astype(np.float32))
+            for c in sorted(st.classes):
+                src_c = LayerSource(path, nodata_values.get(name), float(c))
+                out_sources.append(src_c)
                 out_names.append(f"{name}={c:g}")
                 out_paths.append(path)
                 units.append("indicator")
+                if in_memory:
+                    v = full[i]
+                    arrays.append(
+                        np.where(np.isnan(v), np.nan, (v == np.float32(c))).astype(np.float32)
+                    )
             continue
-        if is_int:
-            n_classes = np.unique(values[np.isfinite(values)][:1_000_000]).size
-            if 1 < n_classes <= 12:
-                warnings.warn(
-                    f"Layer {name!r} ({path}) is an integer layer with only {n_classes} "
-                    "distinct values: if it is categorical (soil, vegetation class), list "
-                    "it under [layers] categorical so each class becomes an indicator; "
-                    "it is used as a continuous predictor now.",
-                    ScreenerWarning,
-                    stacklevel=2,
-                )
-        arrays.append(values)
+        if is_int and st.classes is not None and 1 < len(st.classes) <= 12:
+            warnings.warn(
+                f"Layer {name!r} ({path}) is an integer layer with only "
+                f"{len(st.classes)} distinct values: if it is categorical (soil, "
+                "vegetation class), list it under [layers] categorical so each class "
+                "becomes an indicator; it is used as a continuous predictor now.",
+                ScreenerWarning,
+                stacklevel=2,
+            )
+        out_sources.append(sources[i])
         out_names.append(name)
         out_paths.append(path)
-        units.append(unit)
-    data = np.stack(arrays)
-    mask = np.isfinite(data).all(axis=0)
+        units.append(m["unit"])
+        if in_memory:
+            arrays.append(full[i])
     if not mask.any():
         raise LayerError(
             "The layers' nodata areas do not overlap anywhere with data in all layers: "
             "no cell has a value in every layer. Check that they cover the same region."
         )
-    data[:, ~mask] = np.nan
-    crs, transform, width, height, _ = ref_info
     grid = Grid(crs, transform, (height, width), mask)
-    return LayerStack(grid, out_names, data, out_paths, units)
+    share = {m["name"]: n_nan[i] / n_cells for i, m in enumerate(meta)}
+    if in_memory:
+        data = np.stack(arrays)
+        data[:, ~mask] = np.nan
+        return LayerStack(grid, out_names, data, out_paths, units, nodata_share=share)
+    log.info("streaming %d layers of %s cells from disk", len(out_names), f"{n_cells:,}")
+    return LayerStack(grid, out_names, None, out_paths, units, out_sources,
+                      nodata_share=share)
 
 
 @dataclass(frozen=True)
@@ -377,13 +583,18 @@ def check_layers(stack: LayerStack, *, sample: int = 200_000, random_state=0):
     """
     grid = stack.grid
     report = LayerReport()
-    for i, name in enumerate(stack.names):
-        report.nodata_share[name] = float(np.isnan(stack.data[i]).mean())
+    for name in stack.names:
+        if name in stack.nodata_share:
+            report.nodata_share[name] = stack.nodata_share[name]
+        elif stack.data is not None:
+            report.nodata_share[name] = float(np.isnan(stack.data[stack.names.index(name)])
+                                              .mean())
     idx = np.flatnonzero(grid.mask.ravel())
     if idx.size > sample:
         rng = np.random.default_rng(random_state)
         idx = np.sort(rng.choice(idx, size=sample, replace=False))
-    X = stack.data.reshape(stack.n_layers, -1)[:, idx].astype(np.float64)
+    rows, cols = np.unravel_index(idx, grid.shape)
+    X = stack.values_at(rows, cols).T
     sd = X.std(axis=1)
     const = sd <= 1e-12 * np.maximum(1.0, np.abs(X).max(axis=1))
     report.constant = [n for n, c in zip(stack.names, const) if c]

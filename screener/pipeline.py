@@ -216,6 +216,7 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Inta
             categorical=s.layers.categorical,
             cell_budget=s.layers.cell_budget,
             nodata_values=s.layers.nodata,
+            memory_mb=s.compute.memory_mb or None,
         )
         elevation = None
         if s.layers.elevation:
@@ -230,19 +231,9 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Inta
             if s.layers.derive:
                 slope, aspect = slope_aspect(stack.grid, elevation)
                 extra = {"slope": slope, "aspect": aspect}
-                add = [d for d in s.layers.derive if d not in stack.names]
+                add = {d: extra[d] for d in s.layers.derive if d not in stack.names}
                 if add:
-                    data = np.concatenate(
-                        [stack.data] + [extra[d][None] for d in add], axis=0
-                    )
-                    data[:, ~stack.grid.mask] = np.nan
-                    stack = LayerStack(
-                        stack.grid,
-                        stack.names + add,
-                        data,
-                        stack.paths + [None] * len(add),
-                        stack.units + ["degrees"] * len(add),
-                    )
+                    stack = stack.with_layers(add, units=["degrees"] * len(add))
         for name in s.layers.exclude:
             if name not in stack.names:
                 from screener.errors import suggest
@@ -600,7 +591,14 @@ def _geographic_refit(intake, ta, tb, progress):
     if _takes_seed(family):
         params = {**params, "random_state": ta.seed}
     stack = intake.predictor_stack()
-    X = stack.data[:, intake.grid.mask].T.astype(np.float32)
+    if stack.streamed and mode == "auto":
+        progress.step(
+            "geographic-space tests skipped: the grid is streamed from disk and each "
+            "replicate would map it four times. Set [overlap] geographic_tests = \"on\" "
+            "to run them."
+        )
+        return None
+    X = stack.valid_matrix()
     background = np.vstack([ta.background_env, tb.background_env])
     refit = GeographicRefit(family, params, background, X, intake.grid.mask)
     t0 = time.perf_counter()

@@ -107,6 +107,7 @@ SCHEMA: dict = {
     "compute": {
         "scheduler": (str, "serial", '"serial", "processes", or a Dask scheduler address.'),
         "n_workers": (int, 0, "Worker processes (0 = all cores)."),
+        "memory_mb": (float, 4096.0, "Memory for layer values (MB); larger stacks stream from disk."),
     },
 }
 
