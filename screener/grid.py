@@ -351,16 +351,20 @@ class Grid:
         return out
 
     def _areal_scale(self):
+        """Areal scale factor at every cell centre, or None if PROJ cannot give it.
+
+        Scale factors vary smoothly: they are evaluated on a uniform lattice of at most
+        65 x 65 cell positions (corners included) and interpolated bilinearly with
+        ``scipy.ndimage.zoom``, which keeps memory to the output array alone.
+        """
         try:
             proj = Proj(self.pyproj_crs)
         except Exception:  # CRS that PROJ cannot express as a projection
             return None
-        rows = np.arange(self.n_rows)
-        cols = np.arange(self.n_cols)
-        # Scale factors vary smoothly: evaluate on a coarse lattice and interpolate.
-        step = max(1, min(self.n_rows, self.n_cols) // 64)
-        rs = np.unique(np.r_[rows[::step], rows[-1]])
-        cs = np.unique(np.r_[cols[::step], cols[-1]])
+        kr = min(self.n_rows, 65)
+        kc = min(self.n_cols, 65)
+        rs = np.linspace(0, self.n_rows - 1, kr)
+        cs = np.linspace(0, self.n_cols - 1, kc)
         rr, cc = np.meshgrid(rs, cs, indexing="ij")
         lon, lat = self.lonlat(rr, cc)
         try:
@@ -370,11 +374,12 @@ class Grid:
         coarse = np.asarray(factors.areal_scale, float).reshape(rr.shape)
         if not np.all(np.isfinite(coarse)):
             return None
-        from scipy.interpolate import RegularGridInterpolator
+        if coarse.shape == self.shape:
+            return coarse
+        from scipy.ndimage import zoom
 
-        interp = RegularGridInterpolator((rs, cs), coarse, method="linear")
-        R, C = np.meshgrid(rows, cols, indexing="ij")
-        return interp(np.stack([R.ravel(), C.ravel()], axis=1)).reshape(self.shape)
+        return zoom(coarse, (self.n_rows / kr, self.n_cols / kc), order=1,
+                    grid_mode=False, mode="nearest")
 
     # --- comparison and derived grids ------------------------------------------------
     def same_geometry(self, other: Grid) -> bool:

@@ -225,17 +225,22 @@ class LayerStack:
     def iter_blocks(self, max_cells: int = 1 << 20):
         """Yield ``(row_slice, X, valid)`` blocks of whole rows for prediction.
 
-        ``X`` has shape (n_valid_in_block, n_layers), float32; ``valid`` is the
-        block's (rows, n_cols) mask, so ``out[row_slice][valid] = predict(X)``.
-        Memory per block is bounded by ``max_cells * n_layers`` values.
+        ``X`` has shape (n_valid_in_block, n_layers), float32, column-major (a view
+        of the stack where the whole block is valid); ``valid`` is the block's
+        (rows, n_cols) mask, so ``out[row_slice][valid] = predict(X)``.  Memory per
+        block is bounded by ``max_cells * n_layers`` values.
         """
         n_rows = self.grid.n_rows
         step = self._rows_per_block(max_cells)
         for r0 in range(0, n_rows, step):
             sl = slice(r0, min(n_rows, r0 + step))
             valid = self.grid.mask[sl]
-            X = self.read_rows(sl)[:, valid].T
-            yield sl, np.ascontiguousarray(X, dtype=np.float32), valid
+            band = self.read_rows(sl).reshape(self.n_layers, -1)
+            if valid.all():
+                X = band.T  # no copy: a column-major (cells, layers) view
+            else:
+                X = np.take(band, np.flatnonzero(valid.ravel()), axis=1).T
+            yield sl, X.astype(np.float32, copy=False), valid
 
     def valid_matrix(self) -> np.ndarray:
         """Values at every valid cell, shape (n_valid, n_layers), float32, row-major."""

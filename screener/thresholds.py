@@ -88,11 +88,15 @@ def max_sss_threshold(record_scores, background_scores) -> float:
 
 def suitable_area_km2(map_values, cell_area_km2, value: float) -> float:
     """Area (km²) of the cells with ``map >= value``; NaN cells are never counted."""
-    m = np.asarray(map_values, dtype=float)
+    m = np.asarray(map_values)
+    if not np.issubdtype(m.dtype, np.floating):
+        m = m.astype(float)
     a = np.broadcast_to(np.asarray(cell_area_km2, dtype=float), m.shape)
     with np.errstate(invalid="ignore"):
-        sel = np.isfinite(m) & (m >= value)
-    return float(a[sel].sum())
+        # compared in the map's own precision, so a record's cell is never lost to
+        # rounding; summed in float64 without copying the areas
+        sel = np.isfinite(m) & (m >= m.dtype.type(value))
+    return float(np.sum(a, where=sel, dtype=np.float64))
 
 
 def compute_thresholds(

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
-from scipy.stats import chi2
+from scipy.special import chdtrc
 from sklearn.covariance import LedoitWolf
 from sklearn.utils.validation import check_is_fitted
 
@@ -110,4 +110,6 @@ class EllipsoidNiche(NicheModel):
         return np.einsum("ij,ij->i", z, z, dtype=np.float64)
 
     def _predict_chunk(self, X):
-        return chi2.sf(self._d2(X), df=self.n_features_in_)
+        # chi-square survival function, 1 - chi2.cdf(D2, p); scipy.special.chdtrc is the
+        # same function as scipy.stats.chi2.sf without the distribution wrapper (2x faster)
+        return chdtrc(self.n_features_in_, self._d2(X))

@@ -1,0 +1,372 @@
+"""How each per-cell stage's cost grows with the grid, beside its reference kernel.
+
+Builds synthetic projected grids of 1e6, 4e6 and 1.6e7 cells x 20 float32 layers
+(tiled, DEFLATE GeoTIFFs in a temporary folder), then times, per stage, our code
+and a bare reference kernel run in the same process:
+
+===============  ==========================================  =============================
+stage            ours                                        reference kernel
+===============  ==========================================  =============================
+I/O (read)       streamed ``LayerStack.iter_blocks``         bare rasterio windowed reads
+I/O (write)      ``outputs.rasters.write_raster`` (COG)      bare rasterio GTiff write
+prediction       point-process model (linear) over blocks    numpy ``X @ w`` (memory bound)
+prediction       ellipsoid model over blocks                 same
+novelty          MESS over blocks                            same
+thresholds       ``compute_thresholds`` on the map           ``np.sum`` over the map
+cost distance    ``CostGraph`` + one run + one path          ``MCP_Geometric.find_costs``
+patches          ``find_candidates`` (whole isolation stage)  ``scipy.ndimage.label``
+===============  ==========================================  =============================
+
+Peak memory is measured per stage in a fresh subprocess (``ru_maxrss``), with the
+stack streamed under ``memory_mb`` and GDAL's block cache capped at 64 MB; a last
+subprocess runs the per-cell chain end to end (read, predict, MESS, thresholds, cost
+distance, write) and reports its peak.  Replicate-bound speed-up: the environmental
+equivalency test, 1000 replicates, on one and on two local processes.
+
+Run:  python tests/benchmarks/bench_scaling.py [--sizes 1e6,4e6,1.6e7] [--repeats 2]
+Writes docs/benchmarks/scaling.md.  Not collected by pytest.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import statistics
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+os.environ.setdefault("GDAL_CACHEMAX", "64")
+
+import numpy as np  # noqa: E402
+
+ROOT = Path(__file__).resolve().parents[2]
+N_LAYERS = 20
+MEMORY_MB = 512.0
+
+
+def make_grid(folder: Path, side: int, seed: int = 0):
+    """Write N_LAYERS smooth float32 layers of side x side cells (EPSG:32633, 1 km)."""
+    import rasterio
+    from affine import Affine
+    from scipy.ndimage import gaussian_filter, zoom
+
+    folder.mkdir(parents=True, exist_ok=True)
+    rng = np.random.default_rng(seed)
+    transform = Affine(1000, 0, 200_000, 0, -1000, 200_000 + side * 1000)
+    paths = []
+    base = [zoom(gaussian_filter(rng.normal(size=(side // 16 + 2,) * 2), 2), 16,
+                 order=1)[:side, :side].astype(np.float32) for _ in range(4)]
+    for i in range(N_LAYERS):
+        w = rng.normal(size=4).astype(np.float32)
+        arr = sum(wk * b for wk, b in zip(w, base)) + np.float32(i)
+        arr[: side // 50, : side // 50] = np.nan  # a nodata corner
+        p = folder / f"layer{i:02d}.tif"
+        with rasterio.open(p, "w", driver="GTiff", width=side, height=side, count=1,
+                           dtype="float32", crs="EPSG:32633", transform=transform,
+                           nodata=np.nan, tiled=True, blockxsize=256, blockysize=256,
+                           compress="deflate", predictor=3) as dst:
+            dst.write(arr, 1)
+        paths.append(p)
+    return paths
+
+
+def timed(fn, repeats):
+    out = []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fn()
+        out.append(time.perf_counter() - t0)
+    return min(out), statistics.median(out)
+
+
+def stage_run(stage: str, folder: Path, repeats: int) -> dict:
+    """Run one stage (ours and its reference) in this process; return timings."""
+    import rasterio
+    from rasterio.windows import Window
+
+    from screener.layers import read_layers
+
+    paths = sorted(folder.glob("layer*.tif"))
+    stack = read_layers(paths, memory_mb=MEMORY_MB)
+    grid = stack.grid
+    n = grid.n_cells
+    rng = np.random.default_rng(1)
+    idx = rng.choice(np.flatnonzero(grid.mask.ravel()), 2000, replace=False)
+    rr, cc = np.unravel_index(idx, grid.shape)
+    B = stack.values_at(rr, cc)
+    P = B[:20] + 0.1
+    res = {"cells": n}
+
+    if stage == "io_read":
+        def ours():
+            for _ in stack.iter_blocks(1 << 20):
+                pass
+
+        def ref():
+            step = max(1, (1 << 20) // grid.n_cols)
+            for p in paths:
+                with rasterio.open(p) as src:
+                    for r0 in range(0, grid.n_rows, step):
+                        src.read(1, window=Window(0, r0, grid.n_cols,
+                                                  min(step, grid.n_rows - r0)))
+    elif stage == "io_write":
+        from screener.outputs.rasters import write_raster
+
+        m = stack.layer(stack.names[0])
+        tmp = folder / "w"
+        tmp.mkdir(exist_ok=True)
+
+        def ours():
+            write_raster(tmp / "ours.tif", m, grid)
+
+        def ref():
+            with rasterio.open(tmp / "ref.tif", "w", driver="GTiff", width=grid.n_cols,
+                               height=grid.n_rows, count=1, dtype="float32",
+                               crs=grid.crs, transform=grid.transform, nodata=np.nan,
+                               tiled=True, blockxsize=256, blockysize=256,
+                               compress="deflate", predictor=3) as dst:
+                dst.write(m, 1)
+    elif stage in ("predict_ppm", "predict_ellipsoid", "novelty"):
+        from screener.models import make_model
+        from screener.novelty import mess
+        from screener.pipeline import predict_map
+
+        if stage == "predict_ppm":
+            model = make_model("ppm", feature_classes="l").fit(P, B)
+        else:
+            model = make_model("ellipsoid").fit(P, B)
+        X_mem = stack.valid_matrix() if n <= 4_000_000 else None
+        w = rng.normal(size=N_LAYERS).astype(np.float32)
+
+        if stage == "novelty":
+            def ours():
+                for _, X, _ in stack.iter_blocks(1 << 20):
+                    mess(B, X)
+        else:
+            def ours():
+                predict_map(model, stack)
+
+        def ref():
+            if X_mem is not None:
+                X_mem @ w
+            else:  # same arithmetic, block by block, on values already in memory
+                for _ in range(max(1, n // 4_000_000)):
+                    blk = np.ones((4_000_000, N_LAYERS), np.float32)
+                    blk @ w
+    elif stage == "thresholds":
+        from screener.thresholds import compute_thresholds
+
+        m = rng.random(grid.shape).astype(np.float32)
+        areas = np.asarray(grid.cell_area_km2, float)
+        scores = rng.random(30)
+
+        def ours():
+            compute_thresholds(scores, m, areas, background_scores=rng.random(2000))
+
+        def ref():
+            np.nansum(m)
+    elif stage == "cost":
+        from skimage.graph import MCP_Geometric
+
+        from screener.costdistance import CostGraph, least_cost_path
+
+        r = rng.random(grid.shape) + 0.1
+        src_rc = np.array([[grid.n_rows // 2, grid.n_cols // 2]])
+
+        def ours():
+            g = CostGraph(grid, r)
+            surf = g.run(src_rc)
+            least_cost_path(surf, (grid.n_rows - 1, grid.n_cols - 1))
+
+        def ref():
+            costs = np.where(grid.mask, r, np.inf)
+            MCP_Geometric(costs, sampling=(1.0, 1.0)).find_costs([tuple(src_rc[0])])
+    elif stage == "patches":
+        from scipy import ndimage
+
+        from screener.isolation import find_candidates
+
+        s = np.where(grid.mask, stack.layer(stack.names[0]), np.nan)
+        s = (s - np.nanmin(s)) / (np.nanmax(s) - np.nanmin(s))
+        thr = float(np.nanquantile(s, 0.8))
+        pick = np.flatnonzero((s >= thr).ravel())[:5]
+        rec = np.unravel_index(pick, grid.shape)
+
+        def ours():
+            find_candidates(grid, {"a": s.astype(np.float32)}, {"a": thr}, {"a": rec})
+
+        def ref():
+            ndimage.label(s >= thr, structure=np.ones((3, 3)))
+    else:
+        raise SystemExit(f"unknown stage {stage}")
+
+    res["ours_min"], res["ours_med"] = timed(ours, repeats)
+    res["ref_min"], res["ref_med"] = timed(ref, repeats)
+    res["peak_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    return res
+
+
+def chain_run(folder: Path) -> dict:
+    """The per-cell chain end to end, for the peak memory of a whole run."""
+    from screener.costdistance import CostGraph
+    from screener.isolation import resistance_from_suitability
+    from screener.layers import check_layers, read_layers
+    from screener.models import make_model
+    from screener.novelty import mess
+    from screener.outputs.rasters import write_raster
+    from screener.pipeline import predict_map
+    from screener.thresholds import compute_thresholds
+
+    t0 = time.perf_counter()
+    paths = sorted(folder.glob("layer*.tif"))
+    stack = read_layers(paths, memory_mb=MEMORY_MB)
+    grid = stack.grid
+    check_layers(stack)
+    rng = np.random.default_rng(2)
+    idx = rng.choice(np.flatnonzero(grid.mask.ravel()), 10_000, replace=False)
+    B = stack.values_at(*np.unravel_index(idx, grid.shape))
+    P = B[:25]
+    model = make_model("ellipsoid").fit(P, B)
+    m = predict_map(model, stack)
+    for _, X, _ in stack.iter_blocks(1 << 20):
+        mess(B, X)
+    th = compute_thresholds(model.predict(P), m, np.asarray(grid.cell_area_km2, float))
+    r = resistance_from_suitability(m)
+    CostGraph(grid, r).run(np.column_stack(np.unravel_index(idx[:5], grid.shape)))
+    write_raster(folder / "chain.tif", m, grid)
+    return {"cells": grid.n_cells, "seconds": time.perf_counter() - t0,
+            "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
+            "mtp": th["mtp"].value}
+
+
+def replicate_speedup(repeats: int) -> dict:
+    from screener.overlap import environmental_space, equivalency_test
+    from screener.parallel import make_executor
+
+    rng = np.random.default_rng(3)
+    space = environmental_space(rng.normal(0, 1, (50, 4)), rng.normal(0.3, 1, (50, 4)),
+                                rng.normal(0, 2, (3000, 4)), rng.normal(0, 2, (3000, 4)))
+    out = {}
+    for kind, n in (("serial", 1), ("processes", 1), ("processes", 2)):
+        with make_executor(kind, n_workers=None if kind == "serial" else n) as ex:
+            ex.map(abs, [1, 2])  # start the workers before timing
+            out[f"{kind}-{n}"] = timed(
+                lambda ex=ex: equivalency_test(space, n_replicates=1000, random_state=0,
+                                               executor=ex), repeats)
+    return out
+
+
+STAGES = ["io_read", "io_write", "predict_ppm", "predict_ellipsoid", "novelty", "thresholds",
+          "cost", "patches"]
+
+
+def main():
+    ap = argparse.ArgumentParser(description=__doc__,
+                                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--sizes", default="1e6,4e6,1.6e7")
+    ap.add_argument("--repeats", type=int, default=2)
+    ap.add_argument("--stage", help=argparse.SUPPRESS)
+    ap.add_argument("--folder", help=argparse.SUPPRESS)
+    ap.add_argument("--chain", action="store_true", help=argparse.SUPPRESS)
+    args = ap.parse_args()
+    if args.stage:
+        print(json.dumps(stage_run(args.stage, Path(args.folder), args.repeats)))
+        return
+    if args.chain:
+        print(json.dumps(chain_run(Path(args.folder))))
+        return
+
+    sizes = [int(float(s)) for s in args.sizes.split(",")]
+    results = {s: {} for s in STAGES}
+    chains = []
+    with tempfile.TemporaryDirectory(prefix="screener-bench-") as tmp:
+        for n in sizes:
+            side = int(round(np.sqrt(n)))
+            folder = Path(tmp) / f"g{side}"
+            t0 = time.perf_counter()
+            make_grid(folder, side)
+            print(f"grid {side} x {side}: written in {time.perf_counter() - t0:.1f} s",
+                  flush=True)
+            for stage in STAGES:
+                cmd = [sys.executable, __file__, "--stage", stage, "--folder", str(folder),
+                       "--repeats", str(args.repeats)]
+                out = subprocess.run(cmd, capture_output=True, text=True)
+                if out.returncode:
+                    print(out.stderr[-2000:])
+                    raise SystemExit(f"stage {stage} failed")
+                res = json.loads(out.stdout.strip().splitlines()[-1])
+                results[stage][n] = res
+                print(f"  {stage:18s} ours {res['ours_min']:.3f} s, ref "
+                      f"{res['ref_min']:.3f} s, peak {res['peak_mb']:.0f} MB", flush=True)
+            out = subprocess.run([sys.executable, __file__, "--chain", "--folder",
+                                  str(folder)], capture_output=True, text=True)
+            if out.returncode:
+                print(out.stderr[-2000:])
+                raise SystemExit("chain failed")
+            chains.append(json.loads(out.stdout.strip().splitlines()[-1]))
+            print(f"  chain: {chains[-1]['seconds']:.1f} s, peak "
+                  f"{chains[-1]['peak_mb']:.0f} MB", flush=True)
+            import shutil
+
+            shutil.rmtree(folder)
+    speed = replicate_speedup(args.repeats)
+    write_doc(sizes, results, chains, speed, args)
+
+
+def write_doc(sizes, results, chains, speed, args):
+    lines = [
+        "# Scaling of the per-cell stages",
+        "",
+        f"`python tests/benchmarks/bench_scaling.py --sizes {args.sizes} --repeats "
+        f"{args.repeats}` on {platform.machine()} ({os.cpu_count()} cores), Python "
+        f"{platform.python_version()}, {time.strftime('%Y-%m-%d')}. Synthetic projected "
+        f"grids x {N_LAYERS} float32 layers, streamed with `memory_mb = {MEMORY_MB:g}` and "
+        "`GDAL_CACHEMAX=64`. Times are the best of the repeats (median in brackets); "
+        "ratio = ours / reference; exponent = slope of log(time) on log(cells) across sizes "
+        "(1 = linear; no stage should exceed about 1.1, n log n).",
+        "",
+        "| stage | cells | ours (s) | reference (s) | ratio | cells/s (ours) | peak (MB) |",
+        "| --- | --- | --- | --- | --- | --- | --- |",
+    ]
+    exps = {}
+    for stage in STAGES:
+        xs, ys = [], []
+        for n in sizes:
+            r = results[stage].get(n)
+            if not r:
+                continue
+            xs.append(np.log(r["cells"]))
+            ys.append(np.log(max(r["ours_min"], 1e-6)))
+            lines.append(
+                f"| {stage} | {r['cells']:,} | {r['ours_min']:.3f} ({r['ours_med']:.3f}) | "
+                f"{r['ref_min']:.3f} ({r['ref_med']:.3f}) | "
+                f"{r['ours_min'] / max(r['ref_min'], 1e-9):.2f} | "
+                f"{r['cells'] / r['ours_min']:,.0f} | {r['peak_mb']:.0f} |"
+            )
+        if len(xs) >= 2:
+            exps[stage] = float(np.polyfit(xs, ys, 1)[0])
+    lines += ["", "| stage | scaling exponent |", "| --- | --- |"]
+    lines += [f"| {k} | {v:.2f} |" for k, v in exps.items()]
+    lines += ["", "Whole per-cell chain (read, layer checks, fit, predict, MESS, thresholds, "
+              "cost distance, write), one subprocess each:", "",
+              "| cells | seconds | peak memory (MB) |", "| --- | --- | --- |"]
+    lines += [f"| {c['cells']:,} | {c['seconds']:.1f} | {c['peak_mb']:.0f} |" for c in chains]
+    s1 = speed["processes-1"][0]
+    s2 = speed["processes-2"][0]
+    lines += ["", "Environmental equivalency test, 1000 replicates, 2 x 50 records:", "",
+              "| executor | best (s) | median (s) |", "| --- | --- | --- |"]
+    lines += [f"| {k} | {v[0]:.2f} | {v[1]:.2f} |" for k, v in speed.items()]
+    lines += ["", f"Two processes vs one: {s1 / s2:.2f}x faster.", ""]
+    out = ROOT / "docs" / "benchmarks" / "scaling.md"
+    out.write_text("\n".join(lines))
+    print("\n".join(lines))
+
+
+if __name__ == "__main__":
+    main()
