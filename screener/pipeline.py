@@ -342,7 +342,6 @@ def model_taxon(
     from screener.models import make_model
     from screener.models.base import training_presence_scores
     from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
-    from screener.novelty import mess
     from screener.thresholds import compute_thresholds
 
     progress = progress or Progress(None)

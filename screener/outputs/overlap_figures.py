@@ -11,26 +11,10 @@ import numpy as np
 __all__ = ["plot_null_distribution", "plot_occupancy"]
 
 
-class _NoPyplot:
-    """The two pyplot calls used here, built on Figure so no global state is kept."""
-
-    @staticmethod
-    def subplots(*args, **kwargs):
-        from matplotlib.figure import Figure
-
-        fig_kw = {k: kwargs.pop(k) for k in ("figsize", "dpi", "layout", "constrained_layout") if k in kwargs}
-        fig = Figure(**fig_kw)
-        return fig, fig.subplots(*args, **kwargs)
-
-    @staticmethod
-    def get_cmap(name):
-        import matplotlib
-
-        return matplotlib.colormaps[name]
-
-
 def _pyplot():
-    return _NoPyplot
+    from screener.outputs import _figure
+
+    return _figure
 
 
 def plot_null_distribution(test, *, ax=None, bins: int = 30):

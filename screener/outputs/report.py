@@ -241,7 +241,7 @@ def _overlap_figures(result) -> list:
         a, b = cmp.taxon_a, cmp.taxon_b
         if cmp.space is not None:
             out.append(_safe_figure(
-                lambda cmp=cmp: overlap_figures.plot_occupancy(cmp.space, names=(a, b)),
+                lambda cmp=cmp, a=a, b=b: overlap_figures.plot_occupancy(cmp.space, names=(a, b)),
                 f"Occupancy of {a} and {b} in environmental space (first two principal "
                 "components of the pooled accessible environments); contours outline "
                 "each taxon's available environment.",

@@ -1,0 +1,22 @@
+"""Figure construction without pyplot's global state (safe in long runs and servers)."""
+
+from __future__ import annotations
+
+__all__ = ["subplots", "get_cmap"]
+
+_FIGURE_KW = ("figsize", "dpi", "layout", "constrained_layout")
+
+
+def subplots(*args, **kwargs):
+    """Like ``matplotlib.pyplot.subplots`` but the figure is not registered anywhere."""
+    from matplotlib.figure import Figure
+
+    fig = Figure(**{k: kwargs.pop(k) for k in _FIGURE_KW if k in kwargs})
+    return fig, fig.subplots(*args, **kwargs)
+
+
+def get_cmap(name: str):
+    """A registered colour map by name."""
+    import matplotlib
+
+    return matplotlib.colormaps[name]
