@@ -222,17 +222,19 @@ class LayerStack:
         return LayerStack(grid, names, None, paths, units_all, sources, mem,
                           dict(self.nodata_share))
 
-    def iter_blocks(self, max_cells: int = 1 << 20):
+    def iter_blocks(self, max_cells: int = 1 << 20, rows: slice | None = None):
         """Yield ``(row_slice, X, valid)`` blocks of whole rows for prediction.
 
         ``X`` has shape (n_valid_in_block, n_layers), float32, column-major (a view
         of the stack where the whole block is valid); ``valid`` is the block's
         (rows, n_cols) mask, so ``out[row_slice][valid] = predict(X)``.  Memory per
-        block is bounded by ``max_cells * n_layers`` values.
+        block is bounded by ``max_cells * n_layers`` values.  ``rows`` limits the
+        blocks to a band of rows.
         """
-        n_rows = self.grid.n_rows
+        start = 0 if rows is None else (rows.start or 0)
+        n_rows = self.grid.n_rows if rows is None else min(rows.stop, self.grid.n_rows)
         step = self._rows_per_block(max_cells)
-        for r0 in range(0, n_rows, step):
+        for r0 in range(start, n_rows, step):
             sl = slice(r0, min(n_rows, r0 + step))
             valid = self.grid.mask[sl]
             band = self.read_rows(sl).reshape(self.n_layers, -1)

@@ -301,9 +301,46 @@ def check_project(settings: Settings) -> list:
 
 
 # --------------------------------------------------------------------------- models
-def predict_map(model, stack: LayerStack, *, max_cells: int = 1 << 20) -> np.ndarray:
-    """Predict a fitted model over the grid block by block (float32, NaN off-mask)."""
-    out = np.full(stack.grid.shape, np.nan, dtype=np.float32)
+def _predict_rows(model, stack: LayerStack, rows: tuple, max_cells: int):
+    """Predictions for the valid cells of a band of rows (a task for an executor)."""
+    out = []
+    r0, r1 = rows
+    sub = stack.grid.mask[r0:r1]
+    for sl, X, valid in stack.iter_blocks(max_cells, rows=slice(r0, r1)):
+        out.append(model.predict(X).astype(np.float32) if X.shape[0] else
+                   np.empty(0, np.float32))
+    return np.concatenate(out) if out else np.empty(int(sub.sum()), np.float32)
+
+
+def predict_map(model, stack: LayerStack, *, max_cells: int = 1 << 20,
+                map_fn=None) -> np.ndarray:
+    """Predict a fitted model over the grid block by block (float32, NaN off-mask).
+
+    Parameters
+    ----------
+    model : NicheModel
+        Fitted.
+    stack : LayerStack
+        Predictors in the order the model was fitted with.
+    max_cells : int, default 1048576
+        Cells per block (memory per block is about ``max_cells * n_layers * 4`` bytes).
+    map_fn : callable, optional
+        ``map``-like callable of a parallel executor.  Used for stacks streamed from
+        disk, where each worker reads its own windows; in-memory stacks are predicted
+        in this process (sending their blocks to workers would cost more than it saves).
+    """
+    import functools
+
+    grid = stack.grid
+    out = np.full(grid.shape, np.nan, dtype=np.float32)
+    if map_fn is not None and stack.streamed:
+        step = max(1, int(max_cells) // max(grid.n_cols, 1))
+        bands = [(r0, min(grid.n_rows, r0 + step)) for r0 in range(0, grid.n_rows, step)]
+        task = functools.partial(_predict_rows, model, stack, max_cells=max_cells)
+        for (r0, r1), values in zip(bands, map_fn(task, bands)):
+            block = out[r0:r1]
+            block[grid.mask[r0:r1]] = values
+        return out
     for sl, X, valid in stack.iter_blocks(max_cells):
         if X.shape[0]:
             block = out[sl]
@@ -362,7 +399,7 @@ def model_taxon(
     from screener.models.inspect import permutation_importance, response_curves
 
     family_maps, evaluations, thresholds_by_family, rec_scores = {}, {}, {}, {}
-    bg_scores, curves, importance = {}, {}, {}
+    bg_scores, curves, importance, baselines = {}, {}, {}, {}
     for family in s.models.families:
         params = _family_params(s, family)
         progress.step(f"{taxon}: {family} model ({rec.n} records, {bg.n} background)")
@@ -383,7 +420,20 @@ def model_taxon(
             random_state=seed,
             map_fn=map_fn,
         )
-        m = predict_map(model, stack)
+        if rec.n >= s.evaluation.jackknife_below:
+            # the spatial blocks above are the main estimate; a checkerboard and random
+            # k-fold (the non-spatial baseline) show how much spatial structure matters
+            for part in ("checkerboard", "random-kfold"):
+                other = evaluate_family(
+                    family, params, P, B, presence_xy=rec_xy, background_xy=bg_xy,
+                    study_area=B, jackknife_below=s.evaluation.jackknife_below,
+                    partition=part, n_null=0, random_state=seed, map_fn=map_fn,
+                )
+                baselines.setdefault(family, {}).update({
+                    f"auc_{part}": other.auc,
+                    f"omission_mtp_{part}": other.omission_mtp,
+                })
+        m = predict_map(model, stack, map_fn=map_fn)
         scores = training_presence_scores(model, P)
         b_scores = model.predict(B)
         th = compute_thresholds(
@@ -416,6 +466,7 @@ def model_taxon(
         row = {"taxon": taxon, "algorithm": family}
         row.update({k: v for k, v in ev.as_row().items() if k not in ("family", "taxon")})
         row.setdefault("n_records", rec.n)
+        row.update(baselines.get(family, {}))
         th = thresholds_by_family[family]
         row.update(_threshold_columns(th))
         row["ensemble_weight"] = weights[family]

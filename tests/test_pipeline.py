@@ -130,3 +130,22 @@ def test_debrief_scores_a_survey(demo_run, tmp_path):
         binomtest(1, 1, summary["area_share"], alternative="greater").pvalue
     )
     assert np.isfinite(summary["auc"])
+
+
+def test_spatial_partitions_with_non_spatial_baseline(tmp_path):
+    # Above the jackknife limit, evaluation uses spatial blocks, and reports a
+    # checkerboard and random k-fold beside them (Radosavljevic & Anderson 2014).
+    from screener.pipeline import load_inputs, model_taxon
+    from screener.project import load_project
+
+    project = write_demo_scenario(tmp_path / "scen", size="small")
+    project.write_text(project.read_text()
+                       + "\n[evaluation]\njackknife_below = 5\nn_null = 0\n")
+    intake = load_inputs(load_project(project))
+    taxon = max(intake.records.taxa, key=lambda t: intake.records.taxa[t].n)
+    res = model_taxon(intake, taxon)
+    row = next(r for r in res.evaluation if r["algorithm"] == "ellipsoid")
+    assert row["method"] == "block"
+    for part in ("checkerboard", "random-kfold"):
+        assert 0.0 <= row[f"auc_{part}"] <= 1.0
+    assert row["jackknife_p"] is None or np.isnan(row["jackknife_p"])

@@ -69,3 +69,21 @@ def test_model_maps_identical_when_streamed(tmp_path):
     assert_array_equal(a.suitability, b.suitability)
     assert_array_equal(a.mess, b.mess)
     assert a.evaluation == b.evaluation
+
+
+def test_parallel_prediction_over_windows_matches_serial(small_layers):
+    # Each worker reads its own windows of a streamed stack; the map is identical.
+    from screener.models import make_model
+    from screener.parallel import make_executor
+    from screener.pipeline import predict_map
+
+    streamed = read_layers(small_layers, memory_mb=0.004)
+    rng = np.random.default_rng(0)
+    B = streamed.values_at(rng.integers(3, 30, 300), rng.integers(3, 40, 300))
+    model = make_model("ellipsoid").fit(B[:12], B)
+    serial = predict_map(model, streamed, max_cells=200)
+    with make_executor("processes", n_workers=2) as ex:
+        parallel = predict_map(model, streamed, max_cells=200, map_fn=ex.map)
+    assert_array_equal(serial, parallel)
+    eager = predict_map(model, read_layers(small_layers), max_cells=200)
+    assert_array_equal(serial, eager)

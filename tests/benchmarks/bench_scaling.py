@@ -47,7 +47,8 @@ import numpy as np  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[2]
 N_LAYERS = 20
-MEMORY_MB = 512.0
+#: memory_mb for streamed stacks: small enough that every grid here is streamed
+MEMORY_MB = 64.0
 
 
 def make_grid(folder: Path, side: int, seed: int = 0):
@@ -96,6 +97,10 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
     stack = read_layers(paths, memory_mb=MEMORY_MB)
     grid = stack.grid
     n = grid.n_cells
+    if stage.startswith("predict") or stage == "novelty":
+        # the kernels are compared on values in memory where the stack fits (the
+        # reference is in-memory arithmetic); the largest grid stays streamed
+        stack = read_layers(paths, memory_mb=None if n <= 4_000_000 else MEMORY_MB)
     rng = np.random.default_rng(1)
     idx = rng.choice(np.flatnonzero(grid.mask.ravel()), 2000, replace=False)
     rr, cc = np.unravel_index(idx, grid.shape)
@@ -351,7 +356,9 @@ def write_doc(sizes, results, chains, speed, args):
             )
         if len(xs) >= 2:
             exps[stage] = float(np.polyfit(xs, ys, 1)[0])
-    lines += ["", "| stage | scaling exponent |", "| --- | --- |"]
+    lines += ["", "I/O stages read a streamed stack; prediction and novelty run on a stack in "
+              "memory up to 4e6 cells and streamed above (so the largest row includes reads "
+              "from disk).", "", "| stage | scaling exponent |", "| --- | --- |"]
     lines += [f"| {k} | {v:.2f} |" for k, v in exps.items()]
     lines += ["", "Whole per-cell chain (read, layer checks, fit, predict, MESS, thresholds, "
               "cost distance, write), one subprocess each:", "",
