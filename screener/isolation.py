@@ -223,15 +223,27 @@ class _Nearest:
         x, y, z = self._ecef.transform(lon, lat, np.zeros_like(lon))
         return np.column_stack([x, y, z])
 
-    def query(self, rows, cols):
-        """Geodesic km to the nearest cell of the set, and its index."""
-        lon, lat = self.grid.lonlat(np.asarray(rows), np.asarray(cols))
-        lon, lat = np.atleast_1d(lon), np.atleast_1d(lat)
-        if self.tree is None or lon.size == 0:
-            return np.full(lon.size, np.inf), np.full(lon.size, -1)
-        _, j = self.tree.query(self._xyz(lon, lat))
-        _, _, d = self.grid.geod.inv(lon, lat, self.lon[j], self.lat[j])
-        return np.asarray(d, float) / 1000.0, j
+    def query(self, rows, cols, chunk: int = 1 << 18):
+        """Geodesic km to the nearest cell of the set, and its index.
+
+        Cells are handled ``chunk`` at a time so temporaries stay small on big grids.
+        """
+        rows = np.atleast_1d(np.asarray(rows))
+        cols = np.atleast_1d(np.asarray(cols))
+        n = rows.size
+        if self.tree is None or n == 0:
+            return np.full(n, np.inf), np.full(n, -1)
+        d_out = np.empty(n, dtype=np.float64)
+        j_out = np.empty(n, dtype=np.int64)
+        for a in range(0, n, chunk):
+            b = min(n, a + chunk)
+            lon, lat = self.grid.lonlat(rows[a:b], cols[a:b])
+            lon, lat = np.atleast_1d(lon), np.atleast_1d(lat)
+            _, j = self.tree.query(self._xyz(lon, lat))
+            _, _, d = self.grid.geod.inv(lon, lat, self.lon[j], self.lat[j])
+            d_out[a:b] = np.asarray(d, float) / 1000.0
+            j_out[a:b] = j
+        return d_out, j_out
 
 
 def _boundary(mask: np.ndarray) -> np.ndarray:

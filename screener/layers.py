@@ -52,11 +52,19 @@ class LayerSource:
 
     def read(self, src, window=None) -> np.ndarray:
         """Read from an open dataset as float32, NaN for nodata."""
-        raw = src.read(1, window=window, masked=True)
-        values = np.ma.filled(raw.astype(np.float32), np.nan)
-        if self.nodata_extra is not None:
-            values[values == np.float32(self.nodata_extra)] = np.nan
-        values[~np.isfinite(values)] = np.nan
+        from rasterio.enums import MaskFlags
+
+        if src.nodata is None and MaskFlags.per_dataset in src.mask_flag_enums[0]:
+            # an internal mask band instead of a nodata value: let GDAL apply it
+            raw = src.read(1, window=window, masked=True)
+            values = np.ma.filled(raw.astype(np.float32), np.nan)
+        else:
+            values = src.read(1, window=window, out_dtype=np.float32)
+        bad = ~np.isfinite(values)
+        for nd in (src.nodata, self.nodata_extra):
+            if nd is not None and np.isfinite(nd):
+                bad |= values == np.float32(nd)
+        values[bad] = np.nan
         if self.category is not None:
             values = np.where(
                 np.isnan(values), np.nan, (values == np.float32(self.category))
@@ -122,8 +130,13 @@ class LayerStack:
                 + suggest(name, self.names)
             ) from None
 
-    def read_rows(self, rows: slice) -> np.ndarray:
-        """Values of every layer in a band of rows, shape (n_layers, n, n_cols)."""
+    def read_rows(self, rows: slice, *, fill_invalid: bool = True) -> np.ndarray:
+        """Values of every layer in a band of rows, shape (n_layers, n, n_cols).
+
+        With ``fill_invalid`` (default) cells outside the valid mask are NaN in every
+        layer; without it they keep whatever the file holds (cheaper, for callers
+        that only look at valid cells).
+        """
         if self.data is not None:
             return self.data[:, rows]
         import rasterio
@@ -145,11 +158,15 @@ class LayerStack:
         finally:
             for ds in opened.values():
                 ds.close()
-        out[:, ~self.grid.mask[r0:r1]] = np.nan
+        if fill_invalid:
+            out[:, ~self.grid.mask[r0:r1]] = np.nan
         return out
 
     def _rows_per_block(self, max_cells: int) -> int:
-        return max(1, int(max_cells) // max(self.grid.n_cols, 1))
+        rows = max(1, int(max_cells) // max(self.grid.n_cols, 1))
+        if self.streamed and rows >= 256:
+            rows -= rows % 256  # whole rows of 256-row tiles: no tile is decoded twice
+        return rows
 
     def layer(self, name: str) -> np.ndarray:
         """One layer by name, shape (n_rows, n_cols), float32."""
@@ -237,7 +254,7 @@ class LayerStack:
         for r0 in range(start, n_rows, step):
             sl = slice(r0, min(n_rows, r0 + step))
             valid = self.grid.mask[sl]
-            band = self.read_rows(sl).reshape(self.n_layers, -1)
+            band = self.read_rows(sl, fill_invalid=False).reshape(self.n_layers, -1)
             if valid.all():
                 X = band.T  # no copy: a column-major (cells, layers) view
             else:

@@ -251,19 +251,32 @@ def chain_run(folder: Path) -> dict:
 
 
 def replicate_speedup(repeats: int) -> dict:
+    """One vs two local processes on replicate-bound work.
+
+    Two workloads: the environmental equivalency test (1000 replicates of about a
+    millisecond each: overhead-bound) and the null-model test of AUC for the
+    point-process family (40 replicates, each a model fit of about 0.2 s).
+    """
+    from screener.evaluation import null_model_test
     from screener.overlap import environmental_space, equivalency_test
     from screener.parallel import make_executor
 
     rng = np.random.default_rng(3)
     space = environmental_space(rng.normal(0, 1, (50, 4)), rng.normal(0.3, 1, (50, 4)),
                                 rng.normal(0, 2, (3000, 4)), rng.normal(0, 2, (3000, 4)))
+    bg = rng.normal(0, 1, (5000, 6))
+    pres = bg[:12] * 0.3 + 1.0
     out = {}
     for kind, n in (("serial", 1), ("processes", 1), ("processes", 2)):
         with make_executor(kind, n_workers=None if kind == "serial" else n) as ex:
             ex.map(abs, [1, 2])  # start the workers before timing
-            out[f"{kind}-{n}"] = timed(
+            out[f"equivalency-1000, {kind}-{n}"] = timed(
                 lambda ex=ex: equivalency_test(space, n_replicates=1000, random_state=0,
                                                executor=ex), repeats)
+            out[f"null-model ppm-40, {kind}-{n}"] = timed(
+                lambda ex=ex: null_model_test("ppm", {"feature_classes": "lq"}, pres, bg,
+                                              None, observed_auc=0.9, n_null=40,
+                                              random_state=0, map_fn=ex.map), repeats)
     return out
 
 
@@ -276,6 +289,10 @@ def main():
                                  formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--sizes", default="1e6,4e6,1.6e7")
     ap.add_argument("--repeats", type=int, default=2)
+    ap.add_argument("--stages", default=",".join(STAGES),
+                    help="comma-separated subset of stages")
+    ap.add_argument("--speedup-only", action="store_true",
+                    help="only the one-vs-two-process replicate measurement")
     ap.add_argument("--stage", help=argparse.SUPPRESS)
     ap.add_argument("--folder", help=argparse.SUPPRESS)
     ap.add_argument("--chain", action="store_true", help=argparse.SUPPRESS)
@@ -287,6 +304,12 @@ def main():
         print(json.dumps(chain_run(Path(args.folder))))
         return
 
+    if args.speedup_only:
+        speed = replicate_speedup(args.repeats)
+        for k, v in speed.items():
+            print(f"| {k} | {v[0]:.2f} | {v[1]:.2f} |")
+        return
+    stages = args.stages.split(",")
     sizes = [int(float(s)) for s in args.sizes.split(",")]
     results = {s: {} for s in STAGES}
     chains = []
@@ -298,7 +321,7 @@ def main():
             make_grid(folder, side)
             print(f"grid {side} x {side}: written in {time.perf_counter() - t0:.1f} s",
                   flush=True)
-            for stage in STAGES:
+            for stage in stages:
                 cmd = [sys.executable, __file__, "--stage", stage, "--folder", str(folder),
                        "--repeats", str(args.repeats)]
                 out = subprocess.run(cmd, capture_output=True, text=True)
@@ -364,12 +387,14 @@ def write_doc(sizes, results, chains, speed, args):
               "cost distance, write), one subprocess each:", "",
               "| cells | seconds | peak memory (MB) |", "| --- | --- | --- |"]
     lines += [f"| {c['cells']:,} | {c['seconds']:.1f} | {c['peak_mb']:.0f} |" for c in chains]
-    s1 = speed["processes-1"][0]
-    s2 = speed["processes-2"][0]
-    lines += ["", "Environmental equivalency test, 1000 replicates, 2 x 50 records:", "",
-              "| executor | best (s) | median (s) |", "| --- | --- | --- |"]
+    lines += ["", "Replicate-bound work on one and two local processes:", "",
+              "| workload, executor | best (s) | median (s) |", "| --- | --- | --- |"]
     lines += [f"| {k} | {v[0]:.2f} | {v[1]:.2f} |" for k, v in speed.items()]
-    lines += ["", f"Two processes vs one: {s1 / s2:.2f}x faster.", ""]
+    for work in ("equivalency-1000", "null-model ppm-40"):
+        s1 = speed[f"{work}, processes-1"][0]
+        s2 = speed[f"{work}, processes-2"][0]
+        lines.append(f"\n{work}: two processes vs one, {s1 / s2:.2f}x faster.")
+    lines.append("")
     out = ROOT / "docs" / "benchmarks" / "scaling.md"
     out.write_text("\n".join(lines))
     print("\n".join(lines))
