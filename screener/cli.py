@@ -36,9 +36,10 @@ overwrite_opt = click.option(
     "--overwrite", is_flag=True, help="Replace the output folder if it exists."
 )
 scheduler_opt = click.option(
-    "--scheduler", default=None, metavar="serial|processes|dask|ADDRESS",
-    help="Where independent work runs: serial, local processes, a local Dask cluster, "
-    "or a Dask scheduler address (tcp://host:8786). Default: [compute] scheduler.",
+    "--scheduler", default=None, metavar="auto|serial|processes|dask|ADDRESS",
+    help="Where independent work runs: auto (processes for heavy work, else serial), "
+    "serial, local processes, a local Dask cluster, or a Dask scheduler address "
+    "(tcp://host:8786). Default: [compute] scheduler.",
 )
 cache_opt = click.option(
     "--cache-dir", default=None, type=click.Path(file_okay=False, path_type=Path),

@@ -813,6 +813,26 @@ def _versions() -> dict:
     return out
 
 
+#: Families whose fits take a tenth of a second or more: their replicates are worth
+#: sending to worker processes.
+SLOW_FAMILIES = ("ppm", "forest")
+
+
+def resolve_scheduler(scheduler: str, intake: Intake) -> str:
+    """Turn ``"auto"`` into "processes" or "serial"; other values pass through.
+
+    "auto" picks local processes when tasks are heavy enough to repay the pool's
+    start-up and per-task costs: a slow family (ppm, forest) is fitted per replicate,
+    or the layers are streamed from disk (prediction windows).  Otherwise tasks take
+    milliseconds and serial is faster (measured on the demo: see docs/performance.md).
+    """
+    if scheduler != "auto":
+        return scheduler
+    s = intake.settings
+    heavy = any(f in SLOW_FAMILIES for f in s.models.families) or intake.stack.streamed
+    return "processes" if heavy else "serial"
+
+
 def make_run_executor(scheduler: str, n_workers: int = 0):
     """Executor for a run: "serial", "processes", "dask" (local) or a Dask address."""
     from screener.parallel import make_executor
@@ -883,7 +903,8 @@ def run_analysis(
         intake = load_inputs(s, progress=progress)
     for line in intake.summary_lines()[:3]:
         progress.step(line)
-    sched = scheduler or s.compute.scheduler
+    sched = resolve_scheduler(scheduler or s.compute.scheduler, intake)
+    progress.step(f"scheduler: {sched}")
     with make_run_executor(sched, s.compute.n_workers) as executor:
         progress.stage(
             f"Fitting {', '.join(s.models.families)} for {len(intake.records.taxa)} taxa"

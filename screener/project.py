@@ -105,7 +105,7 @@ SCHEMA: dict = {
         "full_precision": (bool, False, "Write sensitive coordinates at full precision."),
     },
     "compute": {
-        "scheduler": (str, "serial", '"serial", "processes", or a Dask scheduler address.'),
+        "scheduler": (str, "auto", '"auto", "serial", "processes", "dask" or a Dask address.'),
         "n_workers": (int, 0, "Worker processes (0 = all cores)."),
         "memory_mb": (float, 4096.0, "Memory for layer values (MB); larger stacks stream from disk."),
     },

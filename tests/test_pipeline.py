@@ -149,3 +149,16 @@ def test_spatial_partitions_with_non_spatial_baseline(tmp_path):
     for part in ("checkerboard", "random-kfold"):
         assert 0.0 <= row[f"auc_{part}"] <= 1.0
     assert row["jackknife_p"] is None or np.isnan(row["jackknife_p"])
+
+
+def test_auto_scheduler_uses_processes_only_for_heavy_work(tmp_path):
+    from screener.pipeline import load_inputs, resolve_scheduler
+    from screener.project import load_project
+
+    project = write_demo_scenario(tmp_path / "scen", size="small")
+    s = load_project(project)
+    intake = load_inputs(s)
+    assert resolve_scheduler("auto", intake) == "serial"
+    s.models["families"] = ["ellipsoid", "ppm"]
+    assert resolve_scheduler("auto", intake) == "processes"
+    assert resolve_scheduler("tcp://127.0.0.1:8786", intake) == "tcp://127.0.0.1:8786"
