@@ -203,7 +203,8 @@ def path_profile(
     if bad.any():
         lab, n = ndi.label(bad)
         gap = float(np.max(ndi.sum(share, lab, np.arange(1, n + 1))))
-    depth = float(np.nanmin(np.asarray(suitability, float)[path[:, 0], path[:, 1]]))
+    # index first: converting the whole map per path would cost a grid copy per site
+    depth = float(np.nanmin(np.asarray(suitability)[path[:, 0], path[:, 1]].astype(float)))
     return PathProfile(gap, depth, float(steps.sum()), int(bad.sum()))
 
 
@@ -244,6 +245,17 @@ class _Nearest:
             d_out[a:b] = np.asarray(d, float) / 1000.0
             j_out[a:b] = j
         return d_out, j_out
+
+
+def _cells_by_label(labels: np.ndarray, n: int) -> list:
+    """Flat indices of the cells of labels 1..n, one array per label (one sort)."""
+    flat = labels.ravel()
+    idx = np.flatnonzero(flat > 0)
+    lab = flat[idx]
+    order = np.argsort(lab, kind="stable")
+    idx, lab = idx[order], lab[order]
+    bounds = np.searchsorted(lab, np.arange(1, n + 2))
+    return [idx[bounds[k]:bounds[k + 1]] for k in range(n)]
 
 
 def _boundary(mask: np.ndarray) -> np.ndarray:
@@ -358,51 +370,90 @@ def _check_inputs(grid, suitability, thresholds, records, name):
     return taxa, out
 
 
-def _site_stats(grid, site_cells, n_sites, clade, agreement, novelty, elevation):
-    idx = np.arange(1, n_sites + 1)
-    area = np.ascontiguousarray(grid.cell_area_km2, dtype=np.float64)
-    s = np.where(np.isfinite(clade), clade, 0.0)
-    n_cells = ndi.sum(np.ones(grid.shape), site_cells, idx)
-    a = ndi.sum(area, site_cells, idx)
+class _SiteCells:
+    """The cells of all sites as 1-D arrays, so label reductions skip the rest of the grid.
+
+    ``scipy.ndimage`` label reductions sort their whole input; restricted to site cells
+    they cost what the sites cost, not what the grid costs.
+    """
+
+    def __init__(self, site_cells: np.ndarray, n_sites: int):
+        self.shape = site_cells.shape
+        self.flat = np.flatnonzero(site_cells.ravel() > 0)
+        self.labels = site_cells.ravel()[self.flat]
+        self.idx = np.arange(1, n_sites + 1)
+
+    def values(self, array) -> np.ndarray:
+        return np.asarray(array).ravel()[self.flat]
+
+    def reduce(self, fn, array):
+        return np.atleast_1d(fn(self.values(array), self.labels, self.idx))
+
+    def position(self, array, *, largest: bool) -> np.ndarray:
+        """(row, col) per site of its largest (or smallest) value.
+
+        Ties go to the first such cell in raster order (north-west first), so the
+        choice is deterministic.
+        """
+        v = self.values(array).astype(np.float64)
+        key = -v if largest else v
+        order = np.lexsort((self.flat, key, self.labels))  # label, then value, then cell
+        first = order[np.r_[True, np.diff(self.labels[order]) != 0]]
+        out = np.zeros((self.idx.size, 2), dtype=np.int64)
+        r, c = np.unravel_index(self.flat[first], self.shape)
+        out[self.labels[first] - 1, 0] = r
+        out[self.labels[first] - 1, 1] = c
+        return out
+
+
+def _site_stats(grid, site_cells, n_sites, clade, agreement, novelty, elevation, sc=None):
+    sc = sc if sc is not None else _SiteCells(site_cells, n_sites)
+    area = np.broadcast_to(np.asarray(grid.cell_area_km2, dtype=np.float64), grid.shape)
+    a_cells = sc.values(area)
+    s_cells = np.where(np.isfinite(sc.values(clade)), sc.values(clade), 0.0)
+    n_cells = np.bincount(sc.labels, minlength=n_sites + 1)[1:]
+    a = ndi.sum(a_cells, sc.labels, sc.idx)
     stats = {
-        "area_km2": a,
+        "area_km2": np.atleast_1d(a),
         "n_cells": n_cells.astype(np.int64),
-        "mean_suitability": ndi.sum(s * area, site_cells, idx) / a,
-        "max_suitability": ndi.maximum(s, site_cells, idx),
+        "mean_suitability": np.atleast_1d(ndi.sum(s_cells * a_cells, sc.labels, sc.idx))
+        / np.atleast_1d(a),
+        "max_suitability": np.atleast_1d(ndi.maximum(s_cells, sc.labels, sc.idx)),
     }
 
-    def nanmean(x):
-        x = np.asarray(x, float)
+    def nanmean(values):
+        x = np.asarray(values, float)
         ok = np.isfinite(x)
-        num = ndi.sum(np.where(ok, x, 0.0), site_cells, idx)
-        den = ndi.sum(ok.astype(float), site_cells, idx)
+        num = np.atleast_1d(ndi.sum(np.where(ok, x, 0.0), sc.labels, sc.idx))
+        den = np.atleast_1d(ndi.sum(ok.astype(float), sc.labels, sc.idx))
         with np.errstate(invalid="ignore", divide="ignore"):
             return np.where(den > 0, num / np.where(den > 0, den, 1), np.nan)
 
     stats["agreement"] = (
-        nanmean(agreement) if agreement is not None else np.full(n_sites, np.nan)
+        nanmean(sc.values(agreement)) if agreement is not None else np.full(n_sites, np.nan)
     )
     if novelty is not None:
-        nov = np.asarray(novelty, float)
+        nov = sc.values(novelty).astype(float)
         stats["novel_share"] = nanmean(
             np.where(np.isfinite(nov), (nov < 0).astype(float), np.nan)
         )
     else:
         stats["novel_share"] = np.full(n_sites, np.nan)
     if elevation is not None:
-        e = np.asarray(elevation, float)
+        e = sc.values(elevation).astype(float)
         ok = np.isfinite(e)
-        stats["elevation_min"] = ndi.minimum(np.where(ok, e, np.inf), site_cells, idx)
-        stats["elevation_max"] = ndi.maximum(np.where(ok, e, -np.inf), site_cells, idx)
+        stats["elevation_min"] = np.atleast_1d(
+            ndi.minimum(np.where(ok, e, np.inf), sc.labels, sc.idx))
+        stats["elevation_max"] = np.atleast_1d(
+            ndi.maximum(np.where(ok, e, -np.inf), sc.labels, sc.idx))
         for k in ("elevation_min", "elevation_max"):
             stats[k] = np.where(np.isfinite(stats[k]), stats[k], np.nan)
     else:
         stats["elevation_min"] = np.full(n_sites, np.nan)
         stats["elevation_max"] = np.full(n_sites, np.nan)
-    best = ndi.maximum_position(
-        np.where(np.isfinite(clade), clade, -np.inf), site_cells, idx
-    )
-    best = np.array(best, dtype=np.int64).reshape(-1, 2)
+    best = sc.position(
+        np.where(np.isfinite(clade), clade, -np.inf), largest=True
+    ) if n_sites else np.zeros((0, 2), np.int64)
     return stats, best
 
 
@@ -463,22 +514,17 @@ def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
     n_sites = int(site_cells.max()) if site_cells.size else 0
     idx = np.arange(1, n_sites + 1)
 
+    sc = _SiteCells(site_cells, n_sites)
     stats, best = _site_stats(
-        grid, site_cells, n_sites, clade, p["agreement"], p["novelty"], p["elevation"]
+        grid, site_cells, n_sites, clade, p["agreement"], p["novelty"], p["elevation"], sc
     )
     cost_to = {}
     cheapest = {}
     for t in taxa:
         c = cost[t].cost
-        cost_to[t] = (
-            np.atleast_1d(ndi.minimum(c, site_cells, idx)) if n_sites else np.zeros(0)
-        )
+        cost_to[t] = sc.reduce(ndi.minimum, c) if n_sites else np.zeros(0)
         cheapest[t] = (
-            np.array(ndi.minimum_position(c, site_cells, idx), dtype=np.int64).reshape(
-                -1, 2
-            )
-            if n_sites
-            else np.zeros((0, 2), np.int64)
+            sc.position(c, largest=False) if n_sites else np.zeros((0, 2), np.int64)
         )
 
     # nearest record per site (min over the site's cells)
@@ -561,9 +607,7 @@ def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
             continue  # unconnected, or the two ranges touch: no gap between them
         corridor |= tot <= lcd * (1 + p["corridor_slack"])
     between = (
-        np.atleast_1d(ndi.maximum(corridor.astype(np.int8), site_cells, idx)) > 0
-        if n_sites
-        else np.zeros(0, bool)
+        sc.reduce(ndi.maximum, corridor.astype(np.int8)) > 0 if n_sites else np.zeros(0, bool)
     )
     for k, rec in enumerate(rows_out):
         rec["between_ranges"] = bool(between[k])
@@ -709,19 +753,23 @@ def find_candidates(
     rows, paths_out = [], {}
     site_lab = np.zeros(grid.shape, dtype=np.int32)
     entries = []
+    # each site's cells as flat indices, found in one pass (not one grid scan per site)
+    mtp_cells = _cells_by_label(mtp.site_cells, len(mtp.rows))
+    relaxed_flat = relaxed.site_cells.ravel() if relaxed is not None else None
     for rec in mtp.rows:
-        cells = mtp.site_cells == rec["_local"]
+        cells = mtp_cells[rec["_local"] - 1]
         if relaxed is None:
             stab = "untested"
             block = int(mtp.labels[rec["row"], rec["col"]])
         else:
-            stab = "both" if (relaxed.site_cells[cells] > 0).any() else "mtp-only"
+            stab = "both" if (relaxed_flat[cells] > 0).any() else "mtp-only"
             block = int(relaxed.labels[rec["row"], rec["col"]])
         entries.append((rec, "mtp", stab, block, cells, mtp.paths.get(rec["_local"])))
     if relaxed is not None:
-        mtp_any = mtp.site_cells > 0
+        mtp_any = (mtp.site_cells > 0).ravel()
+        relaxed_cells = _cells_by_label(relaxed.site_cells, len(relaxed.rows))
         for rec in relaxed.rows:
-            cells = relaxed.site_cells == rec["_local"]
+            cells = relaxed_cells[rec["_local"] - 1]
             if mtp_any[cells].any():
                 continue
             block = int(relaxed.labels[rec["row"], rec["col"]])
@@ -753,11 +801,12 @@ def find_candidates(
             relaxed_block=block if block > 0 else -1,
         )
         rows.append(row)
-        site_lab[cells] = sid
+        site_lab.ravel()[cells] = sid
         if path is not None:
             paths_out[sid] = path
-    for pid in mtp.range_ids:
-        site_lab[(mtp.labels == pid) & (site_lab == 0)] = -int(pid)
+    in_range = np.isin(mtp.labels, mtp.range_ids) & (site_lab == 0)
+    site_lab[in_range] = -mtp.labels[in_range]
+    del in_range
 
     cols = (
         [
@@ -814,7 +863,8 @@ def find_candidates(
             "range_id": mtp.range_ids.astype(np.int64),
             "taxa": [",".join(mtp.range_taxa[int(i)]) for i in mtp.range_ids],
             "area_km2": [float(mtp.patch_area[i - 1]) for i in mtp.range_ids],
-            "n_cells": [int(np.sum(mtp.labels == i)) for i in mtp.range_ids],
+            "n_cells": [int(n) for n in np.bincount(
+                mtp.labels.ravel(), minlength=int(mtp.labels.max()) + 1)[mtp.range_ids]],
             "n_records": [mtp.records_per_range[int(i)] for i in mtp.range_ids],
         }
     )
