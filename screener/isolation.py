@@ -512,7 +512,6 @@ def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
             lut2[ok] = np.arange(n_unocc + 1, n_unocc + 1 + ok.size)
             site_cells = np.where(sub > 0, lut2[sub], site_cells)
     n_sites = int(site_cells.max()) if site_cells.size else 0
-    idx = np.arange(1, n_sites + 1)
 
     sc = _SiteCells(site_cells, n_sites)
     stats, best = _site_stats(

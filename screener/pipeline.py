@@ -10,6 +10,7 @@ without redoing finished stages.
 from __future__ import annotations
 
 import hashlib
+import io
 import json
 import logging
 import platform
@@ -23,7 +24,7 @@ import numpy as np
 
 from screener import __version__
 from screener.background import accessible_area, draw_background
-from screener.errors import InputError, LayerError, ScreenerWarning
+from screener.errors import InputError, LayerError, ScreenerWarning, suggest
 from screener.layers import LayerStack, check_layers, hillshade, read_layers, slope_aspect
 from screener.project import Settings
 from screener.records import RecordSet, read_records, validate_records
@@ -165,8 +166,6 @@ def _read_points_csv(path, what: str, need=("longitude", "latitude")):
     from screener.records import _decode
 
     text = _decode(Path(path).read_bytes(), str(path), None)
-    import io
-
     try:
         df = pd.read_csv(io.StringIO(text))
     except Exception as exc:  # pandas raises several parser errors
@@ -174,8 +173,6 @@ def _read_points_csv(path, what: str, need=("longitude", "latitude")):
     df.columns = [str(c).strip().lower() for c in df.columns]
     for c in need:
         if c not in df.columns:
-            from screener.errors import suggest
-
             raise InputError(
                 f"{path} ({what}) needs a {c!r} column; it has {', '.join(df.columns)}."
                 + suggest(c, df.columns)
@@ -221,8 +218,6 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Inta
         elevation = None
         if s.layers.elevation:
             if s.layers.elevation not in stack.names:
-                from screener.errors import suggest
-
                 raise LayerError(
                     f"[layers] elevation = {s.layers.elevation!r} names no layer; layers "
                     f"are {', '.join(stack.names)}." + suggest(s.layers.elevation, stack.names)
@@ -236,8 +231,6 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Inta
                     stack = stack.with_layers(add, units=["degrees"] * len(add))
         for name in s.layers.exclude:
             if name not in stack.names:
-                from screener.errors import suggest
-
                 raise LayerError(
                     f"[layers] exclude names {name!r}, which is not a layer."
                     + suggest(name, stack.names)
@@ -306,7 +299,7 @@ def _predict_rows(model, stack: LayerStack, rows: tuple, max_cells: int):
     out = []
     r0, r1 = rows
     sub = stack.grid.mask[r0:r1]
-    for sl, X, valid in stack.iter_blocks(max_cells, rows=slice(r0, r1)):
+    for _, X, _ in stack.iter_blocks(max_cells, rows=slice(r0, r1)):
         out.append(model.predict(X).astype(np.float32) if X.shape[0] else
                    np.empty(0, np.float32))
     return np.concatenate(out) if out else np.empty(int(sub.sum()), np.float32)
