@@ -740,6 +740,7 @@ def evaluate_family(
         auc_train=auc_train,
         threshold_mtp=float(finite.min()) if finite.size else math.nan,
     )
+    ev.extra["model"] = full  # the fitted full-data model, for mapping
 
     if n < jackknife_below:
         jk = jackknife(

@@ -369,7 +369,6 @@ def model_taxon(
     TaxonResult
     """
     from screener.evaluation import evaluate_family
-    from screener.models import make_model
     from screener.models.base import training_presence_scores
     from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
     from screener.thresholds import compute_thresholds
@@ -396,10 +395,6 @@ def model_taxon(
     for family in s.models.families:
         params = _family_params(s, family)
         progress.step(f"{taxon}: {family} model ({rec.n} records, {bg.n} background)")
-        model = make_model(family, random_state=seed, **params) if _takes_seed(
-            family
-        ) else make_model(family, **params)
-        model.fit(P, B)
         ev = evaluate_family(
             family,
             params,
@@ -413,6 +408,7 @@ def model_taxon(
             random_state=seed,
             map_fn=map_fn,
         )
+        model = ev.extra["model"]  # the evaluated model is the one mapped (fitted once)
         if rec.n >= s.evaluation.jackknife_below:
             # the spatial blocks above are the main estimate; a checkerboard and random
             # k-fold (the non-spatial baseline) show how much spatial structure matters

@@ -252,10 +252,9 @@ def _clade_map(suitability) -> np.ndarray:
         ]
         if not maps:
             raise InputError("no suitability maps were given to score the survey")
-        out = maps[0].copy()
-        for m in maps[1:]:
-            out = np.fmax(out, m)
-        return out
+        from screener.isolation import clade_suitability
+
+        return clade_suitability(dict(enumerate(maps)))
     return np.asarray(suitability, float)
 
 

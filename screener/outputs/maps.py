@@ -686,11 +686,10 @@ def _background(ax, result, window=None):
             alpha=0.9,
         )
         return "hillshade of the elevation layer"
-    stack = [np.asarray(t.suitability, float) for t in result.taxa.values()]
-    if stack:
-        best = np.full(grid.shape, np.nan)
-        for s in stack:
-            best = np.fmax(best, s)
+    if result.taxa:
+        from screener.isolation import clade_suitability
+
+        best = clade_suitability({n: t.suitability for n, t in result.taxa.items()})
         ax.imshow(
             best,
             extent=_extent(grid),

@@ -262,10 +262,11 @@ def suggest_sampling_points(
 
 
 def _clade_suitability(result) -> np.ndarray:
-    best = np.full(result.grid.shape, np.nan)
-    for t in result.taxa.values():
-        best = np.fmax(best, np.asarray(t.suitability, float))
-    return best
+    from screener.isolation import clade_suitability
+
+    if not result.taxa:
+        return np.full(result.grid.shape, np.nan)
+    return clade_suitability({n: t.suitability for n, t in result.taxa.items()})
 
 
 def site_sampling_points(
