@@ -31,10 +31,11 @@ source sets (one per known range or taxon) without rebuilding.
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
+from scipy import ndimage as ndi
 from scipy.sparse.csgraph import dijkstra
 from skimage.graph import MCP_Geometric
 
@@ -65,26 +66,57 @@ class CostSurface:
 
     Attributes
     ----------
-    cost : ndarray of float64, shape (n_rows, n_cols)
+    cost : ndarray of float64 or float32, shape (n_rows, n_cols)
         Accumulated cost (resistance units x km); 0 on sources, ``inf`` where no
-        source is reachable or the cell is impassable.
-    predecessor : ndarray of int32, shape (n_rows, n_cols)
-        Flat index (``row * n_cols + col``) of the previous cell on the cheapest path
-        from the sources; ``-1`` on sources, ``-2`` where unreached.
+        source is reachable or the cell is impassable.  float64 unless the run asked
+        for float32 (:meth:`CostGraph.run`).
     sources : ndarray of int64, shape (n_sources, 2)
         The (row, col) source cells that were passable.
     backend : str
         ``"mcp"`` or ``"dijkstra"``.
+    traceback : ndarray, shape (n_rows, n_cols)
+        How to step back towards the sources, kept in each backend's compact form:
+        with ``"mcp"``, the int16 index of the neighbour offset a cell was reached by
+        (``-1`` on sources, ``-2`` unreached); with ``"dijkstra"``, the int32 flat
+        index of the previous cell.  Use :attr:`predecessor` or
+        :func:`least_cost_path` rather than reading it directly.
     """
 
     cost: np.ndarray
-    predecessor: np.ndarray
     sources: np.ndarray
     backend: str
+    traceback: np.ndarray = field(repr=False)
+    #: flat index step of each MCP offset (``None`` for dijkstra)
+    flat_offsets: np.ndarray | None = field(default=None, repr=False)
 
     @property
     def shape(self) -> tuple:
         return self.cost.shape
+
+    @property
+    def predecessor(self) -> np.ndarray:
+        """ndarray of int32, shape (n_rows, n_cols): flat index (``row * n_cols +
+        col``) of the previous cell on the cheapest path from the sources; ``-1`` on
+        sources, ``-2`` where unreached.  Built on request (4 bytes per cell)."""
+        if self.flat_offsets is None:
+            return self.traceback
+        tb = self.traceback
+        pred = np.arange(tb.size, dtype=np.int32).reshape(tb.shape)
+        reached = tb >= 0
+        pred[reached] -= self.flat_offsets[tb[reached]].astype(np.int32)
+        pred[tb == -1] = SOURCE
+        pred[tb < -1] = UNREACHED
+        return pred
+
+    def previous_cell(self, flat: int) -> int:
+        """Flat index of the cell before ``flat`` on its cheapest path (``SOURCE`` on
+        a source, ``UNREACHED`` where no source reaches)."""
+        t = int(self.traceback.flat[flat])
+        if self.flat_offsets is None:
+            return t
+        if t >= 0:
+            return flat - int(self.flat_offsets[t])
+        return SOURCE if t == -1 else UNREACHED
 
 
 def prepare_resistance(grid: Grid, resistance) -> np.ndarray:
@@ -189,6 +221,34 @@ def _edge_arrays(grid: Grid, r: np.ndarray):
     return np.concatenate(tails), np.concatenate(heads), np.concatenate(weights)
 
 
+#: source sets larger than this are seeded from their edge cells only
+_EDGE_SEEDING_MIN = 256
+
+
+def _edge_of_sources(rc: np.ndarray, shape: tuple):
+    """Seed cells for MCP: the sources that touch a non-source cell.
+
+    Every path out of a set of sources leaves it through a source cell with a
+    non-source neighbour, and all sources cost 0, so seeding only those edge cells
+    gives the same cost everywhere outside the set; the interior cells are then set
+    to cost 0 and marked as sources.  MCP handles each start cell in Python, so a
+    known range of 10^5 cells seeded whole costs seconds; its edge is far smaller.
+
+    Returns
+    -------
+    seeds : ndarray of int64, shape (k, 2)
+    interior : ndarray of bool, shape ``shape``, or None when every source is a seed
+    """
+    if len(rc) <= _EDGE_SEEDING_MIN:
+        return rc, None
+    mask = np.zeros(shape, dtype=bool)
+    mask[rc[:, 0], rc[:, 1]] = True
+    interior = ndi.binary_erosion(mask, structure=np.ones((3, 3), bool), border_value=1)
+    if not interior.any():
+        return rc, None
+    return np.argwhere(mask & ~interior), interior
+
+
 class CostGraph:
     """A grid prepared for repeated cost-distance runs from different sources.
 
@@ -226,7 +286,10 @@ class CostGraph:
             )
         self.grid = grid
         self.backend = backend
-        self.resistance = prepare_resistance(grid, resistance)
+        resistance = prepare_resistance(grid, resistance)
+        # only passability is needed after the backend is built (1 byte per cell,
+        # not 8: MCP keeps its own padded copy of the costs)
+        self.passable = np.isfinite(resistance)
         self._mcp = None
         self._graph = None
         if backend == "mcp":
@@ -237,71 +300,72 @@ class CostGraph:
             )
             dx = float(grid.ew_step_km[0])
             self._mcp = MCP_Geometric(
-                self.resistance, fully_connected=True, sampling=(dy, dx)
+                resistance, fully_connected=True, sampling=(dy, dx)
             )
-            self._offsets = np.asarray(self._mcp.offsets, dtype=np.int64)
+            offsets = np.asarray(self._mcp.offsets, dtype=np.int64)
+            self._flat_offsets = offsets[:, 0] * grid.n_cols + offsets[:, 1]
         else:
-            tail, head, w = _edge_arrays(grid, self.resistance)
+            tail, head, w = _edge_arrays(grid, resistance)
             n = grid.n_cells
             # Explicit zero weights are kept as edges by csgraph (zero-resistance cells).
             self._graph = sp.csr_matrix((w, (tail, head)), shape=(n, n))
         log.debug("cost graph ready: backend=%s, shape=%s", backend, grid.shape)
 
-    def run(self, sources) -> CostSurface:
+    def run(self, sources, *, dtype=np.float64) -> CostSurface:
         """Accumulated cost from ``sources``.
 
         Parameters
         ----------
         sources : array_like of shape (n, 2), tuple (rows, cols) or bool mask
             Source cells; impassable ones are dropped (with a log message).
+        dtype : {numpy.float64, numpy.float32}, default float64
+            Precision of the returned ``cost``.  float32 halves the memory a kept
+            surface needs (4 bytes per cell, relative precision about 6e-8), which is
+            ample for ranking and corridors on large grids.
 
         Returns
         -------
         CostSurface
         """
+        dtype = np.dtype(dtype)
+        if dtype not in (np.float64, np.float32):
+            raise InputError(f"dtype must be float64 or float32; got {dtype}.")
         shape = self.grid.shape
         rc = _as_rc(sources, shape)
         if len(rc):
-            ok = np.isfinite(self.resistance[rc[:, 0], rc[:, 1]])
+            ok = self.passable[rc[:, 0], rc[:, 1]]
             if not ok.all():
                 log.info("%d source cells are impassable and were dropped", (~ok).sum())
             rc = np.unique(rc[ok], axis=0)
         if len(rc) == 0:
-            cost = np.full(shape, np.inf)
+            cost = np.full(shape, np.inf, dtype=dtype)
             pred = np.full(shape, UNREACHED, dtype=np.int32)
-            return CostSurface(cost, pred, rc, self.backend)
+            return CostSurface(cost, rc, self.backend, pred)
         if self.backend == "mcp":
-            cost, tb = self._mcp.find_costs([tuple(p) for p in rc])
-            cost = np.array(cost, dtype=np.float64, copy=True)
-            pred = self._mcp_predecessor(np.asarray(tb))
-            cost[pred == UNREACHED] = np.inf
-        else:
-            flat = rc[:, 0] * shape[1] + rc[:, 1]
-            dist, p, _ = dijkstra(
-                self._graph,
-                directed=False,
-                indices=flat,
-                min_only=True,
-                return_predecessors=True,
-            )
-            cost = dist.reshape(shape)
-            pred = p.astype(np.int32).reshape(shape)
-            pred[pred < 0] = UNREACHED
-            pred.flat[flat] = SOURCE
-        return CostSurface(cost, pred, rc, self.backend)
-
-    def _mcp_predecessor(self, tb: np.ndarray) -> np.ndarray:
-        """MCP traceback (offset indices) to flat predecessor indices."""
-        n_cols = self.grid.n_cols
-        flat_off = self._offsets[:, 0] * n_cols + self._offsets[:, 1]
-        idx = np.arange(tb.size, dtype=np.int64).reshape(tb.shape)
-        t = tb.astype(np.int64)
-        valid = t >= 0
-        pred = np.where(valid, idx - flat_off[np.where(valid, t, 0)], 0)
-        pred = pred.astype(np.int32)
-        pred[t == -1] = SOURCE
-        pred[t < -1] = UNREACHED
-        return pred
+            # find_costs returns views of buffers the next run overwrites: copy out,
+            # keeping MCP's own int16 traceback (2 bytes per cell) rather than
+            # expanding it into flat predecessor indices.
+            seeds, interior = _edge_of_sources(rc, shape)
+            cost, tb = self._mcp.find_costs([tuple(p) for p in seeds])
+            cost = np.array(cost, dtype=dtype, order="C")
+            tb = np.array(tb, order="C")
+            if interior is not None:
+                cost[interior] = 0.0
+                tb[interior] = -1
+            return CostSurface(cost, rc, self.backend, tb, self._flat_offsets)
+        flat = rc[:, 0] * shape[1] + rc[:, 1]
+        dist, p, _ = dijkstra(
+            self._graph,
+            directed=False,
+            indices=flat,
+            min_only=True,
+            return_predecessors=True,
+        )
+        cost = dist.reshape(shape).astype(dtype, copy=False)
+        pred = p.astype(np.int32).reshape(shape)
+        pred[pred < 0] = UNREACHED
+        pred.flat[flat] = SOURCE
+        return CostSurface(cost, rc, self.backend, pred)
 
 
 def cost_distance(
@@ -358,17 +422,19 @@ def least_cost_path(surface: CostSurface, end_rc) -> np.ndarray:
     r, c = int(end_rc[0]), int(end_rc[1])
     if not (0 <= r < n_rows and 0 <= c < n_cols):
         raise InputError(f"end cell {(r, c)} lies outside the grid {surface.shape}.")
-    pred = surface.predecessor.ravel()
     cur = r * n_cols + c
-    if pred[cur] == UNREACHED:
+    step = surface.previous_cell
+    prev = step(cur)
+    if prev == UNREACHED:
         return np.empty((0, 2), dtype=np.int64)
     out = [cur]
-    limit = pred.size
-    while pred[cur] >= 0:
-        cur = int(pred[cur])
+    limit = n_rows * n_cols
+    while prev >= 0:
+        cur = prev
         out.append(cur)
-        if len(out) > limit:  # pragma: no cover - corrupt predecessor array
-            raise RuntimeError("predecessor array has a cycle")
+        prev = step(cur)
+        if len(out) > limit:  # pragma: no cover - corrupt traceback
+            raise RuntimeError("traceback has a cycle")
     flat = np.array(out[::-1], dtype=np.int64)
     return np.stack([flat // n_cols, flat % n_cols], axis=1)
 

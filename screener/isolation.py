@@ -41,7 +41,7 @@ coordinates of new finds as sensitive.
 from __future__ import annotations
 
 import logging
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from itertools import combinations
 
 import numpy as np
@@ -101,9 +101,12 @@ def clade_suitability(suitability: dict) -> np.ndarray:
 
     Returns
     -------
-    ndarray of float64
+    ndarray of float32 or float64
+        float32 when every map is float32 (as the pipeline writes them), else float64.
     """
-    maps = [np.asarray(v, dtype=np.float64) for v in suitability.values()]
+    maps = [np.asarray(v) for v in suitability.values()]
+    dtype = np.result_type(np.float32, *[m.dtype for m in maps])
+    maps = [m.astype(dtype, copy=False) for m in maps]
     return np.fmax.reduce(maps) if len(maps) > 1 else maps[0].copy()
 
 
@@ -283,9 +286,9 @@ class CandidateSet:
     barrier : ndarray of float32, shape (n_rows, n_cols)
         ``1 - s`` (clade suitability) on unsuitable cells of least-cost corridors
         between different taxa's ranges, 0 elsewhere on valid cells, NaN off the mask.
-    cost : dict of str to ndarray
+    cost : dict of str to ndarray of float32
         Accumulated cost from each taxon's ranges at the MTP thresholds.
-    cost_all : ndarray
+    cost_all : ndarray of float32
         Accumulated cost from all ranges (cell-wise minimum of ``cost``).
     ranges : pandas.DataFrame
         Known-range patches at the MTP thresholds: ``range_id``, ``taxa``,
@@ -472,13 +475,13 @@ def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
         pids = pids[pids > 0]
         for pid in pids:
             range_taxa.setdefault(int(pid), []).append(t)
-        src = np.isin(labels, pids) if pids.size else np.zeros(grid.shape, bool)
+        in_pids = np.zeros(n_patches + 1, bool)
+        in_pids[pids] = True
+        src = in_pids[labels]
         src[rows, cols] = True
-        sources[t] = src & grid.mask
+        src &= grid.mask
+        sources[t] = src
     range_ids = np.array(sorted(range_taxa), dtype=np.int64)
-    cost = {t: graph.run(sources[t]) for t in taxa}
-    cost_all = np.minimum.reduce([cost[t].cost for t in taxa])
-    all_src = np.logical_or.reduce([sources[t] for t in taxa])
 
     # records, for distances
     rec_r = np.concatenate([records[t][0] for t in taxa])
@@ -517,14 +520,23 @@ def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
     stats, best = _site_stats(
         grid, site_cells, n_sites, clade, p["agreement"], p["novelty"], p["elevation"], sc
     )
+    # One cost-distance run per taxon.  Per-site costs are reduced from the float64
+    # surface; only a float32 copy and MCP's int16 traceback are kept (6 bytes per
+    # cell per taxon, for paths, corridors and the all-range surface).
     cost_to = {}
     cheapest = {}
+    cost = {}
     for t in taxa:
-        c = cost[t].cost
+        surf = graph.run(sources[t])
+        c = surf.cost
         cost_to[t] = sc.reduce(ndi.minimum, c) if n_sites else np.zeros(0)
         cheapest[t] = (
             sc.position(c, largest=False) if n_sites else np.zeros((0, 2), np.int64)
         )
+        cost[t] = replace(surf, cost=c.astype(np.float32))
+        del surf, c
+    cost_all = np.minimum.reduce([cost[t].cost for t in taxa])
+    all_src = np.logical_or.reduce([sources[t] for t in taxa])
 
     # nearest record per site (min over the site's cells)
     rows_all, cols_all = np.nonzero(site_cells)
@@ -732,6 +744,7 @@ def find_candidates(
     if impassable is not None:
         res = np.where(np.asarray(impassable, bool), np.inf, res)
     graph = CostGraph(grid, res, backend=backend)  # built once, run per source set
+    del res  # the graph keeps its own copy
     p = {
         "min_gap_km": float(min_gap_km),
         "min_patch_km2": float(min_patch_km2),

@@ -239,7 +239,9 @@ class LayerStack:
         return LayerStack(grid, names, None, paths, units_all, sources, mem,
                           dict(self.nodata_share))
 
-    def iter_blocks(self, max_cells: int = 1 << 20, rows: slice | None = None):
+    def iter_blocks(
+        self, max_cells: int = 1 << 20, rows: slice | None = None, *, gather: bool = True
+    ):
         """Yield ``(row_slice, X, valid)`` blocks of whole rows for prediction.
 
         ``X`` has shape (n_valid_in_block, n_layers), float32, column-major (a view
@@ -247,6 +249,10 @@ class LayerStack:
         (rows, n_cols) mask, so ``out[row_slice][valid] = predict(X)``.  Memory per
         block is bounded by ``max_cells * n_layers`` values.  ``rows`` limits the
         blocks to a band of rows.
+
+        With ``gather=False``, ``X`` holds every cell of the block (valid or not;
+        shape (n_cells_in_block, n_layers), always a view), for computations that
+        are cheaper done everywhere and masked afterwards than gathered first.
         """
         start = 0 if rows is None else (rows.start or 0)
         n_rows = self.grid.n_rows if rows is None else min(rows.stop, self.grid.n_rows)
@@ -255,7 +261,7 @@ class LayerStack:
             sl = slice(r0, min(n_rows, r0 + step))
             valid = self.grid.mask[sl]
             band = self.read_rows(sl, fill_invalid=False).reshape(self.n_layers, -1)
-            if valid.all():
+            if not gather or valid.all():
                 X = band.T  # no copy: a column-major (cells, layers) view
             else:
                 X = np.take(band, np.flatnonzero(valid.ravel()), axis=1).T

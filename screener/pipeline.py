@@ -294,14 +294,36 @@ def check_project(settings: Settings) -> list:
 
 
 # --------------------------------------------------------------------------- models
+#: blocks at least this valid are predicted whole and masked afterwards (for families
+#: that accept invalid rows): cheaper than gathering the valid cells of a block
+_PREDICT_WHOLE_BLOCK = 0.5
+
+
+def _blocks_for(model, stack: LayerStack, max_cells: int, rows=None):
+    """Blocks of ``stack`` with each block's predictions, float32 of the block's shape
+    (NaN where invalid)."""
+    whole = getattr(model, "accepts_invalid_rows", False)
+    for sl, X, valid in stack.iter_blocks(max_cells, rows=rows, gather=not whole):
+        if whole:
+            if valid.mean() >= _PREDICT_WHOLE_BLOCK:
+                pred = model.predict(X, check_input=False, dtype=np.float32)
+                pred = pred.reshape(valid.shape)
+                pred[~valid] = np.nan
+                yield sl, pred
+                continue
+            X = np.take(X, np.flatnonzero(valid.ravel()), axis=0)
+        block = np.full(valid.shape, np.nan, dtype=np.float32)
+        if X.shape[0]:
+            block[valid] = model.predict(X, dtype=np.float32)
+        yield sl, block
+
+
 def _predict_rows(model, stack: LayerStack, rows: tuple, max_cells: int):
     """Predictions for the valid cells of a band of rows (a task for an executor)."""
-    out = []
     r0, r1 = rows
     sub = stack.grid.mask[r0:r1]
-    for _, X, _ in stack.iter_blocks(max_cells, rows=slice(r0, r1)):
-        out.append(model.predict(X).astype(np.float32) if X.shape[0] else
-                   np.empty(0, np.float32))
+    out = [block[stack.grid.mask[sl]]
+           for sl, block in _blocks_for(model, stack, max_cells, rows=slice(r0, r1))]
     return np.concatenate(out) if out else np.empty(int(sub.sum()), np.float32)
 
 
@@ -334,10 +356,8 @@ def predict_map(model, stack: LayerStack, *, max_cells: int = 1 << 20,
             block = out[r0:r1]
             block[grid.mask[r0:r1]] = values
         return out
-    for sl, X, valid in stack.iter_blocks(max_cells):
-        if X.shape[0]:
-            block = out[sl]
-            block[valid] = model.predict(X).astype(np.float32)
+    for sl, block in _blocks_for(model, stack, max_cells):
+        out[sl] = block
     return out
 
 

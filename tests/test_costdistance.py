@@ -189,3 +189,39 @@ def test_properties(r, src, end, geographic):
     c = surf.cost[path[:, 0], path[:, 1]]
     assert np.all(np.diff(c) >= -1e-12)
     assert tuple(path[0]) == src
+
+
+def test_large_source_sets_match_the_reference_graph():
+    """A range of many cells (seeded from its edge internally) gives the same cost as
+    the independent reference graph seeded with every cell (scipy.sparse.csgraph)."""
+    rng = np.random.default_rng(5)
+    grid = projected_grid((30, 32))
+    r = rng.uniform(0.1, 1.0, grid.shape)
+    r[12:14, :20] = np.inf  # an impassable bar beside the source block
+    src = np.zeros(grid.shape, bool)
+    src[2:22, 3:25] = True  # 440 cells, partly on the impassable bar
+    surf = cost_distance(grid, r, src, backend="mcp")
+    rows, cols = np.nonzero(src & np.isfinite(r))
+    want = reference_cost(grid, r, list(zip(rows, cols)))
+    assert_allclose(surf.cost, want, rtol=1e-9)
+    assert (surf.cost[rows, cols] == 0).all()
+    pred = surf.predecessor
+    assert (pred[rows, cols] == -1).all()  # every passable source is a source
+    # the expanded predecessor agrees with the compact traceback, cell by cell
+    for flat in rng.choice(grid.n_cells, 50, replace=False):
+        assert pred.flat[flat] == surf.previous_cell(int(flat))
+    # a path from a far corner ends on an edge cell of the block
+    path = least_cost_path(surf, (29, 31))
+    assert src[tuple(path[0])] and not src[tuple(path[1])]
+
+
+def test_float32_surfaces_agree_with_float64():
+    rng = np.random.default_rng(6)
+    grid = projected_grid((20, 20))
+    g = CostGraph(grid, rng.uniform(0.1, 1.0, grid.shape))
+    a = g.run([(3, 4)])
+    b = g.run([(3, 4)], dtype=np.float32)
+    assert b.cost.dtype == np.float32
+    assert_allclose(b.cost, a.cost, rtol=1e-6)
+    with pytest.raises(InputError, match="float64 or float32"):
+        g.run([(3, 4)], dtype=np.int32)

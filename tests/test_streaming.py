@@ -2,7 +2,7 @@
 
 import numpy as np
 import pytest
-from numpy.testing import assert_array_equal
+from numpy.testing import assert_allclose, assert_array_equal
 
 from screener.layers import check_layers, read_layers
 
@@ -87,3 +87,25 @@ def test_parallel_prediction_over_windows_matches_serial(small_layers):
     assert_array_equal(serial, parallel)
     eager = predict_map(model, read_layers(small_layers), max_cells=200)
     assert_array_equal(serial, eager)
+
+
+@pytest.mark.parametrize("family", ["ppm", "ellipsoid", "envelope", "forest"])
+def test_whole_block_prediction_equals_prediction_of_valid_cells(small_layers, family):
+    # Mostly valid blocks are predicted whole and masked; the map must equal the
+    # model's own predictions at the valid cells, whichever path a block took.
+    from screener.models import make_model
+    from screener.pipeline import predict_map
+
+    stack = read_layers(small_layers)
+    valid = stack.grid.mask
+    assert 0 < valid.mean() < 1  # some blocks partly invalid, some whole
+    rng = np.random.default_rng(1)
+    rows, cols = np.nonzero(valid)
+    pick = rng.choice(rows.size, 300, replace=False)
+    B = stack.values_at(rows[pick], cols[pick])
+    params = {"n_estimators": 20} if family == "forest" else {}
+    model = make_model(family, **params).fit(B[:15], B)
+    got = predict_map(model, stack, max_cells=200)
+    want = model.predict(stack.valid_matrix()).astype(np.float32)
+    assert np.isnan(got[~valid]).all()
+    assert_allclose(got[valid], want, rtol=1e-6, atol=1e-7)

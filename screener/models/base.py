@@ -15,6 +15,8 @@ they are not evidence that it does.
 
 from __future__ import annotations
 
+import contextlib
+
 import numpy as np
 from sklearn.base import BaseEstimator
 from sklearn.utils.validation import check_is_fitted
@@ -26,6 +28,7 @@ __all__ = ["NicheModel", "check_predictors", "training_presence_scores", "CHUNK_
 #: Rows handled per chunk in ``predict``: 65,536 rows x 8 float32 predictors is 2 MiB,
 #: small enough for temporaries to stay in cache.
 CHUNK_ROWS = 65_536
+_no_context = contextlib.nullcontext
 
 
 def check_predictors(
@@ -96,25 +99,38 @@ class NicheModel(BaseEstimator):
 
     #: True when ``fit`` makes use of background rows.
     uses_background = True
+    #: True when rows with missing values only spoil their own score (NaN or
+    #: meaningless), so a whole block of cells can be predicted and masked afterwards
+    #: instead of gathering its valid cells first.
+    accepts_invalid_rows = False
 
-    def predict(self, X) -> np.ndarray:
+    def predict(self, X, *, check_input: bool = True, dtype=np.float64) -> np.ndarray:
         """Suitability in [0, 1] for each row of ``X``.
 
         Parameters
         ----------
         X : array_like of shape (k, p)
             Predictor values (float32 or float64), in the column order used in ``fit``.
+        check_input : bool, default True
+            Validate ``X`` (shape, finite values).  ``False`` skips the checks; rows
+            with missing values then get meaningless scores, which the caller must
+            mask (the grid prediction does so for families with
+            ``accepts_invalid_rows``).
+        dtype : {numpy.float64, numpy.float32}, default float64
+            Type of the returned scores (float32 for maps).
 
         Returns
         -------
-        ndarray of float64, shape (k,)
+        ndarray of ``dtype``, shape (k,)
         """
         check_is_fitted(self)
-        X = check_predictors(X, "X", n_features=self.n_features_in_, min_rows=0)
-        out = np.empty(X.shape[0], dtype=np.float64)
-        for start in range(0, X.shape[0], CHUNK_ROWS):
-            stop = min(start + CHUNK_ROWS, X.shape[0])
-            out[start:stop] = self._predict_chunk(X[start:stop])
+        if check_input:
+            X = check_predictors(X, "X", n_features=self.n_features_in_, min_rows=0)
+        out = np.empty(X.shape[0], dtype=dtype)
+        with np.errstate(all="ignore") if not check_input else _no_context():
+            for start in range(0, X.shape[0], CHUNK_ROWS):
+                stop = min(start + CHUNK_ROWS, X.shape[0])
+                out[start:stop] = self._predict_chunk(X[start:stop])
         np.clip(out, 0.0, 1.0, out=out)
         return out
 

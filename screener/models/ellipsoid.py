@@ -56,6 +56,7 @@ class EllipsoidNiche(NicheModel):
     """
 
     uses_background = False
+    accepts_invalid_rows = True
 
     def __init__(self, *, ridge: float = 1e-6):
         self.ridge = ridge

@@ -46,6 +46,7 @@ class EnvelopeNiche(NicheModel):
     """
 
     uses_background = False
+    accepts_invalid_rows = True
 
     def __init__(self):
         pass

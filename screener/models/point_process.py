@@ -187,6 +187,8 @@ class PointProcessNiche(NicheModel):
        of Maxent. Ecography 40:887-893.
     """
 
+    accepts_invalid_rows = True
+
     def __init__(
         self,
         *,
