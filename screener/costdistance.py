@@ -119,7 +119,7 @@ class CostSurface:
         return SOURCE if t == -1 else UNREACHED
 
 
-def prepare_resistance(grid: Grid, resistance) -> np.ndarray:
+def prepare_resistance(grid: Grid, resistance, *, copy: bool = True) -> np.ndarray:
     """Resistance as float64 with every impassable cell set to ``np.inf``.
 
     Parameters
@@ -128,6 +128,10 @@ def prepare_resistance(grid: Grid, resistance) -> np.ndarray:
     resistance : array_like of shape (n_rows, n_cols)
         Cost per km of ground crossed.  NaN, ``inf``, negative values and cells
         outside ``grid.mask`` are impassable.
+    copy : bool, default True
+        ``False`` marks impassable cells in place when ``resistance`` already is a
+        float64 array (saves 8 bytes per cell on large grids; the caller's array
+        changes).
 
     Returns
     -------
@@ -146,7 +150,10 @@ def prepare_resistance(grid: Grid, resistance) -> np.ndarray:
         )
     with np.errstate(invalid="ignore"):
         bad = ~np.isfinite(r) | (r < 0) | ~grid.mask
-    return np.where(bad, np.inf, r)
+    if copy or r is not resistance:
+        return np.where(bad, np.inf, r)
+    r[bad] = np.inf
+    return r
 
 
 def _as_rc(sources, shape, name="sources") -> np.ndarray:
@@ -261,6 +268,10 @@ class CostGraph:
         ``"auto"``: MCP on grids with constant steps, Dijkstra otherwise.  Forcing
         ``"mcp"`` on a longitude/latitude grid raises, because MCP cannot express
         east-west steps that change with latitude.
+    copy : bool, default True
+        ``False`` lets the graph mark impassable cells in ``resistance`` itself when
+        it is a float64 array the caller no longer needs (see
+        :func:`prepare_resistance`).
 
     Examples
     --------
@@ -271,7 +282,7 @@ class CostGraph:
     [[0.0, 1.0, 2.0]]
     """
 
-    def __init__(self, grid: Grid, resistance, backend: str = "auto"):
+    def __init__(self, grid: Grid, resistance, backend: str = "auto", *, copy: bool = True):
         if backend not in ("auto", "mcp", "dijkstra"):
             raise InputError(
                 f"backend must be 'auto', 'mcp' or 'dijkstra'; got {backend!r}."
@@ -286,7 +297,7 @@ class CostGraph:
             )
         self.grid = grid
         self.backend = backend
-        resistance = prepare_resistance(grid, resistance)
+        resistance = prepare_resistance(grid, resistance, copy=copy)
         # only passability is needed after the backend is built (1 byte per cell,
         # not 8: MCP keeps its own padded copy of the costs)
         self.passable = np.isfinite(resistance)

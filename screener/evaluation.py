@@ -246,9 +246,8 @@ def block_partition(presence_xy, background_xy) -> tuple[np.ndarray, np.ndarray]
 
     References
     ----------
-    .. [1] Radosavljevic, A. & Anderson, R. P. (2014). Making better Maxent models of
-       species distributions: complexity, overfitting and evaluation. J. Biogeography
-       41:629-643.
+    .. [1] Radosavljevic, A. & Anderson, R. P. (2014). J. Biogeography 41:629-643
+       (spatially blocked partitions of presence and background).
     """
     pxy = _xy(presence_xy, "presence_xy")
     bxy = _xy(background_xy, "background_xy")

@@ -743,8 +743,10 @@ def find_candidates(
         res = np.asarray(resistance, dtype=np.float64)
     if impassable is not None:
         res = np.where(np.asarray(impassable, bool), np.inf, res)
-    graph = CostGraph(grid, res, backend=backend)  # built once, run per source set
-    del res  # the graph keeps its own copy
+    # built once, run per source set; `res` is ours unless the caller passed a raster
+    own = isinstance(resistance, str) or impassable is not None
+    graph = CostGraph(grid, res, backend=backend, copy=not own)
+    del res
     p = {
         "min_gap_km": float(min_gap_km),
         "min_patch_km2": float(min_patch_km2),

@@ -50,23 +50,27 @@ def similarity(reference, X) -> np.ndarray:
         raise InputError(
             f"`X` must have shape (k, {ref.shape[1]}) like the reference; got {X.shape}."
         )
-    m, p = ref.shape
     out = np.empty(X.shape, dtype=np.float64)
-    for j in range(p):
-        r = np.sort(ref[:, j])
-        lo, hi = r[0], r[-1]
-        x = X[:, j].astype(np.float64)
-        f = 100.0 * np.searchsorted(r, x, side="left") / m
-        s = np.where(f <= 50.0, 2.0 * f, 2.0 * (100.0 - f))
-        rng = hi - lo
-        if rng > 0:
-            s = np.where(f == 0.0, 100.0 * (x - lo) / rng, s)
-            s = np.where(f == 100.0, 100.0 * (hi - x) / rng, s)
-        else:
-            s = np.where(x == lo, 0.0, -np.inf)
-        s[~np.isfinite(x)] = np.nan
-        out[:, j] = s
+    for j in range(ref.shape[1]):
+        out[:, j] = _layer_similarity(np.sort(ref[:, j]), X[:, j])
     return out
+
+
+def _layer_similarity(r: np.ndarray, x) -> np.ndarray:
+    """Similarity of values ``x`` to one predictor's sorted reference values ``r``."""
+    m = r.size
+    lo, hi = r[0], r[-1]
+    x = np.asarray(x, dtype=np.float64)
+    f = 100.0 * np.searchsorted(r, x, side="left") / m
+    s = np.where(f <= 50.0, 2.0 * f, 2.0 * (100.0 - f))
+    rng = hi - lo
+    if rng > 0:
+        s = np.where(f == 0.0, 100.0 * (x - lo) / rng, s)
+        s = np.where(f == 100.0, 100.0 * (hi - x) / rng, s)
+    else:
+        s = np.where(x == lo, 0.0, -np.inf)
+    s[~np.isfinite(x)] = np.nan
+    return s
 
 
 def mess(reference, X) -> tuple[np.ndarray, np.ndarray]:
@@ -99,13 +103,24 @@ def mess(reference, X) -> tuple[np.ndarray, np.ndarray]:
     >>> float(m[0]), int(j[0])
     (-50.0, 1)
     """
-    sim = similarity(reference, X)
-    k = sim.shape[0]
-    bad = np.isnan(sim).any(axis=1)
-    filled = np.where(np.isnan(sim), np.inf, sim)
-    idx = np.argmin(filled, axis=1) if sim.shape[1] else np.zeros(k, dtype=int)
-    out = filled[np.arange(k), idx]
+    ref = check_predictors(reference, "reference", min_rows=1).astype(np.float64)
+    X = np.asarray(X)
+    if X.ndim != 2 or X.shape[1] != ref.shape[1]:
+        raise InputError(
+            f"`X` must have shape (k, {ref.shape[1]}) like the reference; got {X.shape}."
+        )
+    # a running minimum over the predictors: one (k,) similarity at a time, not the
+    # (k, p) matrix (8 bytes per cell and predictor on a large block)
+    k = X.shape[0]
+    out = np.full(k, np.inf)
+    idx = np.zeros(k, dtype=np.int16)
+    bad = np.zeros(k, dtype=bool)
+    for j in range(ref.shape[1]):
+        s = _layer_similarity(np.sort(ref[:, j]), X[:, j])
+        bad |= np.isnan(s)
+        lower = s < out  # strict: ties keep the first predictor, as argmin does
+        out[lower] = s[lower]
+        idx[lower] = j
     out[bad] = np.nan
-    idx = idx.astype(np.int16)
     idx[bad] = -1
     return out, idx

@@ -52,7 +52,9 @@ _THREAD_ENV_VARS = (
     "NUMEXPR_NUM_THREADS",
 )
 # Modules imported once by the fork server, so that each worker starts warm.
-_PRELOAD = ["numpy", "scipy.stats", "scipy.ndimage", "screener.parallel"]
+#: imported once by the fork server, so every worker starts with them loaded
+_PRELOAD = ["numpy", "scipy.stats", "scipy.ndimage", "screener.parallel",
+            "screener.models", "screener.evaluation", "screener.overlap"]
 # Keeps the threadpoolctl limiter alive in each worker process.
 _WORKER_LIMITS = []
 

@@ -63,3 +63,22 @@ def test_mess_nan_rows_and_constant_reference():
     assert np.isnan(m[2]) and j[2] == -1
     with pytest.raises(InputError, match="shape"):
         mess(ref, np.zeros((2, 3)))
+
+
+def test_mess_is_the_row_minimum_of_the_similarity_matrix():
+    # mess() keeps a running minimum over predictors; it must equal the minimum and the
+    # first argmin of the full similarity matrix (NaN rows stay NaN, index -1).
+    from screener.novelty import similarity
+
+    rng = np.random.default_rng(7)
+    ref = rng.normal(size=(200, 5))
+    X = rng.normal(scale=2.0, size=(1000, 5))
+    X[::17, 2] = np.nan
+    X[5, 1] = ref[:, 1].min()  # a tie candidate at the reference minimum
+    sim = similarity(ref, X)
+    m, idx = mess(ref, X)
+    nan_rows = np.isnan(sim).any(axis=1)
+    assert np.isnan(m[nan_rows]).all() and (idx[nan_rows] == -1).all()
+    ok = ~nan_rows
+    np.testing.assert_array_equal(m[ok], sim[ok].min(axis=1))
+    np.testing.assert_array_equal(idx[ok], sim[ok].argmin(axis=1))

@@ -38,9 +38,9 @@ class EnvelopeNiche(NicheModel):
 
     References
     ----------
-    .. [1] Busby, J. R. (1991). BIOCLIM - a bioclimate analysis and prediction system.
-       In Margules & Austin (eds), Nature Conservation: Cost Effective Biological Surveys
-       and Data Analysis, CSIRO, pp. 64-68.
+    .. [1] Busby, J. R. (1991). In Margules & Austin (eds), Nature Conservation: Cost
+       Effective Biological Surveys and Data Analysis, CSIRO, pp. 64-68 (climatic
+       envelopes from percentiles of the records).
     .. [2] Nix, H. A. (1986). A biogeographic analysis of Australian elapid snakes. In
        Longmore (ed.), Atlas of Elapid Snakes of Australia, pp. 4-15.
     """

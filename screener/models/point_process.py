@@ -173,18 +173,16 @@ class PointProcessNiche(NicheModel):
     ----------
     .. [1] Phillips, S. J., Anderson, R. P. & Schapire, R. E. (2006). Maximum entropy
        modeling of species geographic distributions. Ecological Modelling 190:231-259.
-    .. [2] Phillips, S. J. & Dudik, M. (2008). Modeling of species distributions with
-       Maxent: new extensions and a comprehensive evaluation. Ecography 31:161-175.
-    .. [3] Renner, I. W. & Warton, D. I. (2013). Equivalence of MAXENT and Poisson point
-       process models for species distribution modeling in ecology. Biometrics
-       69:274-281.
+    .. [2] Phillips, S. J. & Dudik, M. (2008). Ecography 31:161-175 (feature classes,
+       regularisation by sample size).
+    .. [3] Renner, I. W. & Warton, D. I. (2013). Biometrics 69:274-281 (equivalence of
+       maximum-entropy and Poisson point-process models).
     .. [4] Fithian, W. & Hastie, T. (2013). Finite-sample equivalence in statistical
        models for presence-only data. Annals of Applied Statistics 7:1917-1939.
-    .. [5] Warren, D. L. & Seifert, S. N. (2011). Ecological niche modeling in Maxent:
-       the importance of model complexity and the performance of model selection
-       criteria. Ecological Applications 21:335-342.
-    .. [6] Phillips, S. J. et al. (2017). Opening the black box: an open-source release
-       of Maxent. Ecography 40:887-893.
+    .. [5] Warren, D. L. & Seifert, S. N. (2011). Ecological Applications 21:335-342
+       (model complexity and selection by AICc).
+    .. [6] Phillips, S. J. et al. (2017). Ecography 40:887-893 (the complementary
+       log-log output).
     """
 
     accepts_invalid_rows = True

@@ -32,10 +32,13 @@ def write_raster(path, array, grid, *, nodata=np.nan, description: str = "") -> 
     -----
     256 x 256 tiles, DEFLATE with the floating-point predictor, and internal
     overviews, written through GDAL's COG driver so the layout is the standard one.
-    No timestamp is written, so identical arrays give identical files.
+    Tiles are compressed on all usable cores (GDAL ``NUM_THREADS``).  No timestamp
+    is written, so identical arrays give identical files.
     """
     import rasterio
     from rasterio.io import MemoryFile
+
+    from screener.parallel import default_n_workers
     from rasterio.shutil import copy as rio_copy
 
     path = Path(path)
@@ -44,9 +47,10 @@ def write_raster(path, array, grid, *, nodata=np.nan, description: str = "") -> 
         out, dtype, nd, predictor = arr.astype(np.uint8), "uint8", 255, 2
         out = np.where(grid.mask, out, 255).astype(np.uint8)
     elif np.issubdtype(arr.dtype, np.integer):
-        out, dtype, nd, predictor = arr.astype(np.int32), "int32", -1, 2
+        out, dtype, nd, predictor = arr.astype(np.int32, copy=False), "int32", -1, 2
     else:
-        out, dtype, nd, predictor = arr.astype(np.float32), "float32", nodata, 3
+        out = arr.astype(np.float32, copy=False)
+        dtype, nd, predictor = "float32", nodata, 3
     profile = dict(
         driver="GTiff",
         width=grid.n_cols,
@@ -71,7 +75,9 @@ def write_raster(path, array, grid, *, nodata=np.nan, description: str = "") -> 
                 predictor=str(predictor),
                 blocksize=256,
                 overview_resampling="average" if dtype == "float32" else "nearest",
-                num_threads=1,
+                # compression runs on every core this process may use; tiles are
+                # still written in order, so the file does not depend on it
+                num_threads=default_n_workers(),
             )
     with rasterio.open(path) as chk:  # fail loudly rather than leave a bad file
         assert chk.width == grid.n_cols and chk.height == grid.n_rows
