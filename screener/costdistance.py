@@ -342,12 +342,19 @@ class CostGraph:
         if dtype not in (np.float64, np.float32):
             raise InputError(f"dtype must be float64 or float32; got {dtype}.")
         shape = self.grid.shape
-        rc = _as_rc(sources, shape)
-        if len(rc):
-            ok = self.passable[rc[:, 0], rc[:, 1]]
-            if not ok.all():
-                log.info("%d source cells are impassable and were dropped", (~ok).sum())
-            rc = np.unique(rc[ok], axis=0)
+        if isinstance(sources, np.ndarray) and sources.dtype == bool and sources.shape == shape:
+            # a mask is unique already: no sort of its cells
+            n_bad = int(np.count_nonzero(sources & ~self.passable))
+            if n_bad:
+                log.info("%d source cells are impassable and were dropped", n_bad)
+            rc = np.argwhere(sources & self.passable)
+        else:
+            rc = _as_rc(sources, shape)
+            if len(rc):
+                ok = self.passable[rc[:, 0], rc[:, 1]]
+                if not ok.all():
+                    log.info("%d source cells are impassable and were dropped", (~ok).sum())
+                rc = np.unique(rc[ok], axis=0)
         if len(rc) == 0:
             cost = np.full(shape, np.inf, dtype=dtype)
             pred = np.full(shape, UNREACHED, dtype=np.int32)

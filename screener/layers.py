@@ -7,6 +7,8 @@ defines the valid cells of the :class:`~screener.grid.Grid`.
 
 from __future__ import annotations
 
+import contextlib
+
 import logging
 import warnings
 from dataclasses import dataclass, field
@@ -50,14 +52,20 @@ class LayerSource:
     nodata_extra: float | None = None
     category: float | None = None
 
-    def read(self, src, window=None) -> np.ndarray:
-        """Read from an open dataset as float32, NaN for nodata."""
+    def read(self, src, window=None, out=None) -> np.ndarray:
+        """Read from an open dataset as float32, NaN for nodata.
+
+        ``out``, a float32 array of the window's shape, receives the values when
+        given (no intermediate copy).
+        """
         from rasterio.enums import MaskFlags
 
         if src.nodata is None and MaskFlags.per_dataset in src.mask_flag_enums[0]:
             # an internal mask band instead of a nodata value: let GDAL apply it
             raw = src.read(1, window=window, masked=True)
             values = np.ma.filled(raw.astype(np.float32), np.nan)
+        elif out is not None and self.category is None:
+            values = src.read(1, window=window, out=out)
         else:
             values = src.read(1, window=window, out_dtype=np.float32)
         bad = ~np.isfinite(values)
@@ -139,25 +147,38 @@ class LayerStack:
         """
         if self.data is not None:
             return self.data[:, rows]
+        with self._open_sources() as opened:
+            return self._read_rows(rows, opened, fill_invalid)
+
+    @contextlib.contextmanager
+    def _open_sources(self):
+        """Every source file of a streamed stack, opened once (closed on exit)."""
         import rasterio
+
+        opened: dict = {}
+        try:
+            for src_info in self.sources or []:
+                if src_info is not None and src_info.path not in opened:
+                    opened[src_info.path] = rasterio.open(src_info.path)
+            yield opened
+        finally:
+            for ds in opened.values():
+                ds.close()
+
+    def _read_rows(self, rows: slice, opened: dict, fill_invalid: bool) -> np.ndarray:
         from rasterio.windows import Window
 
         r0, r1 = rows.start or 0, min(rows.stop, self.grid.n_rows)
         win = Window(0, r0, self.grid.n_cols, r1 - r0)
         out = np.empty((self.n_layers, r1 - r0, self.grid.n_cols), dtype=np.float32)
-        opened: dict = {}
-        try:
-            for i, name in enumerate(self.names):
-                if name in self.in_memory:
-                    out[i] = self.in_memory[name][r0:r1]
-                    continue
-                src_info = self.sources[i]
-                if src_info.path not in opened:
-                    opened[src_info.path] = rasterio.open(src_info.path)
-                out[i] = src_info.read(opened[src_info.path], window=win)
-        finally:
-            for ds in opened.values():
-                ds.close()
+        for i, name in enumerate(self.names):
+            if name in self.in_memory:
+                out[i] = self.in_memory[name][r0:r1]
+                continue
+            src_info = self.sources[i]
+            values = src_info.read(opened[src_info.path], window=win, out=out[i])
+            if values is not out[i]:
+                out[i] = values
         if fill_invalid:
             out[:, ~self.grid.mask[r0:r1]] = np.nan
         return out
@@ -257,15 +278,18 @@ class LayerStack:
         start = 0 if rows is None else (rows.start or 0)
         n_rows = self.grid.n_rows if rows is None else min(rows.stop, self.grid.n_rows)
         step = self._rows_per_block(max_cells)
-        for r0 in range(start, n_rows, step):
-            sl = slice(r0, min(n_rows, r0 + step))
-            valid = self.grid.mask[sl]
-            band = self.read_rows(sl, fill_invalid=False).reshape(self.n_layers, -1)
-            if not gather or valid.all():
-                X = band.T  # no copy: a column-major (cells, layers) view
-            else:
-                X = np.take(band, np.flatnonzero(valid.ravel()), axis=1).T
-            yield sl, X.astype(np.float32, copy=False), valid
+        opener = self._open_sources() if self.streamed else contextlib.nullcontext({})
+        with opener as opened:  # files stay open across blocks, not reopened per block
+            for r0 in range(start, n_rows, step):
+                sl = slice(r0, min(n_rows, r0 + step))
+                valid = self.grid.mask[sl]
+                band = (self._read_rows(sl, opened, False) if self.streamed
+                        else self.data[:, sl]).reshape(self.n_layers, -1)
+                if not gather or valid.all():
+                    X = band.T  # no copy: a column-major (cells, layers) view
+                else:
+                    X = np.take(band, np.flatnonzero(valid.ravel()), axis=1).T
+                yield sl, X.astype(np.float32, copy=False), valid
 
     def valid_matrix(self) -> np.ndarray:
         """Values at every valid cell, shape (n_valid, n_layers), float32, row-major."""

@@ -349,7 +349,7 @@ def predict_map(model, stack: LayerStack, *, max_cells: int = 1 << 20,
     grid = stack.grid
     out = np.full(grid.shape, np.nan, dtype=np.float32)
     if map_fn is not None and stack.streamed:
-        step = max(1, int(max_cells) // max(grid.n_cols, 1))
+        step = stack._rows_per_block(max_cells)  # whole tile rows per band
         bands = [(r0, min(grid.n_rows, r0 + step)) for r0 in range(0, grid.n_rows, step)]
         task = functools.partial(_predict_rows, model, stack, max_cells=max_cells)
         for (r0, r1), values in zip(bands, map_fn(task, bands)):
@@ -468,7 +468,7 @@ def model_taxon(
     agreement = agreement_map(
         family_maps, {f: thresholds_by_family[f]["mtp"].value for f in family_maps}
     )
-    novelty, most = _mess_map(stack, B)
+    novelty, most = _mess_map(stack, B, map_fn=map_fn)
 
     rows = []
     for family, ev in evaluations.items():
@@ -528,11 +528,39 @@ def _threshold_columns(th: dict) -> dict:
     return out
 
 
-def _mess_map(stack: LayerStack, reference: np.ndarray, max_cells: int = 1 << 20):
+def _mess_rows(stack: LayerStack, reference: np.ndarray, rows: tuple, max_cells: int):
+    """MESS and most dissimilar layer at the valid cells of a band of rows (a task)."""
     from screener.novelty import mess
 
-    out = np.full(stack.grid.shape, np.nan, dtype=np.float32)
-    most = np.full(stack.grid.shape, -1, dtype=np.int16)
+    parts = [mess(reference, X) for _, X, _ in
+             stack.iter_blocks(max_cells, rows=slice(*rows)) if X.shape[0]]
+    if not parts:
+        return np.empty(0, np.float32), np.empty(0, np.int16)
+    return (np.concatenate([m for m, _ in parts]).astype(np.float32),
+            np.concatenate([i for _, i in parts]))
+
+
+def _mess_map(stack: LayerStack, reference: np.ndarray, max_cells: int = 1 << 20,
+              map_fn=None):
+    """MESS map and most-dissimilar-layer map; streamed stacks run band by band on
+    ``map_fn`` (each worker reads its own windows), as :func:`predict_map` does."""
+    import functools
+
+    from screener.novelty import mess
+
+    grid = stack.grid
+    out = np.full(grid.shape, np.nan, dtype=np.float32)
+    most = np.full(grid.shape, -1, dtype=np.int16)
+    if map_fn is not None and stack.streamed:
+        step = stack._rows_per_block(max_cells)  # whole tile rows per band
+        bands = [(r0, min(grid.n_rows, r0 + step)) for r0 in range(0, grid.n_rows, step)]
+        task = functools.partial(_mess_rows, stack, np.asarray(reference),
+                                 max_cells=max_cells)
+        for (r0, r1), (m, idx) in zip(bands, map_fn(task, bands)):
+            valid = grid.mask[r0:r1]
+            out[r0:r1][valid] = m
+            most[r0:r1][valid] = idx
+        return out, most
     for sl, X, valid in stack.iter_blocks(max_cells):
         if X.shape[0]:
             m, idx = mess(reference, X)

@@ -87,6 +87,14 @@ def test_parallel_prediction_over_windows_matches_serial(small_layers):
     assert_array_equal(serial, parallel)
     eager = predict_map(model, read_layers(small_layers), max_cells=200)
     assert_array_equal(serial, eager)
+    # MESS over windows on workers equals MESS of the in-memory stack
+    from screener.pipeline import _mess_map
+
+    with make_executor("processes", n_workers=2) as ex:
+        m_par, i_par = _mess_map(streamed, B, max_cells=200, map_fn=ex.map)
+    m_mem, i_mem = _mess_map(read_layers(small_layers), B, max_cells=200)
+    assert_array_equal(m_par, m_mem)
+    assert_array_equal(i_par, i_mem)
 
 
 @pytest.mark.parametrize("family", ["ppm", "ellipsoid", "envelope", "forest"])
