@@ -52,14 +52,20 @@ class LayerSource:
     nodata_extra: float | None = None
     category: float | None = None
 
-    def read(self, src, window=None, out=None) -> np.ndarray:
+    def read(self, src, window=None, out=None, *, mark_nodata: bool = True) -> np.ndarray:
         """Read from an open dataset as float32, NaN for nodata.
 
         ``out``, a float32 array of the window's shape, receives the values when
-        given (no intermediate copy).
+        given (no intermediate copy).  ``mark_nodata=False`` leaves nodata cells as
+        the file holds them (for callers that only use cells valid in every layer,
+        whose values are the same either way); indicator layers are still derived.
         """
         from rasterio.enums import MaskFlags
 
+        if not mark_nodata and self.category is None:
+            if out is not None:
+                return src.read(1, window=window, out=out)
+            return src.read(1, window=window, out_dtype=np.float32)
         if src.nodata is None and MaskFlags.per_dataset in src.mask_flag_enums[0]:
             # an internal mask band instead of a nodata value: let GDAL apply it
             raw = src.read(1, window=window, masked=True)
@@ -176,7 +182,8 @@ class LayerStack:
                 out[i] = self.in_memory[name][r0:r1]
                 continue
             src_info = self.sources[i]
-            values = src_info.read(opened[src_info.path], window=win, out=out[i])
+            values = src_info.read(opened[src_info.path], window=win, out=out[i],
+                                   mark_nodata=fill_invalid)
             if values is not out[i]:
                 out[i] = values
         if fill_invalid:
@@ -288,7 +295,7 @@ class LayerStack:
                 if not gather or valid.all():
                     X = band.T  # no copy: a column-major (cells, layers) view
                 else:
-                    X = np.take(band, np.flatnonzero(valid.ravel()), axis=1).T
+                    X = np.compress(valid.ravel(), band, axis=1).T
                 yield sl, X.astype(np.float32, copy=False), valid
 
     def valid_matrix(self) -> np.ndarray:

@@ -53,6 +53,8 @@ ROOT = Path(__file__).resolve().parents[2]
 N_LAYERS = 20
 #: memory_mb for streamed stacks: small enough that every grid here is streamed
 MEMORY_MB = 64.0
+#: raw figures of the last run; a rerun of some stages merges into them
+RESULTS = ROOT / "docs" / "benchmarks" / "scaling.json"
 
 
 def make_grid(folder: Path, side: int, seed: int = 0):
@@ -321,6 +323,10 @@ def main():
                     help="comma-separated subset of stages")
     ap.add_argument("--speedup-only", action="store_true",
                     help="only the one-vs-two-process replicate measurement")
+    ap.add_argument("--no-chain", action="store_true",
+                    help="skip the whole-chain runs (keep the last ones)")
+    ap.add_argument("--no-speedup", action="store_true",
+                    help="skip the replicate speed-up (keep the last one)")
     ap.add_argument("--stage", help=argparse.SUPPRESS)
     ap.add_argument("--folder", help=argparse.SUPPRESS)
     ap.add_argument("--chain", action="store_true", help=argparse.SUPPRESS)
@@ -341,8 +347,17 @@ def main():
     sizes = [int(float(s)) for s in args.sizes.split(",")]
     results = {s: {} for s in STAGES}
     chains = []
+    speed = None
+    partial = set(stages) != set(STAGES) or args.no_chain
+    if partial and RESULTS.exists():
+        # a rerun of some stages: keep the other figures of the last full run
+        old = json.loads(RESULTS.read_text())
+        for st, by_n in old["results"].items():
+            results.setdefault(st, {}).update({int(k): v for k, v in by_n.items()})
+        chains, speed = old["chains"], {k: tuple(v) for k, v in old["speed"].items()}
+        sizes = sorted(set(sizes) | {c["cells_requested"] for c in chains})
     with tempfile.TemporaryDirectory(prefix="screener-bench-") as tmp:
-        for n in sizes:
+        for n in [int(float(x)) for x in args.sizes.split(",")]:
             side = int(round(np.sqrt(n)))
             folder = Path(tmp) / f"g{side}"
             t0 = time.perf_counter()
@@ -357,30 +372,45 @@ def main():
                     print(out.stderr[-2000:])
                     raise SystemExit(f"stage {stage} failed")
                 res = json.loads(out.stdout.strip().splitlines()[-1])
+                res["commit"] = _commit()
                 results[stage][n] = res
                 print(f"  {stage:18s} ours {res['ours_min']:.3f} s, ref "
                       f"{res['ref_min']:.3f} s, peak {res['peak_mb']:.0f} MB", flush=True)
-            out = subprocess.run([sys.executable, __file__, "--chain", "--folder",
-                                  str(folder)], capture_output=True, text=True)
-            if out.returncode:
-                print(out.stderr[-2000:])
-                raise SystemExit("chain failed")
-            chains.append(json.loads(out.stdout.strip().splitlines()[-1]))
-            print(f"  chain: {chains[-1]['seconds']:.1f} s, peak "
-                  f"{chains[-1]['peak_mb']:.0f} MB", flush=True)
+            if not args.no_chain:
+                out = subprocess.run([sys.executable, __file__, "--chain", "--folder",
+                                      str(folder)], capture_output=True, text=True)
+                if out.returncode:
+                    print(out.stderr[-2000:])
+                    raise SystemExit("chain failed")
+                chain = json.loads(out.stdout.strip().splitlines()[-1])
+                chain["cells_requested"] = n
+                chains = [c for c in chains if c["cells_requested"] != n] + [chain]
+                chains.sort(key=lambda c: c["cells"])
+                print(f"  chain: {chain['seconds']:.1f} s, peak "
+                      f"{chain['peak_mb']:.0f} MB", flush=True)
             import shutil
 
             shutil.rmtree(folder)
-    speed = replicate_speedup(args.repeats)
+    if speed is None or not args.no_speedup:
+        speed = replicate_speedup(args.repeats)
+    RESULTS.write_text(json.dumps({"results": results, "chains": chains,
+                                   "speed": speed}, indent=1))
     write_doc(sizes, results, chains, speed, args)
+
+
+def _commit() -> str:
+    out = subprocess.run(["git", "rev-parse", "--short", "HEAD"], cwd=ROOT,
+                         capture_output=True, text=True)
+    return out.stdout.strip() or "unknown"
 
 
 def write_doc(sizes, results, chains, speed, args):
     lines = [
         "# Scaling of the per-cell stages",
         "",
-        f"`python tests/benchmarks/bench_scaling.py --sizes {args.sizes} --repeats "
-        f"{args.repeats}` on {platform.machine()} ({os.cpu_count()} cores), Python "
+        f"`python tests/benchmarks/bench_scaling.py --sizes 1e6,4e6,1.6e7 --repeats "
+        f"{args.repeats}` (stages rerun alone merge into `scaling.json`; the commit of "
+        f"each figure is in that file) on {platform.machine()} ({os.cpu_count()} cores), Python "
         f"{platform.python_version()}, {time.strftime('%Y-%m-%d')}. Synthetic projected "
         f"grids x {N_LAYERS} float32 layers, streamed with `memory_mb = {MEMORY_MB:g}` and "
         "`GDAL_CACHEMAX=64`. Times are the best of the repeats (median in brackets); "
