@@ -146,6 +146,9 @@ def main(ctx, verbose, quiet):
 
     Predictions are hypotheses for survey, not evidence of presence or absence.
     """
+    from screener.system import avoid_hugepage_stalls
+
+    avoid_hugepage_stalls()
     level = max(10, 30 - 10 * verbose + 10 * quiet)
     logging.basicConfig(level=level, format="%(levelname)s %(name)s: %(message)s",
                         stream=sys.stderr)

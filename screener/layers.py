@@ -295,7 +295,7 @@ class LayerStack:
                 if not gather or valid.all():
                     X = band.T  # no copy: a column-major (cells, layers) view
                 else:
-                    X = np.compress(valid.ravel(), band, axis=1).T
+                    X = np.take(band, np.flatnonzero(valid.ravel()), axis=1).T
                 yield sl, X.astype(np.float32, copy=False), valid
 
     def valid_matrix(self) -> np.ndarray:

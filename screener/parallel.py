@@ -108,7 +108,11 @@ def spawn_seeds(random_state, n: int) -> list[int]:
 
 
 def _limit_worker_threads() -> None:
-    """Process-pool initializer: one BLAS/OpenMP thread in this worker."""
+    """Process-pool initializer: one BLAS/OpenMP thread in this worker (and, as in
+    the parent, no huge-page requests where they stall: screener.system)."""
+    from screener.system import avoid_hugepage_stalls
+
+    avoid_hugepage_stalls()
     for var in _THREAD_ENV_VARS:
         os.environ[var] = "1"
     try:

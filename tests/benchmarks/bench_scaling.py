@@ -93,7 +93,14 @@ def timed(fn, repeats):
 
 
 def stage_run(stage: str, folder: Path, repeats: int) -> dict:
-    """Run one stage (ours and its reference) in this process; return timings."""
+    """Run one stage (ours and its reference) in this process; return timings.
+
+    The process is set up as the command line sets itself up
+    (``screener.system.avoid_hugepage_stalls``), for ours and the reference alike.
+    """
+    from screener.system import avoid_hugepage_stalls
+
+    avoid_hugepage_stalls()
     import rasterio
     from rasterio.windows import Window
 
@@ -239,14 +246,22 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
     else:
         raise SystemExit(f"unknown stage {stage}")
 
-    res["ours_min"], res["ours_med"] = timed(ours, repeats)
-    res["ref_min"], res["ref_med"] = timed(ref, repeats)
+    # interleaved (ours, ref, ours, ref, ...): neither side always runs on a warmer cache
+    t_ours, t_ref = [], []
+    for _ in range(repeats):
+        t_ours.append(timed(ours, 1)[0])
+        t_ref.append(timed(ref, 1)[0])
+    res["ours_min"], res["ours_med"] = min(t_ours), statistics.median(t_ours)
+    res["ref_min"], res["ref_med"] = min(t_ref), statistics.median(t_ref)
     res["peak_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     return res
 
 
 def chain_run(folder: Path) -> dict:
     """The per-cell chain end to end, for the peak memory of a whole run."""
+    from screener.system import avoid_hugepage_stalls
+
+    avoid_hugepage_stalls()
     from screener.isolation import find_candidates
     from screener.layers import check_layers, read_layers
     from screener.models import make_model
@@ -289,6 +304,9 @@ def replicate_speedup(repeats: int) -> dict:
     from screener.evaluation import null_model_test
     from screener.overlap import environmental_space, equivalency_test
     from screener.parallel import make_executor
+    from screener.system import avoid_hugepage_stalls
+
+    avoid_hugepage_stalls()
 
     rng = np.random.default_rng(3)
     space = environmental_space(rng.normal(0, 1, (50, 4)), rng.normal(0.3, 1, (50, 4)),
