@@ -373,6 +373,10 @@ def _check_inputs(grid, suitability, thresholds, records, name):
     return taxa, out
 
 
+#: cells per chunk of nearest-record queries
+_QUERY_CELLS = 1 << 20
+
+
 class _SiteCells:
     """The cells of all sites as 1-D arrays, so label reductions skip the rest of the grid.
 
@@ -503,10 +507,14 @@ def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
     # within-range sub-patches
     in_range = is_range[labels] & suitable
     if in_range.any():
-        rr, cc = np.nonzero(in_range)
-        d, _ = near_rec.query(rr, cc)
+        # band by band, so the cell lists and distances stay small on big grids
         far = np.zeros(grid.shape, bool)
-        far[rr, cc] = d > p["within_range_min_km"]
+        band = max(1, _QUERY_CELLS // max(grid.n_cols, 1))
+        for r0 in range(0, grid.n_rows, band):
+            rr, cc = np.nonzero(in_range[r0 : r0 + band])
+            if rr.size:
+                d, _ = near_rec.query(rr + r0, cc)
+                far[rr + r0, cc] = d > p["within_range_min_km"]
         sub, n_sub = ndi.label(far, structure=_EIGHT)
         if n_sub:
             sub_area = ndi.sum(area, sub, np.arange(1, n_sub + 1))
@@ -538,17 +546,21 @@ def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
     cost_all = np.minimum.reduce([cost[t].cost for t in taxa])
     all_src = np.logical_or.reduce([sources[t] for t in taxa])
 
-    # nearest record per site (min over the site's cells)
-    rows_all, cols_all = np.nonzero(site_cells)
-    d_all, j_all = near_rec.query(rows_all, cols_all)
-    lab_all = site_cells[rows_all, cols_all]
+    # nearest record per site (min over the site's cells), a chunk of cells at a time;
+    # cells come in raster order and only a strictly nearer chunk replaces the
+    # running best, so ties go to the first cell in raster order
     nearest_record = np.full(n_sites, np.inf)
     nearest_rec_taxon = np.array([None] * n_sites, dtype=object)
-    if rows_all.size:
-        order = np.lexsort((d_all, lab_all))
-        first = order[np.r_[True, np.diff(lab_all[order]) != 0]]
-        nearest_record[lab_all[first] - 1] = d_all[first]
-        nearest_rec_taxon[lab_all[first] - 1] = rec_taxon[j_all[first]]
+    for a in range(0, sc.flat.size, _QUERY_CELLS):
+        flat = sc.flat[a : a + _QUERY_CELLS]
+        lab = sc.labels[a : a + _QUERY_CELLS]
+        d, j = near_rec.query(flat // grid.n_cols, flat % grid.n_cols)
+        order = np.lexsort((d, lab))
+        first = order[np.r_[True, np.diff(lab[order]) != 0]]
+        k = lab[first] - 1
+        better = d[first] < nearest_record[k]
+        nearest_record[k[better]] = d[first][better]
+        nearest_rec_taxon[k[better]] = rec_taxon[j[first][better]]
 
     # straight-line distance to ranges, for sites no path reaches
     range_edge = _boundary(all_src)

@@ -256,3 +256,19 @@ def test_salish_scenario_island_is_top_isolated(salish):
     r0, c0, inside = grid.rowcol(x, y)
     assert inside and lab[r0, c0] == island
     assert_allclose(utop["area_km2"], top["area_km2"], rtol=0.10)
+
+
+def test_chunked_nearest_record_queries_change_nothing(salish, monkeypatch):
+    # the nearest-record queries run a chunk of cells at a time; tiny chunks (many
+    # chunk boundaries inside sites and ranges) must give the same sites
+    import screener.isolation as iso
+
+    grid, z, lab, island, recs = salish
+    s = suit(z)
+    args = (grid, {"A": s, "B": s}, {"A": THR, "B": THR}, recs)
+    kw = dict(relaxed_thresholds={"A": 0.8 * THR, "B": 0.8 * THR}, min_patch_km2=20.0,
+              within_range_min_km=5.0)
+    whole = find_candidates(*args, **kw).sites
+    monkeypatch.setattr(iso, "_QUERY_CELLS", 97)
+    chunked = find_candidates(*args, **kw).sites
+    assert len(whole) and whole.equals(chunked)
