@@ -182,10 +182,11 @@ class LayerStack:
                 out[i] = self.in_memory[name][r0:r1]
                 continue
             src_info = self.sources[i]
-            values = src_info.read(opened[src_info.path], window=win, out=out[i],
+            dst = out[i]
+            values = src_info.read(opened[src_info.path], window=win, out=dst,
                                    mark_nodata=fill_invalid)
-            if values is not out[i]:
-                out[i] = values
+            if values is not dst:  # read into a new array (mask band, indicator layer)
+                dst[...] = values
         if fill_invalid:
             out[:, ~self.grid.mask[r0:r1]] = np.nan
         return out

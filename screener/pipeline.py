@@ -318,6 +318,14 @@ def _blocks_for(model, stack: LayerStack, max_cells: int, rows=None):
         yield sl, block
 
 
+def _row_bands(stack: LayerStack, max_cells: int) -> list:
+    """(first, stop) rows of bands of about ``max_cells`` cells, whole tile rows each:
+    the tasks of window-by-window work on an executor."""
+    step = stack._rows_per_block(max_cells)
+    n = stack.grid.n_rows
+    return [(r0, min(n, r0 + step)) for r0 in range(0, n, step)]
+
+
 def _predict_rows(model, stack: LayerStack, rows: tuple, max_cells: int):
     """Predictions for the valid cells of a band of rows (a task for an executor)."""
     r0, r1 = rows
@@ -349,8 +357,7 @@ def predict_map(model, stack: LayerStack, *, max_cells: int = 1 << 20,
     grid = stack.grid
     out = np.full(grid.shape, np.nan, dtype=np.float32)
     if map_fn is not None and stack.streamed:
-        step = stack._rows_per_block(max_cells)  # whole tile rows per band
-        bands = [(r0, min(grid.n_rows, r0 + step)) for r0 in range(0, grid.n_rows, step)]
+        bands = _row_bands(stack, max_cells)
         task = functools.partial(_predict_rows, model, stack, max_cells=max_cells)
         for (r0, r1), values in zip(bands, map_fn(task, bands)):
             block = out[r0:r1]
@@ -542,32 +549,21 @@ def _mess_rows(stack: LayerStack, reference: np.ndarray, rows: tuple, max_cells:
 
 def _mess_map(stack: LayerStack, reference: np.ndarray, max_cells: int = 1 << 20,
               map_fn=None):
-    """MESS map and most-dissimilar-layer map; streamed stacks run band by band on
-    ``map_fn`` (each worker reads its own windows), as :func:`predict_map` does."""
+    """MESS map and most-dissimilar-layer map, band by band; streamed stacks run the
+    bands on ``map_fn`` (each worker reads its own windows), as :func:`predict_map`
+    does, in-memory stacks in this process."""
     import functools
-
-    from screener.novelty import mess
 
     grid = stack.grid
     out = np.full(grid.shape, np.nan, dtype=np.float32)
     most = np.full(grid.shape, -1, dtype=np.int16)
-    if map_fn is not None and stack.streamed:
-        step = stack._rows_per_block(max_cells)  # whole tile rows per band
-        bands = [(r0, min(grid.n_rows, r0 + step)) for r0 in range(0, grid.n_rows, step)]
-        task = functools.partial(_mess_rows, stack, np.asarray(reference),
-                                 max_cells=max_cells)
-        for (r0, r1), (m, idx) in zip(bands, map_fn(task, bands)):
-            valid = grid.mask[r0:r1]
-            out[r0:r1][valid] = m
-            most[r0:r1][valid] = idx
-        return out, most
-    for sl, X, valid in stack.iter_blocks(max_cells):
-        if X.shape[0]:
-            m, idx = mess(reference, X)
-            ob = out[sl]
-            ob[valid] = m
-            mb = most[sl]
-            mb[valid] = idx
+    run = map_fn if map_fn is not None and stack.streamed else map
+    bands = _row_bands(stack, max_cells)
+    task = functools.partial(_mess_rows, stack, np.asarray(reference), max_cells=max_cells)
+    for (r0, r1), (m, idx) in zip(bands, run(task, bands)):
+        valid = grid.mask[r0:r1]
+        out[r0:r1][valid] = m
+        most[r0:r1][valid] = idx
     return out, most
 
 

@@ -28,7 +28,6 @@ __all__ = ["NicheModel", "check_predictors", "training_presence_scores", "CHUNK_
 #: Rows handled per chunk in ``predict``: 65,536 rows x 8 float32 predictors is 2 MiB,
 #: small enough for temporaries to stay in cache.
 CHUNK_ROWS = 65_536
-_no_context = contextlib.nullcontext
 
 
 def check_predictors(
@@ -127,7 +126,7 @@ class NicheModel(BaseEstimator):
         if check_input:
             X = check_predictors(X, "X", n_features=self.n_features_in_, min_rows=0)
         out = np.empty(X.shape[0], dtype=dtype)
-        with np.errstate(all="ignore") if not check_input else _no_context():
+        with np.errstate(all="ignore") if not check_input else contextlib.nullcontext():
             for start in range(0, X.shape[0], CHUNK_ROWS):
                 stop = min(start + CHUNK_ROWS, X.shape[0])
                 out[start:stop] = self._predict_chunk(X[start:stop])

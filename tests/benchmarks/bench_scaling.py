@@ -93,14 +93,7 @@ def timed(fn, repeats):
 
 
 def stage_run(stage: str, folder: Path, repeats: int) -> dict:
-    """Run one stage (ours and its reference) in this process; return timings.
-
-    The process is set up as the command line sets itself up
-    (``screener.system.avoid_hugepage_stalls``), for ours and the reference alike.
-    """
-    from screener.system import avoid_hugepage_stalls
-
-    avoid_hugepage_stalls()
+    """Run one stage (ours and its reference) in this process; return timings."""
     import rasterio
     from rasterio.windows import Window
 
@@ -259,9 +252,6 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
 
 def chain_run(folder: Path) -> dict:
     """The per-cell chain end to end, for the peak memory of a whole run."""
-    from screener.system import avoid_hugepage_stalls
-
-    avoid_hugepage_stalls()
     from screener.isolation import find_candidates
     from screener.layers import check_layers, read_layers
     from screener.models import make_model
@@ -304,9 +294,6 @@ def replicate_speedup(repeats: int) -> dict:
     from screener.evaluation import null_model_test
     from screener.overlap import environmental_space, equivalency_test
     from screener.parallel import make_executor
-    from screener.system import avoid_hugepage_stalls
-
-    avoid_hugepage_stalls()
 
     rng = np.random.default_rng(3)
     space = environmental_space(rng.normal(0, 1, (50, 4)), rng.normal(0.3, 1, (50, 4)),
@@ -349,6 +336,11 @@ def main():
     ap.add_argument("--folder", help=argparse.SUPPRESS)
     ap.add_argument("--chain", action="store_true", help=argparse.SUPPRESS)
     args = ap.parse_args()
+    # every process (driver, stages, chain) is set up as the command line sets itself
+    # up, for ours and the reference alike
+    from screener.system import avoid_hugepage_stalls
+
+    avoid_hugepage_stalls()
     if args.stage:
         print(json.dumps(stage_run(args.stage, Path(args.folder), args.repeats)))
         return
