@@ -51,6 +51,9 @@ def tobler_speed_kmh(
     off_track : bool, default False
         Multiply by ``off_track_factor``.
     off_track_factor : float, default 0.6
+    memory_mb : float, optional
+        Working memory for the cost-distance solver (MB); see
+        :class:`~screener.costdistance.CostGraph`.
 
     Returns
     -------
@@ -134,6 +137,7 @@ def walking_hours(
     impassable=None,
     *,
     off_track_factor: float = OFF_TRACK_FACTOR,
+    memory_mb: float | None = None,
 ) -> np.ndarray:
     """Walking time in hours from the nearest start point to every cell.
 
@@ -149,6 +153,9 @@ def walking_hours(
     impassable : ndarray of bool, optional
         Cells no walker crosses (open water, cliffs, closed land).
     off_track_factor : float, default 0.6
+    memory_mb : float, optional
+        Working memory for the cost-distance solver (MB); see
+        :class:`~screener.costdistance.CostGraph`.
 
     Returns
     -------
@@ -167,4 +174,4 @@ def walking_hours(
         cost = 1.0 / v  # hours per km
     if impassable is not None:
         cost = np.where(np.asarray(impassable, bool), np.inf, cost)
-    return cost_distance(grid, cost, start_rc).cost
+    return cost_distance(grid, cost, start_rc, memory_mb=memory_mb).cost

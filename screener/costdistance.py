@@ -6,7 +6,7 @@ between the two cell centres, taken from the :class:`~screener.grid.Grid`
 (``ew_step_km``, ``ns_step_km``, ``diag_step_km``).  The accumulated cost of a cell is
 the cheapest sum of step costs from any source cell; sources cost 0.
 
-Two backends compute the same quantity:
+Three backends compute the same quantity:
 
 ``"mcp"``
     :class:`skimage.graph.MCP_Geometric` with ``sampling=(dy_km, dx_km)``.  It uses
@@ -16,9 +16,14 @@ Two backends compute the same quantity:
     :func:`scipy.sparse.csgraph.dijkstra` (multi-source, ``min_only=True``) over the
     explicit 8-neighbour graph, whose edge lengths vary by row.  Used on longitude /
     latitude grids, where east-west steps shrink with latitude.
+``"tiled"``
+    The ``"dijkstra"`` graph solved one tile at a time, so that the solver's working
+    memory is bounded by a setting rather than by the grid (see :class:`CostGraph`).
 
 ``backend="auto"`` picks ``"mcp"`` on grids with constant steps and ``"dijkstra"``
-otherwise; ``docs/benchmarks/isolation.md`` has the timings behind the choice.
+otherwise, or ``"tiled"`` when that solver would need more than ``memory_mb``;
+``docs/benchmarks/isolation.md`` and ``docs/performance.md`` have the timings behind
+the choice.
 
 Impassable cells (outside ``grid.mask``, NaN, ``inf`` or negative resistance) are set
 to ``np.inf`` before any backend sees them: a NaN cost silently corrupts MCP's result
@@ -196,16 +201,27 @@ def _as_rc(sources, shape, name="sources") -> np.ndarray:
     return rc
 
 
-def _edge_arrays(grid: Grid, r: np.ndarray):
+def _edge_arrays(r: np.ndarray, ew, ns, dg, dtype=np.int64):
     """Forward edges (E, S, SE, SW) of the 8-neighbour graph between passable cells.
+
+    Parameters
+    ----------
+    r : ndarray of float64, shape (n_rows, n_cols)
+        Resistance with impassable cells ``inf``.
+    ew : ndarray, shape (n_rows,)
+        East-west step in km per row.
+    ns, dg : ndarray, shape (n_rows - 1,)
+        North-south and diagonal steps in km between row ``i`` and ``i + 1``.
+    dtype : numpy integer type
+        Of the returned cell indices (int32 halves the graph's index memory).
 
     Returns flat ``(tail, head, weight)`` arrays; each undirected edge appears once.
     """
-    n_rows, n_cols = grid.shape
-    idx = np.arange(n_rows * n_cols, dtype=np.int64).reshape(grid.shape)
-    ew = np.asarray(grid.ew_step_km, float)
-    ns = np.asarray(grid.ns_step_km, float)
-    dg = np.asarray(grid.diag_step_km, float)
+    n_rows, n_cols = r.shape
+    idx = np.arange(n_rows * n_cols, dtype=dtype).reshape(r.shape)
+    ew = np.asarray(ew, float)
+    ns = np.asarray(ns, float)
+    dg = np.asarray(dg, float)
     tails, heads, weights = [], [], []
 
     def add(a_sl, b_sl, length):
@@ -256,6 +272,28 @@ def _edge_of_sources(rc: np.ndarray, shape: tuple):
     return np.argwhere(mask & ~interior), interior
 
 
+#: neighbour offsets ``(d_row, d_col)`` of a cell from the cell before it on its path;
+#: a tiled traceback stores the index into this table (int8)
+_OFFSETS = np.array(
+    [(-1, -1), (-1, 0), (-1, 1), (0, -1), (0, 1), (1, -1), (1, 0), (1, 1)], dtype=np.int64
+)
+_CODE = np.full((3, 3), -3, dtype=np.int8)
+_CODE[_OFFSETS[:, 0] + 1, _OFFSETS[:, 1] + 1] = np.arange(8, dtype=np.int8)
+
+#: working memory of each whole-grid solver while it runs, bytes per cell above its
+#: input (measured: docs/performance.md); the tiled solver needs this per tile cell
+_SOLVER_BYTES_PER_CELL = {"mcp": 80, "dijkstra": 120, "tiled": 120}
+#: cells each tile's search reaches into its neighbours, so that paths running along a
+#: tile edge are found by one search instead of searches of both tiles in turn
+_TILE_MARGIN = 64
+#: smallest tile the tiled solver uses, in cells (smaller tiles re-run too often)
+_MIN_TILE_CELLS = 1 << 16
+
+
+def _tile_edges(n: int, n_tiles: int) -> np.ndarray:
+    return np.linspace(0, n, n_tiles + 1).round().astype(np.int64)
+
+
 class CostGraph:
     """A grid prepared for repeated cost-distance runs from different sources.
 
@@ -264,14 +302,33 @@ class CostGraph:
     grid : Grid
     resistance : array_like of shape (n_rows, n_cols)
         Cost per km; impassable cells as in :func:`prepare_resistance`.
-    backend : {"auto", "mcp", "dijkstra"}, default "auto"
-        ``"auto"``: MCP on grids with constant steps, Dijkstra otherwise.  Forcing
+    backend : {"auto", "mcp", "dijkstra", "tiled"}, default "auto"
+        ``"auto"``: MCP on grids with constant steps, Dijkstra otherwise, or
+        ``"tiled"`` when that solver would need more than ``memory_mb``.  Forcing
         ``"mcp"`` on a longitude/latitude grid raises, because MCP cannot express
-        east-west steps that change with latitude.
+        east-west steps that change with latitude.  ``"tiled"`` solves the same
+        graph as ``"dijkstra"`` one tile at a time (see Notes).
     copy : bool, default True
         ``False`` lets the graph mark impassable cells in ``resistance`` itself when
         it is a float64 array the caller no longer needs (see
         :func:`prepare_resistance`).
+    memory_mb : float, optional
+        Working memory the solver may use, in MB.  With ``backend="auto"`` a grid
+        whose whole-grid solver would need more (about 80 bytes per cell for MCP,
+        120 for Dijkstra) is solved by tiles sized to fit; with ``"tiled"`` it sets
+        the tile size (default 64 MB).  The resistance (8 bytes per cell) and each
+        returned surface come on top.
+
+    Notes
+    -----
+    The tiled solver keeps one accumulated-cost raster for the whole grid and runs
+    an exact Dijkstra search per tile (:func:`scipy.sparse.csgraph.dijkstra` from a
+    super-source joined to the tile's sources at cost 0 and to each edge cell at
+    the cheapest cost of stepping in from a neighbouring tile).  A tile whose edge
+    costs improved queues its neighbours again, cheapest first, until no cost
+    improves; at that point every step satisfies ``cost[b] <= cost[a] + step(a,
+    b)``, so the costs equal the whole-grid search (the same additions in the same
+    order: identical to ``"dijkstra"`` to the last bit, and to MCP within rounding).
 
     Examples
     --------
@@ -282,13 +339,26 @@ class CostGraph:
     [[0.0, 1.0, 2.0]]
     """
 
-    def __init__(self, grid: Grid, resistance, backend: str = "auto", *, copy: bool = True):
-        if backend not in ("auto", "mcp", "dijkstra"):
+    def __init__(
+        self,
+        grid: Grid,
+        resistance,
+        backend: str = "auto",
+        *,
+        copy: bool = True,
+        memory_mb: float | None = None,
+    ):
+        if backend not in ("auto", "mcp", "dijkstra", "tiled"):
             raise InputError(
-                f"backend must be 'auto', 'mcp' or 'dijkstra'; got {backend!r}."
+                f"backend must be 'auto', 'mcp', 'dijkstra' or 'tiled'; got {backend!r}."
             )
+        if memory_mb is not None and not (np.isfinite(memory_mb) and memory_mb > 0):
+            raise InputError(f"`memory_mb` must be a number > 0; got {memory_mb!r}.")
         if backend == "auto":
             backend = "mcp" if grid.constant_steps else "dijkstra"
+            need_mb = _SOLVER_BYTES_PER_CELL[backend] * grid.n_cells / 1e6
+            if memory_mb is not None and need_mb > memory_mb:
+                backend = "tiled"
         if backend == "mcp" and not grid.constant_steps:
             raise InputError(
                 "backend='mcp' needs constant step lengths, but this grid is "
@@ -303,7 +373,20 @@ class CostGraph:
         self.passable = np.isfinite(resistance)
         self._mcp = None
         self._graph = None
-        if backend == "mcp":
+        self._resistance = None
+        if backend == "tiled":
+            self._resistance = resistance
+            budget = (memory_mb or 64.0) * 1e6 / _SOLVER_BYTES_PER_CELL["tiled"]
+            tile_cells = max(int(budget), _MIN_TILE_CELLS)
+            side = max(int(np.sqrt(tile_cells)), 1)
+            n_rows, n_cols = grid.shape
+            tile_rows = min(n_rows, side)
+            tile_cols = min(n_cols, max(side, tile_cells // tile_rows))
+            self._row_edges = _tile_edges(n_rows, -(-n_rows // tile_rows))
+            self._col_edges = _tile_edges(n_cols, -(-n_cols // tile_cols))
+            self._flat_offsets = _OFFSETS[:, 0] * n_cols + _OFFSETS[:, 1]
+            self._margin = _TILE_MARGIN
+        elif backend == "mcp":
             dy = (
                 float(grid.ns_step_km[0])
                 if grid.n_rows > 1
@@ -316,8 +399,11 @@ class CostGraph:
             offsets = np.asarray(self._mcp.offsets, dtype=np.int64)
             self._flat_offsets = offsets[:, 0] * grid.n_cols + offsets[:, 1]
         else:
-            tail, head, w = _edge_arrays(grid, resistance)
             n = grid.n_cells
+            tail, head, w = _edge_arrays(
+                resistance, grid.ew_step_km, grid.ns_step_km, grid.diag_step_km,
+                dtype=np.int32 if n < 2**31 - 1 else np.int64,
+            )
             # Explicit zero weights are kept as edges by csgraph (zero-resistance cells).
             self._graph = sp.csr_matrix((w, (tail, head)), shape=(n, n))
         log.debug("cost graph ready: backend=%s, shape=%s", backend, grid.shape)
@@ -359,6 +445,11 @@ class CostGraph:
             cost = np.full(shape, np.inf, dtype=dtype)
             pred = np.full(shape, UNREACHED, dtype=np.int32)
             return CostSurface(cost, rc, self.backend, pred)
+        if self.backend == "tiled":
+            cost, tb = self._run_tiled(rc)
+            return CostSurface(
+                cost.astype(dtype, copy=False), rc, self.backend, tb, self._flat_offsets
+            )
         if self.backend == "mcp":
             # find_costs returns views of buffers the next run overwrites: copy out,
             # keeping MCP's own int16 traceback (2 bytes per cell) rather than
@@ -386,8 +477,191 @@ class CostGraph:
         return CostSurface(cost, rc, self.backend, pred)
 
 
+    # -- tiled solver -------------------------------------------------------------
+    def _tile(self, t: int):
+        """Search window of tile ``t``: its cells and a margin of its neighbours'."""
+        n_tc = len(self._col_edges) - 1
+        i, j = divmod(t, n_tc)
+        m = self._margin
+        n_rows, n_cols = self.grid.shape
+        return (
+            max(int(self._row_edges[i]) - m, 0),
+            min(int(self._row_edges[i + 1]) + m, n_rows),
+            max(int(self._col_edges[j]) - m, 0),
+            min(int(self._col_edges[j + 1]) + m, n_cols),
+        )
+
+    def _neighbour_tiles(self, t: int) -> list:
+        n_tr, n_tc = len(self._row_edges) - 1, len(self._col_edges) - 1
+        i, j = divmod(t, n_tc)
+        return [
+            a * n_tc + b
+            for a in range(max(i - 1, 0), min(i + 2, n_tr))
+            for b in range(max(j - 1, 0), min(j + 2, n_tc))
+            if (a, b) != (i, j)
+        ]
+
+    def _cheapest_step(self, rr, cc, cost, window, *, from_inside: bool):
+        """Cheapest ``cost[a] + step(a, b)`` into each cell ``b = (rr, cc)``.
+
+        Over the neighbours ``a`` inside (``from_inside=True``) or outside the
+        window ``(r0, r1, c0, c1)``.  Returns the costs (``inf`` where none) and the
+        traceback code of the step taken.
+        """
+        r0, r1, c0, c1 = window
+        n_rows, n_cols = self.grid.shape
+        res = self._resistance
+        ew, ns, dg = self.grid.ew_step_km, self.grid.ns_step_km, self.grid.diag_step_km
+        best = np.full(rr.size, np.inf)
+        code = np.full(rr.size, UNREACHED, dtype=np.int8)
+        r_here = res[rr, cc]
+        for k, (dr, dc) in enumerate(_OFFSETS):
+            pr, pc = rr - dr, cc - dc  # the neighbour a step of (dr, dc) comes from
+            ok = (pr >= 0) & (pr < n_rows) & (pc >= 0) & (pc < n_cols)
+            outside = (pr < r0) | (pr >= r1) | (pc < c0) | (pc >= c1)
+            ok &= ~outside if from_inside else outside
+            if not ok.any():
+                continue
+            i = np.flatnonzero(ok)
+            a_r, a_c, b_r = pr[i], pc[i], rr[i]
+            if dr == 0:
+                length = ew[b_r]
+            elif dc == 0:
+                length = ns[np.minimum(a_r, b_r)]
+            else:
+                length = dg[np.minimum(a_r, b_r)]
+            cand = cost[a_r, a_c] + length * (res[a_r, a_c] + r_here[i]) * 0.5
+            better = cand < best[i]
+            best[i[better]] = cand[better]
+            code[i[better]] = k
+        return best, code
+
+    def _outer_ring(self, window):
+        """(rows, cols) of the cells just outside a window, inside the grid."""
+        r0, r1, c0, c1 = window
+        n_rows, n_cols = self.grid.shape
+        a0, a1 = max(r0 - 1, 0), min(r1 + 1, n_rows)
+        b0, b1 = max(c0 - 1, 0), min(c1 + 1, n_cols)
+        box = np.ones((a1 - a0, b1 - b0), dtype=bool)
+        box[r0 - a0 : r1 - a0, c0 - b0 : c1 - b0] = False
+        rr, cc = np.nonzero(box)
+        return rr + a0, cc + b0
+
+    def _solve_tile(self, t, cost, tb, is_source):
+        """One exact search over the window of tile ``t``, from every cell's current
+        cost, the sources (cost 0) and the cheapest steps in from outside.  Updates
+        ``cost`` and ``tb`` in place where a cell got cheaper.
+
+        Returns True when any cell got cheaper.
+        """
+        r0, r1, c0, c1 = window = self._tile(t)
+        h, w = r1 - r0, c1 - c0
+        n = h * w
+        view = cost[r0:r1, c0:c1]
+        start = view.ravel().copy()  # current costs
+        start_code = np.full(n, UNREACHED, dtype=np.int8)
+        src = np.flatnonzero(is_source[r0:r1, c0:c1])
+        new_src = src[start[src] > 0]
+        start[new_src] = 0.0
+        start_code[new_src] = SOURCE
+        ring = np.zeros((h, w), dtype=bool)
+        ring[[0, -1], :] = True
+        ring[:, [0, -1]] = True
+        lr, lc = np.nonzero(ring)
+        step, code = self._cheapest_step(lr + r0, lc + c0, cost, window, from_inside=False)
+        at = lr * w + lc
+        gain = step < start[at]
+        start[at[gain]] = step[gain]
+        start_code[at[gain]] = code[gain]
+        seeds = np.flatnonzero(np.isfinite(start))
+        if seeds.size == 0:
+            return False
+        grid = self.grid
+        tail, head, wt = _edge_arrays(
+            self._resistance[r0:r1, c0:c1],
+            grid.ew_step_km[r0:r1],
+            grid.ns_step_km[r0 : r1 - 1],
+            grid.diag_step_km[r0 : r1 - 1],
+            dtype=np.int32,
+        )
+        # super-source n: one edge per seeded cell (explicit zeros are kept as edges)
+        tail = np.concatenate([tail, np.full(seeds.size, n, np.int32)])
+        head = np.concatenate([head, seeds.astype(np.int32)])
+        wt = np.concatenate([wt, start[seeds]])
+        g = sp.csr_matrix((wt, (tail, head)), shape=(n + 1, n + 1))
+        del tail, head, wt
+        dist, pred = dijkstra(g, directed=False, indices=n, return_predecessors=True)
+        del g
+        better = dist[:n].reshape(h, w) < view
+        if not better.any():
+            return False
+        at = np.flatnonzero(better)
+        p = pred[at]
+        codes = np.empty(at.size, dtype=np.int8)
+        seeded = p == n
+        codes[seeded] = start_code[at[seeded]]
+        inner = ~seeded
+        pr, pc = np.divmod(p[inner], w)
+        ar, ac = np.divmod(at[inner], w)
+        codes[inner] = _CODE[ar - pr + 1, ac - pc + 1]
+        view[better] = dist[at]
+        tb[r0:r1, c0:c1][better] = codes
+        return True
+
+    def _run_tiled(self, rc: np.ndarray):
+        """Accumulated cost from ``rc`` (unique, passable) by tiles; see the Notes."""
+        import heapq
+
+        shape = self.grid.shape
+        cost = np.full(shape, np.inf)
+        tb = np.full(shape, UNREACHED, dtype=np.int8)
+        n_tc = len(self._col_edges) - 1
+        is_source = np.zeros(shape, dtype=bool)
+        is_source[rc[:, 0], rc[:, 1]] = True
+        ti = np.searchsorted(self._row_edges, rc[:, 0], side="right") - 1
+        tj = np.searchsorted(self._col_edges, rc[:, 1], side="right") - 1
+        first = [int(t) for t in np.unique(ti * n_tc + tj)]
+        pending = {t: 0.0 for t in first}
+        heap = [(0.0, t) for t in first]
+        heapq.heapify(heap)
+        n_solves = 0
+        while heap:
+            key, t = heapq.heappop(heap)
+            if pending.get(t) != key:
+                continue  # superseded by a cheaper entry
+            del pending[t]
+            n_solves += 1
+            if not self._solve_tile(t, cost, tb, is_source):
+                continue
+            # steps out of the window that would lower a neighbour: queue the
+            # neighbouring windows holding those cells, cheapest first
+            window = self._tile(t)
+            rr, cc = self._outer_ring(window)
+            step, _ = self._cheapest_step(rr, cc, cost, window, from_inside=True)
+            low = step < cost[rr, cc]
+            if not low.any():
+                continue
+            rr, cc, step = rr[low], cc[low], step[low]
+            for nt in self._neighbour_tiles(t):
+                r0, r1, c0, c1 = self._tile(nt)
+                inside = (rr >= r0) & (rr < r1) & (cc >= c0) & (cc < c1)
+                if inside.any():
+                    k = float(step[inside].min())
+                    if k < pending.get(nt, np.inf):
+                        pending[nt] = k
+                        heapq.heappush(heap, (k, nt))
+        n_tiles = (len(self._row_edges) - 1) * n_tc
+        log.debug("tiled cost distance: %d tile searches over %d tiles", n_solves, n_tiles)
+        self.last_tile_searches = n_solves
+        return cost, tb
+
 def cost_distance(
-    grid: Grid, resistance, sources, *, backend: str = "auto"
+    grid: Grid,
+    resistance,
+    sources,
+    *,
+    backend: str = "auto",
+    memory_mb: float | None = None,
 ) -> CostSurface:
     """Accumulated cost distance from source cells over a resistance raster.
 
@@ -398,7 +672,10 @@ def cost_distance(
         Cost per km of ground.  NaN, inf, negative and masked cells are impassable.
     sources : array_like of shape (n, 2), tuple (rows, cols) or bool mask
         Source cells (e.g. every cell of a known range).
-    backend : {"auto", "mcp", "dijkstra"}, default "auto"
+    backend : {"auto", "mcp", "dijkstra", "tiled"}, default "auto"
+    memory_mb : float, optional
+        Working memory for the solver (MB); larger grids are solved tile by tile
+        (see :class:`CostGraph`).
 
     Returns
     -------
@@ -418,7 +695,7 @@ def cost_distance(
     .. [2] Dijkstra, E. W. (1959). A note on two problems in connexion with graphs.
        Numerische Mathematik 1:269-271.
     """
-    return CostGraph(grid, resistance, backend=backend).run(sources)
+    return CostGraph(grid, resistance, backend=backend, memory_mb=memory_mb).run(sources)
 
 
 def least_cost_path(surface: CostSurface, end_rc) -> np.ndarray:

@@ -673,6 +673,7 @@ def find_candidates(
     novelty=None,
     elevation=None,
     backend: str = "auto",
+    memory_mb: float | None = None,
 ) -> CandidateSet:
     """Find suitable patches cut off from the known ranges of a clade.
 
@@ -706,7 +707,13 @@ def find_candidates(
     agreement, novelty, elevation : ndarray (n_rows, n_cols), optional
         Model agreement (mean reported), MESS (share of cells < 0 reported) and
         elevation (min and max reported).
-    backend : {"auto", "mcp", "dijkstra"}, default "auto"
+    backend : {"auto", "mcp", "dijkstra", "tiled"}, default "auto"
+        Cost-distance solver (:class:`~screener.costdistance.CostGraph`).
+    memory_mb : float, optional
+        Working memory for the cost-distance solver (MB); grids whose whole-grid
+        solver would need more are solved tile by tile (the same costs).  The
+        stage's own whole-grid arrays (labels, site cells and a float32 cost surface
+        with a traceback per taxon and threshold set) come on top.
 
     Returns
     -------
@@ -757,7 +764,7 @@ def find_candidates(
         res = np.where(np.asarray(impassable, bool), np.inf, res)
     # built once, run per source set; `res` is ours unless the caller passed a raster
     own = isinstance(resistance, str) or impassable is not None
-    graph = CostGraph(grid, res, backend=backend, copy=not own)
+    graph = CostGraph(grid, res, backend=backend, copy=not own, memory_mb=memory_mb)
     del res
     p = {
         "min_gap_km": float(min_gap_km),

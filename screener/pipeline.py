@@ -750,6 +750,7 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None) -> dict:
         agreement=agreement,
         novelty=clade_mess,
         elevation=intake.elevation,
+        memory_mb=s.compute.memory_mb or None,
     )
     sites = cand.sites.copy()
     access_hours = None
@@ -771,6 +772,7 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None) -> dict:
             intake.elevation,
             np.column_stack([r[ok], c[ok]]),
             off_track=s.access.off_track,
+            memory_mb=s.compute.memory_mb or None,
         )
         sites["walk_hours"] = access_hours[
             sites["row"].to_numpy(int), sites["col"].to_numpy(int)

@@ -17,6 +17,7 @@ from screener.costdistance import (
     cost_distance,
     least_cost_path,
     path_length_km,
+    step_lengths_km,
 )
 from screener.errors import InputError
 from screener.grid import Grid
@@ -225,3 +226,83 @@ def test_float32_surfaces_agree_with_float64():
     assert_allclose(b.cost, a.cost, rtol=1e-6)
     with pytest.raises(InputError, match="float64 or float32"):
         g.run([(3, 4)], dtype=np.int32)
+
+
+@pytest.fixture
+def small_tiles(monkeypatch):
+    """Tiles of about 6 x 6 cells with a 2-cell margin, so small grids span many."""
+    import screener.costdistance as cd
+
+    monkeypatch.setattr(cd, "_MIN_TILE_CELLS", 36)
+    monkeypatch.setattr(cd, "_TILE_MARGIN", 2)
+    return cd
+
+
+def path_cost(grid, r, path):
+    """Sum of step costs L (r_a + r_b) / 2 along a path (same formula as the reference)."""
+    a, b = path[:-1], path[1:]
+    return float(np.sum(step_lengths_km(grid, path) * (r[a[:, 0], a[:, 1]] + r[b[:, 0], b[:, 1]]) / 2))
+
+
+@pytest.mark.parametrize("geographic", [False, True])
+@pytest.mark.parametrize("margin", [0, 2])
+def test_tiled_matches_reference(small_tiles, monkeypatch, geographic, margin):
+    """Tile by tile equals the independent whole-grid reference (scipy.sparse.csgraph
+    on a graph built cell by cell; pyproj step lengths on the lat/lon grid), paths
+    included: a maze of impassable walls makes cheapest paths wind through many tiles."""
+    monkeypatch.setattr(small_tiles, "_TILE_MARGIN", margin)
+    rng = np.random.default_rng(7)
+    shape = (23, 29)
+    grid = latlon_grid(shape, res=0.25) if geographic else projected_grid(shape)
+    r = rng.uniform(0.05, 3.0, shape)
+    r[5, :24] = np.inf  # walls with gaps at alternate ends: a serpentine corridor
+    r[11, 4:] = np.inf
+    r[17, :25] = np.inf
+    r[rng.random(shape) < 0.05] = np.nan
+    sources = [(0, 0), (22, 28), (8, 14)]
+    sources = [s for s in sources if np.isfinite(r[s])]
+    g = CostGraph(grid, r, backend="tiled", memory_mb=1e-6)
+    assert (len(g._row_edges) - 1) * (len(g._col_edges) - 1) >= 12
+    surf = g.run(sources)
+    want = reference_cost(grid, np.where(np.isfinite(r), r, np.inf), sources)
+    assert_allclose(surf.cost, want, rtol=1e-12)
+    assert g.last_tile_searches >= 12
+    rr = np.where(np.isfinite(r), r, np.inf)
+    for end in [(22, 0), (12, 27), (4, 20), (16, 3)]:
+        path = least_cost_path(surf, end)
+        if not np.isfinite(want[end]):
+            assert path.shape == (0, 2)
+            continue
+        assert tuple(path[0]) in set(sources) and tuple(path[-1]) == end
+        assert path_cost(grid, rr, path) == pytest.approx(want[end], rel=1e-12)
+    pred = surf.predecessor
+    for flat in rng.choice(grid.n_cells, 60, replace=False):
+        assert pred.flat[flat] == surf.previous_cell(int(flat))
+
+
+def test_tiled_equals_whole_grid_dijkstra_bit_for_bit(small_tiles):
+    """The tiled search adds the same step costs in the same order as the whole-grid
+    search, so the costs agree exactly, not just within rounding."""
+    rng = np.random.default_rng(8)
+    grid = latlon_grid((31, 17), res=0.1)
+    r = rng.uniform(0.0, 2.0, grid.shape)  # zero-resistance cells included
+    r[r < 0.1] = 0.0
+    src = np.zeros(grid.shape, bool)
+    src[10:14, 2:9] = True
+    whole = CostGraph(grid, r, backend="dijkstra").run(src)
+    tiled = CostGraph(grid, r, backend="tiled", memory_mb=1e-6).run(src)
+    assert np.array_equal(whole.cost, tiled.cost)
+    assert (tiled.cost[src] == 0).all() and (tiled.predecessor[src] == -1).all()
+
+
+def test_auto_tiles_only_when_the_solver_would_exceed_memory():
+    grid = projected_grid((200, 300))  # 6e4 cells: MCP needs about 4.8 MB
+    r = np.ones(grid.shape)
+    assert CostGraph(grid, r, memory_mb=100).backend == "mcp"
+    assert CostGraph(grid, r, memory_mb=1).backend == "tiled"
+    assert CostGraph(latlon_grid((200, 300)), r, memory_mb=1).backend == "tiled"
+    a = CostGraph(grid, r, memory_mb=1).run([(0, 0)])
+    b = CostGraph(grid, r).run([(0, 0)])
+    assert_allclose(a.cost, b.cost, rtol=1e-12)
+    with pytest.raises(InputError, match="memory_mb"):
+        CostGraph(grid, r, memory_mb=0)

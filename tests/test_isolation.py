@@ -272,3 +272,24 @@ def test_chunked_nearest_record_queries_change_nothing(salish, monkeypatch):
     monkeypatch.setattr(iso, "_QUERY_CELLS", 97)
     chunked = find_candidates(*args, **kw).sites
     assert len(whole) and whole.equals(chunked)
+
+
+def test_tiled_cost_distance_gives_the_same_sites(salish, monkeypatch):
+    # the same scene on matplotlib's Salish Sea grid with the cost-distance solver
+    # held to a tiny memory budget (tiles of about 20 x 20 cells): identical sites,
+    # costs and paths to the whole-grid solver
+    import screener.costdistance as cd
+
+    grid, z, lab, island, recs = salish
+    s = suit(z)
+    args = (grid, {"A": s, "B": s}, {"A": THR, "B": THR}, recs)
+    kw = dict(relaxed_thresholds={"A": 0.8 * THR, "B": 0.8 * THR}, min_patch_km2=20.0)
+    whole = find_candidates(*args, **kw)
+    monkeypatch.setattr(cd, "_MIN_TILE_CELLS", 400)
+    monkeypatch.setattr(cd, "_TILE_MARGIN", 4)
+    tiled = find_candidates(*args, memory_mb=1e-3, **kw)
+    assert grid.n_cells > 20 * 400
+    assert len(whole.sites) and whole.sites.equals(tiled.sites)
+    assert whole.paths.keys() == tiled.paths.keys()
+    for k in whole.paths:
+        assert np.array_equal(whole.paths[k], tiled.paths[k])
