@@ -75,8 +75,6 @@ class CostSurface:
         Accumulated cost (resistance units x km); 0 on sources, ``inf`` where no
         source is reachable or the cell is impassable.  float64 unless the run asked
         for float32 (:meth:`CostGraph.run`).
-    sources : ndarray of int64, shape (n_sources, 2)
-        The (row, col) source cells that were passable.
     backend : str
         ``"mcp"`` or ``"dijkstra"``.
     traceback : ndarray, shape (n_rows, n_cols)
@@ -88,7 +86,6 @@ class CostSurface:
     """
 
     cost: np.ndarray
-    sources: np.ndarray
     backend: str
     traceback: np.ndarray = field(repr=False)
     #: flat index step of each MCP offset (``None`` for dijkstra)
@@ -97,6 +94,12 @@ class CostSurface:
     @property
     def shape(self) -> tuple:
         return self.cost.shape
+
+    @property
+    def sources(self) -> np.ndarray:
+        """ndarray of int64, shape (n_sources, 2): the (row, col) source cells that
+        were passable (found from the traceback on request)."""
+        return np.argwhere(self.traceback == SOURCE).astype(np.int64)
 
     @property
     def predecessor(self) -> np.ndarray:
@@ -428,12 +431,17 @@ class CostGraph:
         if dtype not in (np.float64, np.float32):
             raise InputError(f"dtype must be float64 or float32; got {dtype}.")
         shape = self.grid.shape
-        if isinstance(sources, np.ndarray) and sources.dtype == bool and sources.shape == shape:
+        is_mask = (
+            isinstance(sources, np.ndarray) and sources.dtype == bool and sources.shape == shape
+        )
+        if is_mask:
             # a mask is unique already: no sort of its cells
             n_bad = int(np.count_nonzero(sources & ~self.passable))
             if n_bad:
                 log.info("%d source cells are impassable and were dropped", n_bad)
-            rc = np.argwhere(sources & self.passable)
+            is_source = sources & self.passable
+            rc = None if self.backend == "tiled" else np.argwhere(is_source)
+            n_sources = int(np.count_nonzero(is_source)) if rc is None else len(rc)
         else:
             rc = _as_rc(sources, shape)
             if len(rc):
@@ -441,14 +449,18 @@ class CostGraph:
                 if not ok.all():
                     log.info("%d source cells are impassable and were dropped", (~ok).sum())
                 rc = np.unique(rc[ok], axis=0)
-        if len(rc) == 0:
+            n_sources = len(rc)
+        if n_sources == 0:
             cost = np.full(shape, np.inf, dtype=dtype)
             pred = np.full(shape, UNREACHED, dtype=np.int32)
-            return CostSurface(cost, rc, self.backend, pred)
+            return CostSurface(cost, self.backend, pred)
         if self.backend == "tiled":
-            cost, tb = self._run_tiled(rc)
+            if rc is not None:
+                is_source = np.zeros(shape, dtype=bool)
+                is_source[rc[:, 0], rc[:, 1]] = True
+            cost, tb = self._run_tiled(is_source)
             return CostSurface(
-                cost.astype(dtype, copy=False), rc, self.backend, tb, self._flat_offsets
+                cost.astype(dtype, copy=False), self.backend, tb, self._flat_offsets
             )
         if self.backend == "mcp":
             # find_costs returns views of buffers the next run overwrites: copy out,
@@ -461,7 +473,7 @@ class CostGraph:
             if interior is not None:
                 cost[interior] = 0.0
                 tb[interior] = -1
-            return CostSurface(cost, rc, self.backend, tb, self._flat_offsets)
+            return CostSurface(cost, self.backend, tb, self._flat_offsets)
         flat = rc[:, 0] * shape[1] + rc[:, 1]
         dist, p, _ = dijkstra(
             self._graph,
@@ -474,7 +486,7 @@ class CostGraph:
         pred = p.astype(np.int32).reshape(shape)
         pred[pred < 0] = UNREACHED
         pred.flat[flat] = SOURCE
-        return CostSurface(cost, rc, self.backend, pred)
+        return CostSurface(cost, self.backend, pred)
 
 
     # -- tiled solver -------------------------------------------------------------
@@ -608,19 +620,21 @@ class CostGraph:
         tb[r0:r1, c0:c1][better] = codes
         return True
 
-    def _run_tiled(self, rc: np.ndarray):
-        """Accumulated cost from ``rc`` (unique, passable) by tiles; see the Notes."""
+    def _run_tiled(self, is_source: np.ndarray):
+        """Accumulated cost from the (passable) cells of ``is_source`` by tiles; see
+        the Notes of :class:`CostGraph`."""
         import heapq
 
         shape = self.grid.shape
         cost = np.full(shape, np.inf)
         tb = np.full(shape, UNREACHED, dtype=np.int8)
+        # tiles holding a source, found band by band without listing the sources
         n_tc = len(self._col_edges) - 1
-        is_source = np.zeros(shape, dtype=bool)
-        is_source[rc[:, 0], rc[:, 1]] = True
-        ti = np.searchsorted(self._row_edges, rc[:, 0], side="right") - 1
-        tj = np.searchsorted(self._col_edges, rc[:, 1], side="right") - 1
-        first = [int(t) for t in np.unique(ti * n_tc + tj)]
+        first = []
+        for i in range(len(self._row_edges) - 1):
+            band = is_source[self._row_edges[i] : self._row_edges[i + 1]].any(axis=0)
+            hit = np.logical_or.reduceat(band, self._col_edges[:-1])
+            first += [i * n_tc + int(j) for j in np.flatnonzero(hit)]
         pending = {t: 0.0 for t in first}
         heap = [(0.0, t) for t in first]
         heapq.heapify(heap)

@@ -106,8 +106,10 @@ def clade_suitability(suitability: dict) -> np.ndarray:
     """
     maps = [np.asarray(v) for v in suitability.values()]
     dtype = np.result_type(np.float32, *[m.dtype for m in maps])
-    maps = [m.astype(dtype, copy=False) for m in maps]
-    return np.fmax.reduce(maps) if len(maps) > 1 else maps[0].copy()
+    out = maps[0].astype(dtype, copy=True)
+    for m in maps[1:]:  # folded in place: no stack of every map
+        np.fmax(out, m, out=out)
+    return out
 
 
 def suitable_cells(grid: Grid, suitability: dict, thresholds: dict) -> np.ndarray:
@@ -142,9 +144,10 @@ def resistance_from_suitability(
     >>> resistance_from_suitability(np.array([0.0, 0.5, 1.0])).tolist()
     [1.0, 0.5, 0.0]
     """
-    s = np.asarray(suitability, dtype=np.float64)
     if kind == "linear":
-        return 1.0 - s
+        # float64 arithmetic, cast block by block (no float64 copy of the input)
+        return np.subtract(1.0, suitability, dtype=np.float64)
+    s = np.asarray(suitability, dtype=np.float64)
     if kind == "log":
         with np.errstate(invalid="ignore"):
             return -np.log(np.where(np.isnan(s), np.nan, np.maximum(s, eps)))
@@ -250,15 +253,19 @@ class _Nearest:
         return d_out, j_out
 
 
-def _cells_by_label(labels: np.ndarray, n: int) -> list:
-    """Flat indices of the cells of labels 1..n, one array per label (one sort)."""
-    flat = labels.ravel()
-    idx = np.flatnonzero(flat > 0)
-    lab = flat[idx]
-    order = np.argsort(lab, kind="stable")
-    idx, lab = idx[order], lab[order]
-    bounds = np.searchsorted(lab, np.arange(1, n + 2))
-    return [idx[bounds[k]:bounds[k + 1]] for k in range(n)]
+def _area_by_label(grid: Grid, labels: np.ndarray, n: int) -> np.ndarray:
+    """Ground area (km²) of labels 1..n, summed a band of rows at a time (no
+    whole-grid float64 copy of the cell areas)."""
+    area = grid.cell_area_km2
+    out = np.zeros(n + 1)
+    band = max(1, _QUERY_CELLS // max(grid.n_cols, 1))
+    for r0 in range(0, grid.n_rows, band):
+        out += np.bincount(
+            labels[r0 : r0 + band].ravel(),
+            weights=np.asarray(area[r0 : r0 + band], dtype=np.float64).ravel(),
+            minlength=n + 1,
+        )
+    return out[1:]
 
 
 def _boundary(mask: np.ndarray) -> np.ndarray:
@@ -310,16 +317,15 @@ class CandidateSet:
 class _Stage:
     """Everything found at one set of thresholds."""
 
-    suitable: np.ndarray
     labels: np.ndarray
     range_ids: np.ndarray
     range_taxa: dict
-    cost: dict
+    cost: dict  # empty unless full
     site_cells: np.ndarray  # local site number per cell, 0 elsewhere
     rows: list
     paths: dict
-    barrier: np.ndarray
-    cost_all: np.ndarray
+    barrier: np.ndarray | None
+    cost_all: np.ndarray | None
     records_per_range: dict
     patch_area: np.ndarray
 
@@ -378,97 +384,159 @@ _QUERY_CELLS = 1 << 20
 
 
 class _SiteCells:
-    """The cells of all sites as 1-D arrays, so label reductions skip the rest of the grid.
+    """Per-site reductions over the grid, a band of rows at a time.
 
-    ``scipy.ndimage`` label reductions sort their whole input; restricted to site cells
-    they cost what the sites cost, not what the grid costs.
+    Sites may cover most of a large grid, so nothing here holds a value per site
+    cell: each pass reads the label raster and the value rasters one band (about
+    ``_QUERY_CELLS`` cells) at a time and keeps a value per site.  Bands come in
+    raster order, so "first" below means first from the north-west.
     """
 
     def __init__(self, site_cells: np.ndarray, n_sites: int):
+        self.site_cells = site_cells
         self.shape = site_cells.shape
-        self.flat = np.flatnonzero(site_cells.ravel() > 0)
-        self.labels = site_cells.ravel()[self.flat]
-        self.idx = np.arange(1, n_sites + 1)
+        self.n = n_sites
+        self._band = max(1, _QUERY_CELLS // max(self.shape[1], 1))
 
-    def values(self, array) -> np.ndarray:
-        return np.asarray(array).ravel()[self.flat]
+    def bands(self):
+        """Yield ``(r0, r1, at, k)``: the band's rows, the flat indices of its site
+        cells within the band and their site numbers (0-based)."""
+        for r0 in range(0, self.shape[0], self._band):
+            r1 = min(r0 + self._band, self.shape[0])
+            lab = self.site_cells[r0:r1].ravel()
+            at = np.flatnonzero(lab)
+            if at.size:
+                yield r0, r1, at, lab[at] - 1
 
-    def reduce(self, fn, array):
-        return np.atleast_1d(fn(self.values(array), self.labels, self.idx))
+    @staticmethod
+    def take(array, r0, r1, at) -> np.ndarray:
+        """Values of ``array`` at a band's site cells (``array`` may be a broadcast view)."""
+        return np.asarray(array[r0:r1]).reshape(-1)[at]
 
-    def position(self, array, *, largest: bool) -> np.ndarray:
-        """(row, col) per site of its largest (or smallest) value.
 
-        Ties go to the first such cell in raster order (north-west first), so the
-        choice is deterministic.
-        """
-        v = self.values(array).astype(np.float64)
-        key = -v if largest else v
-        order = np.lexsort((self.flat, key, self.labels))  # label, then value, then cell
-        first = order[np.r_[True, np.diff(self.labels[order]) != 0]]
-        out = np.zeros((self.idx.size, 2), dtype=np.int64)
-        r, c = np.unravel_index(self.flat[first], self.shape)
-        out[self.labels[first] - 1, 0] = r
-        out[self.labels[first] - 1, 1] = c
+class _Extreme:
+    """Running largest (or smallest) value per site and the first cell holding it."""
+
+    def __init__(self, n: int, n_cols: int, *, largest: bool):
+        self.largest = largest
+        self.n_cols = n_cols
+        self.key = np.full(n, -np.inf)  # the value, negated when looking for the smallest
+        self.pos = np.full(n, -1, dtype=np.int64)
+
+    def update(self, k, values, flat):
+        """Fold in one band: site numbers ``k``, values and grid flat indices ``flat``
+        (raster order).  NaN counts as the worst value."""
+        v = np.asarray(values, dtype=np.float64)
+        key = v if self.largest else -v
+        key = np.where(np.isnan(key), -np.inf, key)
+        n = self.key.size
+        band = np.full(n, -np.inf)
+        np.maximum.at(band, k, key)
+        hit = key == band[k]
+        first = np.full(n, np.iinfo(np.int64).max)
+        np.minimum.at(first, k[hit], flat[hit])
+        seen = first < np.iinfo(np.int64).max
+        # a later band wins only when strictly better: ties stay with the first cell
+        upd = seen & ((self.pos < 0) | (band > self.key))
+        self.key[upd] = band[upd]
+        self.pos[upd] = first[upd]
+
+    @property
+    def value(self) -> np.ndarray:
+        v = self.key if self.largest else -self.key
+        return np.where(self.pos >= 0, v, np.nan)
+
+    def rowcol(self) -> np.ndarray:
+        out = np.zeros((self.pos.size, 2), dtype=np.int64)
+        ok = self.pos >= 0
+        out[ok, 0], out[ok, 1] = np.divmod(self.pos[ok], self.n_cols)
         return out
 
 
 def _site_stats(grid, site_cells, n_sites, clade, agreement, novelty, elevation, sc=None):
+    """Area, suitability, agreement, novelty and elevation per site, in one banded pass."""
     sc = sc if sc is not None else _SiteCells(site_cells, n_sites)
-    area = np.broadcast_to(np.asarray(grid.cell_area_km2, dtype=np.float64), grid.shape)
-    a_cells = sc.values(area)
-    s_cells = np.where(np.isfinite(sc.values(clade)), sc.values(clade), 0.0)
-    n_cells = np.bincount(sc.labels, minlength=n_sites + 1)[1:]
-    a = ndi.sum(a_cells, sc.labels, sc.idx)
-    stats = {
-        "area_km2": np.atleast_1d(a),
-        "n_cells": n_cells.astype(np.int64),
-        "mean_suitability": np.atleast_1d(ndi.sum(s_cells * a_cells, sc.labels, sc.idx))
-        / np.atleast_1d(a),
-        "max_suitability": np.atleast_1d(ndi.maximum(s_cells, sc.labels, sc.idx)),
-    }
+    n = n_sites
+    area = grid.cell_area_km2
+    n_cols = grid.n_cols
+    n_cells = np.zeros(n, dtype=np.int64)
+    a_sum, sa_sum = np.zeros(n), np.zeros(n)
+    s_max = np.full(n, -np.inf)
+    ag = [np.zeros(n), np.zeros(n)]
+    nov = [np.zeros(n), np.zeros(n)]
+    e_min, e_max = np.full(n, np.inf), np.full(n, -np.inf)
+    best = _Extreme(n, n_cols, largest=True)
 
-    def nanmean(values):
-        x = np.asarray(values, float)
-        ok = np.isfinite(x)
-        num = np.atleast_1d(ndi.sum(np.where(ok, x, 0.0), sc.labels, sc.idx))
-        den = np.atleast_1d(ndi.sum(ok.astype(float), sc.labels, sc.idx))
+    def bc(k, w=None):
+        return np.bincount(k, weights=w, minlength=n)
+
+    for r0, r1, at, k in sc.bands():
+        a = sc.take(area, r0, r1, at).astype(np.float64)
+        sv = sc.take(clade, r0, r1, at).astype(np.float64)
+        s0 = np.where(np.isfinite(sv), sv, 0.0)
+        n_cells += bc(k)
+        a_sum += bc(k, a)
+        sa_sum += bc(k, s0 * a)
+        np.maximum.at(s_max, k, s0)
+        best.update(k, sv, r0 * n_cols + at)
+        if agreement is not None:
+            x = sc.take(agreement, r0, r1, at).astype(np.float64)
+            ok = np.isfinite(x)
+            ag[0] += bc(k, np.where(ok, x, 0.0))
+            ag[1] += bc(k, ok.astype(np.float64))
+        if novelty is not None:
+            x = sc.take(novelty, r0, r1, at).astype(np.float64)
+            ok = np.isfinite(x)
+            nov[0] += bc(k, (ok & (x < 0)).astype(np.float64))
+            nov[1] += bc(k, ok.astype(np.float64))
+        if elevation is not None:
+            x = sc.take(elevation, r0, r1, at).astype(np.float64)
+            ok = np.isfinite(x)
+            np.minimum.at(e_min, k[ok], x[ok])
+            np.maximum.at(e_max, k[ok], x[ok])
+
+    def share(num_den, given):
+        num, den = num_den
+        if given is None:
+            return np.full(n, np.nan)
         with np.errstate(invalid="ignore", divide="ignore"):
             return np.where(den > 0, num / np.where(den > 0, den, 1), np.nan)
 
-    stats["agreement"] = (
-        nanmean(sc.values(agreement)) if agreement is not None else np.full(n_sites, np.nan)
-    )
-    if novelty is not None:
-        nov = sc.values(novelty).astype(float)
-        stats["novel_share"] = nanmean(
-            np.where(np.isfinite(nov), (nov < 0).astype(float), np.nan)
-        )
-    else:
-        stats["novel_share"] = np.full(n_sites, np.nan)
-    if elevation is not None:
-        e = sc.values(elevation).astype(float)
-        ok = np.isfinite(e)
-        stats["elevation_min"] = np.atleast_1d(
-            ndi.minimum(np.where(ok, e, np.inf), sc.labels, sc.idx))
-        stats["elevation_max"] = np.atleast_1d(
-            ndi.maximum(np.where(ok, e, -np.inf), sc.labels, sc.idx))
-        for k in ("elevation_min", "elevation_max"):
-            stats[k] = np.where(np.isfinite(stats[k]), stats[k], np.nan)
-    else:
-        stats["elevation_min"] = np.full(n_sites, np.nan)
-        stats["elevation_max"] = np.full(n_sites, np.nan)
-    best = sc.position(
-        np.where(np.isfinite(clade), clade, -np.inf), largest=True
-    ) if n_sites else np.zeros((0, 2), np.int64)
-    return stats, best
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean_s = sa_sum / a_sum
+    stats = {
+        "area_km2": a_sum,
+        "n_cells": n_cells,
+        "mean_suitability": mean_s,
+        "max_suitability": s_max,
+        "agreement": share(ag, agreement),
+        "novel_share": share(nov, novelty),
+        "elevation_min": np.where(np.isfinite(e_min), e_min, np.nan),
+        "elevation_max": np.where(np.isfinite(e_max), e_max, np.nan),
+    }
+    return stats, best.rowcol()
 
 
-def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
+def _labels_touching(labels: np.ndarray, mask: np.ndarray, n: int) -> np.ndarray:
+    """For labels 1..n: does any of the label's cells lie where ``mask`` is True?
+    (a band of rows at a time)."""
+    out = np.zeros(n + 1, dtype=bool)
+    band = max(1, _QUERY_CELLS // max(labels.shape[1], 1))
+    for r0 in range(0, labels.shape[0], band):
+        out[labels[r0 : r0 + band][mask[r0 : r0 + band]]] = True
+    return out[1:]
+
+
+def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *, full=True,
+               last=False):
+    """Sites at one set of thresholds.  ``full=False`` (the relaxed set) keeps no
+    rasters beyond the labels and site cells: only the MTP set's are returned.
+    ``graphs`` holds the one cost graph; the ``last`` stage empties it once its
+    surfaces are built, so the solver's resistance is freed for the rest."""
+    graph = graphs[0]
     suitable = suitable_cells(grid, suitability, thresholds)
     labels, n_patches = ndi.label(suitable, structure=_EIGHT)
-    area = np.ascontiguousarray(grid.cell_area_km2, dtype=np.float64)
-    patch_area = np.atleast_1d(ndi.sum(area, labels, np.arange(1, n_patches + 1)))
+    patch_area = _area_by_label(grid, labels, n_patches)
 
     # known ranges and sources per taxon
     range_taxa: dict[int, list] = {}
@@ -515,13 +583,18 @@ def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
             if rr.size:
                 d, _ = near_rec.query(rr + r0, cc)
                 far[rr + r0, cc] = d > p["within_range_min_km"]
+        del in_range
         sub, n_sub = ndi.label(far, structure=_EIGHT)
+        del far
         if n_sub:
-            sub_area = ndi.sum(area, sub, np.arange(1, n_sub + 1))
+            sub_area = _area_by_label(grid, sub, n_sub)
             ok = np.flatnonzero(sub_area >= p["min_patch_km2"]) + 1
             lut2 = np.zeros(n_sub + 1, dtype=np.int32)
             lut2[ok] = np.arange(n_unocc + 1, n_unocc + 1 + ok.size)
-            site_cells = np.where(sub > 0, lut2[sub], site_cells)
+            in_sub = sub > 0
+            site_cells[in_sub] = lut2[sub[in_sub]]
+            del in_sub
+        del sub
     n_sites = int(site_cells.max()) if site_cells.size else 0
 
     sc = _SiteCells(site_cells, n_sites)
@@ -537,27 +610,37 @@ def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
     for t in taxa:
         surf = graph.run(sources[t])
         c = surf.cost
-        cost_to[t] = sc.reduce(ndi.minimum, c) if n_sites else np.zeros(0)
-        cheapest[t] = (
-            sc.position(c, largest=False) if n_sites else np.zeros((0, 2), np.int64)
-        )
+        low = _Extreme(n_sites, grid.n_cols, largest=False)
+        for r0, r1, at, k in sc.bands():
+            low.update(k, sc.take(c, r0, r1, at), r0 * grid.n_cols + at)
+        cost_to[t] = np.where(low.pos >= 0, low.value, np.inf)
+        cheapest[t] = low.rowcol()
         cost[t] = replace(surf, cost=c.astype(np.float32))
         del surf, c
-    cost_all = np.minimum.reduce([cost[t].cost for t in taxa])
-    all_src = np.logical_or.reduce([sources[t] for t in taxa])
+    del graph
+    if last:
+        graphs.clear()
+    cost_all = None
+    if full:
+        # folded in place (np.minimum.reduce of a list would stack the surfaces)
+        cost_all = cost[taxa[0]].cost.copy()
+        for t in taxa[1:]:
+            np.minimum(cost_all, cost[t].cost, out=cost_all)
+    all_src = sources[taxa[0]].copy()
+    for t in taxa[1:]:
+        all_src |= sources[t]
 
-    # nearest record per site (min over the site's cells), a chunk of cells at a time;
-    # cells come in raster order and only a strictly nearer chunk replaces the
-    # running best, so ties go to the first cell in raster order
+    # nearest record per site (min over the site's cells), a band of rows at a time;
+    # bands come in raster order and only a strictly nearer band replaces the running
+    # best, so ties go to the first cell in raster order
     nearest_record = np.full(n_sites, np.inf)
     nearest_rec_taxon = np.array([None] * n_sites, dtype=object)
-    for a in range(0, sc.flat.size, _QUERY_CELLS):
-        flat = sc.flat[a : a + _QUERY_CELLS]
-        lab = sc.labels[a : a + _QUERY_CELLS]
-        d, j = near_rec.query(flat // grid.n_cols, flat % grid.n_cols)
+    for r0, _, at, lab in sc.bands():
+        rr, cc = np.divmod(at, grid.n_cols)
+        d, j = near_rec.query(rr + r0, cc)
         order = np.lexsort((d, lab))
         first = order[np.r_[True, np.diff(lab[order]) != 0]]
-        k = lab[first] - 1
+        k = lab[first]
         better = d[first] < nearest_record[k]
         nearest_record[k[better]] = d[first][better]
         nearest_rec_taxon[k[better]] = rec_taxon[j[first][better]]
@@ -629,23 +712,25 @@ def _run_stage(grid, graph, suitability, clade, thresholds, records, taxa, p):
         if not np.isfinite(lcd) or lcd <= 0:
             continue  # unconnected, or the two ranges touch: no gap between them
         corridor |= tot <= lcd * (1 + p["corridor_slack"])
-    between = (
-        sc.reduce(ndi.maximum, corridor.astype(np.int8)) > 0 if n_sites else np.zeros(0, bool)
-    )
+    between = _labels_touching(site_cells, corridor, n_sites)
     for k, rec in enumerate(rows_out):
         rec["between_ranges"] = bool(between[k])
-    barrier = np.where(corridor & ~suitable & grid.mask, 1.0 - clade, 0.0)
-    barrier = np.where(grid.mask, barrier, np.nan).astype(np.float32)
+    barrier = None
+    if full:
+        barrier = (1.0 - clade).astype(np.float32, copy=False)
+        corridor &= ~suitable
+        barrier[~corridor] = 0.0
+        barrier[~grid.mask] = np.nan
+    del corridor
 
     per_range = {
         int(pid): int(np.sum(labels[rec_r, rec_c] == pid)) for pid in range_ids
     }
     return _Stage(
-        suitable,
         labels,
         range_ids,
         range_taxa,
-        {t: cost[t].cost for t in taxa},
+        {t: cost[t].cost for t in taxa} if full else {},
         site_cells,
         rows_out,
         paths,
@@ -754,8 +839,8 @@ def find_candidates(
     ):
         if not np.isfinite(v) or v < 0:
             raise InputError(f"`{name}` must be a finite number >= 0; got {v!r}.")
-    clade = clade_suitability(suitability)
-    clade = np.where(grid.mask, clade, np.nan)
+    clade = clade_suitability(suitability)  # a new array: masked in place
+    clade[~grid.mask] = np.nan
     if isinstance(resistance, str):
         res = resistance_from_suitability(clade, resistance)
     else:
@@ -764,7 +849,7 @@ def find_candidates(
         res = np.where(np.asarray(impassable, bool), np.inf, res)
     # built once, run per source set; `res` is ours unless the caller passed a raster
     own = isinstance(resistance, str) or impassable is not None
-    graph = CostGraph(grid, res, backend=backend, copy=not own, memory_mb=memory_mb)
+    graphs = [CostGraph(grid, res, backend=backend, copy=not own, memory_mb=memory_mb)]
     del res
     p = {
         "min_gap_km": float(min_gap_km),
@@ -776,45 +861,48 @@ def find_candidates(
         "elevation": elevation,
     }
 
-    mtp = _run_stage(grid, graph, suitability, clade, thresholds, recs, taxa, p)
+    # The relaxed set runs first and keeps only its labels and site cells, so that
+    # its other rasters are gone before the MTP set, whose rasters are returned, is
+    # built.  Sites are matched across the sets by label lookups a band at a time (no
+    # list of every site's cells: sites may cover most of the grid).
     relaxed = None
     if relaxed_thresholds is not None:
         relaxed = _run_stage(
-            grid, graph, suitability, clade, relaxed_thresholds, recs, taxa, p
+            grid, graphs, suitability, clade, relaxed_thresholds, recs, taxa, p, full=False
         )
+        # the smallest integer types that hold them, while the MTP set runs
+        relaxed.labels = relaxed.labels.astype(
+            np.min_scalar_type(int(relaxed.labels.max())), copy=False
+        )
+        relaxed.site_cells = relaxed.site_cells.astype(
+            np.min_scalar_type(len(relaxed.rows)), copy=False
+        )
+    mtp = _run_stage(grid, graphs, suitability, clade, thresholds, recs, taxa, p, last=True)
 
     rows, paths_out = [], {}
-    site_lab = np.zeros(grid.shape, dtype=np.int32)
     entries = []
-    # each site's cells as flat indices, found in one pass (not one grid scan per site)
-    mtp_cells = _cells_by_label(mtp.site_cells, len(mtp.rows))
-    relaxed_flat = relaxed.site_cells.ravel() if relaxed is not None else None
+    if relaxed is not None:
+        mtp_in_relaxed = _labels_touching(
+            mtp.site_cells, relaxed.site_cells > 0, len(mtp.rows)
+        )
+        relaxed_in_mtp = _labels_touching(
+            relaxed.site_cells, mtp.site_cells > 0, len(relaxed.rows)
+        )
     for rec in mtp.rows:
-        cells = mtp_cells[rec["_local"] - 1]
         if relaxed is None:
             stab = "untested"
             block = int(mtp.labels[rec["row"], rec["col"]])
         else:
-            stab = "both" if (relaxed_flat[cells] > 0).any() else "mtp-only"
+            stab = "both" if mtp_in_relaxed[rec["_local"] - 1] else "mtp-only"
             block = int(relaxed.labels[rec["row"], rec["col"]])
-        entries.append((rec, "mtp", stab, block, cells, mtp.paths.get(rec["_local"])))
+        entries.append((rec, "mtp", stab, block, mtp.paths.get(rec["_local"])))
     if relaxed is not None:
-        mtp_any = (mtp.site_cells > 0).ravel()
-        relaxed_cells = _cells_by_label(relaxed.site_cells, len(relaxed.rows))
         for rec in relaxed.rows:
-            cells = relaxed_cells[rec["_local"] - 1]
-            if mtp_any[cells].any():
+            if relaxed_in_mtp[rec["_local"] - 1]:
                 continue
             block = int(relaxed.labels[rec["row"], rec["col"]])
             entries.append(
-                (
-                    rec,
-                    "relaxed",
-                    "relaxed-only",
-                    block,
-                    cells,
-                    relaxed.paths.get(rec["_local"]),
-                )
+                (rec, "relaxed", "relaxed-only", block, relaxed.paths.get(rec["_local"]))
             )
     entries.sort(
         key=lambda e: (
@@ -825,7 +913,11 @@ def find_candidates(
             e[0]["col"],
         )
     )
-    for sid, (rec, tset, stab, block, cells, path) in enumerate(entries, start=1):
+    # site ids painted through one lookup table per threshold set: MTP sites are
+    # disjoint, and relaxed-only sites touch no MTP site
+    lut_mtp = np.zeros(len(mtp.rows) + 1, dtype=np.int32)
+    lut_relaxed = np.zeros(len(relaxed.rows) + 1 if relaxed is not None else 1, np.int32)
+    for sid, (rec, tset, stab, block, path) in enumerate(entries, start=1):
         row = {k: v for k, v in rec.items() if k != "_local"}
         row.update(
             site_id=sid,
@@ -834,10 +926,19 @@ def find_candidates(
             relaxed_block=block if block > 0 else -1,
         )
         rows.append(row)
-        site_lab.ravel()[cells] = sid
+        (lut_mtp if tset == "mtp" else lut_relaxed)[rec["_local"]] = sid
         if path is not None:
             paths_out[sid] = path
-    in_range = np.isin(mtp.labels, mtp.range_ids) & (site_lab == 0)
+    site_lab = lut_mtp[mtp.site_cells]
+    mtp.site_cells = None
+    if relaxed is not None:
+        only = lut_relaxed[relaxed.site_cells]
+        relaxed = None
+        site_lab = np.where(only > 0, only, site_lab)
+        del only
+    is_range = np.zeros(int(mtp.labels.max()) + 1, dtype=bool)
+    is_range[mtp.range_ids] = True
+    in_range = is_range[mtp.labels] & (site_lab == 0)
     site_lab[in_range] = -mtp.labels[in_range]
     del in_range
 

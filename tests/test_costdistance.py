@@ -208,6 +208,7 @@ def test_large_source_sets_match_the_reference_graph():
     assert (surf.cost[rows, cols] == 0).all()
     pred = surf.predecessor
     assert (pred[rows, cols] == -1).all()  # every passable source is a source
+    assert sorted(map(tuple, surf.sources.tolist())) == sorted(zip(rows.tolist(), cols.tolist()))
     # the expanded predecessor agrees with the compact traceback, cell by cell
     for flat in rng.choice(grid.n_cells, 50, replace=False):
         assert pred.flat[flat] == surf.previous_cell(int(flat))
@@ -293,6 +294,7 @@ def test_tiled_equals_whole_grid_dijkstra_bit_for_bit(small_tiles):
     tiled = CostGraph(grid, r, backend="tiled", memory_mb=1e-6).run(src)
     assert np.array_equal(whole.cost, tiled.cost)
     assert (tiled.cost[src] == 0).all() and (tiled.predecessor[src] == -1).all()
+    assert np.array_equal(tiled.sources, whole.sources)
 
 
 def test_auto_tiles_only_when_the_solver_would_exceed_memory():

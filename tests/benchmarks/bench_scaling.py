@@ -226,7 +226,7 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
 
         def ours():
             find_candidates(grid, {"a": s}, {"a": thr}, {"a": rec},
-                            relaxed_thresholds={"a": relaxed})
+                            relaxed_thresholds={"a": relaxed}, memory_mb=MEMORY_MB)
 
         def ref():  # the kernels the stage cannot avoid: label and MCP per threshold set
             costs = np.where(grid.mask, 1.0 - s, np.inf)
@@ -277,7 +277,7 @@ def chain_run(folder: Path) -> dict:
     write_raster(folder / "chain.tif", m, grid)
     rec = np.unravel_index(idx[:5], grid.shape)
     find_candidates(grid, {"a": m}, {"a": th["mtp"].value}, {"a": rec},
-                    relaxed_thresholds={"a": th["p10"].value})
+                    relaxed_thresholds={"a": th["p10"].value}, memory_mb=MEMORY_MB)
     return {"cells": grid.n_cells, "seconds": time.perf_counter() - t0,
             "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
             "mtp": th["mtp"].value}
