@@ -288,7 +288,7 @@ _CODE[_OFFSETS[:, 0] + 1, _OFFSETS[:, 1] + 1] = np.arange(8, dtype=np.int8)
 _SOLVER_BYTES_PER_CELL = {"mcp": 80, "dijkstra": 120, "tiled": 120}
 #: cells each tile's search reaches into its neighbours, so that paths running along a
 #: tile edge are found by one search instead of searches of both tiles in turn
-_TILE_MARGIN = 64
+_TILE_MARGIN = 16
 #: smallest tile the tiled solver uses, in cells (smaller tiles re-run too often)
 _MIN_TILE_CELLS = 1 << 16
 
