@@ -107,7 +107,7 @@ SCHEMA: dict = {
     "compute": {
         "scheduler": (str, "auto", '"auto", "serial", "processes", "dask" or a Dask address.'),
         "n_workers": (int, 0, "Worker processes (0 = all cores)."),
-        "memory_mb": (float, 4096.0, "Memory for layer values (MB); larger stacks stream from disk."),
+        "memory_mb": (float, 4096.0, "Working memory (MB) for layer values and the cost-distance solver; larger stacks stream from disk, larger grids are solved by tiles."),
     },
 }
 
