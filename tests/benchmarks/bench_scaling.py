@@ -17,14 +17,15 @@ streamed         stack streamed from disk                    + the same weighted
 novelty          MESS over blocks (stack in memory)          ``np.tensordot`` as above
 thresholds       ``compute_thresholds`` on the map           ``np.sum`` over the map
 cost distance    ``CostGraph`` + one run + one path          ``MCP_Geometric.find_costs``
+cost, tiled      the same under ``memory_mb`` (tile by tile)  ``MCP_Geometric.find_costs``
 isolation        ``find_candidates`` (one taxon, MTP and     ``scipy.ndimage.label`` + bare
                  relaxed thresholds: the whole stage)        MCP, once per threshold set
 ===============  ==========================================  =============================
 
 Peak memory is measured per stage in a fresh subprocess (``ru_maxrss``), with the
 stack streamed under ``memory_mb`` and GDAL's block cache capped at 64 MB; a last
-subprocess runs the per-cell chain end to end (read, predict, MESS, thresholds, cost
-distance, write) and reports its peak.  Replicate-bound speed-up: the environmental
+subprocess runs the per-cell chain end to end (read, predict, MESS, thresholds, write,
+isolation under ``memory_mb``) and reports its peak.  Replicate-bound speed-up: the environmental
 equivalency test, 1000 replicates, on one and on two local processes.
 
 Run:  python tests/benchmarks/bench_scaling.py [--sizes 1e6,4e6,1.6e7] [--repeats 2]
