@@ -700,14 +700,17 @@ def _geographic_refit(intake, ta, tb, progress):
 
 
 # --------------------------------------------------------------------------- sites
-def _clade_mess(intake: Intake, taxa: dict):
+def _clade_mess(intake: Intake, taxa: dict, map_fn=None):
     """MESS of every cell against the pooled calibration background of the clade."""
     ref = np.vstack([t.background_env for t in taxa.values()])
-    return _mess_map(intake.predictor_stack(), ref)
+    return _mess_map(intake.predictor_stack(), ref, map_fn=map_fn)
 
 
-def plan_sites(intake: Intake, taxa: dict, *, progress=None) -> dict:
+def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dict:
     """Candidate sites, least-cost paths, barriers, access and the ranked plan.
+
+    ``map_fn`` (an executor's ``map``) runs the clade MESS window by window on the
+    workers when the layers are streamed; otherwise it runs in this process.
 
     Returns
     -------
@@ -735,7 +738,7 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None) -> dict:
         stacked = np.stack(ags)
         agreement = np.full(grid.shape, np.nan, dtype=np.float32)
         agreement[grid.mask] = stacked[:, grid.mask].max(axis=0)
-    clade_mess, _ = _clade_mess(intake, taxa)
+    clade_mess, _ = _clade_mess(intake, taxa, map_fn)
     progress.step("patches, known ranges and cost distance")
     cand = find_candidates(
         grid,
@@ -972,8 +975,8 @@ def run_analysis(
 
             overlap, readings, comparisons = pd.DataFrame(columns=OVERLAP_COLUMNS), [], []
             progress.step("one taxon only: no overlap to measure")
-    progress.stage("Candidate sites, barriers and the ranked plan")
-    plan = plan_sites(intake, taxa, progress=progress)
+        progress.stage("Candidate sites, barriers and the ranked plan")
+        plan = plan_sites(intake, taxa, progress=progress, map_fn=executor.map)
     progress.done()
     shade = hillshade(intake.grid, intake.elevation) if intake.elevation is not None else None
     warns = list(intake.warnings)
