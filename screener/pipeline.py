@@ -735,9 +735,12 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
     agreement = None
     ags = [t.agreement for t in taxa.values() if t.agreement is not None]
     if ags:
-        stacked = np.stack(ags)
-        agreement = np.full(grid.shape, np.nan, dtype=np.float32)
-        agreement[grid.mask] = stacked[:, grid.mask].max(axis=0)
+        # the cell-wise maximum over taxa (NaN if any taxon's is), folded in place:
+        # no stack of every taxon's map
+        agreement = np.array(ags[0], dtype=np.float32)
+        for a in ags[1:]:
+            np.maximum(agreement, a, out=agreement)
+        agreement[~grid.mask] = np.nan
     clade_mess, _ = _clade_mess(intake, taxa, map_fn)
     progress.step("patches, known ranges and cost distance")
     cand = find_candidates(
