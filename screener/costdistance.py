@@ -35,6 +35,7 @@ source sets (one per known range or taxon) without rebuilding.
 
 from __future__ import annotations
 
+import heapq
 import logging
 from dataclasses import dataclass, field
 
@@ -322,6 +323,15 @@ class CostGraph:
         the tile size (default 64 MB).  The resistance (8 bytes per cell) and each
         returned surface come on top.
 
+    Attributes
+    ----------
+    backend : str
+        The solver chosen: ``"mcp"``, ``"dijkstra"`` or ``"tiled"``.
+    passable : ndarray of bool, shape (n_rows, n_cols)
+    last_tile_searches : int
+        With ``"tiled"``: how many tile searches the last :meth:`run` made (each tile
+        is searched once, plus again whenever a cheaper path enters it later).
+
     Notes
     -----
     The tiled solver keeps one accumulated-cost raster for the whole grid and runs
@@ -377,6 +387,7 @@ class CostGraph:
         self._mcp = None
         self._graph = None
         self._resistance = None
+        self.last_tile_searches = 0
         if backend == "tiled":
             self._resistance = resistance
             budget = (memory_mb or 64.0) * 1e6 / _SOLVER_BYTES_PER_CELL["tiled"]
@@ -490,7 +501,7 @@ class CostGraph:
 
 
     # -- tiled solver -------------------------------------------------------------
-    def _tile(self, t: int):
+    def _window(self, t: int):
         """Search window of tile ``t``: its cells and a margin of its neighbours'."""
         n_tc = len(self._col_edges) - 1
         i, j = divmod(t, n_tc)
@@ -566,7 +577,7 @@ class CostGraph:
 
         Returns True when any cell got cheaper.
         """
-        r0, r1, c0, c1 = window = self._tile(t)
+        r0, r1, c0, c1 = window = self._window(t)
         h, w = r1 - r0, c1 - c0
         n = h * w
         view = cost[r0:r1, c0:c1]
@@ -623,8 +634,6 @@ class CostGraph:
     def _run_tiled(self, is_source: np.ndarray):
         """Accumulated cost from the (passable) cells of ``is_source`` by tiles; see
         the Notes of :class:`CostGraph`."""
-        import heapq
-
         shape = self.grid.shape
         cost = np.full(shape, np.inf)
         tb = np.full(shape, UNREACHED, dtype=np.int8)
@@ -649,7 +658,7 @@ class CostGraph:
                 continue
             # steps out of the window that would lower a neighbour: queue the
             # neighbouring windows holding those cells, cheapest first
-            window = self._tile(t)
+            window = self._window(t)
             rr, cc = self._outer_ring(window)
             step, _ = self._cheapest_step(rr, cc, cost, window, from_inside=True)
             low = step < cost[rr, cc]
@@ -657,7 +666,7 @@ class CostGraph:
                 continue
             rr, cc, step = rr[low], cc[low], step[low]
             for nt in self._neighbour_tiles(t):
-                r0, r1, c0, c1 = self._tile(nt)
+                r0, r1, c0, c1 = self._window(nt)
                 inside = (rr >= r0) & (rr < r1) & (cc >= c0) & (cc < c1)
                 if inside.any():
                     k = float(step[inside].min())
