@@ -276,3 +276,19 @@ def test_model_figures(data):
     ax = plot_importance(permutation_importance(model, pres, bg, n_repeats=2))
     assert len(ax.patches) == 3
     plt.close("all")
+
+
+@pytest.mark.parametrize("df", [1, 2, 3, 4, 5, 8, 19, 20, 33, 64, 65])
+def test_chi2_upper_tail_equals_scipy(df):
+    """The closed form for integer df equals scipy.special.chdtrc (a reference library)
+    from tiny to far-tail distances, with NaN, inf and the hand-over to scipy."""
+    from scipy.special import chdtrc
+
+    from screener.models.ellipsoid import chi2_upper_tail
+
+    x = np.r_[0.0, np.logspace(-8, np.log10(3000.0), 400), 1399.0, 1401.0, np.inf, np.nan]
+    got, want = chi2_upper_tail(df, x), chdtrc(df, x)
+    assert np.array_equal(np.isnan(got), np.isnan(want))
+    ok = ~np.isnan(want)
+    assert_allclose(got[ok], want[ok], rtol=1e-12, atol=1e-300)
+    assert got[0] == 1.0 and got[-2] == 0.0
