@@ -21,7 +21,8 @@ Three backends compute the same quantity:
     memory is bounded by a setting rather than by the grid (see :class:`CostGraph`).
 
 ``backend="auto"`` picks ``"mcp"`` on grids with constant steps and ``"dijkstra"``
-otherwise, or ``"tiled"`` when that solver would need more than ``memory_mb``;
+otherwise, or ``"tiled"`` on grids of 8e6 cells or more and wherever that solver
+would need more than ``memory_mb``;
 ``docs/benchmarks/isolation.md`` and ``docs/performance.md`` have the timings behind
 the choice.
 
@@ -290,6 +291,12 @@ _SOLVER_BYTES_PER_CELL = {"mcp": 80, "dijkstra": 120, "tiled": 120}
 #: cells each tile's search reaches into its neighbours, so that paths running along a
 #: tile edge are found by one search instead of searches of both tiles in turn
 _TILE_MARGIN = 16
+#: grids from this many cells use the tiled solver even when memory allows the whole
+#: grid: its tiles stay in cache, and at 1.6e7 cells it takes half of MCP's time
+#: (docs/performance.md; 1.15x MCP at 1e6 cells, 0.91x at 4e6)
+_TILED_FROM_CELLS = 8_000_000
+#: largest tile, in MB of solver memory (tiles this size ran fastest)
+_TILE_MB = 64.0
 #: smallest tile the tiled solver uses, in cells (smaller tiles re-run too often)
 _MIN_TILE_CELLS = 1 << 16
 
@@ -307,8 +314,9 @@ class CostGraph:
     resistance : array_like of shape (n_rows, n_cols)
         Cost per km; impassable cells as in :func:`prepare_resistance`.
     backend : {"auto", "mcp", "dijkstra", "tiled"}, default "auto"
-        ``"auto"``: MCP on grids with constant steps, Dijkstra otherwise, or
-        ``"tiled"`` when that solver would need more than ``memory_mb``.  Forcing
+        ``"auto"``: MCP on grids with constant steps, Dijkstra otherwise; or
+        ``"tiled"`` on grids of 8e6 cells or more (faster there) and wherever the
+        whole-grid solver would need more than ``memory_mb``.  Forcing
         ``"mcp"`` on a longitude/latitude grid raises, because MCP cannot express
         east-west steps that change with latitude.  ``"tiled"`` solves the same
         graph as ``"dijkstra"`` one tile at a time (see Notes).
@@ -319,9 +327,9 @@ class CostGraph:
     memory_mb : float, optional
         Working memory the solver may use, in MB.  With ``backend="auto"`` a grid
         whose whole-grid solver would need more (about 80 bytes per cell for MCP,
-        120 for Dijkstra) is solved by tiles sized to fit; with ``"tiled"`` it sets
-        the tile size (default 64 MB).  The resistance (8 bytes per cell) and each
-        returned surface come on top.
+        120 for Dijkstra) is solved by tiles sized to fit; tiles never exceed 64 MB
+        of solver memory (about 5e5 cells).  The resistance (8 bytes per cell) and
+        each returned surface come on top.
 
     Attributes
     ----------
@@ -370,7 +378,9 @@ class CostGraph:
         if backend == "auto":
             backend = "mcp" if grid.constant_steps else "dijkstra"
             need_mb = _SOLVER_BYTES_PER_CELL[backend] * grid.n_cells / 1e6
-            if memory_mb is not None and need_mb > memory_mb:
+            if grid.n_cells >= _TILED_FROM_CELLS or (
+                memory_mb is not None and need_mb > memory_mb
+            ):
                 backend = "tiled"
         if backend == "mcp" and not grid.constant_steps:
             raise InputError(
@@ -390,7 +400,8 @@ class CostGraph:
         self.last_tile_searches = 0
         if backend == "tiled":
             self._resistance = resistance
-            budget = (memory_mb or 64.0) * 1e6 / _SOLVER_BYTES_PER_CELL["tiled"]
+            tile_mb = min(memory_mb or _TILE_MB, _TILE_MB)
+            budget = tile_mb * 1e6 / _SOLVER_BYTES_PER_CELL["tiled"]
             tile_cells = max(int(budget), _MIN_TILE_CELLS)
             side = max(int(np.sqrt(tile_cells)), 1)
             n_rows, n_cols = grid.shape

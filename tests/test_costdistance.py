@@ -308,3 +308,17 @@ def test_auto_tiles_only_when_the_solver_would_exceed_memory():
     assert_allclose(a.cost, b.cost, rtol=1e-12)
     with pytest.raises(InputError, match="memory_mb"):
         CostGraph(grid, r, memory_mb=0)
+
+
+def test_auto_tiles_large_grids_whatever_the_memory(monkeypatch):
+    import screener.costdistance as cd
+
+    monkeypatch.setattr(cd, "_TILED_FROM_CELLS", 1000)
+    grid = projected_grid((40, 30))
+    r = np.random.default_rng(9).uniform(0.1, 1.0, grid.shape)
+    g = CostGraph(grid, r, memory_mb=1e6)
+    assert g.backend == "tiled"
+    want = reference_cost(grid, r, [(3, 4)])
+    assert_allclose(g.run([(3, 4)]).cost, want, rtol=1e-12)
+    monkeypatch.setattr(cd, "_TILED_FROM_CELLS", 10_000)
+    assert CostGraph(grid, r, memory_mb=1e6).backend == "mcp"
