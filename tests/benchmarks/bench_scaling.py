@@ -468,9 +468,10 @@ def write_doc(sizes, results, chains, speed, args):
     lines += ["", "I/O stages and `predict_streamed` read a streamed stack; the other "
               "prediction stages and novelty run on a stack in memory. `io_write` uses "
               "every core for compression (GDAL NUM_THREADS), the bare reference one. "
-              "`cost` is the whole-grid solver (MCP), `cost_tiled` the same grid solved "
-              "tile by tile under `memory_mb` (exact; see docs/methods), both beside one "
-              "bare MCP run. `isolation` runs with `memory_mb` too; its reference is one "
+              "`cost` is `CostGraph` with its defaults (whole-grid MCP below 8e6 cells, "
+              "tiles from 8e6 cells), `cost_tiled` the solver held to `memory_mb` (tile "
+              "by tile at every size; exact, see docs/methods), both beside one bare MCP "
+              "run. `isolation` runs with `memory_mb` too; its reference is one "
               "`ndimage.label` and one bare MCP run per threshold set.", "", "| stage | scaling exponent |", "| --- | --- |"]
     lines += [f"| {k} | {v:.2f} |" for k, v in exps.items()]
     lines += ["", "Whole per-cell chain (streamed read, layer checks, fit, predict, MESS, "
