@@ -410,7 +410,10 @@ class CostGraph:
             self._row_edges = _tile_edges(n_rows, -(-n_rows // tile_rows))
             self._col_edges = _tile_edges(n_cols, -(-n_cols // tile_cols))
             self._flat_offsets = _OFFSETS[:, 0] * n_cols + _OFFSETS[:, 1]
-            self._margin = _TILE_MARGIN
+            # a cell just outside a window must lie in a neighbouring tile, so the
+            # margin stays below the smallest tile's extent
+            extent = min(np.diff(self._row_edges).min(), np.diff(self._col_edges).min())
+            self._margin = int(min(_TILE_MARGIN, max(extent - 1, 0)))
         elif backend == "mcp":
             dy = (
                 float(grid.ns_step_km[0])
