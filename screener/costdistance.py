@@ -82,7 +82,8 @@ class CostSurface:
     traceback : ndarray, shape (n_rows, n_cols)
         How to step back towards the sources, kept in each backend's compact form:
         with ``"mcp"``, the int16 index of the neighbour offset a cell was reached by
-        (``-1`` on sources, ``-2`` unreached); with ``"dijkstra"``, the int32 flat
+        (``-1`` on sources, ``-2`` unreached); with ``"tiled"``, the same as int8
+        codes into the solver's own offset table; with ``"dijkstra"``, the int32 flat
         index of the previous cell.  Use :attr:`predecessor` or
         :func:`least_cost_path` rather than reading it directly.
     """
@@ -90,7 +91,7 @@ class CostSurface:
     cost: np.ndarray
     backend: str
     traceback: np.ndarray = field(repr=False)
-    #: flat index step of each MCP offset (``None`` for dijkstra)
+    #: flat index step of each traceback code (``None`` for dijkstra)
     flat_offsets: np.ndarray | None = field(default=None, repr=False)
 
     @property

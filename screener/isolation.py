@@ -253,16 +253,23 @@ class _Nearest:
         return d_out, j_out
 
 
+def _row_bands(shape: tuple):
+    """``(r0, r1)`` bands of whole rows of about ``_BAND_CELLS`` cells, in raster order."""
+    n_rows, n_cols = shape
+    band = max(1, _BAND_CELLS // max(n_cols, 1))
+    for r0 in range(0, n_rows, band):
+        yield r0, min(r0 + band, n_rows)
+
+
 def _area_by_label(grid: Grid, labels: np.ndarray, n: int) -> np.ndarray:
     """Ground area (km²) of labels 1..n, summed a band of rows at a time (no
     whole-grid float64 copy of the cell areas)."""
     area = grid.cell_area_km2
     out = np.zeros(n + 1)
-    band = max(1, _QUERY_CELLS // max(grid.n_cols, 1))
-    for r0 in range(0, grid.n_rows, band):
+    for r0, r1 in _row_bands(grid.shape):
         out += np.bincount(
-            labels[r0 : r0 + band].ravel(),
-            weights=np.asarray(area[r0 : r0 + band], dtype=np.float64).ravel(),
+            labels[r0:r1].ravel(),
+            weights=np.asarray(area[r0:r1], dtype=np.float64).ravel(),
             minlength=n + 1,
         )
     return out[1:]
@@ -379,8 +386,9 @@ def _check_inputs(grid, suitability, thresholds, records, name):
     return taxa, out
 
 
-#: cells per chunk of nearest-record queries
-_QUERY_CELLS = 1 << 20
+#: cells per band of rows in the banded passes (per-site reductions, nearest-record
+#: queries, areas by label)
+_BAND_CELLS = 1 << 20
 
 
 class _SiteCells:
@@ -388,21 +396,18 @@ class _SiteCells:
 
     Sites may cover most of a large grid, so nothing here holds a value per site
     cell: each pass reads the label raster and the value rasters one band (about
-    ``_QUERY_CELLS`` cells) at a time and keeps a value per site.  Bands come in
+    ``_BAND_CELLS`` cells) at a time and keeps a value per site.  Bands come in
     raster order, so "first" below means first from the north-west.
     """
 
     def __init__(self, site_cells: np.ndarray, n_sites: int):
         self.site_cells = site_cells
-        self.shape = site_cells.shape
         self.n = n_sites
-        self._band = max(1, _QUERY_CELLS // max(self.shape[1], 1))
 
     def bands(self):
         """Yield ``(r0, r1, at, k)``: the band's rows, the flat indices of its site
         cells within the band and their site numbers (0-based)."""
-        for r0 in range(0, self.shape[0], self._band):
-            r1 = min(r0 + self._band, self.shape[0])
+        for r0, r1 in _row_bands(self.site_cells.shape):
             lab = self.site_cells[r0:r1].ravel()
             at = np.flatnonzero(lab)
             if at.size:
@@ -441,10 +446,10 @@ class _Extreme:
         self.key[upd] = band[upd]
         self.pos[upd] = first[upd]
 
-    @property
-    def value(self) -> np.ndarray:
+    def value(self, empty=np.nan) -> np.ndarray:
+        """The extreme value per site (``empty`` for a site with no cells)."""
         v = self.key if self.largest else -self.key
-        return np.where(self.pos >= 0, v, np.nan)
+        return np.where(self.pos >= 0, v, empty)
 
     def rowcol(self) -> np.ndarray:
         out = np.zeros((self.pos.size, 2), dtype=np.int64)
@@ -453,10 +458,9 @@ class _Extreme:
         return out
 
 
-def _site_stats(grid, site_cells, n_sites, clade, agreement, novelty, elevation, sc=None):
+def _site_stats(grid, sc: _SiteCells, clade, agreement, novelty, elevation):
     """Area, suitability, agreement, novelty and elevation per site, in one banded pass."""
-    sc = sc if sc is not None else _SiteCells(site_cells, n_sites)
-    n = n_sites
+    n = sc.n
     area = grid.cell_area_km2
     n_cols = grid.n_cols
     n_cells = np.zeros(n, dtype=np.int64)
@@ -521,9 +525,8 @@ def _labels_touching(labels: np.ndarray, mask: np.ndarray, n: int) -> np.ndarray
     """For labels 1..n: does any of the label's cells lie where ``mask`` is True?
     (a band of rows at a time)."""
     out = np.zeros(n + 1, dtype=bool)
-    band = max(1, _QUERY_CELLS // max(labels.shape[1], 1))
-    for r0 in range(0, labels.shape[0], band):
-        out[labels[r0 : r0 + band][mask[r0 : r0 + band]]] = True
+    for r0, r1 in _row_bands(labels.shape):
+        out[labels[r0:r1][mask[r0:r1]]] = True
     return out[1:]
 
 
@@ -577,9 +580,8 @@ def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *
     if in_range.any():
         # band by band, so the cell lists and distances stay small on big grids
         far = np.zeros(grid.shape, bool)
-        band = max(1, _QUERY_CELLS // max(grid.n_cols, 1))
-        for r0 in range(0, grid.n_rows, band):
-            rr, cc = np.nonzero(in_range[r0 : r0 + band])
+        for r0, r1 in _row_bands(grid.shape):
+            rr, cc = np.nonzero(in_range[r0:r1])
             if rr.size:
                 d, _ = near_rec.query(rr + r0, cc)
                 far[rr + r0, cc] = d > p["within_range_min_km"]
@@ -598,12 +600,10 @@ def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *
     n_sites = int(site_cells.max()) if site_cells.size else 0
 
     sc = _SiteCells(site_cells, n_sites)
-    stats, best = _site_stats(
-        grid, site_cells, n_sites, clade, p["agreement"], p["novelty"], p["elevation"], sc
-    )
+    stats, best = _site_stats(grid, sc, clade, p["agreement"], p["novelty"], p["elevation"])
     # One cost-distance run per taxon.  Per-site costs are reduced from the float64
-    # surface; only a float32 copy and MCP's int16 traceback are kept (6 bytes per
-    # cell per taxon, for paths, corridors and the all-range surface).
+    # surface; only a float32 copy and the solver's compact traceback are kept (5-6
+    # bytes per cell per taxon, for paths, corridors and the all-range surface).
     cost_to = {}
     cheapest = {}
     cost = {}
@@ -613,7 +613,7 @@ def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *
         low = _Extreme(n_sites, grid.n_cols, largest=False)
         for r0, r1, at, k in sc.bands():
             low.update(k, sc.take(c, r0, r1, at), r0 * grid.n_cols + at)
-        cost_to[t] = np.where(low.pos >= 0, low.value, np.inf)
+        cost_to[t] = low.value(empty=np.inf)
         cheapest[t] = low.rowcol()
         cost[t] = replace(surf, cost=c.astype(np.float32))
         del surf, c

@@ -271,7 +271,7 @@ def test_banded_site_reductions_change_nothing(salish, monkeypatch):
     kw = dict(relaxed_thresholds={"A": 0.8 * THR, "B": 0.8 * THR}, min_patch_km2=20.0,
               within_range_min_km=5.0)
     whole = find_candidates(*args, **kw).sites
-    monkeypatch.setattr(iso, "_QUERY_CELLS", 97)
+    monkeypatch.setattr(iso, "_BAND_CELLS", 97)
     chunked = find_candidates(*args, **kw).sites
     assert len(whole) == len(chunked) > 0
     summed = ["area_km2", "mean_suitability"]

@@ -63,11 +63,14 @@ def chi2_upper_tail(df: int, x) -> np.ndarray:
             term = term * y / i
             out += term
     else:
-        out = erfc(np.sqrt(y))
-        term = e * np.sqrt(y) * (2.0 / np.sqrt(np.pi))  # y^(1/2) / Gamma(3/2)
-        for i in range(1, df // 2 + 1):
+        root = np.sqrt(y)
+        out = erfc(root)
+        if df > 1:
+            term = e * root * (2.0 / np.sqrt(np.pi))  # y^(1/2) / Gamma(3/2)
             out += term
-            term = term * y / (i + 0.5)
+            for i in range(1, df // 2):
+                term = term * y / (i + 0.5)
+                out += term
     if far.any():
         out[far] = chdtrc(df, x[far])
     return out

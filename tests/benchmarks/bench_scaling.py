@@ -196,33 +196,20 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
 
         def ref():
             np.nansum(m)
-    elif stage == "cost":
+    elif stage in ("cost", "cost_tiled"):
         from skimage.graph import MCP_Geometric
 
         from screener.costdistance import CostGraph, least_cost_path
 
         r = rng.random(grid.shape) + 0.1
         src_rc = np.array([[grid.n_rows // 2, grid.n_cols // 2]])
+        # "cost": the defaults; "cost_tiled": the solver held to memory_mb (tile by
+        # tile at every size, the same costs)
+        memory_mb = MEMORY_MB if stage == "cost_tiled" else None
 
         def ours():
-            g = CostGraph(grid, r)
-            surf = g.run(src_rc)
-            least_cost_path(surf, (grid.n_rows - 1, grid.n_cols - 1))
-
-        def ref():
-            costs = np.where(grid.mask, r, np.inf)
-            MCP_Geometric(costs, sampling=(1.0, 1.0)).find_costs([tuple(src_rc[0])])
-    elif stage == "cost_tiled":
-        from skimage.graph import MCP_Geometric
-
-        from screener.costdistance import CostGraph, least_cost_path
-
-        r = rng.random(grid.shape) + 0.1
-        src_rc = np.array([[grid.n_rows // 2, grid.n_cols // 2]])
-
-        def ours():  # the solver held to memory_mb: tile by tile, the same costs
-            g = CostGraph(grid, r, memory_mb=MEMORY_MB)
-            assert g.backend == "tiled"
+            g = CostGraph(grid, r, memory_mb=memory_mb)
+            assert memory_mb is None or g.backend == "tiled"
             surf = g.run(src_rc)
             least_cost_path(surf, (grid.n_rows - 1, grid.n_cols - 1))
 
