@@ -236,7 +236,7 @@ def demo(ctx, out, overwrite, size, scheduler, debug):
     import tempfile
 
     from screener.demo import write_demo_scenario
-    from screener.outputs.staging import check_output_folder
+    from screener.outputs.staging import check_output_folder, staged_output
     from screener.pipeline import run_project
     from screener.project import load_project
 
@@ -251,19 +251,11 @@ def demo(ctx, out, overwrite, size, scheduler, debug):
         results_tmp = Path(tmp) / "results"
         result = run_project(settings, results_tmp, echo=echo, scheduler=scheduler,
                              cache_dir=None)
-        stage = out.parent / f".{out.name}.partial-demo"
-        if stage.exists():
-            shutil.rmtree(stage)
-        stage.mkdir()
-        try:
+        # the same staging and overwrite rules as a run: a folder that appeared
+        # meanwhile, or one the screener did not write, is never replaced
+        with staged_output(out, overwrite=overwrite) as stage:
             shutil.copytree(scen, stage / "scenario")
             shutil.copytree(results_tmp, stage / "results")
-        except BaseException:
-            shutil.rmtree(stage, ignore_errors=True)
-            raise
-        if out.exists():
-            shutil.rmtree(out)
-        stage.rename(out)
     _print_summary(result, out / "results")
 
 

@@ -89,7 +89,8 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
     from screener.survey import read_field_results, render_survey_report, score_survey
     from screener.survey import updated_records
 
-    out = check_output_folder(out_dir, overwrite=overwrite)
+    inputs = [Path(field_results), Path(run_dir)]
+    out = check_output_folder(out_dir, overwrite=overwrite, inputs=inputs)
     run = load_run_outputs(run_dir)
     grid = run["grid"]
     fr = read_field_results(field_results)
@@ -111,7 +112,7 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
     updated = updated_records(original, fr, sites=run["sites"], grid=grid)
     summary = {k: (v.item() if isinstance(v, np.generic) else v)
                for k, v in vars(score).items() if not isinstance(v, pd.DataFrame)}
-    with staged_output(out, overwrite=overwrite) as stage:
+    with staged_output(out, overwrite=overwrite, inputs=inputs + [Path(rec_path)]) as stage:
         (stage / "debrief.md").write_text(render_survey_report(score), encoding="utf-8")
         (stage / "debrief.json").write_text(
             json.dumps(summary, indent=2, sort_keys=True, default=str) + "\n", encoding="utf-8")

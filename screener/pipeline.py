@@ -41,6 +41,7 @@ __all__ = [
     "check_project",
     "taxon_seed",
     "file_sha256",
+    "input_paths",
 ]
 
 log = logging.getLogger(__name__)
@@ -195,6 +196,15 @@ def _read_points_csv(path, what: str, need=("longitude", "latitude")):
     return df
 
 
+def input_paths(settings: Settings) -> list:
+    """Every file a run reads: layers, records, start points, surveyed places and the
+    project file itself."""
+    s = settings
+    named = list(s.layers.paths) + [s.occurrences.path, s.access.start_points,
+                                    s.survey.surveyed, s.path]
+    return list(dict.fromkeys(Path(p) for p in named if p is not None))
+
+
 def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Intake:
     """Read and check layers and records (no model is fitted).
 
@@ -264,13 +274,7 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Inta
         start_points = _read_points_csv(s.access.start_points, "start points")
     if s.survey.surveyed is not None:
         surveyed = _read_points_csv(s.survey.surveyed, "surveyed places")
-    hashes = {}
-    for p in list(s.layers.paths) + [s.occurrences.path, s.access.start_points,
-                                      s.survey.surveyed]:
-        if p is not None:
-            hashes[str(p)] = file_sha256(p)
-    if settings.path is not None:
-        hashes[str(settings.path)] = file_sha256(settings.path)
+    hashes = {str(p): file_sha256(p) for p in input_paths(s)}
     return Intake(
         settings=s,
         stack=stack,
@@ -1205,7 +1209,8 @@ def run_project(
     settings : Settings
     out_dir : path-like
     overwrite : bool, default False
-        Replace an existing ``out_dir``.
+        Replace an existing ``out_dir``, if an earlier run wrote it (it holds the run
+        marker) and it holds none of this run's inputs.
     echo : callable, optional
         Receives progress lines.
     scheduler : str, optional
@@ -1217,9 +1222,10 @@ def run_project(
     -------
     RunResult
     """
-    from screener.outputs.staging import check_output_folder, staged_output
+    from screener.outputs.staging import check_output_folder, new_run_id, staged_output
 
-    out = check_output_folder(out_dir, overwrite=overwrite)
+    inputs = input_paths(settings)
+    out = check_output_folder(out_dir, overwrite=overwrite, inputs=inputs)
     if cache_dir == "auto":
         cache_dir = (settings.base_dir / ".screener-cache") if settings.path else None
     if cache_dir is not None:
@@ -1229,7 +1235,9 @@ def run_project(
     progress = Progress(echo, n_stages=5)
     progress.i = 4
     progress.stage(f"Writing outputs to {out}")
-    with staged_output(out, overwrite=overwrite) as stage:
+    run_id = new_run_id()
+    result.provenance["run_id"] = run_id
+    with staged_output(out, overwrite=overwrite, inputs=inputs, run_id=run_id) as stage:
         write_outputs(result, stage, progress=progress)
     progress.done()
     return result

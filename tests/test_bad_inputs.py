@@ -455,8 +455,11 @@ def test_existing_output_folder_is_kept_without_overwrite(warm, tmp_path):
 def test_overwrite_interrupted_while_writing_keeps_the_old_folder(warm, tmp_path, monkeypatch):
     from screener.outputs import gpx
 
+    from screener.outputs.staging import write_run_marker
+
     out = tmp_path / "out"
     out.mkdir()
+    write_run_marker(out, "an-earlier-run")  # as if an earlier run wrote it
     (out / "notes.txt").write_text("previous run", encoding="utf-8")
 
     def interrupted(*a, **k):
@@ -465,12 +468,108 @@ def test_overwrite_interrupted_while_writing_keeps_the_old_folder(warm, tmp_path
     monkeypatch.setattr(gpx, "write_gpx", interrupted)
     result = invoke("run", warm / "project.toml", "--out", out, "--overwrite")
     assert result.exit_code == 130 and "Interrupted" in result.output
-    assert sorted(p.name for p in out.iterdir()) == ["notes.txt"]
+    assert sorted(p.name for p in out.iterdir()) == [".screener-run", "notes.txt"]
     assert leftovers(out) == ["out"]  # no staging folder left beside it
     monkeypatch.undo()
     result = invoke("run", warm / "project.toml", "--out", out, "--overwrite")
     assert result.exit_code == 0, result.output
     assert not (out / "notes.txt").exists() and (out / "run.json").exists()
+
+
+# ------------------------------------------------------------------ --overwrite never loses data
+def _snapshot(folder: Path) -> dict:
+    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*"))
+            if p.is_file()}
+
+
+@pytest.mark.parametrize("where", ["project folder", "parent of the project folder"])
+def test_overwrite_refuses_a_folder_holding_the_inputs(scen, where):
+    (scen / "notes.txt").write_text("field notes", encoding="utf-8")
+    out = scen if where == "project folder" else scen.parent
+    before = _snapshot(out)
+    result = invoke("run", scen / "project.toml", "--out", out, "--overwrite")
+    assert result.exit_code == 2, result.output
+    assert re.search(r"holds input\(s\) of this run .*replacing it would delete them",
+                     result.output.replace("\n", " ")), result.output
+    assert "Traceback" not in result.output
+    assert _snapshot(out) == before  # records, layers, notes: all still there
+
+
+def test_overwrite_refuses_a_folder_no_run_wrote(scen, tmp_path):
+    out = tmp_path / "elsewhere"
+    out.mkdir()
+    (out / "thesis.docx").write_bytes(b"three years of work")
+    result = invoke("run", scen / "project.toml", "--out", out, "--overwrite")
+    assert result.exit_code == 2, result.output
+    assert "was not written by the screener" in result.output
+    assert (out / "thesis.docx").read_bytes() == b"three years of work"
+
+
+def test_overwrite_refuses_the_run_folder_a_debrief_reads(warm, tmp_path):
+    run_dir = warm.parent / "first"
+    before = _snapshot(run_dir)
+    result = invoke("debrief", tmp_path / "field.csv", "--run", run_dir, "--out", run_dir,
+                    "--overwrite")
+    assert result.exit_code == 2 and "holds input(s)" in result.output, result.output
+    assert _snapshot(run_dir) == before
+
+
+def test_overwrite_replaces_an_earlier_run(warm, tmp_path):
+    out = tmp_path / "out"
+    assert invoke("run", warm / "project.toml", "--out", out).exit_code == 0
+    first = json.loads((out / ".screener-run").read_text("utf-8"))["run_id"]
+    assert json.loads((out / "run.json").read_text("utf-8"))["run_id"] == first
+    result = invoke("run", warm / "project.toml", "--out", out, "--overwrite")
+    assert result.exit_code == 0, result.output
+    assert json.loads((out / ".screener-run").read_text("utf-8"))["run_id"] != first
+    assert leftovers(out) == ["out"]
+
+
+def test_demo_does_not_delete_a_folder_that_appears_while_it_runs(tmp_path, monkeypatch):
+    out = tmp_path / "demo-out"
+
+    def fake_run(settings, results, **kw):  # the demo's run, much faster
+        Path(results).mkdir()
+        out.mkdir()
+        (out / "notes.txt").write_text("made meanwhile", encoding="utf-8")
+
+    monkeypatch.setattr(screener.pipeline, "run_project", fake_run)
+    result = invoke("demo", "--out", out, "--size", "small")
+    assert result.exit_code == 2, result.output
+    assert "already exists and won't be replaced without --overwrite" in result.output
+    assert (out / "notes.txt").read_text(encoding="utf-8") == "made meanwhile"
+    result = invoke("demo", "--out", out, "--size", "small", "--overwrite")
+    assert result.exit_code == 2 and "was not written by the screener" in result.output
+    assert (out / "notes.txt").exists()
+
+
+def test_staging_folders_are_unique_and_stale_ones_are_removed(tmp_path):
+    import subprocess
+    import sys
+
+    from screener.errors import OutputError
+    from screener.outputs.staging import RUN_MARKER, staged_output, write_run_marker
+
+    out = tmp_path / "out"
+    # a staging folder of a killed run: its marker names a process that has ended
+    dead = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"],
+                          capture_output=True, text=True, check=True)
+    stale = tmp_path / ".out.partial-0123"
+    stale.mkdir()
+    write_run_marker(stale, "killed-run")
+    marker = json.loads((stale / RUN_MARKER).read_text("utf-8"))
+    marker["pid"] = int(dead.stdout)
+    (stale / RUN_MARKER).write_text(json.dumps(marker), encoding="utf-8")
+    unknown = tmp_path / ".out.partial-by-hand"  # no marker: not ours to delete
+    unknown.mkdir()
+    with pytest.raises(OutputError, match="appeared or changed during the run"):
+        with staged_output(out) as a:
+            assert not stale.exists() and unknown.exists()
+            with staged_output(out) as b:
+                assert a != b and a.parent == b.parent
+                assert (a / RUN_MARKER).exists() and (b / RUN_MARKER).exists()
+    assert (out / RUN_MARKER).exists() and a.exists()  # the second finished first; the
+    assert unknown.exists()                            # first is kept, not removed
 
 
 def test_output_parent_is_a_file(warm, tmp_path):
