@@ -15,7 +15,8 @@ The stage works on the thresholded suitability maps of a clade of sister taxa:
 6. Each unoccupied patch gets its least-cost distance, the nearest taxon, the
    least-cost path from the patch's cheapest cell back to that taxon's range and,
    along the path, the **gap** (longest run of unsuitable cells as ground length) and
-   the **barrier depth** (lowest suitability crossed).  Kinds:
+   the **barrier depth** (``1 - s`` at the least suitable unsuitable cell crossed;
+   the barrier raster holds the same quantity cell by cell).  Kinds:
 
    ``within-range``
        suitable cells inside a known range's patch farther than ``within_range_min_km``
@@ -52,6 +53,7 @@ from scipy.spatial import cKDTree
 
 from screener.costdistance import CostGraph, least_cost_path, step_lengths_km
 from screener.errors import InputError, RecordsError
+from screener.gaps import separating_gaps
 from screener.grid import Grid
 
 __all__ = [
@@ -59,6 +61,7 @@ __all__ = [
     "PathProfile",
     "clade_suitability",
     "find_candidates",
+    "gap_resolution_note",
     "path_profile",
     "paths_geodataframe",
     "resistance_from_suitability",
@@ -112,6 +115,33 @@ def clade_suitability(suitability: dict) -> np.ndarray:
     return out
 
 
+def gap_resolution_note(grid: Grid, min_gap_km: float) -> str | None:
+    """A message when ``min_gap_km`` is shorter than two cells (else None).
+
+    Gaps are measured in whole cells (a run of ``k`` unsuitable cells measures ``k``
+    cell widths), so a threshold below two cell widths makes a single unsuitable
+    cell (often one misclassified cell of the maps) enough to call a patch isolated.
+
+    Parameters
+    ----------
+    grid : Grid
+    min_gap_km : float
+        km.
+    """
+    steps = [np.asarray(grid.ew_step_km, float)]
+    if grid.n_rows > 1:
+        steps.append(np.asarray(grid.ns_step_km, float))
+    cell_km = float(max(np.max(s) for s in steps))
+    if min_gap_km < 2 * cell_km:
+        return (
+            f"min_gap_km = {min_gap_km:g} km is less than two cells ({2 * cell_km:.2f} "
+            f"km on this grid: cells are up to {cell_km:.2f} km across); a single "
+            "unsuitable cell then makes a patch isolated. Raise [isolation] min_gap_km "
+            "or use a finer grid; gap_km per site shows how close each call is."
+        )
+    return None
+
+
 def suitable_cells(grid: Grid, suitability: dict, thresholds: dict) -> np.ndarray:
     """Cells where any taxon's suitability reaches its threshold (inclusive).
 
@@ -163,7 +193,9 @@ class PathProfile:
     gap_km : float
         Ground length of the longest run of unsuitable cells, km.
     barrier_depth : float
-        Lowest suitability on the path.
+        Deepest barrier on the path: the largest ``1 - s`` (clade suitability) over
+        its unsuitable cells; 0 when every cell is suitable.  The same quantity as
+        the barrier raster (:attr:`CandidateSet.barrier`).
     length_km : float
         Ground length of the whole path, km (sum of its step lengths).
     n_unsuitable : int
@@ -210,7 +242,8 @@ def path_profile(
         lab, n = ndi.label(bad)
         gap = float(np.max(ndi.sum(share, lab, np.arange(1, n + 1))))
     # index first: converting the whole map per path would cost a grid copy per site
-    depth = float(np.nanmin(np.asarray(suitability)[path[:, 0], path[:, 1]].astype(float)))
+    s_path = np.asarray(suitability)[path[:, 0], path[:, 1]].astype(float)
+    depth = float(np.nanmax(1.0 - s_path[bad])) if bad.any() else 0.0
     return PathProfile(gap, depth, float(steps.sum()), int(bad.sum()))
 
 
@@ -318,6 +351,8 @@ class CandidateSet:
     ranges: pd.DataFrame
     thresholds: dict = field(default_factory=dict)
     relaxed_thresholds: dict | None = None
+    #: messages for the reader about the run (e.g. a ``min_gap_km`` below two cells)
+    warnings: tuple = ()
 
 
 @dataclass
@@ -530,6 +565,33 @@ def _labels_touching(labels: np.ndarray, mask: np.ndarray, n: int) -> np.ndarray
     return out[1:]
 
 
+def _site_corridors(graph, site_cells, n_unocc, cost_all, site_cost, slack):
+    """Cells on the least-cost corridor between the known ranges and a site.
+
+    One cost run from the cells of every unoccupied-patch site; each cell is tested
+    against the site it is cheapest to reach from (the one its traceback ends at):
+    on the corridor when ``cost_from_ranges + cost_from_site <= (1 + slack) *
+    least cost of that site``.  Sites the ranges do not reach, or that touch them
+    (least cost 0), have no corridor.  One run instead of one per site: a cell on
+    the corridor of a site that lies behind a nearer site is tested against the
+    nearer one, so the caller adds every site's least-cost path to the corridors.
+    """
+    from screener.gaps import nearest_source_label
+
+    shape = site_cells.shape
+    unocc = (site_cells > 0) & (site_cells <= n_unocc)
+    if not unocc.any():
+        return np.zeros(shape, bool)
+    surf = graph.run(unocc, dtype=np.float32)
+    near = nearest_source_label(surf.predecessor.ravel(), np.where(unocc, site_cells, 0))
+    limit = np.full(n_unocc + 1, -np.inf)
+    lc = np.asarray(site_cost[:n_unocc], dtype=np.float64)
+    ok = np.isfinite(lc) & (lc > 0)
+    limit[1:][ok] = lc[ok] * (1.0 + slack)
+    out = (cost_all + surf.cost).ravel() <= limit[near]
+    return out.reshape(shape)
+
+
 def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *, full=True,
                last=False):
     """Sites at one set of thresholds.  ``full=False`` (the relaxed set) keeps no
@@ -599,6 +661,13 @@ def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *
         del sub
     n_sites = int(site_cells.max()) if site_cells.size else 0
 
+    # separating gap of every patch: minimax over all routes from the ranges, suitable
+    # patches (of any size) as stepping stones; on the cells the cost graph may cross
+    sep = separating_gaps(
+        grid, labels, n_patches, range_ids, passable=graph.passable,
+        backend=graph.backend, memory_mb=p["memory_mb"],
+    )
+
     sc = _SiteCells(site_cells, n_sites)
     stats, best = _site_stats(grid, sc, clade, p["agreement"], p["novelty"], p["elevation"])
     # One cost-distance run per taxon.  Per-site costs are reduced from the float64
@@ -617,15 +686,20 @@ def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *
         cheapest[t] = low.rowcol()
         cost[t] = replace(surf, cost=c.astype(np.float32))
         del surf, c
-    del graph
-    if last:
-        graphs.clear()
     cost_all = None
+    site_corridor = None
     if full:
         # folded in place (np.minimum.reduce of a list would stack the surfaces)
         cost_all = cost[taxa[0]].cost.copy()
         for t in taxa[1:]:
             np.minimum(cost_all, cost[t].cost, out=cost_all)
+        site_corridor = _site_corridors(
+            graph, site_cells, n_unocc, cost_all,
+            np.min([cost_to[t] for t in taxa], axis=0), p["corridor_slack"],
+        )
+    del graph
+    if last:
+        graphs.clear()
     all_src = sources[taxa[0]].copy()
     for t in taxa[1:]:
         all_src |= sources[t]
@@ -666,9 +740,14 @@ def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *
             rec["cost_distance"] = 0.0
             rec["nearest_taxon"] = nearest_rec_taxon[k]
             rec["gap_km"] = 0.0
+            rec["unsuitable_km"] = 0.0
+            rec["stepping_stones"] = 0
             rec["barrier_depth"] = np.nan
             rec["path_km"] = 0.0
         else:
+            pid = int(cand[k])
+            rec["unsuitable_km"] = float(sep.unsuitable_km[pid])
+            rec["stepping_stones"] = int(sep.stepping_stones[pid])
             t_best = min(taxa, key=lambda t: costs_k[t])  # ties: first taxon
             cd = costs_k[t_best]
             rec["cost_distance"] = cd
@@ -678,12 +757,12 @@ def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *
                 prof = path_profile(grid, path, suitable, clade)
                 paths[sid] = path
                 rec["nearest_taxon"] = t_best
-                rec["gap_km"] = prof.gap_km
+                gap = float(sep.gap_km[pid])
+                rec["gap_km"] = gap
                 rec["barrier_depth"] = prof.barrier_depth
                 rec["path_km"] = prof.length_km
-                rec["kind"] = (
-                    "near-range" if prof.gap_km < p["min_gap_km"] else "isolated"
-                )
+                rec["kind"] = "near-range" if gap < p["min_gap_km"] else "isolated"
+
             else:
                 cells = np.nonzero(site_cells == sid)
                 cells = (
@@ -715,13 +794,19 @@ def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *
     between = _labels_touching(site_cells, corridor, n_sites)
     for k, rec in enumerate(rows_out):
         rec["between_ranges"] = bool(between[k])
+    del corridor
     barrier = None
     if full:
+        # barrier depth (1 - s) on the unsuitable cells of the range-site corridors
+        # and of every site's least-cost path (a site reached through another site's
+        # corridor is tested against that nearer site above; its path still counts)
+        for path in paths.values():
+            site_corridor[path[:, 0], path[:, 1]] = True
         barrier = (1.0 - clade).astype(np.float32, copy=False)
-        corridor &= ~suitable
-        barrier[~corridor] = 0.0
+        site_corridor &= ~suitable
+        barrier[~site_corridor] = 0.0
         barrier[~grid.mask] = np.nan
-    del corridor
+    del site_corridor
 
     per_range = {
         int(pid): int(np.sum(labels[rec_r, rec_c] == pid)) for pid in range_ids
@@ -839,6 +924,11 @@ def find_candidates(
     ):
         if not np.isfinite(v) or v < 0:
             raise InputError(f"`{name}` must be a finite number >= 0; got {v!r}.")
+    notes = []
+    short = gap_resolution_note(grid, min_gap_km)
+    if short:
+        log.warning(short)
+        notes.append(short)
     clade = clade_suitability(suitability)  # a new array: masked in place
     clade[~grid.mask] = np.nan
     if isinstance(resistance, str):
@@ -859,6 +949,7 @@ def find_candidates(
         "agreement": agreement,
         "novelty": novelty,
         "elevation": elevation,
+        "memory_mb": memory_mb,
     }
 
     # The relaxed set runs first and keeps only its labels and site cells, so that
@@ -967,6 +1058,8 @@ def find_candidates(
         + [
             "nearest_taxon",
             "gap_km",
+            "unsuitable_km",
+            "stepping_stones",
             "barrier_depth",
             "path_km",
             "nearest_record_km",
@@ -1019,6 +1112,7 @@ def find_candidates(
         relaxed_thresholds=None
         if relaxed_thresholds is None
         else dict(relaxed_thresholds),
+        warnings=tuple(notes),
     )
 
 

@@ -987,6 +987,7 @@ def run_analysis(
     progress.done()
     shade = hillshade(intake.grid, intake.elevation) if intake.elevation is not None else None
     warns = list(intake.warnings)
+    warns.extend(plan["candidates"].warnings)
     novel = plan["sites"]["novel_share"].fillna(0) > 0 if len(plan["sites"]) else []
     if len(plan["sites"]) and np.any(novel):
         ids = plan["sites"].loc[novel, "site_id"].tolist()

@@ -38,7 +38,7 @@ def strip_scene():
 
 
 def test_gap_depth_and_cost_on_hand_drawn_strip():
-    """Known answers: P1 gap 2 km, depth 0.2, cost 1.75; P2 longest gap 4 km.
+    """Known answers: P1 gap 2 km, depth 0.8, cost 1.75; P2 longest gap 4 km.
 
     Cost to P1's first column (hand-worked, r = 1 - s, 1 km steps):
     (0.1 + 0.8)/2 + 0.8 + (0.8 + 0.2)/2 = 1.75.
@@ -61,9 +61,14 @@ def test_gap_depth_and_cost_on_hand_drawn_strip():
     assert_allclose(p1["cost_distance"], 1.75, rtol=1e-9)
     # ground lengths on UTM are grid lengths here (projected, constant steps)
     assert_allclose(p1["gap_km"], 2.0, rtol=1e-9)
-    assert_allclose(p1["barrier_depth"], 0.2)
+    assert_allclose(p1["barrier_depth"], 0.8)  # 1 - s on the 0.2 cells
     assert_allclose(p2["gap_km"], 4.0, rtol=1e-9)
-    assert_allclose(p2["barrier_depth"], 0.2)
+    assert_allclose(p2["barrier_depth"], 0.8)
+    # the barrier raster holds the same quantity on the corridor's unsuitable cells
+    # (every gap column is shaded on some row of a corridor)
+    assert_allclose(cs.barrier[:, 3:5].max(axis=0), 0.8, rtol=1e-6)
+    assert_allclose(cs.barrier[:, 7:11].max(axis=0), 0.65, rtol=1e-6)
+    assert (cs.barrier[:, 0:3] == 0).all() and (cs.barrier[:, 5:7] == 0).all()
     assert p1["nearest_taxon"] == "A" and p1["n_cells"] == 10
     path = cs.paths[int(p2["site_id"])]
     assert (
@@ -80,7 +85,7 @@ def test_path_profile_half_step_convention():
     prof = path_profile(
         grid, np.array([[0, 0], [0, 1], [0, 2], [0, 3], [0, 4]]), s >= 0.5, s
     )
-    assert_allclose([prof.gap_km, prof.barrier_depth, prof.length_km], [1.0, 0.1, 4.0])
+    assert_allclose([prof.gap_km, prof.barrier_depth, prof.length_km], [1.0, 0.9, 4.0])
 
 
 def test_within_range_and_relaxed_only_sites():
@@ -127,7 +132,10 @@ def test_between_ranges_and_barrier():
     off = cs.sites[cs.sites["row"] >= 7]
     assert off["between_ranges"].tolist() == [False]
     assert (cs.barrier[0:3, 3:6] > 0).all() and (cs.barrier[0:3, 9:12] > 0).all()
-    assert (cs.barrier[5:9, :] == 0).all()
+    # barriers are shaded on corridors from the ranges to sites (also the one off the
+    # range-to-range corridor), not on ground no corridor crosses
+    assert (cs.barrier[6:9, 0:2] == 0).all() and (cs.barrier[6:9, 13:15] == 0).all()
+    assert (cs.barrier[4:7, 3:12] > 0).any()
     assert_allclose(cs.barrier[1, 4], 0.8, rtol=1e-6)  # 1 - s on an unsuitable cell
 
 
