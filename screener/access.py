@@ -3,8 +3,11 @@
 Speed on foot follows Tobler's hiking function, ``v = 6 exp(-3.5 |S + 0.05|)`` km/h with
 ``S`` the rise over run of the step, times 0.6 off-track.  The function is anisotropic
 (downhill at 5 % is fastest); a raster of cell costs cannot know the direction of travel,
-so each cell gets the *isotropic approximation*: the mean of the up- and downhill speeds
-at the cell's slope.  Walking time is then the accumulated cost distance with cost
+so each cell gets the *isotropic approximation*: the harmonic mean of the up- and
+downhill speeds at the cell's slope.  The harmonic mean keeps time consistent: crossing
+a cell once uphill and once downhill takes exactly as long at the isotropic speed as at
+Tobler's two directional speeds.  (The arithmetic mean would overstate the speed by up
+to ``cosh(0.175)**2 - 1``, about 3 %, on slopes steeper than 5 %.)  Walking time is then the accumulated cost distance with cost
 ``1 / v`` hours per km (:mod:`screener.costdistance`).
 
 Times are planning estimates for fit walkers in good weather; they ignore vegetation,
@@ -81,11 +84,15 @@ def tobler_speed_kmh(
 def isotropic_speed_kmh(
     slope, *, off_track: bool = True, off_track_factor=OFF_TRACK_FACTOR
 ):
-    """Mean of Tobler's uphill and downhill speeds at a slope magnitude, km/h."""
+    """Harmonic mean of Tobler's uphill and downhill speeds at a slope magnitude, km/h.
+
+    ``2 / (1 / v_up + 1 / v_down)``: the speed at which a walk up and back down the
+    same ground takes as long as at the two directional speeds (time-consistent).
+    """
     s = np.abs(np.asarray(slope, dtype=np.float64))
     up = tobler_speed_kmh(s, off_track=off_track, off_track_factor=off_track_factor)
     down = tobler_speed_kmh(-s, off_track=off_track, off_track_factor=off_track_factor)
-    v = 0.5 * (np.asarray(up) + np.asarray(down))
+    v = 2.0 / (1.0 / np.asarray(up) + 1.0 / np.asarray(down))
     return float(v) if v.ndim == 0 else v
 
 

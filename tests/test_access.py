@@ -30,11 +30,18 @@ def test_tobler_published_values():
     assert_allclose(tobler_speed_kmh(0.10), 3.55, atol=0.005)
     # off-track factor 0.6 (Tobler 1993)
     assert_allclose(tobler_speed_kmh(0.0, off_track=True), 0.6 * 5.0366, atol=0.001)
-    # isotropic approximation: mean of the uphill and downhill speeds
-    assert_allclose(
-        isotropic_speed_kmh(0.1, off_track=False),
-        (tobler_speed_kmh(0.1) + tobler_speed_kmh(-0.1)) / 2,
-    )
+    # isotropic approximation, time-consistent: up and back down 1 km of a slope
+    # takes as long at the isotropic speed as at Tobler's two directional speeds
+    for s in (0.0, 0.03, 0.1, 0.4):
+        there_and_back = 1 / tobler_speed_kmh(s) + 1 / tobler_speed_kmh(-s)
+        assert_allclose(2 / isotropic_speed_kmh(s, off_track=False), there_and_back,
+                        rtol=1e-12)
+    # the arithmetic mean would overstate it by cosh(3.5 * 0.05)^2 on slopes > 5 %
+    # (from the formula: (a + b)^2 / 4ab with a/b = exp(2 * 3.5 * 0.05))
+    s = np.linspace(0.05, 1.0, 20)
+    mean = (tobler_speed_kmh(s) + tobler_speed_kmh(-s)) / 2
+    assert_allclose(mean / isotropic_speed_kmh(s, off_track=False), np.cosh(0.175) ** 2,
+                    rtol=1e-12)
 
 
 def test_inclined_plane_hours():
@@ -44,7 +51,7 @@ def test_inclined_plane_hours():
     z = np.broadcast_to(0.1 * x_m, grid.shape).copy()
     assert_allclose(slope_rise_over_run(grid, z), 0.1, rtol=1e-12)
     h = walking_hours(grid, z, ([2], [0]))
-    v = (6 * np.exp(-3.5 * 0.15) + 6 * np.exp(-3.5 * 0.05)) / 2 * 0.6
+    v = 2 / (1 / (6 * np.exp(-3.5 * 0.15)) + 1 / (6 * np.exp(-3.5 * 0.05))) * 0.6
     assert_allclose(h[2, 7], 7.0 / v, rtol=1e-12)
 
 
