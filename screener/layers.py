@@ -22,6 +22,8 @@ from screener.grid import Grid
 __all__ = [
     "LayerStack",
     "LayerReport",
+    "BandRef",
+    "list_bands",
     "read_layers",
     "check_layers",
     "slope_aspect",
@@ -46,11 +48,14 @@ class LayerSource:
         A further nodata sentinel (for files without a nodata tag).
     category : float or None
         For an indicator layer of a categorical raster: the class value.
+    band : int
+        Band number in the file (1-based).
     """
 
     path: Path
     nodata_extra: float | None = None
     category: float | None = None
+    band: int = 1
 
     def read(self, src, window=None, out=None, *, mark_nodata: bool = True) -> np.ndarray:
         """Read from an open dataset as float32, NaN for nodata.
@@ -62,20 +67,22 @@ class LayerSource:
         """
         from rasterio.enums import MaskFlags
 
+        b = self.band
         if not mark_nodata and self.category is None:
             if out is not None:
-                return src.read(1, window=window, out=out)
-            return src.read(1, window=window, out_dtype=np.float32)
-        if src.nodata is None and MaskFlags.per_dataset in src.mask_flag_enums[0]:
+                return src.read(b, window=window, out=out)
+            return src.read(b, window=window, out_dtype=np.float32)
+        nodata = src.nodatavals[b - 1]
+        if nodata is None and MaskFlags.per_dataset in src.mask_flag_enums[b - 1]:
             # an internal mask band instead of a nodata value: let GDAL apply it
-            raw = src.read(1, window=window, masked=True)
+            raw = src.read(b, window=window, masked=True)
             values = np.ma.filled(raw.astype(np.float32), np.nan)
         elif out is not None and self.category is None:
-            values = src.read(1, window=window, out=out)
+            values = src.read(b, window=window, out=out)
         else:
-            values = src.read(1, window=window, out_dtype=np.float32)
+            values = src.read(b, window=window, out_dtype=np.float32)
         bad = ~np.isfinite(values)
-        for nd in (src.nodata, self.nodata_extra):
+        for nd in (nodata, self.nodata_extra):
             if nd is not None and np.isfinite(nd):
                 bad |= values == np.float32(nd)
         values[bad] = np.nan
@@ -404,6 +411,110 @@ class _LayerStats:
         return None, 0
 
 
+@dataclass(frozen=True)
+class BandRef:
+    """One band of a raster file: a layer before it is read.
+
+    Attributes
+    ----------
+    path : Path or str
+        The file, or a GDAL subdataset name (e.g. one variable of a NetCDF file).
+    band : int
+        Band number (1-based).
+    name : str
+        Layer name: the file stem for a single-band file, the band description for
+        a band of a multi-band file (``<stem>_<band>`` when it has none), the
+        variable name for a subdataset.
+    unit : str
+        Unit text of the band ("" when the file has none).
+    dtype : str
+        Data type of the original band (kept when a layer is resampled to float).
+    """
+
+    path: object
+    band: int
+    name: str
+    unit: str = ""
+    dtype: str = "float32"
+
+
+def _open_raster(path):
+    import rasterio
+
+    if isinstance(path, Path) and not path.exists():
+        raise LayerError(f"Layer file {path} does not exist; check [layers] paths.")
+    from rasterio.errors import NotGeoreferencedWarning
+
+    try:
+        with warnings.catch_warnings():
+            # containers of subdatasets have no geotransform; a layer without one
+            # is refused later for its missing CRS
+            warnings.simplefilter("ignore", NotGeoreferencedWarning)
+            return rasterio.open(path)
+    except Exception as exc:  # rasterio raises several types for unreadable files
+        raise LayerError(
+            f"Layer file {path} cannot be read as a raster "
+            f"({str(exc).rstrip('.')}); give a GeoTIFF or another raster that GDAL opens."
+        ) from None
+
+
+def _bands_of(src, path, stem: str) -> list:
+    units = list(src.units or ())
+    descs = list(src.descriptions or ())
+    if src.count == 1:
+        return [BandRef(path, 1, stem, (units[0] if units else "") or "", src.dtypes[0])]
+    out = []
+    for b in range(1, src.count + 1):
+        desc = (descs[b - 1] if b - 1 < len(descs) else None) or ""
+        name = desc.strip() or f"{stem}_{b}"
+        out.append(BandRef(path, b, name, (units[b - 1] if b - 1 < len(units) else "") or "",
+                           src.dtypes[b - 1]))
+    return out
+
+
+def list_bands(paths) -> list:
+    """Every layer the raster files hold, as :class:`BandRef` (files are only opened).
+
+    A single-band file is one layer named by its stem; each band of a multi-band
+    file is a layer named by its band description; a container of subdatasets
+    (e.g. NetCDF with several variables) gives each variable's bands.
+    :class:`BandRef` items in ``paths`` are passed through.
+
+    Raises
+    ------
+    LayerError
+        A file is missing, unreadable, or has no bands; two layers share a name.
+    """
+    out = []
+    for path in paths:
+        if isinstance(path, BandRef):
+            out.append(path)
+            continue
+        path = Path(path)
+        with _open_raster(path) as src:
+            if src.count == 0 and src.subdatasets:
+                subs = list(src.subdatasets)
+            elif src.count == 0:
+                raise LayerError(f"Layer file {path} holds no raster band.")
+            else:
+                subs = None
+                out.extend(_bands_of(src, path, path.stem))
+        for sub in subs or ():
+            var = str(sub).rsplit(":", 1)[-1].strip('"') or path.stem
+            with _open_raster(sub) as src:
+                out.extend(_bands_of(src, sub, var))
+    names = [b.name for b in out]
+    if len(set(names)) != len(names):
+        dup = sorted({n for n in names if names.count(n) > 1})
+        where = ", ".join(str(b.path) + (f" band {b.band}" if b.band > 1 else "")
+                          for b in out if b.name == dup[0])
+        raise LayerError(
+            f"Two layers share the name {dup[0]!r} ({where}); rename a file or set "
+            "distinct band descriptions so names are unique."
+        )
+    return out
+
+
 def read_layers(
     paths,
     *,
@@ -414,14 +525,15 @@ def read_layers(
     memory_mb: float | None = None,
     block_cells: int = 1 << 22,
 ) -> LayerStack:
-    """Read single-band rasters that share one grid into a :class:`LayerStack`.
+    """Read rasters that share one grid into a :class:`LayerStack`.
 
     Parameters
     ----------
-    paths : sequence of path-like
-        Raster files (GeoTIFF or anything rasterio opens), one band each.
+    paths : sequence of path-like or BandRef
+        Raster files (GeoTIFF or anything GDAL opens).  Each band of a multi-band
+        file is one layer, named by its band description (see :func:`list_bands`).
     names : sequence of str, optional
-        Layer names; the file stems by default.
+        Layer names, one per band; by default from :func:`list_bands`.
     categorical : sequence of str, default ()
         Names of categorical layers; each class becomes a 0/1 indicator layer
         named ``<layer>=<class>``.
@@ -443,8 +555,8 @@ def read_layers(
     Raises
     ------
     LayerError
-        A file is missing, unreadable, multi-band, entirely nodata or looks
-        categorical without being declared so.
+        A file is missing, unreadable, entirely nodata or looks categorical
+        without being declared so.
     GridMismatchError
         Two files differ in CRS, transform, resolution or shape; the message names
         both files and what differs.
@@ -452,38 +564,32 @@ def read_layers(
     import rasterio
     from rasterio.windows import Window
 
-    paths = [Path(p) for p in paths]
-    if not paths:
+    if not list(paths):
         raise LayerError("No layers were given: list raster files under [layers] paths.")
-    names = list(names) if names is not None else [p.stem for p in paths]
-    if len(set(names)) != len(names):
-        dup = sorted({n for n in names if names.count(n) > 1})
-        raise LayerError(
-            f"Two layers share the name {dup[0]!r}; rename one file so names are unique."
-        )
+    bands = list_bands(paths)
+    if names is not None:
+        names = list(names)
+        if len(names) != len(bands):
+            raise LayerError(
+                f"{len(names)} layer names were given for {len(bands)} layers "
+                f"({', '.join(b.name for b in bands)})."
+            )
+        if len(set(names)) != len(names):
+            dup = sorted({n for n in names if names.count(n) > 1})
+            raise LayerError(
+                f"Two layers share the name {dup[0]!r}; rename one file so names are unique."
+            )
+        bands = [BandRef(b.path, b.band, n, b.unit, b.dtype) for b, n in zip(bands, names)]
+    names = [b.name for b in bands]
     nodata_values = dict(nodata_values or {})
     categorical = set(categorical)
 
-    # -- 1. metadata: every file readable, single band, with a CRS, on one grid ---------
+    # -- 1. metadata: every file readable, with a CRS, on one grid ----------------------
     meta = []
     ref_info = ref_path = None
-    for path, name in zip(paths, names):
-        if not path.exists():
-            raise LayerError(f"Layer file {path} does not exist; check [layers] paths.")
-        try:
-            src_ctx = rasterio.open(path)
-        except Exception as exc:  # rasterio raises several types for unreadable files
-            raise LayerError(
-                f"Layer file {path} cannot be read as a raster "
-                f"({str(exc).rstrip('.')}); "
-                "give a GeoTIFF or another single-band raster that GDAL opens."
-            ) from None
-        with src_ctx as src:
-            if src.count != 1:
-                raise LayerError(
-                    f"Layer file {path} has {src.count} bands; the screener needs "
-                    "single-band rasters (split it, e.g. one file per band)."
-                )
+    for bref in bands:
+        path, name = bref.path, bref.name
+        with _open_raster(path) as src:
             if src.crs is None:
                 raise LayerError(
                     f"Layer file {path} has no CRS; assign one (e.g. gdal_edit -a_srs)."
@@ -510,26 +616,28 @@ def read_layers(
                     diff = _RefInfo(crs, transform, width, height, res)
                     raise GridMismatchError(
                         f"Layers {ref_path} and {path} are not on the same grid: "
-                        f"{_describe_difference(diff, src, ref_path.name, path.name)}."
-                        " Resample one onto the "
-                        "other's grid first (e.g. rasterio.warp.reproject or gdalwarp)."
+                        f"{_describe_difference(diff, src, _base(ref_path), _base(path))}."
+                        " Resample one onto the other's grid first, or let the screener "
+                        'align them ([layers] alignment = "warp").'
                     )
             meta.append({
                 "path": path,
+                "band": bref.band,
                 "name": name,
-                "dtype": src.dtypes[0],
-                "tagged": src.nodata is not None,
-                "unit": (src.units[0] if src.units else "") or "",
+                "dtype": bref.dtype,
+                "tagged": src.nodatavals[bref.band - 1] is not None,
+                "unit": bref.unit,
             })
     crs, transform, width, height, _ = ref_info
     n_cells = width * height
-    n_guess = len(paths)
+    n_guess = len(bands)
     in_memory = memory_mb is None or n_guess * n_cells * 4 <= 0.5 * memory_mb * 1e6
 
     # -- 2. values: one pass, block by block (the whole grid at once in memory) -------
     step = height if in_memory else max(1, block_cells // max(width, 1))
     stats = [_LayerStats(m["dtype"]) for m in meta]
-    sources = [LayerSource(m["path"], nodata_values.get(m["name"])) for m in meta]
+    sources = [LayerSource(m["path"], nodata_values.get(m["name"]), band=m["band"])
+               for m in meta]
     mask = np.ones((height, width), dtype=bool)
     full = [None] * len(meta)
     n_nan = [0] * len(meta)
@@ -557,7 +665,7 @@ def read_layers(
                     f"{sentinel:.9g}, a common nodata marker, as its "
                     f"{'minimum' if sentinel == st.lo else 'maximum'}. "
                     "Read as data they would distort every model. If they are nodata, "
-                    f"tag the file (e.g. gdal_edit -a_nodata {sentinel:.9g} {path.name}); "
+                    f"tag the file (e.g. gdal_edit -a_nodata {sentinel:.9g} {_base(path)}); "
                     "if they are real values, rescale the layer."
                 )
         if st.n_finite == 0:
@@ -573,7 +681,7 @@ def read_layers(
                     "50 classes; more than 50 is unlikely to be categorical."
                 )
             for c in sorted(st.classes):
-                src_c = LayerSource(path, nodata_values.get(name), float(c))
+                src_c = LayerSource(path, nodata_values.get(name), float(c), m["band"])
                 out_sources.append(src_c)
                 out_names.append(f"{name}={c:g}")
                 out_paths.append(path)
@@ -613,6 +721,11 @@ def read_layers(
     log.info("streaming %d layers of %s cells from disk", len(out_names), f"{n_cells:,}")
     return LayerStack(grid, out_names, None, out_paths, units, out_sources,
                       nodata_share=share)
+
+
+def _base(path) -> str:
+    """Short name of a file (or subdataset) for messages."""
+    return path.name if isinstance(path, Path) else str(path)
 
 
 @dataclass(frozen=True)

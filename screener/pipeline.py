@@ -127,6 +127,7 @@ class Intake:
     warnings: list = field(default_factory=list)
     start_points: object = None
     surveyed: object = None
+    layer_origins: list = field(default_factory=list)
 
     @property
     def grid(self):
@@ -146,6 +147,9 @@ class Intake:
             f"Layers ({len(self.stack.names)}): {', '.join(self.stack.names)}",
             f"Predictors ({len(self.predictors)}): {', '.join(self.predictors)}",
         ]
+        if any(o.method != "none" for o in self.layer_origins):
+            out.append("Layer origins (original grid; method onto the reference grid):")
+            out.extend(f"  {o.line()}" for o in self.layer_origins)
         rep = self.layer_report
         if rep.constant:
             out.append(f"Constant layers (left out): {', '.join(rep.constant)}")
@@ -205,8 +209,31 @@ def input_paths(settings: Settings) -> list:
     return list(dict.fromkeys(Path(p) for p in named if p is not None))
 
 
-def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Intake:
+_TEMP_ALIGNED: list = []
+
+
+def _aligned_dir(cache_dir) -> Path:
+    """Folder for aligned layers: in the stage cache, else a folder for this process."""
+    if cache_dir is not None:
+        return Path(cache_dir) / "aligned"
+    if not _TEMP_ALIGNED:
+        import atexit
+        import shutil
+        import tempfile
+
+        folder = tempfile.mkdtemp(prefix="screener-aligned-")
+        atexit.register(shutil.rmtree, folder, ignore_errors=True)
+        _TEMP_ALIGNED.append(Path(folder))
+    return _TEMP_ALIGNED[0]
+
+
+def load_inputs(settings: Settings, *, progress: Progress | None = None,
+                cache_dir=None) -> Intake:
     """Read and check layers and records (no model is fitted).
+
+    Layers off the reference grid are aligned to it (``[layers] alignment =
+    "warp"``); the aligned files go into ``cache_dir/aligned`` (reused by later
+    runs) or, without a cache, into a temporary folder for this process.
 
     Raises
     ------
@@ -218,11 +245,33 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Inta
     caught: list = []
     with warnings.catch_warnings(record=True) as wlist:
         warnings.simplefilter("always", ScreenerWarning)
+        origins, derived = [], []
+        paths = s.layers.paths
+        if s.layers.alignment == "warp":
+            from screener.alignment import align_layers
+
+            aligned = align_layers(
+                s.layers.paths,
+                cache_dir=_aligned_dir(cache_dir),
+                reference=s.layers.reference,
+                crs=s.layers.crs,
+                resolution=s.layers.resolution or None,
+                extent=s.layers.extent or None,
+                categorical=s.layers.categorical,
+                nodata_values=s.layers.nodata,
+                elevation=s.layers.elevation,
+                derive=s.layers.derive,
+            )
+            paths, origins, derived = aligned.bands, aligned.origins, aligned.derived
+            for o in origins:
+                if o.method != "none":
+                    progress.step(f"aligned {o.name} by {o.method} ({o.note})")
         stack = read_layers(
-            s.layers.paths,
+            paths,
             categorical=s.layers.categorical,
             cell_budget=s.layers.cell_budget,
-            nodata_values=s.layers.nodata,
+            nodata_values={k: v for k, v in s.layers.nodata.items()
+                           if not any(o.name == k and o.method != "none" for o in origins)},
             memory_mb=s.compute.memory_mb or None,
         )
         elevation = None
@@ -233,7 +282,7 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Inta
                     f"are {', '.join(stack.names)}." + suggest(s.layers.elevation, stack.names)
                 )
             elevation = stack.layer(s.layers.elevation).astype(np.float64)
-            if s.layers.derive:
+            if s.layers.derive and not derived:
                 slope, aspect = slope_aspect(stack.grid, elevation)
                 extra = {"slope": slope, "aspect": aspect}
                 add = {d: extra[d] for d in s.layers.derive if d not in stack.names}
@@ -277,6 +326,7 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Inta
     hashes = {str(p): file_sha256(p) for p in input_paths(s)}
     return Intake(
         settings=s,
+        layer_origins=origins,
         stack=stack,
         predictors=predictors,
         layer_report=report,
@@ -291,7 +341,8 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None) -> Inta
 
 def check_project(settings: Settings) -> list:
     """Validate a project without fitting anything; return the summary lines."""
-    intake = load_inputs(settings)
+    cache_dir = (settings.base_dir / ".screener-cache") if settings.path else None
+    intake = load_inputs(settings, cache_dir=cache_dir)
     lines = intake.summary_lines()
     lines.extend(f"Warning: {w}" for w in intake.warnings)
     return lines
@@ -945,7 +996,7 @@ def run_analysis(
     t_start = time.perf_counter()
     progress.stage("Reading and checking layers and records")
     if intake is None:
-        intake = load_inputs(s, progress=progress)
+        intake = load_inputs(s, progress=progress, cache_dir=cache_dir)
     for line in intake.summary_lines()[:3]:
         progress.step(line)
     sched = resolve_scheduler(scheduler or s.compute.scheduler, intake)
@@ -1001,6 +1052,7 @@ def run_analysis(
         "settings": s.as_dict(),
         "project_file": str(s.path) if s.path else None,
         "input_hashes": intake.input_hashes,
+        "layers": [o.as_dict() for o in intake.layer_origins],
         "seeds": {"random_state": s.project.random_state,
                   **{n: t.seed for n, t in taxa.items()}},
         "timings_s": dict(progress.timings),

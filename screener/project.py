@@ -43,7 +43,12 @@ SCHEMA: dict = {
         "sensitive": ((bool, list), False, "Generalise these taxa's coordinates (true = all)."),
     },
     "layers": {
-        "paths": ([Path], None, "Single-band rasters on one grid (glob patterns allowed)."),
+        "paths": ([Path], None, "Raster files (glob patterns allowed); each band of a multi-band file is a layer named by its band description."),
+        "alignment": (str, "warp", '"warp": resample layers onto the reference grid; "strict": layers must already share one grid.'),
+        "reference": (str, "", "Layer whose grid the others are aligned to (default: the first layer)."),
+        "crs": (str, "", 'CRS of the reference grid, e.g. "EPSG:4326", when it is not a layer\'s.'),
+        "resolution": ((float, list), 0.0, "Cell size of the reference grid in CRS units (or [x, y]); 0 = the first layer's."),
+        "extent": (list, [], "Study area [xmin, ymin, xmax, ymax] in CRS units; every layer must cover it."),
         "elevation": (str, "", "Name (file stem) of the elevation layer in metres, if any."),
         "derive": (list, [], 'Terrain layers derived from elevation: "slope", "aspect".'),
         "exclude": (list, [], "Layer names read but not used as predictors."),
@@ -266,6 +271,7 @@ def _check_choices(s, where):
         ("overlap", "geographic_tests", ("auto", "on", "off")),
         ("isolation", "resistance", ("linear", "log")),
         ("outputs", "page_size", ("A4", "letter")),
+        ("layers", "alignment", ("warp", "strict")),
     ]
     for section, key, allowed in choices:
         v = s[section][key]

@@ -188,17 +188,28 @@ def _unknown_taxon_filter(s):
     set_in_section(s, "project", 'taxa = ["Nebrivex tarvelli", "Nebrivex sorakensis"]')
 
 
+def _strict(s):
+    """Today's strict mode: layers must already share one grid."""
+    p = s / "project.toml"
+    p.write_text(p.read_text("utf-8").replace('elevation = "elevation"',
+                                              'elevation = "elevation"\nalignment = "strict"'),
+                 "utf-8")
+
+
 def _layer_crs(s):
+    _strict(s)
     rewrite_layer(s / "layers" / "moisture.tif", crs="EPSG:32745")
 
 
 def _layer_origin(s):
+    _strict(s)
     with rasterio.open(s / "layers" / "moisture.tif") as src:
         t = src.transform
     rewrite_layer(s / "layers" / "moisture.tif", transform=Affine(t.a, 0, t.c + 0.1, 0, t.e, t.f))
 
 
 def _layer_resolution(s):
+    _strict(s)
     with rasterio.open(s / "layers" / "moisture.tif") as src:
         t = src.transform
     rewrite_layer(s / "layers" / "moisture.tif",
@@ -206,7 +217,15 @@ def _layer_resolution(s):
 
 
 def _layer_shape(s):
+    _strict(s)
     rewrite_layer(s / "layers" / "moisture.tif", fn=lambda a: a[:-1], height=99)
+
+
+def _layer_not_covering(s):
+    # aligned by default: a layer shifted 0.1 degrees east leaves the west edge uncovered
+    with rasterio.open(s / "layers" / "moisture.tif") as src:
+        t = src.transform
+    rewrite_layer(s / "layers" / "moisture.tif", transform=Affine(t.a, 0, t.c + 0.1, 0, t.e, t.f))
 
 
 def _layer_all_nodata(s):
@@ -281,6 +300,8 @@ CASES = [
                     r"\(84\.675, -14\.5\) in"),
     (_layer_resolution, r"resolution \(0\.01, 0\.01\) in moisture\.tif but \(0\.005, 0\.005\)"),
     (_layer_shape, r"shape 99 rows x 130 cols in moisture\.tif but 100 rows x 130 cols"),
+    (_layer_not_covering, r"Layer 'moisture' .* does not cover the study area: 15\.4% of the "
+                          r"reference grid \(layer 'cloud'"),
     (_layer_all_nodata, r"Layer 'moisture' .* has no data at all"),
     (_layer_not_a_raster, r"moisture\.tif cannot be read as a raster"),
     (_layer_untagged_sentinel, r"moisture\.tif has no nodata value, but .* hold -32768.*"

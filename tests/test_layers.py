@@ -75,17 +75,53 @@ def test_cell_budget(small_layers):
         read_layers(small_layers, cell_budget=100)
 
 
-def test_missing_and_multiband_files(tmp_path, small_layers):
+def test_missing_file(tmp_path):
     with pytest.raises(LayerError, match="does not exist"):
         read_layers([tmp_path / "none.tif"])
+
+
+def test_multiband_file_takes_names_from_band_descriptions(tmp_path, small_layers):
     import rasterio
 
-    p = tmp_path / "two.tif"
-    with rasterio.open(p, "w", driver="GTiff", width=4, height=4, count=2, dtype="float32",
-                       crs="EPSG:4326", transform=Affine(1, 0, 0, 0, -1, 4)) as dst:
-        dst.write(np.ones((2, 4, 4), np.float32))
-    with pytest.raises(LayerError, match="2 bands"):
-        read_layers([p])
+    p = tmp_path / "climate.tif"
+    vals = np.stack([np.arange(16, dtype=np.float32).reshape(4, 4) * k for k in (1, 2, 3)])
+    vals[1, 0, 0] = -1
+    with rasterio.open(p, "w", driver="GTiff", width=4, height=4, count=3, dtype="float32",
+                       crs="EPSG:4326", transform=Affine(1, 0, 0, 0, -1, 4), nodata=-1) as dst:
+        dst.write(vals)
+        dst.set_band_description(1, "temperature")
+        dst.set_band_description(2, "rainfall")  # band 3 has no description
+    stack = read_layers([p])
+    assert stack.names == ["temperature", "rainfall", "climate_3"]
+    assert_allclose(stack.data[2][stack.grid.mask], vals[2][stack.grid.mask])
+    assert not stack.grid.mask[0, 0]  # band 2's nodata cell
+    streamed = read_layers([p], memory_mb=1e-9)
+    assert streamed.streamed
+    assert_allclose(streamed.read_rows(slice(0, 4)), stack.data)
+    with pytest.raises(LayerError, match="share the name 'climate_3'"):
+        read_layers([p, p])
+
+
+def test_netcdf_variables_are_layers(tmp_path):
+    """Any format GDAL opens: a NetCDF file with two variables gives two layers."""
+    import rasterio
+
+    if "netCDF" not in rasterio.drivers.raster_driver_extensions().values():
+        pytest.skip("this GDAL build has no NetCDF driver")
+    from rasterio.shutil import copy
+
+    tif = tmp_path / "clim.tif"
+    arr = np.arange(40, dtype=np.float32).reshape(2, 4, 5)
+    with rasterio.open(tif, "w", driver="GTiff", width=5, height=4, count=2,
+                       dtype="float32", crs="EPSG:4326",
+                       transform=Affine(1, 0, 10, 0, -1, 50)) as dst:
+        dst.write(arr)
+    nc = tmp_path / "clim.nc"
+    copy(tif, nc, driver="netCDF")  # one NetCDF variable per band: Band1, Band2
+    stack = read_layers([nc])
+    assert stack.names == ["Band1", "Band2"]
+    assert_allclose(stack.data, arr)
+    assert stack.grid.transform.almost_equals(Affine(1, 0, 10, 0, -1, 50))
 
 
 def test_constant_and_collinear_are_reported(small_layers, tif_writer):
