@@ -10,17 +10,22 @@ The tests ask two questions about the pair:
 * **equivalency** - are the two niches interchangeable?  The records of both taxa are
   pooled and split at random, keeping both sample sizes; a small p means the observed
   overlap is lower than random splits give (the niches are not equivalent).
-* **similarity** - is the overlap higher (``alternative="greater"``: conservatism) or
-  lower (``"lower"``: divergence) than expected from the environments each taxon had
-  available?  One taxon is compared with random placements of the other within that
-  other taxon's accessible area, in both directions.
+* **similarity** - is the overlap higher (``hypothesis="conserved"``) or lower
+  (``"diverged"``) than expected from the environments each taxon had available?  One
+  taxon's niche is compared with niches built from random records of the other drawn
+  from that other taxon's accessible area, in both directions.
+
+Both taxa of a pair share one environmental space and one density of available
+environment, so identical records give D = 1; each taxon's record density has its own
+kernel bandwidth, re-estimated on every replicate.  The p-values of a run are
+Holm-corrected together before the plain-language reading claims anything.
 
 Results are hypotheses to guide survey, not proof: a high overlap says a relative may
 live where the other taxon's niche is suitable, not that it does.
 
 Conventions
 -----------
-Environmental-space surfaces are ``(R, R)`` arrays whose rows follow the second
+Environmental-space surfaces are ``(G, G)`` arrays whose rows follow the second
 principal axis (PC2, increasing) and whose columns follow the first (PC1, increasing),
 so ``imshow(z, origin="lower")`` draws PC1 across and PC2 up.
 
@@ -38,6 +43,8 @@ References
    biological invasions. Trends in Ecology & Evolution 29, 260-269.
 .. [5] Levins, R. (1968). Evolution in Changing Environments. Princeton University
    Press.
+.. [6] Holm, S. (1979). A simple sequentially rejective multiple test procedure.
+   Scandinavian Journal of Statistics 6, 65-70.
 """
 
 from __future__ import annotations
@@ -45,13 +52,12 @@ from __future__ import annotations
 import logging
 import math
 import time
-import uuid
+import warnings
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from functools import partial
 
 import numpy as np
-from scipy import stats
 from sklearn.decomposition import PCA
 from sklearn.preprocessing import StandardScaler
 
@@ -65,10 +71,14 @@ __all__ = [
     "levins_breadth",
     "EnvironmentalSpace",
     "environmental_space",
+    "record_bandwidth",
     "environmental_overlap",
     "niche_breadth",
     "niche_dynamics",
     "OverlapTest",
+    "format_p",
+    "holm_adjust",
+    "correct_for_multiplicity",
     "equivalency_test",
     "similarity_test",
     "geographic_equivalency_test",
@@ -83,29 +93,40 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
-#: Columns of ``overlap.csv``, in order.
+#: Replicates per test by default: the smallest attainable p, 1/1000, lies below the
+#: Holm threshold of a three-taxon run with tests in both spaces (0.05 / 18 = 0.0028).
+DEFAULT_REPLICATES = 999
+#: Environmental grid cells along each principal axis by default.
+DEFAULT_GRID_CELLS = 64
+
+
+def _p_columns(key: str) -> tuple:
+    return (key, f"{key}_se", f"{key}_replicates", f"{key}_holm")
+
+
+#: Columns of ``overlap.csv``, in order.  ``*_p`` are p-values of D, ``*_se`` their
+#: Monte Carlo standard errors, ``*_replicates`` the valid replicates behind them and
+#: ``*_holm`` the Holm-adjusted values over every p-value of the run.
 OVERLAP_COLUMNS = (
     "taxon_a",
     "taxon_b",
     "space",
     "D",
     "I",
-    "equivalency_p",
-    "similarity_p_ab",
-    "similarity_p_ba",
+    "D_tested",
+    *_p_columns("equivalency_p"),
+    *_p_columns("similarity_p_ab"),
+    *_p_columns("similarity_p_ba"),
     "breadth_a",
     "breadth_b",
     "stability",
     "expansion",
     "unfilling",
+    "analogue_share_a",
+    "analogue_share_b",
     "n_replicates",
-    "alternative",
+    "similarity_hypothesis",
 )
-
-_ALTERNATIVES = ("greater", "lower")
-# Above this many kernel values (pool size x grid cells) the per-record kernels are not
-# cached and each replicate evaluates its densities directly.
-_MAX_CACHED_KERNELS = 4e7
 
 
 # ======================================================================================
@@ -316,91 +337,138 @@ def _check_env(a, name: str, n_vars: int | None = None) -> np.ndarray:
     return a
 
 
-def _kernel_rows(points, lattice, cov, block_cells: int = 2_000_000) -> np.ndarray:
-    """Gaussian kernel of each point at each lattice node, shape (n_points, n_nodes).
+def _kernel_sum(points, lattice, cov, block_cells: int = 1_000_000) -> np.ndarray:
+    """Sum over points of their Gaussian kernels ``N(node; point, cov)`` at each node.
 
-    Each row is the bivariate normal density ``N(lattice; point, cov)``.
+    Computed in whitened coordinates (``cov = L L^T``), one matrix product per block
+    of points; equal to ``scipy.stats.multivariate_normal(point, cov).pdf`` summed
+    over the points.  Memory is about ``block_cells * 8`` bytes.
     """
-    mvn = stats.multivariate_normal(mean=np.zeros(2), cov=cov)
-    out = np.empty((len(points), len(lattice)))
-    step = max(1, block_cells // max(1, len(lattice)))
-    for s in range(0, len(points), step):
-        diff = lattice[None, :, :] - points[s : s + step, None, :]
-        out[s : s + step] = mvn.pdf(diff).reshape(-1, len(lattice))
-    return out
-
-
-def _kernel_sum(points, lattice, cov, block_cells: int = 2_000_000) -> np.ndarray:
-    """Sum over points of their Gaussian kernels at each lattice node (n_nodes,)."""
-    mvn = stats.multivariate_normal(mean=np.zeros(2), cov=cov)
+    points = np.asarray(points, float)
+    lattice = np.asarray(lattice, float)
+    chol = np.linalg.cholesky(np.asarray(cov, float))
+    inv = np.linalg.inv(chol)
+    zn = lattice @ inv.T
+    nn = np.einsum("ij,ij->i", zn, zn)
     total = np.zeros(len(lattice))
     step = max(1, block_cells // max(1, len(lattice)))
     for s in range(0, len(points), step):
-        diff = lattice[None, :, :] - points[s : s + step, None, :]
-        total += mvn.pdf(diff).reshape(-1, len(lattice)).sum(axis=0)
-    return total
+        zp = points[s : s + step] @ inv.T
+        sq = np.einsum("ij,ij->i", zp, zp)[:, None] + nn[None, :] - 2.0 * (zp @ zn.T)
+        np.maximum(sq, 0.0, out=sq)
+        total += np.exp(-0.5 * sq).sum(axis=0)
+    return total / (2.0 * math.pi * float(np.prod(np.diag(chol))))
 
 
-def scott_bandwidth(points_pooled, n: int) -> np.ndarray:
-    """Kernel covariance by Scott's rule: ``cov(points) * n ** (-2 / (d + 4))``, d = 2.
+#: Share of the available environment's covariance added to a taxon's own record
+#: covariance before Scott's rule, so two records, or records on a line, still give a
+#: proper kernel (ours; it changes well-spread samples' bandwidth by about 1 %).
+BANDWIDTH_RIDGE = 0.01
 
-    The covariance is taken over the pooled records of the pair (so it does not depend
-    on which records belong to which taxon), scaled for the taxon's own sample size.
-    ``scipy.stats.gaussian_kde`` uses the same rule on its own sample.
+
+def record_bandwidth(scores, available_cov) -> np.ndarray:
+    """Kernel covariance of one taxon's record density, from its own records.
+
+    Scott's rule in two dimensions, ``(S + r A) * n ** (-1/3)``, where ``S`` is the
+    covariance of the taxon's own record scores, ``A`` that of the available
+    environment and ``r`` = :data:`BANDWIDTH_RIDGE`.  The tests re-estimate it from the
+    records of every replicate, so observed and null densities are built alike.
+
+    Parameters
+    ----------
+    scores : ndarray of shape (n, 2)
+        Principal-axis scores of the records (n >= 1).
+    available_cov : ndarray of shape (2, 2)
+        Covariance of the available environment's scores.
+
+    Returns
+    -------
+    ndarray of shape (2, 2)
+
+    References
+    ----------
+    .. [1] Scott, D. W. (1992). Multivariate Density Estimation. Wiley (the rule
+       ``n ** (-1 / (d + 4))`` for the kernel scale, as ``scipy.stats.gaussian_kde``
+       uses it).
     """
-    c = np.cov(np.asarray(points_pooled, float).T, ddof=1)
-    return c * float(n) ** (-1.0 / 3.0)
+    scores = np.asarray(scores, float)
+    n = len(scores)
+    own = np.cov(scores.T, ddof=1) if n > 1 else np.zeros((2, 2))
+    return (own + BANDWIDTH_RIDGE * np.asarray(available_cov, float)) * float(n) ** (
+        -1.0 / 3.0
+    )
+
+
+def _scott_density(points, nodes) -> np.ndarray:
+    """Gaussian kernel density with Scott's bandwidth, as ``scipy.stats.gaussian_kde``
+    computes it (kernel covariance ``cov(points) * n ** (-1/3)`` in two dimensions)."""
+    cov = np.cov(points.T, ddof=1) * float(len(points)) ** (-1.0 / 3.0)
+    return _kernel_sum(points, nodes, cov) / len(points)
+
+
+def _record_density(scores, nodes, available_cov) -> np.ndarray:
+    """Record density at the nodes with the records' own bandwidth (integrates to 1)."""
+    bw = record_bandwidth(scores, available_cov)
+    return _kernel_sum(scores, nodes, bw) / len(scores)
 
 
 @dataclass(eq=False)
 class EnvironmentalSpace:
-    """Two taxa's records and accessible environments on a shared PCA grid.
+    """Two taxa's records on a grid over a two-axis summary of the shared environment.
 
-    Build it with :func:`environmental_space`.  Surfaces are ``(R, R)``, rows along
-    PC2 and columns along PC1 (see the module docstring).
+    Build it with :func:`environmental_space`.  Surfaces are ``(G, G)`` arrays, rows
+    along the second principal axis and columns along the first (see the module
+    docstring).  The available environment and its density are **shared by the
+    pair**, so two taxa with the same records have the same occupancy (D = 1).
 
     Attributes
     ----------
     scaler : sklearn.preprocessing.StandardScaler
     pca : sklearn.decomposition.PCA
-        Both fitted on the pooled background of the two taxa.
-    resolution : int
-        ``R``.
-    pc1_edges, pc2_edges : ndarray of shape (R + 1,)
-        Cell edges along each axis, in PCA score units.
-    scores_records_a, scores_records_b, scores_background_a, scores_background_b :
-        ndarray of shape (n, 2)
+        Both fitted on the shared available environment.
+    grid_cells : int
+        ``G``, grid cells along each principal axis.
+    pc1_edges, pc2_edges : ndarray of shape (G + 1,)
+        Cell edges along each axis, in score units.
+    scores_records_a, scores_records_b : ndarray of shape (n, 2)
+    scores_background_a, scores_background_b : ndarray of shape (m, 2)
+        Each taxon's own accessible environment (the similarity test draws from it).
+    scores_available : ndarray of shape (k, 2)
+        The shared available environment.
+    available_cov : ndarray of shape (2, 2)
+        Covariance of ``scores_available`` (enters every record bandwidth).
     bandwidth_a, bandwidth_b : ndarray of shape (2, 2)
-        Kernel covariance of each taxon's record density.
-    z_env_a, z_env_b : ndarray (R, R)
-        Density of each taxon's available environment, scaled to max 1.
-    support_a, support_b : ndarray of bool (R, R)
-        Cells where the occupancy is defined: the environment density is at least its
-        value at the ``support_quantile`` of the taxon's own background points.
-    available_a, available_b : ndarray of bool (R, R)
-        Cells counted as available environment for niche dynamics (density at least its
-        ``available_quantile`` over the background points).
-    z_occ_a, z_occ_b : ndarray (R, R)
+        Kernel covariance of each taxon's record density (:func:`record_bandwidth`).
+    z_env : ndarray (G, G)
+        Density of the shared available environment, scaled to max 1.
+    support : ndarray of bool (G, G)
+        Cells where occupancy is defined: ``z_env`` at least its value at the
+        ``support_quantile`` of the available points.
+    available_a, available_b : ndarray of bool (G, G)
+        Each taxon's own available environment for niche dynamics: cells holding its
+        accessible environment whose density is at least the ``available_quantile``
+        of the density over those cells.
+    z_occ_a, z_occ_b : ndarray (G, G)
         Kernel density of the records (per unit score area).
-    occupancy_a, occupancy_b : ndarray (R, R)
+    occupancy_a, occupancy_b : ndarray (G, G)
         ``z_occ / z_env`` on the support, 0 elsewhere, scaled to max 1.
     """
 
     scaler: StandardScaler
     pca: PCA
-    resolution: int
+    grid_cells: int
     pc1_edges: np.ndarray
     pc2_edges: np.ndarray
     scores_records_a: np.ndarray
     scores_records_b: np.ndarray
     scores_background_a: np.ndarray
     scores_background_b: np.ndarray
+    scores_available: np.ndarray
+    available_cov: np.ndarray
     bandwidth_a: np.ndarray
     bandwidth_b: np.ndarray
-    z_env_a: np.ndarray
-    z_env_b: np.ndarray
-    support_a: np.ndarray
-    support_b: np.ndarray
+    z_env: np.ndarray
+    support: np.ndarray
     available_a: np.ndarray
     available_b: np.ndarray
     z_occ_a: np.ndarray
@@ -409,7 +477,12 @@ class EnvironmentalSpace:
     occupancy_b: np.ndarray
     support_quantile: float = 0.0
     available_quantile: float = 0.05
-    token: str = field(default_factory=lambda: uuid.uuid4().hex)
+    predictor_names: tuple = ()
+
+    @property
+    def resolution(self) -> int:
+        """Old name of :attr:`grid_cells` (kept for one release)."""
+        return self.grid_cells
 
     @property
     def pc1_centres(self) -> np.ndarray:
@@ -421,38 +494,55 @@ class EnvironmentalSpace:
 
     @property
     def nodes(self) -> np.ndarray:
-        """Cell centres as ``(R * R, 2)`` (PC1, PC2) scores, in row-major order."""
+        """Cell centres as ``(G * G, 2)`` (PC1, PC2) scores, in row-major order."""
         c1, c2 = np.meshgrid(self.pc1_centres, self.pc2_centres, indexing="xy")
         return np.column_stack([c1.ravel(), c2.ravel()])
 
     @property
     def explained_variance_ratio(self) -> np.ndarray:
-        """Share of the standardised background variance on PC1 and PC2."""
+        """Share of the standardised available environment's variance on PC1, PC2."""
         return self.pca.explained_variance_ratio_[:2]
+
+    @property
+    def inverse_env(self) -> np.ndarray:
+        """``1 / z_env`` on the support, 0 elsewhere (G, G)."""
+        out = np.zeros_like(self.z_env)
+        out[self.support] = 1.0 / self.z_env[self.support]
+        return out
+
+    @property
+    def analogue(self) -> np.ndarray:
+        """Cells available to both taxa (analogue environment), bool (G, G)."""
+        return self.available_a & self.available_b
 
     def cell_of(self, scores) -> tuple[np.ndarray, np.ndarray]:
         """Grid ``(rows, cols)`` (PC2 bin, PC1 bin) of score points, clipped inside."""
         scores = np.asarray(scores, float)
-        r = self.resolution
+        g = self.grid_cells
         col = np.clip(
-            np.searchsorted(self.pc1_edges, scores[:, 0], "right") - 1, 0, r - 1
+            np.searchsorted(self.pc1_edges, scores[:, 0], "right") - 1, 0, g - 1
         )
         row = np.clip(
-            np.searchsorted(self.pc2_edges, scores[:, 1], "right") - 1, 0, r - 1
+            np.searchsorted(self.pc2_edges, scores[:, 1], "right") - 1, 0, g - 1
         )
         return row, col
 
     def transform(self, env) -> np.ndarray:
-        """PCA scores (n, 2) of predictor rows (n, n_vars)."""
+        """Principal-axis scores (n, 2) of predictor rows (n, n_vars)."""
         return self.pca.transform(self.scaler.transform(np.asarray(env, float)))[:, :2]
 
-    def inverse_env(self, which: str) -> np.ndarray:
-        """``1 / z_env`` on the support of taxon ``which`` ("a" or "b"), 0 elsewhere."""
-        z = self.z_env_a if which == "a" else self.z_env_b
-        s = self.support_a if which == "a" else self.support_b
-        out = np.zeros_like(z)
-        out[s] = 1.0 / z[s]
-        return out
+    def occupancy_of(self, scores) -> np.ndarray:
+        """Occupancy (G, G) of a set of record scores, built exactly as the taxa's."""
+        z = _record_density(scores, self.nodes, self.available_cov).reshape(
+            self.z_env.shape
+        ) * self.inverse_env
+        m = z.max()
+        return z / m if m > 0 else z
+
+    def analogue_share(self, which: str) -> float:
+        """Share of taxon ``which``'s records lying in analogue environment."""
+        rows, cols = self.cell_of(getattr(self, f"scores_records_{which}"))
+        return float(np.mean(self.analogue[rows, cols]))
 
 
 def _occupancy(z_occ, inv_env) -> np.ndarray:
@@ -461,43 +551,83 @@ def _occupancy(z_occ, inv_env) -> np.ndarray:
     return z / m if m > 0 else z
 
 
+def _grid_cells_argument(grid_cells, resolution) -> int:
+    if resolution is not None:
+        warnings.warn(
+            "`resolution` is renamed `grid_cells` (cells along each principal axis); "
+            "the old name stops working in the next release.",
+            FutureWarning,
+            stacklevel=3,
+        )
+        grid_cells = resolution
+    g = int(grid_cells)
+    if g < 10:
+        raise InputError(
+            f"grid_cells must be at least 10 cells per axis; got {grid_cells}."
+        )
+    return g
+
+
+def _own_available(scores_bg, z_own, space_like, quantile) -> np.ndarray:
+    """Cells holding a taxon's accessible environment, marginal cells dropped.
+
+    The marginal quantile is taken over the cells (each cell counts once), not over
+    background points, which would weight it by how common each environment is.
+    """
+    rows, cols = space_like.cell_of(scores_bg)
+    holds = np.zeros(z_own.shape, bool)
+    holds[rows, cols] = True
+    cut = np.quantile(z_own[holds], quantile) if quantile > 0 else 0.0
+    return holds & (z_own >= cut)
+
+
 def environmental_space(
     env_records_a,
     env_records_b,
     env_background_a,
     env_background_b,
     *,
-    resolution: int = 100,
+    env_available=None,
+    grid_cells: int = DEFAULT_GRID_CELLS,
     support_quantile: float = 0.0,
     available_quantile: float = 0.05,
+    predictor_names=(),
+    resolution: int | None = None,
 ) -> EnvironmentalSpace:
-    """Project two taxa into a shared two-axis environmental space.
+    """Project two taxa into one two-axis environmental space shared by the pair.
 
-    Predictors are standardised and summarised by a PCA calibrated on the pooled
-    accessible-area environments (background cells) of both taxa; the first two axes
-    span an ``R x R`` grid over the range of all scores.  On that grid this computes,
-    for each taxon, the Gaussian kernel density of its available environment
-    (``scipy.stats.gaussian_kde`` of its background scores, Scott's bandwidth), the
-    kernel density of its records, and the occupancy ``z_occ / z_env``.
+    Predictors are standardised and summarised by a PCA calibrated on the **shared
+    available environment**: ``env_available`` when given (the pipeline draws it from
+    the union of the two accessible areas, or from the whole study area), otherwise
+    the two taxa's accessible-area samples pooled.  Its density (``gaussian_kde``,
+    Scott's bandwidth) corrects both taxa's record densities, so identical records
+    give identical occupancies (D = 1) whatever background each taxon drew.  Each
+    taxon's record density uses a bandwidth from its own records
+    (:func:`record_bandwidth`).
 
     Parameters
     ----------
     env_records_a, env_records_b : array_like of shape (n_records, n_vars)
         Predictor values at each taxon's records (at least 2 per taxon).
     env_background_a, env_background_b : array_like of shape (n_cells, n_vars)
-        Predictor values of background cells drawn from each taxon's accessible area.
-    resolution : int, default 100
-        ``R``, cells per axis.
+        Predictor values of cells drawn from each taxon's own accessible area: the
+        similarity test draws random records from them, and niche dynamics uses them
+        to tell analogue environments.
+    env_available : array_like of shape (k, n_vars), optional
+        The shared available environment (see above).
+    grid_cells : int, default 64
+        ``G``, grid cells along each principal axis (at least 10).
     support_quantile : float, default 0.0
-        Occupancy is defined where a taxon's environment density is at least this
-        quantile of its density at its own background points; 0 = at least as dense as
-        the sparsest background point, which keeps ``z_occ / z_env`` from exploding in
-        the empty margins of the kernel.
+        Occupancy is defined where ``z_env`` is at least this quantile of its values at
+        the available points; 0 = at least as dense as the sparsest available point,
+        which keeps ``z_occ / z_env`` from exploding in the empty margins.
     available_quantile : float, default 0.05
-        Same rule for the "available environment" used in niche dynamics: cells where
-        the density is at least its 5th percentile over the background points (the
-        densest region holding about 95 % of the background), dropping marginal
-        environments (common practice).
+        Niche dynamics drops, from each taxon's cells, those whose density is below
+        this quantile over the cells (marginal environments; common practice).
+    predictor_names : sequence of str, optional
+        Names of the predictors (figure axis labels).
+    resolution : int, optional
+        Old name of ``grid_cells``; still accepted for one release with a warning.
 
     Returns
     -------
@@ -506,25 +636,25 @@ def environmental_space(
     Raises
     ------
     screener.errors.InputError
-        Fewer than 2 predictors or 2 records per taxon, NaN values, or records whose
-        environments do not vary (no kernel bandwidth can be set).
-
-    Notes
-    -----
-    The record kernels use one covariance for the pair, Scott's rule on the pooled
-    records scaled to each taxon's sample size (:func:`scott_bandwidth`).  It stays
-    fixed across test replicates, so the overlap statistic depends only on which
-    records are given to which taxon, as a permutation test requires.
+        Fewer than 2 predictors or 2 records per taxon, NaN values, or environments
+        that do not vary along both axes.
 
     References
     ----------
     .. [1] Broennimann, O. et al. (2012). Global Ecology and Biogeography 21, 481-497.
+    .. [2] Warren, D. L., Glor, R. E. & Turelli, M. (2008). Evolution 62, 2868-2883.
     """
+    grid_cells = _grid_cells_argument(grid_cells, resolution)
     ra = _check_env(env_records_a, "env_records_a")
     n_vars = ra.shape[1]
     rb = _check_env(env_records_b, "env_records_b", n_vars)
     ba = _check_env(env_background_a, "env_background_a", n_vars)
     bb = _check_env(env_background_b, "env_background_b", n_vars)
+    av = (
+        np.vstack([ba, bb])
+        if env_available is None
+        else _check_env(env_available, "env_available", n_vars)
+    )
     if n_vars < 2:
         raise InputError(
             "environmental overlap needs at least 2 predictors (it uses two principal "
@@ -535,16 +665,12 @@ def environmental_space(
         ("env_records_b", rb, 2),
         ("env_background_a", ba, 5),
         ("env_background_b", bb, 5),
+        ("env_available", av, 5),
     ):
         if len(arr) < least:
             raise InputError(
                 f"`{name}` has {len(arr)} rows; at least {least} are needed."
             )
-    resolution = int(resolution)
-    if resolution < 10:
-        raise InputError(
-            f"resolution must be at least 10 cells per axis; got {resolution}."
-        )
     for qname, q in (
         ("support_quantile", support_quantile),
         ("available_quantile", available_quantile),
@@ -552,48 +678,41 @@ def environmental_space(
         if not 0.0 <= q < 1.0:
             raise InputError(f"{qname} must be in [0, 1); got {q}.")
 
-    pooled_bg = np.vstack([ba, bb])
-    scaler = StandardScaler().fit(pooled_bg)
-    pca = PCA(n_components=2).fit(scaler.transform(pooled_bg))
+    scaler = StandardScaler().fit(av)
+    pca = PCA(n_components=2).fit(scaler.transform(av))
 
-    def scores(x):
-        return pca.transform(scaler.transform(x))
-
-    sra, srb, sba, sbb = scores(ra), scores(rb), scores(ba), scores(bb)
-    everything = np.vstack([sra, srb, sba, sbb])
+    everything = pca.transform(scaler.transform(np.vstack([ra, rb, ba, bb, av])))
+    cuts = np.cumsum([len(ra), len(rb), len(ba), len(bb)])
+    sra, srb, sba, sbb, sav = np.split(everything, cuts)
     lo = everything.min(axis=0)
     hi = everything.max(axis=0)
     span = np.where(hi > lo, hi - lo, 1.0)
     pad = 1e-9 * span
-    e1 = np.linspace(lo[0] - pad[0], hi[0] + pad[0], resolution + 1)
-    e2 = np.linspace(lo[1] - pad[1], hi[1] + pad[1], resolution + 1)
-
-    pooled_rec = np.vstack([sra, srb])
-    bw_a = scott_bandwidth(pooled_rec, len(sra))
-    bw_b = scott_bandwidth(pooled_rec, len(srb))
-    if not np.linalg.det(bw_a) > 1e-14 * max(1.0, float(np.trace(bw_a))) ** 2:
+    e1 = np.linspace(lo[0] - pad[0], hi[0] + pad[0], grid_cells + 1)
+    e2 = np.linspace(lo[1] - pad[1], hi[1] + pad[1], grid_cells + 1)
+    av_cov = np.cov(sav.T, ddof=1)
+    if not np.linalg.det(av_cov) > 1e-12 * max(1.0, float(np.trace(av_cov))) ** 2:
         raise InputError(
-            "the records of the two taxa do not vary along both principal axes (all in "
-            "the same place or on a line), so no kernel density can be set; more "
-            "distinct records are needed for environmental overlap."
+            "the available environment does not vary along both principal axes; draw "
+            "it over a wider area or use predictors that vary there."
         )
-
+    shape = (grid_cells, grid_cells)
     space = EnvironmentalSpace(
         scaler=scaler,
         pca=pca,
-        resolution=resolution,
+        grid_cells=grid_cells,
         pc1_edges=e1,
         pc2_edges=e2,
         scores_records_a=sra,
         scores_records_b=srb,
         scores_background_a=sba,
         scores_background_b=sbb,
-        bandwidth_a=bw_a,
-        bandwidth_b=bw_b,
-        z_env_a=None,
-        z_env_b=None,
-        support_a=None,
-        support_b=None,
+        scores_available=sav,
+        available_cov=av_cov,
+        bandwidth_a=record_bandwidth(sra, av_cov),
+        bandwidth_b=record_bandwidth(srb, av_cov),
+        z_env=None,
+        support=None,
         available_a=None,
         available_b=None,
         z_occ_a=None,
@@ -602,39 +721,42 @@ def environmental_space(
         occupancy_b=None,
         support_quantile=float(support_quantile),
         available_quantile=float(available_quantile),
+        predictor_names=tuple(predictor_names or ()),
     )
     nodes = space.nodes
-    shape = (resolution, resolution)
-    for which, sb, sr, bw in (("a", sba, sra, bw_a), ("b", sbb, srb, bw_b)):
+    z_env = _scott_density(sav, nodes).reshape(shape)
+    z_env = z_env / z_env.max()
+    rows, cols = space.cell_of(sav)
+    space.z_env = z_env
+    space.support = z_env >= max(np.quantile(z_env[rows, cols], support_quantile), 1e-300)
+    for which, sb, sr, bw in (
+        ("a", sba, sra, space.bandwidth_a),
+        ("b", sbb, srb, space.bandwidth_b),
+    ):
         try:
-            kde = stats.gaussian_kde(sb.T)
+            z_own = _scott_density(sb, nodes).reshape(shape)
         except np.linalg.LinAlgError as err:
             raise InputError(
-                f"the background of taxon {which.upper()} does not vary along both "
-                "principal axes; draw background cells over a wider accessible area."
+                f"the accessible environment of taxon {which.upper()} does not vary "
+                "along both principal axes; draw it over a wider accessible area."
             ) from err
-        z_env = kde(nodes.T).reshape(shape)
-        z_env = z_env / z_env.max()
-        rows, cols = space.cell_of(sb)
-        at_bg = z_env[rows, cols]
-        support = z_env >= max(np.quantile(at_bg, support_quantile), 1e-300)
-        available = z_env >= max(np.quantile(at_bg, available_quantile), 1e-300)
+        setattr(
+            space,
+            f"available_{which}",
+            _own_available(sb, z_own, space, available_quantile),
+        )
         z_occ = (_kernel_sum(sr, nodes, bw) / len(sr)).reshape(shape)
-        setattr(space, f"z_env_{which}", z_env)
-        setattr(space, f"support_{which}", support)
-        setattr(space, f"available_{which}", available)
         setattr(space, f"z_occ_{which}", z_occ)
-    space.occupancy_a = _occupancy(space.z_occ_a, space.inverse_env("a"))
-    space.occupancy_b = _occupancy(space.z_occ_b, space.inverse_env("b"))
-    for which in ("a", "b"):
+        setattr(space, f"occupancy_{which}", _occupancy(z_occ, space.inverse_env))
         if not getattr(space, f"occupancy_{which}").max() > 0:
             raise InputError(
-                f"taxon {which.upper()}'s records lie outside the environments of its "
-                "own background; draw the background over the area around its records."
+                f"taxon {which.upper()}'s records lie outside the available "
+                "environment; draw the available environment over the area around "
+                "its records."
             )
     log.debug(
-        "environmental space: R=%d, PC1+PC2 explain %.0f%% of background variance",
-        resolution,
+        "environmental space: G=%d, PC1+PC2 explain %.0f%% of the available variance",
+        grid_cells,
         100 * float(space.explained_variance_ratio.sum()),
     )
     return space
@@ -652,47 +774,50 @@ def environmental_overlap(space: EnvironmentalSpace) -> tuple[float, float]:
 
 
 def niche_breadth(space: EnvironmentalSpace) -> tuple[float, float]:
-    """Standardised Levins breadth of each taxon's occupancy over its support cells.
+    """Standardised Levins breadth of each taxon's occupancy over the support cells.
 
     Returns
     -------
     (float, float)
-        Breadth of A and of B, each in [0, 1] with ``N`` = the taxon's support cells.
+        Breadth of A and of B, each in [0, 1] with ``N`` = the support cells.
     """
-    out = []
-    for occ, sup in (
-        (space.occupancy_a, space.support_a),
-        (space.occupancy_b, space.support_b),
-    ):
-        out.append(levins_breadth(occ[sup]))
-    return out[0], out[1]
+    return (
+        levins_breadth(space.occupancy_a[space.support]),
+        levins_breadth(space.occupancy_b[space.support]),
+    )
+
+
+#: Below this share of a taxon's records in analogue environment, niche dynamics
+#: describes a minority of the records and the reading warns (ours).
+ANALOGUE_SHARE_WARNING = 0.5
 
 
 def niche_dynamics(space: EnvironmentalSpace) -> dict[str, float]:
     """Stability, expansion and unfilling of B's niche relative to A's.
 
-    Restricted to analogue environments (available to both taxa: ``available_a &
-    available_b``).  A taxon "occupies" the cells where its record density is at least
-    its lowest value at its own records (the smallest density contour holding all of
-    them).  Shares are weighted by record density:
+    Restricted to analogue environment: grid cells available to both taxa
+    (:attr:`EnvironmentalSpace.analogue`; the marginal-environment cut is a quantile
+    over cells, not over background points).  A taxon "occupies" the cells where its
+    record density is at least its lowest value at its own records.  Shares are
+    weighted by record density:
 
     * **stability** - share of B's occupied density that falls where A also occurs;
-    * **expansion** - ``1 - stability``: share of B's niche outside A's;
+    * **expansion** - ``1 - stability``;
     * **unfilling** - share of A's occupied density where B does not occur.
-
-    A is the reference taxon and B the focal one; swap them for the other direction.
 
     Returns
     -------
     dict
-        ``{"stability", "expansion", "unfilling"}``, NaN when a taxon has no density in
-        analogue environments.
+        ``stability``, ``expansion``, ``unfilling`` (NaN when a taxon has no density
+        in analogue environment) and ``analogue_share_a``, ``analogue_share_b``: the
+        share of each taxon's records in analogue environment.  When it is low the
+        three indices describe few of the records.
 
     References
     ----------
     .. [1] Guisan, A. et al. (2014). Trends in Ecology & Evolution 29, 260-269.
     """
-    analog = space.available_a & space.available_b
+    analog = space.analogue
     occupied = {}
     for which in ("a", "b"):
         z = getattr(space, f"z_occ_{which}")
@@ -704,12 +829,24 @@ def niche_dynamics(space: EnvironmentalSpace) -> dict[str, float]:
     stability = float(zb[occupied["a"]].sum() / zb.sum()) if zb.sum() > 0 else nan
     unfilling = float(za[~occupied["b"]].sum() / za.sum()) if za.sum() > 0 else nan
     expansion = 1.0 - stability if math.isfinite(stability) else nan
-    return {"stability": stability, "expansion": expansion, "unfilling": unfilling}
+    return {
+        "stability": stability,
+        "expansion": expansion,
+        "unfilling": unfilling,
+        "analogue_share_a": space.analogue_share("a"),
+        "analogue_share_b": space.analogue_share("b"),
+    }
 
 
 # ======================================================================================
 # Tests
 # ======================================================================================
+#: What each test asks, and the tail of its null distribution that counts against it.
+HYPOTHESES = ("conserved", "diverged")
+_TAIL = {"conserved": "upper", "diverged": "lower", "different": "lower"}
+_OLD_ALTERNATIVES = {"greater": "conserved", "lower": "diverged"}
+
+
 @dataclass(frozen=True, eq=False)
 class OverlapTest:
     """Outcome of one randomisation test of one overlap statistic.
@@ -723,17 +860,27 @@ class OverlapTest:
     space : str
         "environmental" or "geographic".
     direction : str
-        For similarity tests: "ab" = A against random placements of B within B's
-        accessible area, "ba" = the reverse; "" for equivalency.
+        For similarity tests: "ab" = A's niche against random records of B drawn
+        from B's accessible area, "ba" = the reverse; "" for equivalency.
     observed : float
+        The statistic the null is compared with.
     null : ndarray of shape (n_replicates,)
         Overlap under the null, one per replicate (NaN where undefined).
     p_value : float
-        ``(1 + #{null <= observed}) / (1 + R)`` for ``alternative="lower"``,
-        ``(1 + #{null >= observed}) / (1 + R)`` for ``"greater"``; R counts the
-        finite replicates.
-    alternative : str
+        ``(1 + k) / (1 + R)``, ``R`` the valid (finite) replicates and ``k`` those at
+        least as extreme as ``observed`` in the tail named by ``tail``.
+    hypothesis : str
+        "different" (equivalency: niches less alike than random splits),
+        "conserved" (similarity: more alike than the environments explain) or
+        "diverged" (similarity: less alike).
+    tail : str
+        "upper" (``null >= observed`` counts) or "lower" (``null <= observed``).
     n_replicates : int
+        Replicates run.
+    n_valid : int
+        Replicates that gave a value (the ``R`` of the p-value).
+    p_se : float
+        Monte Carlo standard error of ``p_value``, ``sqrt(p (1 - p) / R)``.
     """
 
     statistic: str
@@ -743,29 +890,72 @@ class OverlapTest:
     observed: float
     null: np.ndarray
     p_value: float
-    alternative: str
+    hypothesis: str
+    tail: str
     n_replicates: int
+    n_valid: int
+    p_se: float
+
+    @property
+    def p_floor(self) -> float:
+        """Smallest p-value these replicates can give, ``1 / (1 + R)``."""
+        return 1.0 / (1.0 + self.n_valid) if self.n_valid else float("nan")
+
+    def p_text(self) -> str:
+        """The p-value to the precision its replicates support, e.g. ``p = 0.012``.
+
+        Decimals: enough to show ``1 / (1 + R)``; when no replicate was as extreme
+        as the observed value the text is ``p <= 1 / (1 + R)``.
+        """
+        return format_p(self.p_value, self.n_valid)
 
 
-def _p_value(observed: float, null, alternative: str) -> float:
+def format_p(p: float, n_valid: int) -> str:
+    """``p = ...`` to the precision ``n_valid`` replicates support (see OverlapTest)."""
+    if not math.isfinite(p) or n_valid <= 0:
+        return "p not computed"
+    decimals = max(2, math.ceil(math.log10(n_valid + 1)))
+    floor = 1.0 / (1.0 + n_valid)
+    if p <= floor * (1 + 1e-9):
+        return f"p <= {floor:.{decimals}f}" if round(floor, decimals) > 0 else (
+            f"p <= {floor:.1e}"
+        )
+    return f"p = {p:.{decimals}f}"
+
+
+def _p_value(observed: float, null, tail: str) -> tuple[float, int]:
     null = np.asarray(null, float)
     null = null[np.isfinite(null)]
     if null.size == 0:
-        return float("nan")
-    if alternative == "greater":
+        return float("nan"), 0
+    if tail == "upper":
         k = int(np.sum(null >= observed))
     else:
         k = int(np.sum(null <= observed))
-    return (1.0 + k) / (1.0 + null.size)
+    return (1.0 + k) / (1.0 + null.size), int(null.size)
 
 
-def _check_alternative(alternative: str) -> str:
-    if alternative not in _ALTERNATIVES:
-        raise InputError(
-            f"alternative must be 'greater' (conservatism) or 'lower' (divergence); "
-            f"got {alternative!r}."
+def _check_hypothesis(hypothesis: str | None, alternative: str | None = None) -> str:
+    if alternative is not None:
+        if alternative not in _OLD_ALTERNATIVES:
+            raise InputError(
+                f"alternative must be 'greater' or 'lower'; got {alternative!r}. It "
+                "is renamed `hypothesis`: 'conserved' or 'diverged'."
+            )
+        warnings.warn(
+            "`alternative` is renamed `hypothesis` ('greater' -> 'conserved', 'lower' "
+            "-> 'diverged'); the old name stops working in the next release.",
+            FutureWarning,
+            stacklevel=3,
         )
-    return alternative
+        return _OLD_ALTERNATIVES[alternative]
+    if hypothesis not in HYPOTHESES:
+        raise InputError(
+            "hypothesis must be 'conserved' (niches more alike than their "
+            "environments explain) or 'diverged' (less alike); got "
+            f"{hypothesis!r}."
+        )
+    return hypothesis
 
 
 def _check_replicates(n_replicates) -> int:
@@ -775,18 +965,23 @@ def _check_replicates(n_replicates) -> int:
     return n
 
 
-def _package(values, observed, *, test, space, direction, alternative):
+def _package(values, observed, *, test, space, direction, hypothesis):
     values = np.asarray(values, float).reshape(-1, 2)
     n_bad = int(np.sum(~np.all(np.isfinite(values), axis=1)))
     if n_bad:
         log.warning(
-            "%d of %d %s replicates gave no overlap value (empty surface)",
+            "%d of %d %s replicates gave no overlap value (empty surface); the p-value "
+            "counts the other %d",
             n_bad,
             len(values),
             test,
+            len(values) - n_bad,
         )
+    tail = _TAIL[hypothesis]
     out = {}
     for k, stat in enumerate(("D", "I")):
+        p, n_valid = _p_value(observed[k], values[:, k], tail)
+        se = math.sqrt(p * (1.0 - p) / n_valid) if n_valid else float("nan")
         out[stat] = OverlapTest(
             statistic=stat,
             test=test,
@@ -794,9 +989,12 @@ def _package(values, observed, *, test, space, direction, alternative):
             direction=direction,
             observed=float(observed[k]),
             null=values[:, k].copy(),
-            p_value=_p_value(observed[k], values[:, k], alternative),
-            alternative=alternative,
+            p_value=p,
+            hypothesis=hypothesis,
+            tail=tail,
             n_replicates=len(values),
+            n_valid=n_valid,
+            p_se=se,
         )
     return out
 
@@ -811,82 +1009,6 @@ def _d_i_or_nan(p, q) -> tuple[float, float]:
     return _d_from_normalised(pn, qn), _i_from_normalised(pn, qn)
 
 
-# Per-process cache of per-record kernels, keyed by the space's token.
-_KERNEL_CACHE: dict = {}
-
-
-@dataclass(eq=False)
-class _EquivalencyTask:
-    """What each equivalency replicate needs; kernels are rebuilt once per process."""
-
-    token: str
-    pool: np.ndarray  # (n_a + n_b, 2) pooled record scores
-    n_a: int
-    nodes: np.ndarray
-    bandwidth_a: np.ndarray
-    bandwidth_b: np.ndarray
-    inv_env_a: np.ndarray  # flat
-    inv_env_b: np.ndarray
-    cache_kernels: bool
-
-    def kernels(self):
-        hit = _KERNEL_CACHE.get(self.token)
-        if hit is None:
-            hit = (
-                _kernel_rows(self.pool, self.nodes, self.bandwidth_a),
-                _kernel_rows(self.pool, self.nodes, self.bandwidth_b),
-            )
-            while len(_KERNEL_CACHE) >= 2:
-                _KERNEL_CACHE.pop(next(iter(_KERNEL_CACHE)))
-            _KERNEL_CACHE[self.token] = hit
-        return hit
-
-    def densities(self, idx_a, idx_b):
-        if self.cache_kernels:
-            ka, kb = self.kernels()
-            # indicator @ kernels: one matrix-vector product per taxon
-            wa = np.zeros(len(self.pool))
-            wa[idx_a] = 1.0
-            wb = np.zeros(len(self.pool))
-            wb[idx_b] = 1.0
-            return wa @ ka, wb @ kb
-        return (
-            _kernel_sum(self.pool[idx_a], self.nodes, self.bandwidth_a),
-            _kernel_sum(self.pool[idx_b], self.nodes, self.bandwidth_b),
-        )
-
-
-def _equivalency_replicate(task: _EquivalencyTask, seed: int) -> tuple[float, float]:
-    perm = np.random.default_rng(seed).permutation(len(task.pool))
-    za, zb = task.densities(perm[: task.n_a], perm[task.n_a :])
-    return _d_i_or_nan(za * task.inv_env_a, zb * task.inv_env_b)
-
-
-#: replicates per task of the equivalency test.  Fixed (not derived from the
-#: executor), so every backend makes the same matrix products and the same numbers.
-_EQUIVALENCY_BATCH = 64
-
-
-def _equivalency_batch(task: _EquivalencyTask, seeds: list) -> list:
-    """A batch of replicates: one matrix product per taxon for the whole batch.
-
-    One replicate alone is a vector-matrix product that reads the whole kernel matrix
-    (memory-bound); a batch reads it once for all its replicates.
-    """
-    if not task.cache_kernels:
-        return [_equivalency_replicate(task, s) for s in seeds]
-    ka, kb = task.kernels()
-    n_pool = len(task.pool)
-    wa = np.zeros((len(seeds), n_pool))
-    for i, seed in enumerate(seeds):
-        perm = np.random.default_rng(seed).permutation(n_pool)
-        wa[i, perm[: task.n_a]] = 1.0
-    wb = 1.0 - wa
-    za = (wa @ ka) * task.inv_env_a
-    zb = (wb @ kb) * task.inv_env_b
-    return [_d_i_or_nan(za[i], zb[i]) for i in range(len(seeds))]
-
-
 def _resolve_executor(executor):
     if executor is None:
         return make_executor("serial")
@@ -895,23 +1017,70 @@ def _resolve_executor(executor):
     return executor
 
 
+#: replicates per task.  Fixed (not derived from the executor), so every backend runs
+#: the same replicates in the same order and gives the same numbers.
+_BATCH = 32
+
+
+def _batched(executor, fn, seeds) -> list:
+    batches = [seeds[i : i + _BATCH] for i in range(0, len(seeds), _BATCH)]
+    return [v for part in executor.map(fn, batches) for v in part]
+
+
+@dataclass(eq=False)
+class _EnvTask:
+    """What the environmental-space replicates need (picklable)."""
+
+    nodes: np.ndarray
+    shape: tuple
+    inv_env: np.ndarray  # (G*G,) 1 / z_env on the support
+    available_cov: np.ndarray
+    pool: np.ndarray  # equivalency: pooled records; similarity: moved taxon's bg
+    n_a: int  # equivalency: size of A; similarity: number of moved records
+    fixed_occupancy: np.ndarray | None = None  # similarity only (flat)
+
+    def density(self, pts):
+        return _record_density(pts, self.nodes, self.available_cov) * self.inv_env
+
+
+def _equivalency_batch(task: _EnvTask, seeds: list) -> list:
+    out = []
+    for seed in seeds:
+        perm = np.random.default_rng(seed).permutation(len(task.pool))
+        za = task.density(task.pool[perm[: task.n_a]])
+        zb = task.density(task.pool[perm[task.n_a :]])
+        out.append(_d_i_or_nan(za, zb))
+    return out
+
+
+def _similarity_batch(task: _EnvTask, seeds: list) -> list:
+    out = []
+    m = len(task.pool)
+    for seed in seeds:
+        rng = np.random.default_rng(seed)
+        idx = rng.choice(m, size=task.n_a, replace=m < task.n_a)
+        out.append(_d_i_or_nan(task.fixed_occupancy, task.density(task.pool[idx])))
+    return out
+
+
 def equivalency_test(
     space: EnvironmentalSpace,
     *,
-    n_replicates: int = 100,
+    n_replicates: int = DEFAULT_REPLICATES,
     random_state=0,
     executor: Executor | None = None,
 ) -> dict[str, OverlapTest]:
     """Niche equivalency test in environmental space.
 
     Pools both taxa's records, reassigns them at random keeping both sample sizes,
-    and recomputes the occupancies (each taxon's own available environment held fixed)
-    and their D and I, ``n_replicates`` times.
+    and rebuilds both occupancies exactly as the observed ones (each group's own
+    kernel bandwidth re-estimated, the shared available environment held fixed),
+    ``n_replicates`` times.
 
     Parameters
     ----------
     space : EnvironmentalSpace
-    n_replicates : int, default 100
+    n_replicates : int, default 999
         Random splits ``R``.
     random_state : None, int or numpy.random.Generator, default 0
         Root of the replicate seeds, all drawn up front (:func:`spawn_seeds`).
@@ -922,9 +1091,9 @@ def equivalency_test(
     Returns
     -------
     dict
-        ``{"D": OverlapTest, "I": OverlapTest}``, one-sided
-        ``p = (1 + #{null <= observed}) / (1 + R)``: a small p means the niches are
-        less alike than random splits of the pooled records (not equivalent).
+        ``{"D": OverlapTest, "I": OverlapTest}``, lower tail: a small p means the
+        niches are less alike than random splits of the pooled records give (not
+        equivalent).
 
     References
     ----------
@@ -932,108 +1101,60 @@ def equivalency_test(
     .. [2] Broennimann, O. et al. (2012). Global Ecology and Biogeography 21, 481-497.
     """
     n = _check_replicates(n_replicates)
-    pool = np.vstack([space.scores_records_a, space.scores_records_b])
-    nodes = space.nodes
-    task = _EquivalencyTask(
-        token=space.token,
-        pool=pool,
+    task = _EnvTask(
+        nodes=space.nodes,
+        shape=space.z_env.shape,
+        inv_env=space.inverse_env.ravel(),
+        available_cov=space.available_cov,
+        pool=np.vstack([space.scores_records_a, space.scores_records_b]),
         n_a=len(space.scores_records_a),
-        nodes=nodes,
-        bandwidth_a=space.bandwidth_a,
-        bandwidth_b=space.bandwidth_b,
-        inv_env_a=space.inverse_env("a").ravel(),
-        inv_env_b=space.inverse_env("b").ravel(),
-        cache_kernels=len(pool) * len(nodes) <= _MAX_CACHED_KERNELS,
     )
-    seeds = spawn_seeds(random_state, n)
-    ex = _resolve_executor(executor)
-    batches = [
-        seeds[i : i + _EQUIVALENCY_BATCH] for i in range(0, n, _EQUIVALENCY_BATCH)
-    ]
-    values = [v for part in ex.map(partial(_equivalency_batch, task), batches)
-              for v in part]
-    observed = environmental_overlap(space)
+    values = _batched(
+        _resolve_executor(executor),
+        partial(_equivalency_batch, task),
+        spawn_seeds(random_state, n),
+    )
     return _package(
         values,
-        observed,
+        environmental_overlap(space),
         test="equivalency",
         space="environmental",
         direction="",
-        alternative="lower",
+        hypothesis="different",
     )
-
-
-def _extended_density(space: EnvironmentalSpace, which: str) -> np.ndarray:
-    """Record density of one taxon on a (3R-2)^2 lattice around the PCA grid.
-
-    Lattice index ``k`` along an axis sits at the centre of grid cell ``k - (R - 1)``
-    (continuing the grid's spacing outside it), so a shift by ``s`` whole cells is the
-    window ``[R - 1 - s : 2R - 1 - s]``.  Kernels are translation invariant, so this
-    window equals the density of the records moved by ``s`` cells.
-    """
-    r = space.resolution
-    d1 = space.pc1_edges[1] - space.pc1_edges[0]
-    d2 = space.pc2_edges[1] - space.pc2_edges[0]
-    k = np.arange(-(r - 1), 2 * r - 1)
-    c1 = space.pc1_centres[0] + k * d1
-    c2 = space.pc2_centres[0] + k * d2
-    g1, g2 = np.meshgrid(c1, c2, indexing="xy")
-    lattice = np.column_stack([g1.ravel(), g2.ravel()])
-    pts = getattr(space, f"scores_records_{which}")
-    bw = getattr(space, f"bandwidth_{which}")
-    return (_kernel_sum(pts, lattice, bw) / len(pts)).reshape(g1.shape)
-
-
-@dataclass(eq=False)
-class _SimilarityTask:
-    resolution: int
-    fixed_occupancy: np.ndarray  # (R, R) occupancy of the taxon kept in place
-    moved_density: np.ndarray  # (3R-2, 3R-2) extended record density of the moved one
-    moved_inv_env: np.ndarray  # (R, R)
-    centroid_cell: tuple  # (row, col) of the moved taxon's record centroid
-    target_rows: np.ndarray  # background cells of the moved taxon
-    target_cols: np.ndarray
-
-
-def _similarity_replicate(task: _SimilarityTask, seed: int) -> tuple[float, float]:
-    rng = np.random.default_rng(seed)
-    j = int(rng.integers(len(task.target_rows)))
-    r = task.resolution
-    s_row = int(task.target_rows[j]) - task.centroid_cell[0]
-    s_col = int(task.target_cols[j]) - task.centroid_cell[1]
-    window = task.moved_density[
-        r - 1 - s_row : 2 * r - 1 - s_row, r - 1 - s_col : 2 * r - 1 - s_col
-    ]
-    return _d_i_or_nan(task.fixed_occupancy, window * task.moved_inv_env)
 
 
 def similarity_test(
     space: EnvironmentalSpace,
     *,
     direction: str = "ab",
-    alternative: str = "greater",
-    n_replicates: int = 100,
+    hypothesis: str = "conserved",
+    n_replicates: int = DEFAULT_REPLICATES,
     random_state=0,
     executor: Executor | None = None,
+    alternative: str | None = None,
 ) -> dict[str, OverlapTest]:
     """Niche similarity (background) test in environmental space.
 
-    ``direction="ab"`` keeps A's occupancy in place and moves B's record density at
-    random within B's available environment: in each replicate the density is
-    translated, by whole grid cells, so that the centroid of B's records lands on the
-    cell of a background point of B drawn at random; the moved density is then divided
-    by B's environment density on B's support.  ``"ba"`` does the reverse.
+    ``direction="ab"`` keeps A's observed occupancy and compares it with occupancies
+    of B's sample size of random points drawn from B's accessible environment
+    (``scores_background_b``), each built like B's real one (own bandwidth, shared
+    available environment).  ``"ba"`` does the reverse.  When B's records are no
+    more than a random draw from its accessible area, its observed D is one more draw
+    from this null, so the test is exact.
 
     Parameters
     ----------
     space : EnvironmentalSpace
     direction : {"ab", "ba"}, default "ab"
-    alternative : {"greater", "lower"}, default "greater"
-        "greater" tests conservatism, ``p = (1 + #{null >= observed}) / (1 + R)``;
-        "lower" tests divergence, with ``<=``.
-    n_replicates : int, default 100
+    hypothesis : {"conserved", "diverged"}, default "conserved"
+        "conserved": is the overlap higher than the environments explain (upper
+        tail)?  "diverged": lower (lower tail)?
+    n_replicates : int, default 999
     random_state : None, int or numpy.random.Generator, default 0
     executor : Executor, optional
+    alternative : {"greater", "lower"}, optional
+        Old name of ``hypothesis``, accepted for one release with a warning.
 
     Returns
     -------
@@ -1045,26 +1166,24 @@ def similarity_test(
     .. [1] Warren, D. L., Glor, R. E. & Turelli, M. (2008). Evolution 62, 2868-2883.
     .. [2] Broennimann, O. et al. (2012). Global Ecology and Biogeography 21, 481-497.
     """
-    _check_alternative(alternative)
+    hypothesis = _check_hypothesis(hypothesis, alternative)
     n = _check_replicates(n_replicates)
     if direction not in ("ab", "ba"):
         raise InputError(f"direction must be 'ab' or 'ba'; got {direction!r}.")
     fixed, moved = ("a", "b") if direction == "ab" else ("b", "a")
-    rec = getattr(space, f"scores_records_{moved}")
-    crow, ccol = space.cell_of(rec.mean(axis=0, keepdims=True))
-    trow, tcol = space.cell_of(getattr(space, f"scores_background_{moved}"))
-    task = _SimilarityTask(
-        resolution=space.resolution,
-        fixed_occupancy=getattr(space, f"occupancy_{fixed}"),
-        moved_density=_extended_density(space, moved),
-        moved_inv_env=space.inverse_env(moved),
-        centroid_cell=(int(crow[0]), int(ccol[0])),
-        target_rows=trow.astype(np.int32),
-        target_cols=tcol.astype(np.int32),
+    task = _EnvTask(
+        nodes=space.nodes,
+        shape=space.z_env.shape,
+        inv_env=space.inverse_env.ravel(),
+        available_cov=space.available_cov,
+        pool=getattr(space, f"scores_background_{moved}"),
+        n_a=len(getattr(space, f"scores_records_{moved}")),
+        fixed_occupancy=getattr(space, f"occupancy_{fixed}").ravel(),
     )
-    seeds = spawn_seeds(random_state, n)
-    values = _resolve_executor(executor).map(
-        partial(_similarity_replicate, task), seeds
+    values = _batched(
+        _resolve_executor(executor),
+        partial(_similarity_batch, task),
+        spawn_seeds(random_state, n),
     )
     return _package(
         values,
@@ -1072,7 +1191,7 @@ def similarity_test(
         test="similarity",
         space="environmental",
         direction=direction,
-        alternative=alternative,
+        hypothesis=hypothesis,
     )
 
 
@@ -1114,7 +1233,7 @@ def geographic_equivalency_test(
     cells_b,
     cell_area_km2,
     *,
-    n_replicates: int = 100,
+    n_replicates: int = DEFAULT_REPLICATES,
     random_state=0,
     executor: Executor | None = None,
 ) -> dict[str, OverlapTest]:
@@ -1158,7 +1277,7 @@ def geographic_equivalency_test(
         test="equivalency",
         space="geographic",
         direction="",
-        alternative="lower",
+        hypothesis="different",
     )
 
 
@@ -1171,10 +1290,11 @@ def geographic_similarity_test(
     *,
     observed_map_moved=None,
     direction: str = "ab",
-    alternative: str = "greater",
-    n_replicates: int = 100,
+    hypothesis: str = "conserved",
+    n_replicates: int = DEFAULT_REPLICATES,
     random_state=0,
     executor: Executor | None = None,
+    alternative: str | None = None,
 ) -> dict[str, OverlapTest]:
     """Niche similarity (background) test in geographic space.
 
@@ -1196,7 +1316,7 @@ def geographic_similarity_test(
         Its map fitted to the real records (the observed overlap); required.
     direction : {"ab", "ba"}
         Label stored on the result.
-    alternative, n_replicates, random_state, executor
+    hypothesis, n_replicates, random_state, executor, alternative
         As :func:`similarity_test`.
 
     Returns
@@ -1208,7 +1328,7 @@ def geographic_similarity_test(
     ----------
     .. [1] Warren, D. L., Glor, R. E. & Turelli, M. (2008). Evolution 62, 2868-2883.
     """
-    _check_alternative(alternative)
+    hypothesis = _check_hypothesis(hypothesis, alternative)
     n = _check_replicates(n_replicates)
     if observed_map_moved is None:
         raise InputError(
@@ -1234,7 +1354,7 @@ def geographic_similarity_test(
         test="similarity",
         space="geographic",
         direction=direction,
-        alternative=alternative,
+        hypothesis=hypothesis,
     )
 
 
@@ -1259,11 +1379,107 @@ def estimate_seconds(
 
 
 # ======================================================================================
+# Multiplicity
+# ======================================================================================
+def holm_adjust(p_values) -> np.ndarray:
+    """Holm's step-down adjusted p-values (family-wise error control).
+
+    With the ``m`` finite p-values sorted ascending, ``p_(1) <= ... <= p_(m)``, the
+    adjusted values are ``max_{j <= i} min(1, (m - j + 1) p_(j))``, returned in the
+    input order; NaN entries stay NaN and do not count in ``m``.  Rejecting every
+    hypothesis whose adjusted p is below ``alpha`` keeps the chance of any false
+    rejection at most ``alpha``, whatever the dependence between the tests.
+
+    Parameters
+    ----------
+    p_values : array_like of float
+
+    Returns
+    -------
+    ndarray of float, same shape
+
+    References
+    ----------
+    .. [1] Holm, S. (1979). A simple sequentially rejective multiple test procedure.
+       Scandinavian Journal of Statistics 6, 65-70.
+
+    Examples
+    --------
+    >>> holm_adjust([0.01, 0.04, 0.03]).round(3).tolist()
+    [0.03, 0.06, 0.06]
+    """
+    p = np.asarray(p_values, float)
+    out = np.full(p.shape, np.nan)
+    flat = p.ravel()
+    ok = np.flatnonzero(np.isfinite(flat))
+    m = ok.size
+    if m == 0:
+        return out
+    order = ok[np.argsort(flat[ok], kind="stable")]
+    scaled = np.minimum(1.0, (m - np.arange(m)) * flat[order])
+    adjusted = np.maximum.accumulate(scaled)
+    res = out.ravel()
+    res[order] = adjusted
+    return res.reshape(p.shape)
+
+
+#: The tests of a space, as (attribute, label) pairs.
+_TESTS = (("equivalency", "equivalency"), ("similarity_ab", "similarity"),
+          ("similarity_ba", "similarity"))
+
+
+def correct_for_multiplicity(comparisons, alpha: float = 0.05) -> int:
+    """Holm-adjust the D p-values of every pair, test and space of a run, in place.
+
+    Each :class:`PairComparison` gets ``holm`` (``{(space, test): adjusted p}``),
+    ``n_tests_in_run`` and ``alpha``; its rows and plain reading then use them.
+
+    Parameters
+    ----------
+    comparisons : list of PairComparison
+    alpha : float, default 0.05
+        Family-wise error rate of the reading.
+
+    Returns
+    -------
+    int
+        ``m``, the number of p-values corrected for.
+
+    References
+    ----------
+    .. [1] Holm, S. (1979). Scandinavian Journal of Statistics 6, 65-70.
+    """
+    keys, values = [], []
+    for k, cmp in enumerate(comparisons):
+        for sc in (cmp.geographic, cmp.environmental):
+            if sc is None:
+                continue
+            for attr, _ in _TESTS:
+                p = sc.p(attr)
+                if math.isfinite(p):
+                    keys.append((k, sc.space, attr))
+                    values.append(p)
+    adjusted = holm_adjust(values)
+    for cmp in comparisons:
+        cmp.holm = {}
+        cmp.n_tests_in_run = len(values)
+        cmp.alpha = float(alpha)
+    for (k, space, attr), q in zip(keys, adjusted):
+        comparisons[k].holm[(space, attr)] = float(q)
+    return len(values)
+
+
+# ======================================================================================
 # One pair, end to end
 # ======================================================================================
 @dataclass(eq=False)
 class SpaceComparison:
-    """Overlap of a pair in one space, with the tests that were run (None if not)."""
+    """Overlap of a pair in one space, with the tests that were run (None if not).
+
+    ``D`` and ``I`` are the overlap of the maps (or occupancies) that are reported.
+    In geographic space the tests refit a model per replicate, so their observed
+    statistic can differ from the reported maps' D; it is kept as ``D_tested``.
+    """
 
     space: str
     D: float
@@ -1276,11 +1492,34 @@ class SpaceComparison:
     stability: float = float("nan")
     expansion: float = float("nan")
     unfilling: float = float("nan")
+    analogue_share_a: float = float("nan")
+    analogue_share_b: float = float("nan")
+
+    def test(self, name: str, statistic: str = "D") -> OverlapTest | None:
+        result = getattr(self, name)
+        return None if result is None else result[statistic]
 
     def p(self, test: str, statistic: str = "D") -> float:
         """p-value of ``test`` ("equivalency", "similarity_ab", "similarity_ba")."""
-        result = getattr(self, test)
-        return float("nan") if result is None else float(result[statistic].p_value)
+        t = self.test(test, statistic)
+        return float("nan") if t is None else float(t.p_value)
+
+    @property
+    def D_tested(self) -> float:
+        """The D the tests compared with their null (NaN when no test ran).
+
+        Every test of a space shares it: in geographic space it is the D of the two
+        maps refitted by the tests' model to the real records.
+        """
+        for name, _ in _TESTS:
+            t = self.test(name)
+            if t is not None:
+                return float(t.observed)
+        return float("nan")
+
+
+def _pct(x: float) -> str:
+    return f"{100 * x:.0f} %"
 
 
 @dataclass(eq=False)
@@ -1294,10 +1533,19 @@ class PairComparison:
     environmental : SpaceComparison or None
         None when no environments were given.
     space : EnvironmentalSpace or None
-        The shared PCA grid, occupancies and densities (for figures).
+        The shared environmental grid, occupancies and densities (for figures).
     n_replicates : int
-    alternative : str
-        Direction of the similarity tests.
+        Replicates requested per test.
+    hypothesis : str
+        What the similarity tests ask: "conserved" or "diverged".
+    holm : dict
+        ``{(space, test): Holm-adjusted p}`` over every p-value of the run (see
+        :func:`correct_for_multiplicity`; :func:`compare_pair` fills it for the pair
+        alone).
+    n_tests_in_run : int
+        Number of p-values the correction covered.
+    alpha : float
+        Family-wise error rate of the reading.
     """
 
     taxon_a: str
@@ -1306,7 +1554,18 @@ class PairComparison:
     environmental: SpaceComparison | None
     space: EnvironmentalSpace | None
     n_replicates: int
-    alternative: str
+    hypothesis: str
+    holm: dict = field(default_factory=dict)
+    n_tests_in_run: int = 0
+    alpha: float = 0.05
+
+    @property
+    def alternative(self) -> str:
+        """Old name of :attr:`hypothesis` ('greater' / 'lower')."""
+        return {"conserved": "greater", "diverged": "lower"}[self.hypothesis]
+
+    def spaces(self) -> list[SpaceComparison]:
+        return [sc for sc in (self.geographic, self.environmental) if sc is not None]
 
     def rows(self) -> list[dict]:
         """Rows of ``overlap.csv`` (:data:`OVERLAP_COLUMNS`), one per space.
@@ -1314,78 +1573,138 @@ class PairComparison:
         p-values are for D; NaN where a test was not run.
         """
         out = []
-        for sc in (self.geographic, self.environmental):
-            if sc is None:
-                continue
-            out.append(
-                {
-                    "taxon_a": self.taxon_a,
-                    "taxon_b": self.taxon_b,
-                    "space": sc.space,
-                    "D": sc.D,
-                    "I": sc.I,
-                    "equivalency_p": sc.p("equivalency"),
-                    "similarity_p_ab": sc.p("similarity_ab"),
-                    "similarity_p_ba": sc.p("similarity_ba"),
-                    "breadth_a": sc.breadth_a,
-                    "breadth_b": sc.breadth_b,
-                    "stability": sc.stability,
-                    "expansion": sc.expansion,
-                    "unfilling": sc.unfilling,
-                    "n_replicates": self.n_replicates,
-                    "alternative": self.alternative,
-                }
+        nan = float("nan")
+        for sc in self.spaces():
+            row = {
+                "taxon_a": self.taxon_a,
+                "taxon_b": self.taxon_b,
+                "space": sc.space,
+                "D": sc.D,
+                "I": sc.I,
+                "D_tested": sc.D_tested,
+            }
+            for attr, _ in _TESTS:
+                t = sc.test(attr)
+                key = attr.replace("similarity_", "similarity_p_") if attr != (
+                    "equivalency") else "equivalency_p"
+                row[key] = nan if t is None else t.p_value
+                row[f"{key}_se"] = nan if t is None else t.p_se
+                row[f"{key}_replicates"] = 0 if t is None else t.n_valid
+                row[f"{key}_holm"] = self.holm.get((sc.space, attr), nan)
+            row.update(
+                breadth_a=sc.breadth_a,
+                breadth_b=sc.breadth_b,
+                stability=sc.stability,
+                expansion=sc.expansion,
+                unfilling=sc.unfilling,
+                analogue_share_a=sc.analogue_share_a,
+                analogue_share_b=sc.analogue_share_b,
+                n_replicates=self.n_replicates,
+                similarity_hypothesis=self.hypothesis,
             )
+            out.append({k: row[k] for k in OVERLAP_COLUMNS})
         return out
 
-    def plain_reading(self, alpha: float = 0.05) -> str:
-        """A short reading of the result in plain words, naming the test behind it."""
+    def _p_words(self, sc, attr) -> str:
+        t = sc.test(attr)
+        q = self.holm.get((sc.space, attr), float("nan"))
+        txt = f"{t.p_text()} from {t.n_valid} replicates"
+        if math.isfinite(q):
+            txt += f", {format_p(q, t.n_valid).replace('p', 'corrected p', 1)}"
+        return txt
+
+    def plain_reading(self, alpha: float | None = None) -> str:
+        """A short reading of the result in plain words, naming the test behind it.
+
+        A claim is made only when its Holm-corrected p-value (over every p-value of
+        the run) is below ``alpha``; the reading says how many p-values the
+        correction covered and what it changed.
+        """
+        alpha = self.alpha if alpha is None else float(alpha)
         a, b = self.taxon_a, self.taxon_b
-        sc = self.environmental if self.environmental is not None else self.geographic
-        where = "environmental space" if sc.space == "environmental" else "on the map"
-        head = f"{a} and {b} ({where}): D = {sc.D:.2f}, I = {sc.I:.2f}."
-        p_eq = sc.p("equivalency")
-        p_ab, p_ba = sc.p("similarity_ab"), sc.p("similarity_ba")
-        sim = [p for p in (p_ab, p_ba) if math.isfinite(p)]
-        sim_txt = ", ".join(
-            f"{lab} p = {p:.3f}"
-            for lab, p in ((f"{a} vs random {b}", p_ab), (f"{b} vs random {a}", p_ba))
-            if math.isfinite(p)
-        )
-        if not math.isfinite(p_eq) and not sim:
-            verdict = "No test was run, so the overlap value stands alone."
-        elif self.alternative == "greater" and sim and min(sim) < alpha:
-            verdict = (
-                "Their niches are more similar than their environments alone explain "
-                f"(similarity test, {sim_txt})."
-            )
-            if math.isfinite(p_eq) and p_eq < alpha:
-                verdict += (
-                    f" They are still not identical (equivalency p = {p_eq:.3f})."
-                )
-        elif math.isfinite(p_eq) and p_eq < alpha:
-            verdict = f"Their niches are different (equivalency test p = {p_eq:.3f})."
-        elif self.alternative == "lower" and sim and min(sim) < alpha:
-            verdict = (
-                "Their niches are different: less similar than their environments "
-                f"alone explain (similarity test, {sim_txt})."
-            )
+        main = self.environmental if self.environmental is not None else self.geographic
+        where = "environmental space" if main.space == "environmental" else "on the map"
+        parts = [f"{a} and {b} ({where}): D = {main.D:.2f}, I = {main.I:.2f}."]
+        claims, raw_small, tested = [], 0, 0
+        for sc in self.spaces():
+            label = "environmental space" if sc.space == "environmental" else (
+                "geographic space")
+            for attr, kind in _TESTS:
+                t = sc.test(attr)
+                if t is None:
+                    continue
+                tested += 1
+                raw_small += t.p_value < alpha
+                q = self.holm.get((sc.space, attr), t.p_value)
+                if not q < alpha:
+                    continue
+                words = self._p_words(sc, attr)
+                if kind == "equivalency":
+                    claims.append(
+                        f"their niches are not equivalent in {label} (equivalency "
+                        f"test, {words})"
+                    )
+                else:
+                    moved = b if attr.endswith("ab") else a
+                    fixed = a if attr.endswith("ab") else b
+                    how = "more" if self.hypothesis == "conserved" else "less"
+                    claims.append(
+                        f"{fixed}'s niche is {how} like {moved}'s than random records "
+                        f"from {moved}'s accessible area are, in {label} (similarity "
+                        f"test, {words})"
+                    )
+        if not tested:
+            parts.append("No test was run, so the overlap value stands alone.")
+        elif claims:
+            text = "; ".join(claims)
+            parts.append(text[0].upper() + text[1:] + ".")
         else:
-            tests = []
-            if math.isfinite(p_eq):
-                tests.append(f"equivalency p = {p_eq:.3f}")
-            if sim_txt:
-                tests.append(f"similarity {sim_txt}")
-            verdict = (
-                "Their niches are not distinguishable with these records ("
-                + "; ".join(tests)
-                + "); few records give tests little power."
+            shown = []
+            for sc in self.spaces():
+                for attr, _ in _TESTS:
+                    t = sc.test(attr)
+                    if t is not None and sc is main:
+                        name = attr.replace("_ab", f" {a} vs {b}").replace(
+                            "_ba", f" {b} vs {a}")
+                        shown.append(f"{name} {t.p_text()}")
+            parts.append(
+                "The tests do not tell their niches apart from chance with these "
+                "records (" + "; ".join(shown) + "); few records give the tests "
+                "little power, so this is not evidence that the niches are the same."
             )
-        use = (
+        m = self.n_tests_in_run
+        if m and tested:
+            kept = len(claims)
+            parts.append(
+                f"Holm's correction covered the {m} p-values of this run: {raw_small} "
+                f"of this pair's {tested} raw p-values were below {alpha:g}, {kept} "
+                "stayed below it after correction."
+            )
+            floors = [
+                t.p_floor for sc in self.spaces() for attr, _ in _TESTS
+                if (t := sc.test(attr)) is not None
+            ]
+            if floors and min(floors) > alpha / m:
+                parts.append(
+                    f"With {self.n_replicates} replicates the smallest possible p "
+                    f"({min(floors):.2g}) is above the strictest corrected threshold "
+                    f"({alpha / m:.2g}); raise [overlap] n_replicates for tests that "
+                    "can reach it."
+                )
+        env = self.environmental
+        if env is not None:
+            for name, share in ((a, env.analogue_share_a), (b, env.analogue_share_b)):
+                if math.isfinite(share) and share < ANALOGUE_SHARE_WARNING:
+                    parts.append(
+                        f"Only {_pct(share)} of {name}'s records lie in environment "
+                        "available to both taxa, so stability, expansion and "
+                        "unfilling describe few of its records."
+                    )
+        parts.append(
             "Using one taxon's niche to look for relatives of the other is a "
             "hypothesis to check in the field, not proof that they occur there."
         )
-        return f"{head} {verdict} {use}"
+        return " ".join(parts)
 
 
 def _validate_map_pair(map_a, map_b, cell_area_km2):
@@ -1411,9 +1730,10 @@ def compare_pair(
     env_records_b=None,
     env_background_a=None,
     env_background_b=None,
-    n_replicates: int = 100,
-    alternative: str = "greater",
-    resolution: int = 100,
+    env_available=None,
+    n_replicates: int = DEFAULT_REPLICATES,
+    hypothesis: str = "conserved",
+    grid_cells: int = DEFAULT_GRID_CELLS,
     random_state=0,
     executor: Executor | None = None,
     geographic_fit_predict: Callable[[np.ndarray], np.ndarray] | None = None,
@@ -1422,6 +1742,10 @@ def compare_pair(
     accessible_a=None,
     accessible_b=None,
     geographic_budget_s: float = 600.0,
+    alpha: float = 0.05,
+    predictor_names=(),
+    alternative: str | None = None,
+    resolution: int | None = None,
 ) -> PairComparison:
     """Overlap, breadth, dynamics and tests for one pair of taxa.
 
@@ -1434,13 +1758,17 @@ def compare_pair(
     cell_area_km2 : ndarray (n_rows, n_cols) or float
         Cell areas in km².
     env_records_a, env_records_b, env_background_a, env_background_b : array_like
-        Predictor rows at records and background cells (see
+        Predictor rows at records and at cells of each accessible area (see
         :func:`environmental_space`); the environmental row is skipped when any is None.
-    n_replicates : int, default 100
-    alternative : {"greater", "lower"}, default "greater"
-        Direction of the similarity tests.
-    resolution : int, default 100
-        Environmental grid cells per axis.
+    env_available : array_like, optional
+        Shared available environment of the pair (see :func:`environmental_space`).
+    n_replicates : int, default 999
+        Replicates per test; with ``R`` replicates no p-value is below
+        ``1 / (R + 1)``.
+    hypothesis : {"conserved", "diverged"}, default "conserved"
+        What the similarity tests ask.
+    grid_cells : int, default 64
+        Environmental grid cells along each principal axis.
     random_state : None, int or Generator, default 0
     executor : Executor, optional
     geographic_fit_predict : callable, optional
@@ -1454,12 +1782,18 @@ def compare_pair(
         Accessible areas on the grid.
     geographic_budget_s : float, default 600
         Skip the geographic tests (p = NaN, logged) when estimated slower than this.
+    alpha : float, default 0.05
+        Family-wise error rate of the reading; the pair's p-values are Holm-corrected
+        among themselves (:func:`correct_for_multiplicity` corrects a whole run).
+    alternative, resolution : optional
+        Old names of ``hypothesis`` and ``grid_cells`` (one release, with a warning).
 
     Returns
     -------
     PairComparison
     """
-    _check_alternative(alternative)
+    hypothesis = _check_hypothesis(hypothesis, alternative)
+    grid_cells = _grid_cells_argument(grid_cells, resolution)
     n = _check_replicates(n_replicates)
     ma, mb, w = _validate_map_pair(map_a, map_b, cell_area_km2)
     seeds = spawn_seeds(random_state, 6)
@@ -1506,7 +1840,7 @@ def compare_pair(
             if accessible_a is not None and accessible_b is not None:
                 fit_a = geographic_fit_predict(_check_cells(cells_a, "cells_a"))
                 fit_b = geographic_fit_predict(_check_cells(cells_b, "cells_b"))
-                common = dict(alternative=alternative, n_replicates=n, executor=ex)
+                common = dict(hypothesis=hypothesis, n_replicates=n, executor=ex)
                 geo.similarity_ab = geographic_similarity_test(
                     geographic_fit_predict,
                     fit_a,
@@ -1533,7 +1867,10 @@ def compare_pair(
     space = None
     envs = (env_records_a, env_records_b, env_background_a, env_background_b)
     if all(v is not None for v in envs):
-        space = environmental_space(*envs, resolution=resolution)
+        space = environmental_space(
+            *envs, env_available=env_available, grid_cells=grid_cells,
+            predictor_names=predictor_names,
+        )
         d, i = environmental_overlap(space)
         ba, bb = niche_breadth(space)
         env = SpaceComparison("environmental", d, i, ba, bb, **niche_dynamics(space))
@@ -1547,13 +1884,15 @@ def compare_pair(
                 similarity_test(
                     space,
                     direction=direction,
-                    alternative=alternative,
+                    hypothesis=hypothesis,
                     n_replicates=n,
                     random_state=seed,
                     executor=ex,
                 ),
             )
-    return PairComparison(name_a, name_b, geo, env, space, n, alternative)
+    out = PairComparison(name_a, name_b, geo, env, space, n, hypothesis)
+    correct_for_multiplicity([out], alpha)
+    return out
 
 
 def pairwise_table(

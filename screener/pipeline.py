@@ -669,13 +669,13 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor=None, progress=None):
 
     import pandas as pd
 
-    from screener.overlap import compare_pair
+    from screener.overlap import compare_pair, correct_for_multiplicity
 
     progress = progress or Progress(None)
     s = intake.settings
     grid = intake.grid
     names = list(taxa)
-    rows, readings, comparisons = [], [], []
+    rows, comparisons = [], []
     areas = np.asarray(grid.cell_area_km2, float)
     for a, b in itertools.combinations(names, 2):
         ta, tb = taxa[a], taxa[b]
@@ -697,9 +697,10 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor=None, progress=None):
             env_records_b=tb.presence_env,
             env_background_a=ta.background_env,
             env_background_b=tb.background_env,
+            env_available=_shared_available(intake, ta, tb, seed),
             n_replicates=s.overlap.n_replicates,
-            alternative=s.overlap.alternative,
-            resolution=s.overlap.resolution,
+            hypothesis=s.overlap.similarity_hypothesis,
+            grid_cells=s.overlap.grid_cells,
             random_state=seed,
             executor=executor,
             geographic_fit_predict=refit,
@@ -708,14 +709,38 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor=None, progress=None):
             accessible_a=ta.accessible,
             accessible_b=tb.accessible,
             geographic_budget_s=float("inf"),
+            alpha=s.overlap.alpha,
+            predictor_names=intake.predictor_stack().names,
         )
         comparisons.append(cmp)
+    # one Holm correction over every p-value of the run, then the tables and readings
+    correct_for_multiplicity(comparisons, s.overlap.alpha)
+    for cmp in comparisons:
         rows.extend(cmp.rows())
-        readings.append(cmp.plain_reading())
+    readings = [cmp.plain_reading() for cmp in comparisons]
     from screener.outputs.tables import OVERLAP_COLUMNS
 
     df = pd.DataFrame(rows) if rows else pd.DataFrame(columns=OVERLAP_COLUMNS)
     return df, readings, comparisons
+
+
+def _shared_available(intake: Intake, ta, tb, seed: int) -> np.ndarray:
+    """Predictor values of the pair's shared available environment.
+
+    Cells drawn (deterministically, from the pair's seed) from the union of the two
+    accessible areas, or from the whole study area when ``[overlap]
+    available_environment = "study_area"``; both taxa's occupancies are corrected by
+    this one density.
+    """
+    grid = intake.grid
+    if intake.settings.overlap.available_environment == "study_area":
+        area = grid.mask
+    else:
+        area = np.asarray(ta.accessible, bool) | np.asarray(tb.accessible, bool)
+    bg = draw_background(
+        grid, area, max_points=intake.settings.background.max_points, random_state=seed
+    )
+    return intake.predictor_stack().values_at(bg.rows, bg.cols)
 
 
 def _geographic_refit(intake, ta, tb, progress):

@@ -76,9 +76,11 @@ SCHEMA: dict = {
         "use": (str, "mtp", 'Threshold that defines suitable cells: "mtp" or "relaxed".'),
     },
     "overlap": {
-        "n_replicates": (int, 100, "Replicates of the equivalency and similarity tests."),
-        "alternative": (str, "greater", '"greater" (conservatism) or "lower" (divergence).'),
-        "resolution": (int, 100, "Cells per axis of the environmental-space grid."),
+        "n_replicates": (int, 999, "Replicates of each equivalency and similarity test; the smallest possible p is 1 / (n_replicates + 1)."),
+        "similarity_hypothesis": (str, "conserved", 'What the similarity tests ask: "conserved" (niches more alike than their environments explain) or "diverged" (less alike).'),
+        "grid_cells": (int, 64, "Environmental-space grid cells along each principal axis."),
+        "available_environment": (str, "accessible", 'Shared available environment of a pair: "accessible" (union of both accessible areas) or "study_area" (the whole grid).'),
+        "alpha": (float, 0.05, "Family-wise error rate of the plain-language reading (Holm over every p-value of the run)."),
         "geographic_tests": (str, "auto", '"auto", "on" or "off": refit maps per replicate.'),
     },
     "isolation": {
@@ -114,6 +116,15 @@ SCHEMA: dict = {
         "n_workers": (int, 0, "Worker processes (0 = all cores)."),
         "memory_mb": (float, 4096.0, "Working memory (MB) for layer values and the cost-distance solver; larger stacks stream from disk, larger grids are solved by tiles."),
     },
+}
+
+#: Old setting names kept working for one release: (section, old key) ->
+#: (new key, {old value: new value} or None, when the value carries over as is).
+RENAMED = {
+    ("overlap", "alternative"): (
+        "similarity_hypothesis", {"greater": "conserved", "lower": "diverged"}
+    ),
+    ("overlap", "resolution"): ("grid_cells", None),
 }
 
 #: keys that must be present (section, key)
@@ -220,6 +231,42 @@ def _check_value(section, key, value, spec, base_dir, where):
     return value
 
 
+def _apply_renames(data: dict, where: str) -> dict:
+    """Translate renamed settings (:data:`RENAMED`), warning once for each."""
+    import warnings
+
+    out = dict(data)
+    for (section, old), (new, values) in RENAMED.items():
+        body = out.get(section)
+        if not isinstance(body, dict) or old not in body:
+            continue
+        body = dict(body)
+        value = body.pop(old)
+        if new in body:
+            raise ProjectError(
+                f"{where}: [{section}] sets both {old!r} and its new name {new!r}; "
+                f"keep only {new!r}."
+            )
+        if values is not None:
+            if value not in values:
+                raise ProjectError(
+                    f"{where}: [{section}] {old} = {value!r} is not one of "
+                    f"{', '.join(map(repr, values))} (the setting is now {new!r}: "
+                    f"{', '.join(map(repr, values.values()))})."
+                )
+            value = values[value]
+        body[new] = value
+        out[section] = body
+        warnings.warn(
+            f"{where}: [{section}] {old} is renamed {new}"
+            + (f" (now {value!r})" if values else "")
+            + "; the old name stops working in the next release.",
+            FutureWarning,
+            stacklevel=3,
+        )
+    return out
+
+
 def settings_from_dict(data: dict, *, base_dir=".", where="project file") -> Settings:
     """Validate a project dictionary (as read from TOML) into :class:`Settings`.
 
@@ -232,6 +279,7 @@ def settings_from_dict(data: dict, *, base_dir=".", where="project file") -> Set
     base_dir = Path(base_dir)
     if not isinstance(data, dict):
         raise ProjectError(f"{where}: expected a TOML table at the top level.")
+    data = _apply_renames(data, where)
     for section, body in data.items():
         if section not in SCHEMA:
             raise ProjectError(
@@ -267,7 +315,8 @@ def settings_from_dict(data: dict, *, base_dir=".", where="project file") -> Set
 def _check_choices(s, where):
     choices = [
         ("thresholds", "use", ("mtp", "relaxed")),
-        ("overlap", "alternative", ("greater", "lower")),
+        ("overlap", "similarity_hypothesis", ("conserved", "diverged")),
+        ("overlap", "available_environment", ("accessible", "study_area")),
         ("overlap", "geographic_tests", ("auto", "on", "off")),
         ("isolation", "resistance", ("linear", "log")),
         ("outputs", "page_size", ("A4", "letter")),
@@ -283,11 +332,13 @@ def _check_choices(s, where):
     for section, key, lo in [
         ("occurrences", "min_records", 1),
         ("background", "max_points", 10),
-        ("overlap", "resolution", 10),
+        ("overlap", "grid_cells", 10),
         ("ranking", "top_k", 1),
     ]:
         if s[section][key] < lo:
             raise ProjectError(f"{where}: [{section}] {key} must be at least {lo}.")
+    if not 0 < s["overlap"]["alpha"] < 1:
+        raise ProjectError(f"{where}: [overlap] alpha must be between 0 and 1.")
     if not 0 <= s["thresholds"]["relax"] < 1:
         raise ProjectError(f"{where}: [thresholds] relax must be in [0, 1).")
     if s["background"]["buffer_km"] <= 0:

@@ -40,7 +40,8 @@ def test_minimal_project_file_as_written_in_the_design(project_dir):
         ("[layer]\nelevation = 'x'\n", "unknown section \\[layer\\]. Did you mean 'layers'"),
         ("[isolation]\nmin_gap = 3\n", "unknown key 'min_gap'.*Did you mean 'min_gap_km'"),
         ("[isolation]\nmin_gap_km = 'far'\n", "must be a number"),
-        ("[overlap]\nalternative = 'greatr'\n", "Did you mean 'greater'"),
+        ("[overlap]\nsimilarity_hypothesis = 'conservd'\n", "Did you mean 'conserved'"),
+        ("[overlap]\nalternative = 'greatr'\n", "'greater', 'lower'"),
         ("[models]\nfamilies = ['elipsoid']\n", "Did you mean 'ellipsoid'"),
         ("[thresholds]\nrelax = 1.5\n", "relax must be in"),
     ],
@@ -76,3 +77,16 @@ def test_settings_table_lists_every_key():
     for section, spec in SCHEMA.items():
         for key in spec:
             assert f"`[{section}] {key}`" in table
+
+
+def test_renamed_overlap_settings_still_work_for_one_release(project_dir):
+    p = project_dir / "project.toml"
+    p.write_text(MINIMAL + "[overlap]\nalternative = 'lower'\nresolution = 40\n")
+    with pytest.warns(FutureWarning, match="renamed") as caught:
+        s = load_project(p)
+    assert len(caught) == 2
+    assert s.overlap.similarity_hypothesis == "diverged"
+    assert s.overlap.grid_cells == 40
+    p.write_text(MINIMAL + "[overlap]\nresolution = 40\ngrid_cells = 30\n")
+    with pytest.raises(ProjectError, match="keep only 'grid_cells'"):
+        load_project(p)

@@ -226,7 +226,12 @@ def _overlap(result) -> str:
         '<p class="note">D (Schoener) and I (Hellinger-based) run from 0 (no overlap) '
         "to 1 (identical). A small equivalency p means the niches are less alike "
         "than random reassignment of the records gives; a small similarity p means "
-        "they are more alike than their available environments alone explain.</p>"
+        "they are more (or less) alike than random records from the other taxon's "
+        "accessible area give. Each p-value comes with its Monte Carlo standard error "
+        "and the replicates behind it; the readings claim only what survives Holm's "
+        "correction over every p-value of the run (columns ending _holm). In "
+        "geographic space the tests refit one model per replicate, so the D they test "
+        "(D_tested) can differ from the D of the reported maps.</p>"
     )
     out.extend(_overlap_figures(result))
     return "\n".join(out)
@@ -240,12 +245,12 @@ def _overlap_figures(result) -> list:
     for cmp in getattr(result, "comparisons", None) or []:
         a, b = cmp.taxon_a, cmp.taxon_b
         if cmp.space is not None:
+            d_env = cmp.environmental.D if cmp.environmental is not None else None
             out.append(_safe_figure(
-                lambda cmp=cmp, a=a, b=b: overlap_figures.plot_occupancy(cmp.space, names=(a, b)),
-                f"Occupancy of {a} and {b} in environmental space (first two principal "
-                "components of the pooled accessible environments); contours outline "
-                "each taxon's available environment.",
-                f"environmental occupancy {a} {b}",
+                lambda cmp=cmp, a=a, b=b, d=d_env: overlap_figures.plot_niches(
+                    cmp.space, names=(a, b), D=d),
+                f"Niches of {a} and {b} in their shared environmental space.",
+                f"niches in environmental space {a} {b}",
             ))
         for sc in (cmp.environmental, cmp.geographic):
             if sc is None:
@@ -256,9 +261,10 @@ def _overlap_figures(result) -> list:
                 if not test:
                     continue
                 out.append(_safe_figure(
-                    lambda t=test["D"]: overlap_figures.plot_null_distribution(t),
+                    lambda t=test["D"], d=sc.D: overlap_figures.plot_null_distribution(
+                        t, reported_d=d),
                     f"{a} vs {b}, {sc.space} space, {label} test: null distribution of "
-                    "D with the observed value marked.",
+                    "D with the tested value marked.",
                     f"null distribution {label} {sc.space} {a} {b}",
                 ))
     return out

@@ -1,0 +1,186 @@
+"""Calibration scenarios of the overlap tests on real terrain (shared by the slow test
+and tests/benchmarks/bench_calibration.py).
+
+Terrain: the elevation grids matplotlib ships as sample data
+(``matplotlib.cbook.get_sample_data``: ``jacksboro_fault_dem.npz``, 344 x 403 cells,
+and the land part of ``topobathy.npz``).  Predictors derived from each grid:
+elevation, slope (finite differences) and local relief (elevation minus its 9 x 9
+mean).  "skewed" uses them as they are (slope and relief are right-skewed);
+"symmetric" replaces each by its normal scores (rank -> normal quantile), so the same
+terrain gives a symmetric environment.
+
+Each pair gets two square accessible areas (windows) at random places of one grid.
+Records are drawn from cells of a window:
+
+* ``dispersed`` - uniformly at random;
+* ``clustered`` - around 2 random centres, within 4 cells of them.
+
+Null scenarios (no niche signal; which test each one is a null for):
+
+* similarity null: each taxon's records come from its own window by the spatial
+  process alone (the null of the background test: records no more than random points
+  of the accessible area);
+* equivalency null: both taxa draw from one shared window by the same process, so
+  their records are exchangeable.
+
+Alternatives: ``divergent`` (one window; A's records from its lowest third of
+elevation, B's from its highest third) and ``similar`` (two windows; both taxa's
+records from the cells within 0.3 sd of the same elevation).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import ndimage, stats
+
+from screener import overlap as ov
+
+ALPHA = 0.05
+
+
+def terrain(name: str, shape: str) -> np.ndarray:
+    """Predictor cube (rows, cols, 3) of one matplotlib sample grid; NaN off land."""
+    from matplotlib import cbook
+
+    if name == "jacksboro":
+        z = np.asarray(cbook.get_sample_data("jacksboro_fault_dem.npz")["elevation"], float)
+    else:
+        z = np.asarray(cbook.get_sample_data("topobathy.npz")["topo"], float)
+        z = np.where(z > 0, z, np.nan)
+    gy, gx = np.gradient(np.where(np.isfinite(z), z, np.nanmean(z)))
+    slope = np.hypot(gx, gy)
+    relief = z - ndimage.uniform_filter(np.where(np.isfinite(z), z, np.nanmean(z)), 9)
+    cube = np.stack([z, slope, relief], axis=-1)
+    cube[~np.isfinite(z)] = np.nan
+    if shape == "symmetric":
+        for k in range(3):
+            layer = cube[..., k]
+            ok = np.isfinite(layer)
+            ranks = stats.rankdata(layer[ok])
+            layer[ok] = stats.norm.ppf((ranks - 0.5) / ok.sum())
+    return cube
+
+
+@dataclass
+class Pair:
+    records_a: np.ndarray
+    records_b: np.ndarray
+    background_a: np.ndarray
+    background_b: np.ndarray
+    available: np.ndarray
+
+
+def _window_cells(cube, rng, size):
+    n_rows, n_cols = cube.shape[:2]
+    for _ in range(100):
+        r0 = int(rng.integers(0, n_rows - size))
+        c0 = int(rng.integers(0, n_cols - size))
+        rr, cc = np.mgrid[r0 : r0 + size, c0 : c0 + size]
+        ok = np.all(np.isfinite(cube[rr, cc]), axis=-1)
+        if ok.mean() > 0.9:
+            return rr[ok], cc[ok]
+    raise RuntimeError("no land window found")
+
+
+def _draw(rows, cols, n, process, rng, weights=None):
+    idx = np.arange(len(rows))
+    if weights is not None:
+        idx = idx[weights]
+    if process == "clustered":
+        centres = rng.choice(idx, 2, replace=False)
+        near = np.zeros(len(rows), bool)
+        for c in centres:
+            near |= np.hypot(rows - rows[c], cols - cols[c]) <= 4
+        near_idx = np.intersect1d(idx, np.flatnonzero(near))
+        idx = near_idx if len(near_idx) >= n else idx
+    return rng.choice(idx, n, replace=len(idx) < n)
+
+
+def make_pair(cube, scenario, process, rng, *, n=12, window=70, n_background=400):
+    """Records, accessible backgrounds and the shared available environment."""
+    wa = _window_cells(cube, rng, window)
+    wb = wa if scenario in ("equivalency-null", "divergent") else _window_cells(
+        cube, rng, window)
+
+    def env(w, idx):
+        return cube[w[0][idx], w[1][idx]]
+
+    def bg(w):
+        return env(w, rng.choice(len(w[0]), min(n_background, len(w[0])), replace=False))
+
+    if scenario in ("similarity-null", "equivalency-null"):
+        ia = _draw(*wa, n, process, rng)
+        ib = _draw(*wb, n, process, rng)
+    elif scenario == "divergent":
+        z = cube[wa[0], wa[1], 0]
+        lo, hi = np.quantile(z, [1 / 3, 2 / 3])
+        ia = _draw(*wa, n, process, rng, z <= lo)
+        ib = _draw(*wb, n, process, rng, z >= hi)
+    elif scenario == "similar":
+        za = cube[wa[0], wa[1], 0]
+        zb = cube[wb[0], wb[1], 0]
+        both = np.concatenate([za, zb])
+        target = float(rng.choice(both))
+        band = 0.3 * both.std()
+        ia = _draw(*wa, n, process, rng, np.abs(za - target) <= band) if np.sum(
+            np.abs(za - target) <= band) >= 3 else _draw(*wa, n, process, rng)
+        ib = _draw(*wb, n, process, rng, np.abs(zb - target) <= band) if np.sum(
+            np.abs(zb - target) <= band) >= 3 else _draw(*wb, n, process, rng)
+    else:
+        raise ValueError(scenario)
+    bga, bgb = bg(wa), bg(wb)
+    # shared available environment: the union of both windows, one draw
+    rows = np.concatenate([wa[0], wb[0]])
+    cols = np.concatenate([wa[1], wb[1]])
+    union = np.unique(np.ravel_multi_index((rows, cols), cube.shape[:2]))
+    pick = rng.choice(union, min(2 * n_background, len(union)), replace=False)
+    ur, uc = np.unravel_index(pick, cube.shape[:2])
+    return Pair(env(wa, ia), env(wb, ib), bga, bgb, cube[ur, uc])
+
+
+def run_pair(pair: Pair, rng, *, n_replicates=99, grid_cells=32, hypothesis="conserved"):
+    """p-values of the three environmental tests and the reading's claims."""
+    space = ov.environmental_space(
+        pair.records_a, pair.records_b, pair.background_a, pair.background_b,
+        env_available=pair.available, grid_cells=grid_cells,
+    )
+    seeds = rng.integers(2**31, size=3)
+    eq = ov.equivalency_test(space, n_replicates=n_replicates, random_state=int(seeds[0]))
+    ab = ov.similarity_test(space, direction="ab", hypothesis=hypothesis,
+                            n_replicates=n_replicates, random_state=int(seeds[1]))
+    ba = ov.similarity_test(space, direction="ba", hypothesis=hypothesis,
+                            n_replicates=n_replicates, random_state=int(seeds[2]))
+    raw = np.array([eq["D"].p_value, ab["D"].p_value, ba["D"].p_value])
+    holm = ov.holm_adjust(raw)
+    return {
+        "equivalency": raw[0],
+        "similarity_ab": raw[1],
+        "similarity_ba": raw[2],
+        # the reading claims "not equivalent" / "more alike" only when the Holm-adjusted
+        # p (over the pair's three p-values here) is below alpha
+        "claims_different": bool(holm[0] < ALPHA),
+        "claims_similar": bool(min(holm[1], holm[2]) < ALPHA),
+        "D": ov.environmental_overlap(space)[0],
+    }
+
+
+def binomial_ci(k: int, n: int) -> tuple[float, float]:
+    """Clopper-Pearson 95 % interval (scipy.stats.binomtest)."""
+    ci = stats.binomtest(int(k), int(n)).proportion_ci(0.95, method="exact")
+    return float(ci.low), float(ci.high)
+
+
+def rejection_rates(cube, scenario, process, n_pairs, seed, **kw):
+    """Share of pairs with p <= alpha per test, and the reading's claim rates."""
+    rng = np.random.default_rng(seed)
+    rows = [run_pair(make_pair(cube, scenario, process, rng), rng, **kw)
+            for _ in range(n_pairs)]
+    out = {}
+    for key in ("equivalency", "similarity_ab", "similarity_ba"):
+        k = sum(r[key] <= ALPHA for r in rows)
+        out[key] = (k, n_pairs)
+    out["claims_different"] = (sum(r["claims_different"] for r in rows), n_pairs)
+    out["claims_similar"] = (sum(r["claims_similar"] for r in rows), n_pairs)
+    return out
