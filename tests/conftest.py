@@ -13,6 +13,9 @@ import numpy as np
 import pytest
 
 matplotlib.use("Agg")
+
+#: speed and regression scripts are run by hand, not collected (doctests included)
+collect_ignore_glob = ["benchmarks/*", "regression/*"]
 os.environ.setdefault("GDAL_CACHEMAX", "64")
 
 

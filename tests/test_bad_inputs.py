@@ -463,6 +463,7 @@ def warm(demo_base, tmp_path_factory):
     return d
 
 
+@pytest.mark.slow
 def test_existing_output_folder_is_kept_without_overwrite(warm, tmp_path):
     out = tmp_path / "out"
     out.mkdir()
@@ -473,6 +474,7 @@ def test_existing_output_folder_is_kept_without_overwrite(warm, tmp_path):
     assert (out / "notes.txt").read_text(encoding="utf-8") == "field notes"
 
 
+@pytest.mark.slow
 def test_overwrite_interrupted_while_writing_keeps_the_old_folder(warm, tmp_path, monkeypatch):
     from screener.outputs import gpx
 
@@ -526,6 +528,7 @@ def test_overwrite_refuses_a_folder_no_run_wrote(scen, tmp_path):
     assert (out / "thesis.docx").read_bytes() == b"three years of work"
 
 
+@pytest.mark.slow
 def test_overwrite_refuses_the_run_folder_a_debrief_reads(warm, tmp_path):
     run_dir = warm.parent / "first"
     before = _snapshot(run_dir)
@@ -535,6 +538,7 @@ def test_overwrite_refuses_the_run_folder_a_debrief_reads(warm, tmp_path):
     assert _snapshot(run_dir) == before
 
 
+@pytest.mark.slow
 def test_overwrite_replaces_an_earlier_run(warm, tmp_path):
     out = tmp_path / "out"
     assert invoke("run", warm / "project.toml", "--out", out).exit_code == 0
@@ -593,6 +597,7 @@ def test_staging_folders_are_unique_and_stale_ones_are_removed(tmp_path):
     assert unknown.exists()                            # first is kept, not removed
 
 
+@pytest.mark.slow
 def test_output_parent_is_a_file(warm, tmp_path):
     # simulates an unwritable location without relying on permissions (tests run as root)
     blocker = tmp_path / "blocker"
@@ -603,6 +608,7 @@ def test_output_parent_is_a_file(warm, tmp_path):
     assert "Traceback" not in result.output
 
 
+@pytest.mark.slow
 def test_output_parent_not_writable(warm, tmp_path, monkeypatch):
     # root ignores chmod, so the permission check itself is simulated with os.access
     import screener.outputs.staging as staging
@@ -615,6 +621,7 @@ def test_output_parent_not_writable(warm, tmp_path, monkeypatch):
     assert_refused(result, out, r"Cannot write in .* \(permission denied\); choose another --out")
 
 
+@pytest.mark.slow
 def test_full_disk_while_writing(warm, tmp_path, monkeypatch):
     from screener.outputs import gpx
 
@@ -627,6 +634,7 @@ def test_full_disk_while_writing(warm, tmp_path, monkeypatch):
     assert_refused(result, out, r"The disk is full while writing .*sites\.gpx; free some space")
 
 
+@pytest.mark.slow
 def test_read_only_file_system_while_writing(warm, tmp_path, monkeypatch):
     from screener.outputs import tables
 
@@ -639,6 +647,7 @@ def test_read_only_file_system_while_writing(warm, tmp_path, monkeypatch):
     assert_refused(result, out, r"Cannot write .*: Read-only file system; choose another --out")
 
 
+@pytest.mark.slow
 def test_a_bug_is_reported_as_one_and_leaves_nothing(warm, tmp_path, monkeypatch):
     def broken(*a, **k):
         raise ZeroDivisionError("division by zero")
@@ -651,6 +660,7 @@ def test_a_bug_is_reported_as_one_and_leaves_nothing(warm, tmp_path, monkeypatch
 
 
 # ------------------------------------------------------------------ Ctrl-C and resume
+@pytest.mark.slow
 def test_interrupt_then_resume_from_the_cache(scen, monkeypatch):
     calls = []
     real_model, real_compare = screener.pipeline.model_taxon, screener.pipeline.compare_taxa
@@ -692,6 +702,7 @@ def test_interrupt_then_resume_from_the_cache(scen, monkeypatch):
     assert leftovers(out) == ["out"]
 
 
+@pytest.mark.slow
 def test_interrupt_without_cache_says_a_rerun_starts_over(scen, monkeypatch):
     def interrupted(*a, **k):
         raise KeyboardInterrupt

@@ -20,6 +20,9 @@ from click.testing import CliRunner
 from screener.cli import main
 from screener.demo import write_demo_scenario
 
+#: every test here runs the demo end to end
+pytestmark = pytest.mark.slow
+
 FAST = """
 [overlap]
 n_replicates = 9

@@ -7,6 +7,7 @@ import tempfile
 from pathlib import Path
 
 import numpy as np
+import pytest
 from affine import Affine
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -50,6 +51,7 @@ def _intake(text: str, grid: Grid) -> None:
         pass  # a message for the user: the expected way to refuse
 
 
+@pytest.mark.slow
 @FUZZ
 @given(csv_like())
 def test_csv_like_text_only_raises_input_errors(text):

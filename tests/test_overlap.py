@@ -406,6 +406,7 @@ def test_equivalency_calibration_under_the_null():
     assert 0.02 <= rate <= 0.08
 
 
+@pytest.mark.slow
 def test_equivalency_power_on_different_niches():
     # Clearly different niches (centres 2.0 apart on one predictor, 3.3 record-sd)
     # must be rejected in at least 90 % of pairs.

@@ -88,6 +88,7 @@ def test_process_pool_order_and_one_thread(process_executor):
     assert set(ex.map(os.getenv, ["OMP_NUM_THREADS"] * 8)) == {"1"}
 
 
+@pytest.mark.slow
 def test_same_results_on_every_backend(process_executor, dask_executor, small_space):
     serial = ov.equivalency_test(small_space, n_replicates=40, random_state=5)
     sim = ov.similarity_test(small_space, n_replicates=40, random_state=6)

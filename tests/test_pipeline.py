@@ -27,6 +27,7 @@ def demo_run(tmp_path_factory):
     return project, out, result.output
 
 
+@pytest.mark.slow
 def test_outputs_follow_the_contract(demo_run):
     project, out, _ = demo_run
     truth = DEMO_TRUTH["small"]
@@ -51,6 +52,7 @@ def test_outputs_follow_the_contract(demo_run):
     assert gdf.crs is not None and len(gdf) == len(cand)
 
 
+@pytest.mark.slow
 def test_unrecorded_massif_is_the_top_isolated_site(demo_run):
     _, out, _ = demo_run
     truth = DEMO_TRUTH["small"].unrecorded
@@ -65,6 +67,7 @@ def test_unrecorded_massif_is_the_top_isolated_site(demo_run):
     assert (iso["nearest_record_km"] > 5.0).all()
 
 
+@pytest.mark.slow
 def test_run_json_is_provenance(demo_run):
     project, out, _ = demo_run
     prov = json.loads((out / "run.json").read_text())
@@ -74,12 +77,14 @@ def test_run_json_is_provenance(demo_run):
     assert prov["settings"]["overlap"]["n_replicates"] == 19
 
 
+@pytest.mark.slow
 def test_no_partial_folders_left(demo_run):
     _, out, _ = demo_run
     leftovers = [p.name for p in out.parent.iterdir() if ".partial" in p.name]
     assert leftovers == []
 
 
+@pytest.mark.slow
 def test_existing_output_folder_is_kept(demo_run):
     project, out, _ = demo_run
     before = (out / "candidates.csv").read_bytes()
@@ -89,6 +94,7 @@ def test_existing_output_folder_is_kept(demo_run):
     assert (out / "candidates.csv").read_bytes() == before
 
 
+@pytest.mark.slow
 def test_rerun_from_cache_is_identical(demo_run, tmp_path):
     # Changing only ranking weights refits nothing (models and overlap come from the
     # cache) and leaves the model outputs byte-identical.
@@ -102,6 +108,7 @@ def test_rerun_from_cache_is_identical(demo_run, tmp_path):
         assert (out2 / name).read_bytes() == (out / name).read_bytes(), name
 
 
+@pytest.mark.slow
 def test_debrief_scores_a_survey(demo_run, tmp_path):
     project, out, _ = demo_run
     cand = pd.read_csv(out / "candidates.csv")

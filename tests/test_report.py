@@ -115,6 +115,7 @@ def chromium():
     return exe
 
 
+@pytest.mark.slow
 def test_report_renders_in_headless_chromium(tmp_path, report, chromium):
     page = tmp_path / "report.html"
     page.write_text(report, encoding="utf-8")

@@ -125,6 +125,7 @@ def _pdf_pages_text(path):
     return pages
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("page_size", ["A4", "letter"])
 def test_field_sheets_pages_hold_coordinates(tmp_path, run, page_size):
     path = write_field_sheets(

@@ -52,6 +52,7 @@ def test_derived_layers_on_a_streamed_stack(stacks):
     assert_array_equal(e2.valid_matrix(), s2.valid_matrix())
 
 
+@pytest.mark.slow
 def test_model_maps_identical_when_streamed(tmp_path):
     from screener.demo import write_demo_scenario
     from screener.pipeline import load_inputs, model_taxon
@@ -71,6 +72,7 @@ def test_model_maps_identical_when_streamed(tmp_path):
     assert a.evaluation == b.evaluation
 
 
+@pytest.mark.slow
 def test_parallel_prediction_over_windows_matches_serial(small_layers):
     # Each worker reads its own windows of a streamed stack; the map is identical.
     from screener.models import make_model

@@ -71,7 +71,13 @@ def test_dem_layers_are_plausible(landscape):
     assert 0.05 < np.mean(truth > 0.5) < 0.3  # the niche is neither rare nor everywhere
 
 
-@pytest.mark.parametrize("family", sorted(PARAMS))
+#: families whose fits take seconds here: run by the whole suite, not the fast loop
+SLOW_FITS = ("forest", "ppm")
+
+
+@pytest.mark.parametrize("family", [
+    pytest.param(f, marks=pytest.mark.slow) if f in SLOW_FITS else f for f in sorted(PARAMS)
+])
 @pytest.mark.parametrize("n", [10, 50])
 def test_family_recovers_virtual_niche(landscape, family, n):
     rhos = []
@@ -89,6 +95,7 @@ def test_family_recovers_virtual_niche(landscape, family, n):
     assert min(rhos) > MIN_RHO[n][family], rhos
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("family", sorted(PARAMS))
 def test_jackknife_significant_with_ten_records(landscape, family):
     """Pearson et al. 2007: with 10 records from a real niche, p < 0.05."""
