@@ -19,7 +19,12 @@ import numpy as np
 from scipy.stats import rankdata, spearmanr
 
 from screener.errors import InputError
-from screener.models import accepts_random_state, make_model, training_presence_scores
+from screener.models import (
+    accepts_groups,
+    accepts_random_state,
+    make_model,
+    training_presence_scores,
+)
 from screener.models.base import check_predictors
 from screener.thresholds import percentile_training_presence
 
@@ -698,7 +703,8 @@ def evaluate_family(
     background : array_like of shape (m, p)
     presence_xy, background_xy : array_like of shape (n, 2) and (m, 2), optional
         Coordinates (x, y) for the spatial partitions; without them "random-kfold" is
-        used.
+        used.  With them, a family whose ``fit`` takes ``groups`` (ppm) gets the
+        records' spatial blocks (:func:`block_partition`) for the mapped model.
     study_area, study_area_weights : optional
         Study-area rows and cell areas (km²) for the jackknife and null model.
     jackknife_below : int, default 25
@@ -726,7 +732,12 @@ def evaluate_family(
     rng = np.random.default_rng(random_state)
     full_seed, jk_seed, part_seed, fold_seed, null_seed = _seeds(rng, 5)
 
-    full = _make(family, params, full_seed).fit(presence, background)
+    fit_kw = {}
+    if presence_xy is not None and background_xy is not None and accepts_groups(family):
+        # Families that choose their own complexity by held-out blocks (ppm) get the
+        # records' spatial blocks for the mapped model.
+        fit_kw["groups"] = block_partition(presence_xy, background_xy)[0]
+    full = _make(family, params, full_seed).fit(presence, background, **fit_kw)
     train_scores = training_presence_scores(full, presence)
     bg_scores = full.predict(background)
     finite = np.asarray(train_scores, float)

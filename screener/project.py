@@ -63,7 +63,7 @@ SCHEMA: dict = {
     "models": {
         "families": (list, ["ellipsoid", "envelope"], "Model families to fit and combine."),
         "ellipsoid": (dict, {}, "Parameters of the ellipsoid (Mahalanobis) family."),
-        "ppm": (dict, {}, "Parameters of the point-process (maximum-entropy) family."),
+        "ppm": (dict, {}, "Parameters of the Poisson point-process family (terms, l1_penalty, ...)."),
         "envelope": (dict, {}, "Parameters of the environmental-envelope family."),
         "forest": (dict, {}, "Parameters of the down-sampled random forest."),
     },

@@ -227,3 +227,19 @@ def test_evaluate_family_without_coordinates_falls_back_to_random():
     assert ev.method == "random-kfold"
     with pytest.raises(InputError, match="Unknown partition"):
         evaluate_family("ellipsoid", {}, pres, bg, partition="stripes", n_null=0)
+
+
+def test_evaluate_family_gives_ppm_the_spatial_blocks():
+    """The mapped ppm chooses its penalty over the records' spatial blocks (4 quadrants)."""
+    rng = np.random.default_rng(7)
+    bg = rng.normal(size=(600, 2))
+    bxy = rng.uniform(0, 10, size=(600, 2))
+    pres = rng.normal([1.0, 1.0], 0.4, size=(30, 2))
+    pxy = rng.uniform(0, 10, size=(30, 2))
+    kw = {"n_blocks": 5, "n_penalties": 3}
+    with_xy = evaluate_family(
+        "ppm", kw, pres, bg, presence_xy=pxy, background_xy=bxy, n_null=0
+    ).extra["model"]
+    assert with_xy.n_blocks_ == 4
+    without = evaluate_family("ppm", kw, pres, bg, n_null=0).extra["model"]
+    assert without.n_blocks_ == 5

@@ -11,13 +11,12 @@ from sklearn.exceptions import NotFittedError
 from sklearn.linear_model import PoissonRegressor
 from threadpoolctl import threadpool_limits
 
-from screener.errors import InputError
+from screener.errors import InputError, ScreenerWarning
 from screener.models import (
     FAMILIES,
     DownsampledForest,
     EnvelopeNiche,
     PointProcessNiche,
-    default_feature_classes,
     fit_taxon_models,
     make_model,
     training_presence_scores,
@@ -25,7 +24,7 @@ from screener.models import (
 from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
 from screener.models.inspect import permutation_importance, response_curves
 
-FAST = {"forest": {"n_estimators": 50}, "ppm": {"regularization": (1.0, 2.0)}}
+FAST = {"forest": {"n_estimators": 50}, "ppm": {"n_penalties": 4}}
 
 
 @pytest.fixture(scope="module")
@@ -71,7 +70,7 @@ def test_fit_is_deterministic(family, data):
 
 def test_chunked_predict_matches_unchunked(data, monkeypatch):
     pres, bg = data
-    model = make_model("ppm", feature_classes="LQH", regularization=1.0).fit(pres, bg)
+    model = make_model("ppm", l1_penalty=0.05).fit(pres, bg)
     whole = model.predict(bg)
     monkeypatch.setattr("screener.models.base.CHUNK_ROWS", 97)
     assert_allclose(model.predict(bg), whole, rtol=1e-12)
@@ -92,8 +91,10 @@ def test_bad_inputs_raise_input_errors(data):
         make_model("ellipsoid").fit(bad, bg)
     with pytest.raises(InputError, match="needs background"):
         make_model("ppm").fit(pres, None)
-    with pytest.raises(InputError, match="feature-class letters"):
-        make_model("ppm", feature_classes="LQX").fit(pres, bg)
+    with pytest.raises(InputError, match="'cubic' is not a term set"):
+        make_model("ppm", terms=["linear", "cubic"]).fit(pres, bg)
+    with pytest.raises(InputError, match="l1_penalty"):
+        make_model("ppm", l1_penalty=-1.0).fit(pres, bg)
 
 
 def test_ellipsoid_matches_chi2_of_ledoit_wolf_distance(data):
@@ -116,45 +117,73 @@ def test_envelope_percentile_rule():
     assert_allclose(got, [0.25, 0.75, 1.0, 0.25, 0.0, 0.0])
 
 
-def test_default_feature_classes_follow_published_sample_sizes():
-    # Phillips & Dudik 2008 (Ecography 31:161), from memory: <10 L, 10-14 LQ, 15-79 LQH.
-    assert [default_feature_classes(n) for n in (9, 10, 14, 15, 79, 80)] == [
-        "L",
-        "LQ",
-        "LQ",
-        "LQH",
-        "LQH",
-        "LQPHT",
-    ]
-
-
-def test_ppm_auto_selection_uses_aicc(data):
+def test_ppm_deprecated_names_warn_and_map_to_new_ones(data):
     pres, bg = data
-    model = make_model("ppm").fit(pres, bg)
-    aiccs = [c["aicc"] for c in model.selection_]
-    assert model.aicc_ == min(aiccs)
-    assert {c["feature_classes"] for c in model.selection_} == {"L", "LQ", "LQH"}
-    assert model.n_coefficients_ > 0 and model.regularization_ in (0.5, 1.0, 2.0, 4.0)
+    with pytest.warns(ScreenerWarning, match="feature_classes .* deprecated"):
+        with pytest.warns(ScreenerWarning, match="regularization .* deprecated"):
+            old = make_model("ppm", feature_classes="lq", regularization=1.0).fit(pres, bg)
+    new = make_model(
+        "ppm", terms=["quadratic", "linear"], l1_penalty=0.5 / np.sqrt(len(pres))
+    ).fit(pres, bg)
+    assert old.terms_ == new.terms_ == ("linear", "quadratic")
+    assert_allclose(old.l1_penalty_, new.l1_penalty_)
+    assert_allclose(old.predict(bg), new.predict(bg), rtol=1e-12)
+    # selected_params refits without the deprecated names (and without warnings).
+    params = {"feature_classes": "lq", "regularization": 1.0}
+    params.update(old.selected_params())  # as the null model does
+    again = make_model("ppm", **params).fit(pres, bg)
+    assert_allclose(again.predict(bg), new.predict(bg), rtol=1e-12)
 
 
-def test_ppm_cloglog_output_uses_entropy(data):
-    """cloglog output = 1 - exp(-exp(H) q(x)) (Phillips et al. 2017, Ecography 40:887)."""
+def test_ppm_path_starts_where_every_term_is_zero(data):
+    """lambda_max from the score at zero (lasso KKT conditions; Tibshirani 1996), checked
+    against scikit-learn's liblinear solver: just above it no term survives."""
     pres, bg = data
-    model = make_model("ppm", feature_classes="LQ", regularization=1.0).fit(pres, bg)
+    model = make_model("ppm", n_penalties=5).fit(pres, bg)
+    lam_max = model.path_[0]["l1_penalty"] / 0.01 ** (1 / 5)
+    above = make_model("ppm", l1_penalty=lam_max * 1.01).fit(pres, bg)
+    below = make_model("ppm", l1_penalty=lam_max * 0.9).fit(pres, bg)
+    assert above.n_coefficients_ == 0 and below.n_coefficients_ > 0
+    # Zero terms: every cell scores the reference level 1 - 1/e.
+    assert_allclose(above.predict(bg[:5]), 1 - np.exp(-1.0), rtol=1e-9)
+
+
+def test_ppm_penalty_has_best_heldout_likelihood(data):
+    """The chosen penalty maximises the held-out log density of the left-out block,
+    recomputed from separate fits with that penalty on the other blocks."""
+    pres, bg = data
+    bg = bg[:800]  # below the path's background subset size: the same rows everywhere
+    groups = np.arange(len(pres)) % 3
+    model = make_model("ppm", n_penalties=6).fit(pres, bg, groups=groups)
+    lls = [row["heldout_log_likelihood"] for row in model.path_]
+    assert model.l1_penalty_ == model.path_[int(np.argmax(lls))]["l1_penalty"]
+    assert model.n_blocks_ == 3
+    pens = [row["l1_penalty"] for row in model.path_]
+    assert np.all(np.diff(pens) < 0)
+    held = np.empty(len(pres))
+    for g in range(3):
+        fit = make_model("ppm", l1_penalty=model.l1_penalty_).fit(pres[groups != g], bg)
+        held[groups == g] = fit.log_density(pres[groups == g])
+    # Tolerance ours: the path's fits stop at a looser solver tolerance.
+    assert_allclose(held.mean(), model.heldout_log_likelihood_, atol=0.02)
+
+
+def test_ppm_cloglog_output_reference_level(data):
+    """cloglog link 1 - exp(-exp(eta + c)) (Phillips et al. 2017, Ecography 40:887);
+    c is ours: the mean log intensity at the training records maps to 1 - 1/e."""
+    pres, bg = data
+    model = make_model("ppm", terms="linear+quadratic", l1_penalty=0.05).fit(pres, bg)
     log_q = model.log_density(bg)
     assert_allclose(logsumexp(log_q), 0.0, atol=1e-9)
-    q = np.exp(log_q)
-    assert_allclose(model.entropy_, -np.sum(q * log_q), rtol=1e-9)
-    assert_allclose(
-        model.predict(bg), -np.expm1(-np.exp(model.entropy_) * q), rtol=1e-9
-    )
+    ref = model.log_density(pres).mean()
+    assert_allclose(model.predict(bg), -np.expm1(-np.exp(log_q - ref)), rtol=1e-9)
 
 
-def _hand_features(z, zb, classes, n_knots=10):
+def _hand_features(z, zb, terms, n_knots=10):
     cols = [z]
-    if "Q" in classes:
+    if "quadratic" in terms:
         cols.append(z**2)
-    if "H" in classes:
+    if "hinge" in terms:
         levels = np.arange(1, n_knots + 1) / (n_knots + 1)
         for j in range(z.shape[1]):
             kn = np.unique(np.quantile(zb[:, j], levels))
@@ -164,10 +193,14 @@ def _hand_features(z, zb, classes, n_knots=10):
 
 
 @pytest.mark.parametrize(
-    "classes, n_knots, min_rho, max_p95",
-    [("LQ", 10, 0.999, 0.1), ("LQH", 4, 0.999, 0.15), ("LQH", 10, 0.98, 0.6)],
+    "terms, n_knots, min_rho, max_p95",
+    [
+        (("linear", "quadratic"), 10, 0.999, 0.1),
+        (("linear", "quadratic", "hinge"), 4, 0.999, 0.15),
+        (("linear", "quadratic", "hinge"), 10, 0.98, 0.6),
+    ],
 )
-def test_ppm_matches_poisson_point_process_glm(classes, n_knots, min_rho, max_p95):
+def test_ppm_matches_poisson_point_process_glm(terms, n_knots, min_rho, max_p95):
     """Weakly penalised ppm vs an unpenalised Poisson GLM on quadrature points.
 
     Renner & Warton 2013 (Biometrics 69:274): the background-weighted logistic fit
@@ -182,13 +215,12 @@ def test_ppm_matches_poisson_point_process_glm(classes, n_knots, min_rho, max_p9
     eta = 1.2 * bg[:, 0] - 0.6 * bg[:, 0] ** 2 + 0.8 * bg[:, 1]
     idx = rng.choice(len(bg), size=200, p=np.exp(eta - logsumexp(eta)))
     pres = bg[idx] + rng.normal(scale=0.01, size=(200, 2))
-    model = PointProcessNiche(
-        feature_classes=classes, regularization=0.02, n_knots=n_knots
-    ).fit(pres, bg)
+    # A weak penalty: 0.02 x 0.5 / sqrt(200) per record.
+    model = PointProcessNiche(terms=terms, l1_penalty=7.071e-4, n_knots=n_knots).fit(pres, bg)
 
     mu, sd = bg.mean(axis=0), bg.std(axis=0)
     zb = (bg - mu) / sd
-    F = _hand_features((np.vstack([pres, bg]) - mu) / sd, zb, classes, n_knots)
+    F = _hand_features((np.vstack([pres, bg]) - mu) / sd, zb, terms, n_knots)
     F = (F - F[len(pres) :].mean(axis=0)) / F[len(pres) :].std(axis=0)
     w = np.r_[np.full(len(pres), 1e-6), np.full(len(bg), 1.0 / len(bg))]
     y = np.r_[np.ones(len(pres)), np.zeros(len(bg))] / w

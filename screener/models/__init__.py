@@ -13,7 +13,7 @@ from screener.models.base import NicheModel, check_predictors, training_presence
 from screener.models.ellipsoid import EllipsoidNiche
 from screener.models.envelope import EnvelopeNiche
 from screener.models.forest import DownsampledForest
-from screener.models.point_process import PointProcessNiche, default_feature_classes
+from screener.models.point_process import DEFAULT_TERMS, TERM_SETS, PointProcessNiche
 
 __all__ = [
     "FAMILIES",
@@ -22,12 +22,14 @@ __all__ = [
     "fit_taxon_models",
     "training_presence_scores",
     "accepts_random_state",
+    "accepts_groups",
     "NicheModel",
     "EllipsoidNiche",
     "EnvelopeNiche",
     "DownsampledForest",
     "PointProcessNiche",
-    "default_feature_classes",
+    "TERM_SETS",
+    "DEFAULT_TERMS",
     "check_predictors",
 ]
 
@@ -46,6 +48,13 @@ DEFAULT_FAMILY = "ellipsoid"
 def accepts_random_state(family: str) -> bool:
     """True when the family's constructor takes ``random_state``."""
     return "random_state" in _family_class(family)._get_param_names()
+
+
+def accepts_groups(family: str) -> bool:
+    """True when the family's ``fit`` takes ``groups`` (block labels of the records)."""
+    import inspect
+
+    return "groups" in inspect.signature(_family_class(family).fit).parameters
 
 
 def _family_class(family: str) -> type:
@@ -88,9 +97,10 @@ def make_model(family: str, **params) -> NicheModel:
 ellipsoid, envelope, forest, ppm. Did you mean 'ellipsoid'?
     """
     cls = _family_class(family)
-    valid = cls._get_param_names()
+    deprecated = getattr(cls, "deprecated_params", {})
+    valid = [v for v in cls._get_param_names() if v not in deprecated]
     for name in params:
-        if name not in valid:
+        if name not in valid and name not in deprecated:
             raise InputError(
                 f"Model family {family!r} has no parameter {name!r}; its parameters "
                 f"are {', '.join(valid) or '(none)'}.{suggest(name, valid)}"

@@ -1,150 +1,201 @@
-"""Maximum-entropy density / Poisson point-process model ("ppm").
+"""Poisson point-process niche model (family ``"ppm"``).
 
-Fitted as L1-penalised logistic regression of presences (weight 1) against heavily
-weighted background rows, which converges on the Poisson point-process fit as the
-background weight grows.  Features are built from predictors standardised on the
-background: linear (L), quadratic (Q), pairwise product (P), hinge (H) and threshold (T).
+The intensity of records over the study area is modelled as ``exp(eta(x))``, with
+``eta`` a sum of terms of the predictors (linear, quadratic, pairwise interaction, hinge
+and step terms) under an L1 penalty.  The fit is a background-weighted logistic
+regression, which converges on the Poisson point-process likelihood as the background
+weight grows (Renner & Warton 2013; Fithian & Hastie 2013).  How strong the penalty
+is, and so how many terms survive, is chosen along a penalty path by the held-out,
+block-wise log-likelihood of the records (see :class:`PointProcessNiche`).
 """
 
 from __future__ import annotations
 
 import logging
 import math
+import warnings
 
 import numpy as np
 from scipy.special import logsumexp
+from sklearn.cluster import KMeans
 from sklearn.linear_model import LogisticRegression
+from sklearn.model_selection import GroupKFold
 from sklearn.utils.validation import check_is_fitted
+from threadpoolctl import threadpool_limits
 
-from screener.errors import InputError
+from screener.errors import InputError, ScreenerWarning, suggest
 from screener.models.base import NicheModel, check_predictors
 
-__all__ = ["PointProcessNiche", "default_feature_classes", "FEATURE_CLASSES"]
+__all__ = ["PointProcessNiche", "TERM_SETS", "DEFAULT_TERMS", "normalise_terms"]
 
 log = logging.getLogger(__name__)
 
-#: The feature-class letters, in the order features are built.
-FEATURE_CLASSES = "LQPHT"
+#: Term sets, in the order their columns are built.
+TERM_SETS = ("linear", "quadratic", "interaction", "hinge", "step")
 
-#: Nested feature sets tried by ``feature_classes="auto"``, simplest first.
-_NESTED_SETS = ("L", "LQ", "LQH", "LQPHT")
+#: Term sets used when none are given: smooth one-humped responses (linear +
+#: quadratic) plus hinges for asymmetric ones; the penalty path decides what is kept.
+DEFAULT_TERMS = ("linear", "quadratic", "hinge")
 
-#: Penalty per standardised coefficient at multiplier 1, per presence, times 1/sqrt(n).
-#: The published per-class values run from about 0.05 to 1 (hinge 0.5, threshold 1-2);
-#: 0.5 is our single mid value, since every feature is standardised on the background.
-_BASE_PENALTY = 0.5
+#: Penalties on the path: this many values from just below the smallest penalty
+#: that zeroes every term down to ``_PATH_DEPTH`` times that value.
+_PATH_DEPTH = 1e-2
+
+#: The path stops when the held-out likelihood has not improved for this many steps.
+_PATIENCE = 2
+
+#: Background rows used by the held-out fits along the path (a random subset, weighted
+#: up to the whole background's weight; fit time grows with rows).  The held-out
+#: density is still normalised over the whole background, and the final fit uses it all.
+_PATH_BACKGROUND = 1000
+
+#: Solver tolerance of the held-out fits along the path (the final fit uses 1e-6).
+_PATH_TOL = 1e-5
+
+#: Letter codes of the deprecated ``feature_classes`` setting -> term sets.
+_LEGACY_LETTERS = {"L": "linear", "Q": "quadratic", "P": "interaction", "H": "hinge",
+                   "T": "step"}
+#: Penalty per presence at multiplier 1 and n = 1 in the deprecated ``regularization``
+#: setting (multiplier m -> l1_penalty = m * 0.5 / sqrt(n)).
+_LEGACY_BASE = 0.5
 
 
-def default_feature_classes(n_presence: int) -> str:
-    """Feature classes for a sample size, as published (Phillips & Dudik 2008).
-
-    ``n < 10``: L; ``10-14``: LQ; ``15-79``: LQH; ``80+``: LQPHT.
+def normalise_terms(terms) -> tuple[str, ...]:
+    """Term-set names in build order, from a sequence or a ``"+"``-joined string.
 
     Examples
     --------
-    >>> [default_feature_classes(n) for n in (5, 10, 15, 79, 80)]
-    ['L', 'LQ', 'LQH', 'LQH', 'LQPHT']
+    >>> normalise_terms(["hinge", "linear"])
+    ('linear', 'hinge')
+    >>> normalise_terms("linear+quadratic")
+    ('linear', 'quadratic')
     """
-    if n_presence < 10:
-        return "L"
-    if n_presence < 15:
-        return "LQ"
-    if n_presence < 80:
-        return "LQH"
-    return "LQPHT"
+    if isinstance(terms, str):
+        names = [t.strip().lower() for t in terms.split("+")]
+    else:
+        try:
+            names = [str(t).strip().lower() for t in terms]
+        except TypeError:
+            names = [repr(terms)]
+    for name in names:
+        if name not in TERM_SETS:
+            raise InputError(
+                f"terms: {name!r} is not a term set; use one or more of "
+                f"{', '.join(TERM_SETS)}, e.g. terms = [\"linear\", \"quadratic\"]."
+                + suggest(name, TERM_SETS)
+            )
+    if not names:
+        raise InputError(f"terms is empty; use one or more of {', '.join(TERM_SETS)}.")
+    return tuple(t for t in TERM_SETS if t in names)
 
 
-def _normalise_classes(fc: str) -> str:
-    letters = str(fc).upper()
-    bad = sorted(set(letters) - set(FEATURE_CLASSES))
-    if bad or not letters:
+def _terms_from_letters(code) -> tuple[str, ...]:
+    """Term sets for a deprecated letter code ("auto" -> :data:`DEFAULT_TERMS`)."""
+    text = str(code).strip()
+    if text.lower() == "auto":
+        return DEFAULT_TERMS
+    bad = sorted(set(text.upper()) - set(_LEGACY_LETTERS))
+    if bad or not text:
         raise InputError(
-            f"feature_classes={fc!r} is not a set of feature-class letters; use any of "
-            f"{'/'.join(FEATURE_CLASSES)} (linear, quadratic, product, hinge, threshold), "
-            "e.g. 'LQH', or 'auto'."
+            f"feature_classes={code!r} (deprecated) is not a letter code; use "
+            f"terms = [...] with names from {', '.join(TERM_SETS)}."
         )
-    return "".join(c for c in FEATURE_CLASSES if c in letters)
+    return normalise_terms([_LEGACY_LETTERS[c] for c in text.upper()])
 
 
-class _FeatureSpace:
-    """Feature columns of one feature set over standardised predictors ``z``."""
+class _TermSpace:
+    """Term columns of the chosen term sets over standardised predictors ``z``."""
 
-    def __init__(self, classes: str, knots: list[np.ndarray], p: int):
-        self.classes = classes
+    def __init__(self, terms: tuple, knots: list[np.ndarray], p: int):
+        self.terms = terms
         self.knots = knots
         self.p = p
-        cols = []  # (kind, j, k_or_knot)
-        if "L" in classes:
-            cols += [("L", j, None) for j in range(p)]
-        if "Q" in classes:
-            cols += [("Q", j, None) for j in range(p)]
-        if "P" in classes:
-            cols += [("P", j, k) for j in range(p) for k in range(j + 1, p)]
-        if "H" in classes:
+        cols = []  # (kind, j, other predictor or knot)
+        if "linear" in terms:
+            cols += [("linear", j, None) for j in range(p)]
+        if "quadratic" in terms:
+            cols += [("quadratic", j, None) for j in range(p)]
+        if "interaction" in terms:
+            cols += [("interaction", j, k) for j in range(p) for k in range(j + 1, p)]
+        if "hinge" in terms:
             for j in range(p):
-                cols += [("Hf", j, t) for t in knots[j]]
-                cols += [("Hr", j, t) for t in knots[j]]
-        if "T" in classes:
+                cols += [("hinge_up", j, t) for t in knots[j]]
+                cols += [("hinge_down", j, t) for t in knots[j]]
+        if "step" in terms:
             for j in range(p):
-                cols += [("T", j, t) for t in knots[j]]
+                cols += [("step", j, t) for t in knots[j]]
         self.columns = cols
 
     def build(self, z: np.ndarray) -> np.ndarray:
         out = np.empty((z.shape[0], len(self.columns)), dtype=np.float64)
         for i, (kind, j, a) in enumerate(self.columns):
             zj = z[:, j]
-            if kind == "L":
+            if kind == "linear":
                 out[:, i] = zj
-            elif kind == "Q":
+            elif kind == "quadratic":
                 out[:, i] = zj * zj
-            elif kind == "P":
+            elif kind == "interaction":
                 out[:, i] = zj * z[:, a]
-            elif kind == "Hf":
+            elif kind == "hinge_up":
                 out[:, i] = np.maximum(zj - a, 0.0)
-            elif kind == "Hr":
+            elif kind == "hinge_down":
                 out[:, i] = np.maximum(a - zj, 0.0)
-            else:  # "T"
+            else:  # "step"
                 out[:, i] = zj > a
         return out
 
 
 class PointProcessNiche(NicheModel):
-    """Maximum-entropy / Poisson point-process niche model (family ``"ppm"``).
+    """Poisson point-process niche model with an L1 penalty (family ``"ppm"``).
 
     Parameters
     ----------
-    feature_classes : str, default "auto"
-        Letters from ``"LQPHT"``, or ``"auto"``: try the nested sets L, LQ, LQH, LQPHT
-        up to the published default for the sample size (see
-        :func:`default_feature_classes`) and keep the best by AICc.
-    regularization : float or sequence of float, default (0.5, 1.0, 2.0, 4.0)
-        Regularisation multipliers tried (one value fixes it).  The L1 penalty on each
-        standardised feature coefficient is ``multiplier * 0.5 / sqrt(n)`` per presence.
+    terms : sequence of str, default ("linear", "quadratic", "hinge")
+        Term sets built from each predictor: any of ``"linear"``, ``"quadratic"``,
+        ``"interaction"`` (pairwise products), ``"hinge"`` (``max(z - t, 0)`` and
+        ``max(t - z, 0)`` at knots ``t``) and ``"step"`` (``z > t``).  A string joined
+        by ``"+"`` also works, e.g. ``"linear+quadratic"``.
+    l1_penalty : float, sequence of float or None, default None
+        L1 penalty per record on each standardised term coefficient.  ``None``: chosen
+        along a path of ``n_penalties`` values by the held-out log-likelihood (see
+        Notes); a sequence: chosen from those values the same way; a number: fixed.
+    n_penalties : int, default 8
+        Length of the penalty path when ``l1_penalty`` is None.
+    n_blocks : int, default 4
+        Blocks of records for the held-out likelihood (fewer when there are fewer
+        records or groups).
     background_weight : float, default 100.0
-        Weight of each background row relative to a presence in the logistic fit.
+        Weight of each background row relative to a record in the logistic fit.
     n_knots : int, default 10
-        Hinge and threshold knots per predictor, at background quantiles
+        Hinge and step knots per predictor, at background quantiles
         ``1/(n_knots+1), ..., n_knots/(n_knots+1)``.
     max_iter : int, default 1000
         Iteration limit of the liblinear solver.
     random_state : int, default 0
-        Seed of the solver's coordinate order (liblinear shuffles; ``None`` would make
-        fits irreproducible).
+        Seed of the solver's coordinate order and of the block assignment.
+    feature_classes, regularization : deprecated
+        Old names, accepted for one release with a :class:`ScreenerWarning`: a letter
+        code maps to ``terms`` (L linear, Q quadratic, P interaction, H hinge, T step;
+        "auto" to the default terms); a multiplier ``m`` (or several) maps to
+        ``l1_penalty = 0.5 m / sqrt(n)`` for ``n`` records.
 
     Attributes
     ----------
-    feature_classes_ : str
-        Feature classes of the selected model.
-    regularization_ : float
-        Regularisation multiplier of the selected model.
-    aicc_ : float
-        AICc of the selected model (inf when every candidate had ``k >= n - 1``).
+    terms_ : tuple of str
+        Term sets of the fitted model.
+    l1_penalty_ : float
+        Penalty of the fitted model.
     n_coefficients_ : int
-        Non-zero feature coefficients of the selected model (``k`` in AICc).
-    selection_ : list of dict
-        Every candidate: feature_classes, regularization, k, log_likelihood, aicc.
-    entropy_ : float
-        Entropy (nats) of the fitted density over the background rows.
+        Non-zero term coefficients of the fitted model.
+    heldout_log_likelihood_ : float
+        Mean held-out log-likelihood per record at the chosen penalty (NaN when the
+        penalty was fixed).
+    path_ : list of dict
+        Every penalty tried: ``l1_penalty``, ``heldout_log_likelihood`` (mean per
+        record), ``standard_error`` (over blocks) and ``n_coefficients`` (mean over
+        blocks); empty when the penalty was fixed.
+    n_blocks_ : int
+        Blocks used for the held-out likelihood (0 when the penalty was fixed).
     offset_ : float
         The constant ``c`` in the output ``1 - exp(-exp(eta + c))``.
     mean_, scale_ : ndarray of shape (p,)
@@ -153,36 +204,49 @@ class PointProcessNiche(NicheModel):
 
     Notes
     -----
-    *Fit.*  Presences (``y = 1``, weight 1) against background (``y = 0``, weight
-    ``background_weight``), L1-penalised logistic regression with the liblinear solver
-    (the intercept is scaled by 100 so that its penalty is negligible).  Each feature
-    column is standardised over the background; constant columns are dropped.
+    *Likelihood.*  Records (``y = 1``, weight 1) against background cells (``y = 0``,
+    weight ``background_weight``), L1-penalised logistic regression with scikit-learn's
+    liblinear solver (``l1_ratio=1``; the intercept is scaled by 100 so that its
+    penalty is negligible).  With heavy background weights this is the Poisson
+    point-process likelihood of the records, the background standing in for the
+    study area's cells [1]_ [2]_.  Predictors are standardised on the background, and so
+    is every term column; constant columns are dropped.  The objective per record is
+    ``-(1/n) sum_i w_i log p_i + l1_penalty * sum_j |beta_j|``.
 
-    *Density and AICc.*  The fitted linear predictor ``eta`` (without intercept)
-    defines a density over the background, ``q(x) = exp(eta(x)) / sum_bg exp(eta)``;
-    the log-likelihood is ``sum over presences of log q``, ``k`` the number of non-zero
-    coefficients, ``AICc = 2k - 2 logL + 2k(k+1)/(n-k-1)`` (infinite when
-    ``k >= n - 1``).  The background stands in for the study area's cells in the
-    normalisation.
+    *Choosing the penalty (our procedure).*  The path runs from just below
+    ``lambda_max``, the smallest penalty that keeps every coefficient at zero
+    (the largest absolute score of the penalised objective at zero, per record),
+    down to ``0.01 lambda_max`` in equal log steps.  The records are split into
+    blocks: the ``groups`` passed to :meth:`fit` (e.g. spatial blocks), or else
+    k-means clusters of their standardised predictor values, so that a block holds
+    records of one part of environmental space (neighbouring records share
+    environments).  Each block is left out in turn; the model is fitted to the other
+    records and the whole background at every penalty, and the left-out records are
+    scored by their log density ``eta(x) - log sum_bg exp(eta)``.  The chosen penalty
+    has the highest mean held-out log-likelihood per record; then the model is refitted
+    to every record at that penalty.  Leaving out whole blocks asks the model to
+    predict into environments it did not see, which favours the simpler fits that
+    transfer.
 
-    *Output.*  Complementary log-log: ``1 - exp(-exp(eta + c))`` with
-    ``c = H - log sum_bg exp(eta)``, ``H`` the entropy of ``q`` over the background,
-    i.e. ``1 - exp(-exp(H) q(x))``, as published for the cloglog output.
+    *Output.*  The complementary log-log link [3]_ turns the log intensity into a
+    probability of at least one occurrence per cell: ``1 - exp(-exp(eta + c))``.
+    Presence-only data cannot fix the absolute intensity, so ``c`` sets a reference
+    level of our choosing: ``c = -mean(eta)`` over the training records, so a cell as
+    suitable as the typical record (in log intensity) scores ``1 - 1/e = 0.63``.
 
     References
     ----------
-    .. [1] Phillips, S. J., Anderson, R. P. & Schapire, R. E. (2006). Maximum entropy
-       modeling of species geographic distributions. Ecological Modelling 190:231-259.
-    .. [2] Phillips, S. J. & Dudik, M. (2008). Ecography 31:161-175 (feature classes,
-       regularisation by sample size).
-    .. [3] Renner, I. W. & Warton, D. I. (2013). Biometrics 69:274-281 (equivalence of
-       maximum-entropy and Poisson point-process models).
-    .. [4] Fithian, W. & Hastie, T. (2013). Finite-sample equivalence in statistical
+    .. [1] Renner, I. W. & Warton, D. I. (2013). Biometrics 69:274-281 (the
+       background-weighted fit as a Poisson point-process model).
+    .. [2] Fithian, W. & Hastie, T. (2013). Finite-sample equivalence in statistical
        models for presence-only data. Annals of Applied Statistics 7:1917-1939.
-    .. [5] Warren, D. L. & Seifert, S. N. (2011). Ecological Applications 21:335-342
-       (model complexity and selection by AICc).
-    .. [6] Phillips, S. J. et al. (2017). Ecography 40:887-893 (the complementary
-       log-log output).
+    .. [3] Phillips, S. J. et al. (2017). Ecography 40:887-893 (the complementary
+       log-log link for presence-only intensity models).
+    .. [4] Tibshirani, R. (1996). Regression shrinkage and selection via the lasso.
+       Journal of the Royal Statistical Society B 58:267-288 (the L1 penalty).
+    .. [5] Roberts, D. R. et al. (2017). Cross-validation strategies for data with
+       temporal, spatial, hierarchical, or phylogenetic structure. Ecography
+       40:913-929 (blocked cross-validation).
     """
 
     accepts_invalid_rows = True
@@ -190,60 +254,109 @@ class PointProcessNiche(NicheModel):
     def __init__(
         self,
         *,
-        feature_classes="auto",
-        regularization=(0.5, 1.0, 2.0, 4.0),
+        terms=DEFAULT_TERMS,
+        l1_penalty=None,
+        n_penalties: int = 8,
+        n_blocks: int = 4,
         background_weight: float = 100.0,
         n_knots: int = 10,
         max_iter: int = 1000,
         random_state=0,
+        feature_classes=None,
+        regularization=None,
     ):
-        self.feature_classes = feature_classes
-        self.regularization = regularization
+        self.terms = terms
+        self.l1_penalty = l1_penalty
+        self.n_penalties = n_penalties
+        self.n_blocks = n_blocks
         self.background_weight = background_weight
         self.n_knots = n_knots
         self.max_iter = max_iter
         self.random_state = random_state
+        self.feature_classes = feature_classes
+        self.regularization = regularization
+
+    #: Deprecated parameter -> its replacement (accepted for one release).
+    deprecated_params = {"feature_classes": "terms", "regularization": "l1_penalty"}
+
+    # --- settings ---------------------------------------------------------------------
+    def _resolve(self, n: int):
+        """Term sets and penalty (None, a float or an array) after deprecations."""
+        terms = normalise_terms(self.terms)
+        if self.feature_classes is not None:
+            terms = _terms_from_letters(self.feature_classes)
+            warnings.warn(
+                f"[models.ppm] feature_classes = {self.feature_classes!r} is deprecated "
+                f"and will be removed in the next release; write terms = "
+                f"{list(terms)!r} instead (letters: L linear, Q quadratic, P interaction, "
+                "H hinge, T step; 'auto' is the default terms, whose complexity is now "
+                "chosen along the L1 penalty path).",
+                ScreenerWarning,
+                stacklevel=3,
+            )
+        penalty = self.l1_penalty
+        if self.regularization is not None:
+            mult = np.atleast_1d(np.asarray(self.regularization, dtype=float))
+            if mult.size == 0 or not np.all(np.isfinite(mult)) or np.any(mult <= 0):
+                raise InputError(
+                    f"regularization={self.regularization!r} (deprecated): use "
+                    "l1_penalty, a positive number, or leave it out."
+                )
+            lam = mult * _LEGACY_BASE / math.sqrt(n)
+            penalty = float(lam[0]) if lam.size == 1 else lam
+            warnings.warn(
+                f"[models.ppm] regularization = {self.regularization!r} is deprecated "
+                "and will be removed in the next release; write l1_penalty = "
+                f"{np.round(lam, 6).tolist()!r} for these {n} records (a multiplier m is "
+                "0.5 m / sqrt(n)), or leave it out to choose the penalty by held-out "
+                "likelihood.",
+                ScreenerWarning,
+                stacklevel=3,
+            )
+        if penalty is not None and not np.isscalar(penalty):
+            penalty = np.asarray(penalty, dtype=float).ravel()
+            if penalty.size == 1:
+                penalty = float(penalty[0])
+        if penalty is not None:
+            vals = np.atleast_1d(np.asarray(penalty, dtype=float))
+            if vals.size == 0 or not np.all(np.isfinite(vals)) or np.any(vals <= 0):
+                raise InputError(
+                    f"l1_penalty={self.l1_penalty!r}: use a positive number, several "
+                    "(chosen by held-out likelihood), or leave it out (a path)."
+                )
+        if self.background_weight <= 0 or self.n_knots < 1:
+            raise InputError(
+                "background_weight must be > 0 and n_knots >= 1; got "
+                f"{self.background_weight!r} and {self.n_knots!r}."
+            )
+        if self.n_penalties < 2 or self.n_blocks < 2:
+            raise InputError(
+                "n_penalties and n_blocks must be at least 2; got "
+                f"{self.n_penalties!r} and {self.n_blocks!r}."
+            )
+        return terms, penalty
 
     # --- fitting ----------------------------------------------------------------------
-    def _candidates(self, n: int):
-        if (
-            isinstance(self.feature_classes, str)
-            and self.feature_classes.lower() == "auto"
-        ):
-            top = default_feature_classes(n)
-            sets = list(_NESTED_SETS[: _NESTED_SETS.index(top) + 1])
-        else:
-            sets = [_normalise_classes(self.feature_classes)]
-        regs = np.atleast_1d(np.asarray(self.regularization, dtype=float))
-        if regs.size == 0 or not np.all(np.isfinite(regs)) or np.any(regs <= 0):
-            raise InputError(
-                f"regularization={self.regularization!r}: use one or more positive "
-                "multipliers, e.g. 1.0 or (0.5, 1, 2, 4)."
-            )
-        return sets, [float(r) for r in regs]
-
-    def fit(self, presence, background):
-        """Fit every candidate feature set x multiplier and keep the lowest AICc.
+    def fit(self, presence, background, *, groups=None):
+        """Fit along the penalty path, choose the penalty, refit to every record.
 
         Parameters
         ----------
         presence : array_like of shape (n, p)
         background : array_like of shape (m, p)
+        groups : array_like of shape (n,), optional
+            Block label of each record for the held-out likelihood (e.g. a spatial
+            block).  Default: k-means clusters of the records' predictor values.
 
         Returns
         -------
         self
         """
         presence, background = self._check_fit_inputs(presence, background)
-        if self.background_weight <= 0 or self.n_knots < 1:
-            raise InputError(
-                "background_weight must be > 0 and n_knots >= 1; got "
-                f"{self.background_weight!r} and {self.n_knots!r}."
-            )
         presence = presence.astype(np.float64)
         background = background.astype(np.float64)
         n, p = presence.shape
-        sets, regs = self._candidates(n)
+        terms, penalty = self._resolve(n)
         mean = background.mean(axis=0)
         scale = background.std(axis=0)
         scale = np.where(scale > 0, scale, 1.0)
@@ -251,90 +364,130 @@ class PointProcessNiche(NicheModel):
         zb = (background - mean) / scale
         levels = np.arange(1, self.n_knots + 1) / (self.n_knots + 1)
         knots = [np.unique(np.quantile(zb[:, j], levels)) for j in range(p)]
-
-        y = np.r_[np.ones(n), np.zeros(zb.shape[0])]
-        w = np.r_[np.ones(n), np.full(zb.shape[0], float(self.background_weight))]
-        fits = []
-        for fc in sets:
-            space = _FeatureSpace(fc, knots, p)
-            F = np.vstack([space.build(zp), space.build(zb)])
-            fs = F[n:].std(axis=0)
-            keep = fs > 1e-12
-            if not np.any(keep):
-                continue
-            fs = fs[keep]
-            Fs = (F[:, keep] - F[n:, keep].mean(axis=0)) / fs
-            for reg in regs:
-                beta, loglik, k = self._fit_candidate(Fs, y, w, n, reg)
-                aicc = (
-                    2 * k - 2 * loglik + 2 * k * (k + 1) / (n - k - 1)
-                    if n - k - 1 > 0
-                    else math.inf
-                )
-                fits.append(
-                    {
-                        "feature_classes": fc,
-                        "regularization": reg,
-                        "k": k,
-                        "log_likelihood": loglik,
-                        "aicc": aicc,
-                        "_model": (space, keep, fs, beta),
-                    }
-                )
-        if not fits:
+        space = _TermSpace(terms, knots, p)
+        F = np.vstack([space.build(zp), space.build(zb)])
+        fs = F[n:].std(axis=0)
+        keep = fs > 1e-12
+        if not np.any(keep):
             raise InputError(
                 "Every predictor is constant over the background, so the point-process "
                 "model has nothing to fit; check the layers and the accessible area."
             )
-        finite = [f for f in fits if math.isfinite(f["aicc"])]
-        if finite:
-            # Lowest AICc; ties go to the simpler feature set, then the larger multiplier.
-            chosen = min(
-                finite,
-                key=lambda f: (
-                    f["aicc"],
-                    len(f["feature_classes"]),
-                    -f["regularization"],
-                ),
-            )
-        else:
-            # No candidate has k < n - 1, so AICc is undefined: keep the simplest set at
-            # the strongest regularisation.
-            chosen = min(
-                fits, key=lambda f: (len(f["feature_classes"]), -f["regularization"])
-            )
-            log.info(
-                "AICc undefined for every candidate (n=%d); using %s at %.3g",
-                n,
-                chosen["feature_classes"],
-                chosen["regularization"],
-            )
-        self._finish(*chosen["_model"], mean, scale, zb)
-        self.feature_classes_ = chosen["feature_classes"]
-        self.regularization_ = chosen["regularization"]
-        self.aicc_ = float(chosen["aicc"])
-        self.n_coefficients_ = chosen["k"]
-        self.selection_ = [{k: v for k, v in f.items() if k != "_model"} for f in fits]
+        fs = fs[keep]
+        Fs = (F[:, keep] - F[n:, keep].mean(axis=0)) / fs
+        y = np.r_[np.ones(n), np.zeros(zb.shape[0])]
+        w = np.r_[np.ones(n), np.full(zb.shape[0], float(self.background_weight))]
+
+        self.path_, self.n_blocks_ = [], 0
+        self.heldout_log_likelihood_ = math.nan
+        if penalty is None or not np.isscalar(penalty):
+            path = self._penalty_path(Fs, y, w, n) if penalty is None else penalty
+            blocks = self._blocks(zp, groups)
+            if blocks is None:
+                penalty = float(path[len(path) // 2])
+                log.info("ppm: %d record(s), too few to hold out; l1_penalty %.3g", n, penalty)
+            else:
+                penalty = self._choose(Fs, y, w, n, np.sort(path)[::-1], blocks)
+        beta = self._fit_one(Fs, y, w, n, float(penalty))
+        self._finish(space, keep, fs, beta, mean, scale, zb, zp)
+        self.terms_ = terms
+        self.l1_penalty_ = float(penalty)
+        self.n_coefficients_ = int(np.count_nonzero(beta))
         return self
 
-    def _fit_candidate(self, Fs, y, w, n, reg):
-        """One penalised fit: coefficients, presence log-likelihood, non-zero count."""
+    def _penalty_path(self, Fs, y, w, n):
+        """Penalties from just below ``lambda_max`` down to ``0.01 lambda_max``."""
+        p0 = np.sum(w * y) / np.sum(w)  # fitted probability of the intercept-only model
+        lam_max = float(np.max(np.abs(Fs.T @ (w * (p0 - y))))) / n
+        return np.geomspace(lam_max, lam_max * _PATH_DEPTH, self.n_penalties + 1)[1:]
+
+    def _blocks(self, zp, groups):
+        """Block label per record, or None when fewer than 2 blocks can be formed."""
+        n = zp.shape[0]
+        if groups is not None:
+            groups = np.asarray(groups)
+            if groups.shape != (n,):
+                raise InputError(
+                    f"groups has shape {groups.shape}; give one block label per record "
+                    f"({n})."
+                )
+            labels = np.unique(groups, return_inverse=True)[1]
+            k = min(self.n_blocks, int(labels.max()) + 1)
+            if k < 2:
+                return None
+            folds = np.empty(n, dtype=np.intp)
+            for f, (_, test) in enumerate(GroupKFold(n_splits=k).split(zp, groups=labels)):
+                folds[test] = f
+            return folds
+        k = min(self.n_blocks, n)
+        if k < 2:
+            return None
+        rng = np.random.default_rng(self.random_state)
+        return rng.permutation(np.arange(n) % k)
+
+    def _choose(self, Fs, y, w, n, path, blocks):
+        """Penalty with the highest mean held-out log-likelihood per record.
+
+        The path runs from strong to weak penalties and stops once the held-out
+        likelihood has fallen for ``_PATIENCE`` penalties in a row below its best.
+        """
+        bg = np.arange(n, Fs.shape[0])
+        sub = bg
+        wb = w.copy()
+        if bg.size > _PATH_BACKGROUND:
+            rng = np.random.default_rng(self.random_state)
+            sub = np.sort(rng.choice(bg, _PATH_BACKGROUND, replace=False))
+            wb[bg] *= bg.size / _PATH_BACKGROUND
+        ids = np.unique(blocks)
+        splits = []
+        for block in ids:
+            test = np.flatnonzero(blocks == block)
+            rows = np.r_[np.flatnonzero(blocks != block), sub]
+            splits.append((test, rows, rows.size - sub.size))
+        self.path_ = []
+        best, best_ll, since_best = None, -math.inf, 0
+        for lam in path:
+            ll = np.zeros(n)
+            nnz = []
+            for test, rows, n_train in splits:
+                beta = self._fit_one(Fs[rows], y[rows], wb[rows], n_train, lam, tol=_PATH_TOL)
+                nnz.append(np.count_nonzero(beta))
+                ll[test] = Fs[test] @ beta - logsumexp(Fs[bg] @ beta)
+            per_block = np.array([ll[blocks == b].mean() for b in ids])
+            mean_ll = float(ll.mean())
+            self.path_.append(
+                {
+                    "l1_penalty": float(lam),
+                    "heldout_log_likelihood": mean_ll,
+                    "standard_error": float(per_block.std(ddof=1) / math.sqrt(len(ids))),
+                    "n_coefficients": float(np.mean(nnz)),
+                }
+            )
+            if mean_ll > best_ll:  # ties keep the stronger penalty
+                best, best_ll, since_best = float(lam), mean_ll, 0
+            else:
+                since_best += 1
+                if since_best >= _PATIENCE:
+                    break
+        self.n_blocks_ = len(ids)
+        self.heldout_log_likelihood_ = best_ll
+        return best
+
+    def _fit_one(self, Fs, y, w, n, lam, tol=1e-6):
+        """One penalised fit at penalty ``lam`` per record; the term coefficients."""
         clf = LogisticRegression(
             l1_ratio=1.0,
             solver="liblinear",
-            C=1.0 / (reg * _BASE_PENALTY * math.sqrt(n)),
+            C=1.0 / (lam * n),
             intercept_scaling=100.0,
             max_iter=self.max_iter,
-            tol=1e-6,
+            tol=tol,
             random_state=self.random_state,
         )
         clf.fit(Fs, y, sample_weight=w)
-        beta = clf.coef_[0].copy()
-        eta = Fs @ beta
-        loglik = float((eta[:n] - logsumexp(eta[n:])).sum())
-        return beta, loglik, int(np.count_nonzero(beta))
+        return clf.coef_[0].copy()
 
-    def _finish(self, space, keep, fs, beta, mean, scale, zb):
+    def _finish(self, space, keep, fs, beta, mean, scale, zb, zp):
         """Compile the selected coefficients into a fast per-predictor form."""
         p = space.p
         lin = np.zeros(p)
@@ -345,11 +498,11 @@ class PointProcessNiche(NicheModel):
         for (kind, j, a), c in zip(cols, raw, strict=True):
             if c == 0:
                 continue
-            if kind == "L":
+            if kind == "linear":
                 lin[j] += c
-            elif kind == "Q":
+            elif kind == "quadratic":
                 quad[j, j] += c
-            elif kind == "P":
+            elif kind == "interaction":
                 quad[j, a] += c
             else:
                 pieces.setdefault(j, []).append((kind, a, c))
@@ -361,15 +514,15 @@ class PointProcessNiche(NicheModel):
             seg = np.arange(kn.size + 1)  # segment s: knots with index < s are < z
             for kind, a, c in items:
                 i = int(np.searchsorted(kn, a))
-                if kind == "Hf":  # c * max(z - a, 0), active when z > a
+                if kind == "hinge_up":  # c * max(z - a, 0), active when z > a
                     act = seg > i
                     slope[act] += c
                     off[act] -= c * a
-                elif kind == "Hr":  # c * max(a - z, 0), active when z <= a
+                elif kind == "hinge_down":  # c * max(a - z, 0), active when z <= a
                     act = seg <= i
                     slope[act] -= c
                     off[act] += c * a
-                else:  # threshold c * (z > a)
+                else:  # step c * (z > a)
                     off[seg > i] += c
             piecewise.append((j, kn, slope, off))
         self.mean_ = mean
@@ -405,11 +558,10 @@ class PointProcessNiche(NicheModel):
         self._c32_const = const
         eta_bg = self._eta64(zb)
         log_z = float(logsumexp(eta_bg))
-        q = np.exp(eta_bg - log_z)
-        entropy = float(-np.sum(q * (eta_bg - log_z)))
-        self.entropy_ = entropy
         self._c_log_norm = log_z
-        self.offset_ = entropy - log_z
+        # Reference level: the typical training record (mean log intensity) gets
+        # exp(eta + c) = 1, i.e. a score of 1 - 1/e.
+        self.offset_ = -float(np.mean(self._eta64(zp)))
         self.n_features_in_ = p
 
     # --- prediction -------------------------------------------------------------------
@@ -471,9 +623,11 @@ class PointProcessNiche(NicheModel):
         return self._eta(X.astype(np.float64)) - self._c_log_norm
 
     def selected_params(self) -> dict:
-        """Parameters that refit the selected model without re-running selection."""
+        """Parameters that refit the chosen model without choosing the penalty again."""
         check_is_fitted(self)
         return {
-            "feature_classes": self.feature_classes_,
-            "regularization": self.regularization_,
+            "terms": self.terms_,
+            "l1_penalty": self.l1_penalty_,
+            "feature_classes": None,
+            "regularization": None,
         }

@@ -30,8 +30,8 @@ from bench_scaling import N_LAYERS, make_grid  # noqa: E402
 
 ROOT = Path(__file__).resolve().parents[2]
 FAMILIES = [
-    ("ppm", {"feature_classes": "l"}),
-    ("ppm", {"feature_classes": "lqh"}),
+    ("ppm", {"terms": "linear"}),
+    ("ppm", {"terms": "linear+quadratic+hinge", "l1_penalty": 0.05}),
     ("ellipsoid", {}),
     ("envelope", {}),
 ]
@@ -73,7 +73,7 @@ def main():
                 for a in range(0, len(X), block):
                     model.predict(X[a : a + block], check_input=False, dtype=np.float32)
                 t_own.append(time.perf_counter() - t0)
-            name = family + (f" ({params['feature_classes']})" if params else "")
+            name = family + (f" ({params['terms']})" if params else "")
             rows.append((name, min(t_map), min(t_own)))
             print(f"{name:18s} predict_map {min(t_map):.3f} s, own predict {min(t_own):.3f} s",
                   flush=True)

@@ -149,9 +149,9 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
         from screener.pipeline import predict_map
 
         family, params = {
-            "predict_ppm": ("ppm", {"feature_classes": "l"}),
-            "predict_streamed": ("ppm", {"feature_classes": "l"}),
-            "predict_ppm_lqh": ("ppm", {"feature_classes": "lqh"}),
+            "predict_ppm": ("ppm", {"terms": "linear"}),
+            "predict_streamed": ("ppm", {"terms": "linear"}),
+            "predict_ppm_lqh": ("ppm", {"terms": "linear+quadratic+hinge", "l1_penalty": 0.05}),
             "predict_ellipsoid": ("ellipsoid", {}),
             "predict_envelope": ("envelope", {}),
             "novelty": ("ellipsoid", {}),
@@ -313,7 +313,7 @@ def replicate_speedup(repeats: int) -> dict:
                 lambda ex=ex: equivalency_test(space, n_replicates=1000, random_state=0,
                                                executor=ex), repeats)
             out[f"null-model ppm-99, {kind}-{n}"] = timed(
-                lambda ex=ex: null_model_test("ppm", {"feature_classes": "lq"}, pres, bg,
+                lambda ex=ex: null_model_test("ppm", {"terms": "linear+quadratic"}, pres, bg,
                                               None, observed_auc=0.9, n_null=99,
                                               random_state=0, map_fn=ex.map), repeats)
     return out
