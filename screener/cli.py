@@ -191,7 +191,7 @@ def _print_summary(result, out):
         click.echo("Top sites (hypotheses for survey, not proof of presence):")
         for _, row in sites.head(5).iterrows():
             click.echo(
-                f"  #{int(row['rank'])} site {int(row['site_id'])}: {row['kind']}, "
+                f"  {row['site_id']}: {row['kind']}, "
                 f"{row['area_km2']:.1f} km2, nearest {row['nearest_taxon']}, "
                 f"gap {row['gap_km']:.1f} km, score {row['score']:.2f}"
             )

@@ -325,7 +325,8 @@ class CandidateSet:
     sites : pandas.DataFrame
         One row per site (columns listed in :func:`find_candidates`).
     patch_labels : ndarray of int32, shape (n_rows, n_cols)
-        ``site_id`` on a site's cells, ``-range_id`` on known-range patches at the MTP
+        ``site_id`` on a site's cells (the site's rank after
+        :meth:`with_site_ids`), ``-range_id`` on known-range patches at the MTP
         thresholds, 0 elsewhere.
     paths : dict of int to ndarray (n, 2)
         Least-cost path (row, col) per site, from the site's cheapest cell to the
@@ -353,6 +354,29 @@ class CandidateSet:
     relaxed_thresholds: dict | None = None
     #: messages for the reader about the run (e.g. a ``min_gap_km`` below two cells)
     warnings: tuple = ()
+
+    def with_site_ids(self, numbers: dict, ids: dict) -> CandidateSet:
+        """The same set under the plan's identifiers.
+
+        Parameters
+        ----------
+        numbers : dict of int to int
+            Site number (``site_id`` as found) to its rank; ``patch_labels`` then holds
+            the rank on each site's cells (sites not in the plan become 0).
+        ids : dict of int to str
+            Site number to its identifier (``S01``), for ``sites`` and ``paths``.
+        """
+        n = int(self.patch_labels.max()) if self.patch_labels.size else 0
+        lut = np.zeros(max(n, 0) + 1, dtype=np.int32)
+        for k, v in numbers.items():
+            if 0 < int(k) <= n:
+                lut[int(k)] = int(v)
+        lab = self.patch_labels
+        out = np.where(lab > 0, lut[np.clip(lab, 0, None)], lab).astype(np.int32)
+        sites = self.sites[self.sites["site_id"].isin(list(ids))].copy()
+        sites["site_id"] = sites["site_id"].map(ids).astype(object)
+        paths = {ids[k]: v for k, v in self.paths.items() if k in ids}
+        return replace(self, sites=sites, patch_labels=out, paths=paths)
 
 
 @dataclass

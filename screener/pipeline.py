@@ -884,6 +884,17 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
 
     gdf = gpd.GeoDataFrame(gdf, geometry="geometry", crs=grid.pyproj_crs)
     paths = paths_geodataframe(grid, cand)
+    # one identifier per site, by rank (S01 = rank 1), and a key from its location
+    from screener.ranking import site_ids, site_keys
+
+    found = gdf["site_id"].astype(int).tolist()
+    ids = dict(zip(found, site_ids(gdf["rank"]), strict=True))
+    cand = cand.with_site_ids(dict(zip(found, gdf["rank"].astype(int), strict=True)), ids)
+    gdf["site_id"] = [ids[k] for k in found]
+    gdf.insert(gdf.columns.get_loc("site_id") + 1, "site_key",
+               site_keys(gdf["longitude"], gdf["latitude"]))
+    paths = paths[paths["site_id"].isin(found)].copy()
+    paths["site_id"] = paths["site_id"].map(ids).astype(object)
     return {
         "sites": gdf,
         "paths": paths,
@@ -1258,11 +1269,11 @@ def _add_sampling_points(result: RunResult) -> None:
     clade = clade_suitability({n: t.suitability for n, t in result.taxa.items()})
     frames = []
     for _, site in result.sites.head(top).iterrows():
-        site_mask = cand.patch_labels == int(site["site_id"])
+        site_mask = cand.patch_labels == int(site["rank"])
         if not site_mask.any():
             continue
         pts = suggest_sampling_points(result.grid, site_mask, clade, n=n_pts)
-        pts["site_id"] = int(site["site_id"])
+        pts["site_id"] = site["site_id"]
         frames.append(pts)
     if frames:
         result.sampling_points = pd.concat(frames, ignore_index=True)

@@ -52,6 +52,8 @@ __all__ = [
     "component_scores",
     "group_sites",
     "rank_sites",
+    "site_ids",
+    "site_keys",
     "survey_distance_km",
 ]
 
@@ -186,8 +188,11 @@ def rank_sites(
     DataFrame
         Sorted best first, adding ``score``, ``rank`` (1 = best; ties broken by
         ``site_id``), ``score_<component>`` (weighted contributions that sum to
-        ``score``) and ``rank_robustness`` (share of draws in which the site is in the
-        top ``top_k``).
+        ``score``), ``rank_low`` and ``rank_high`` (the 5th and 95th percentiles of
+        the site's rank over the weight draws: 90 % of random weightings rank it
+        within them) and ``rank_robustness`` (share of draws in which the site is in
+        the top ``top_k``; NaN when there are no more sites than ``top_k``, where
+        every site is in the top k whatever the weights and the share says nothing).
 
     """
     w = dict(DEFAULT_WEIGHTS)
@@ -243,10 +248,59 @@ def rank_sites(
         S = W @ C.T  # (n_draws, n_sites); sites are in site_id order
         # stable argsort on -score keeps site_id order among ties
         ranks = np.argsort(np.argsort(-S, axis=1, kind="stable"), axis=1, kind="stable")
-        df["rank_robustness"] = (ranks < top_k).mean(axis=0)
+        lo, hi = np.percentile(ranks + 1, [5, 95], axis=0, method="inverted_cdf")
+        df["rank_low"], df["rank_high"] = lo.astype(np.int64), hi.astype(np.int64)
+        if len(df) > top_k:
+            df["rank_robustness"] = (ranks < top_k).mean(axis=0)
+        else:
+            log.info(
+                "%d sites, top_k = %d: every site is in the top k, so rank_robustness "
+                "is left empty; see rank_low / rank_high", len(df), top_k,
+            )
+            df["rank_robustness"] = np.nan
     else:
+        df["rank_low"] = df["rank_high"] = np.nan
         df["rank_robustness"] = np.nan
     return df.sort_values("rank").reset_index(drop=True)
+
+
+def site_ids(ranks) -> list:
+    """The one identifier of each site: ``S`` and its rank, zero-padded (``S01``).
+
+    Used in ``candidates.csv``, on the console, on maps, sheets, GPX names, the report
+    and in debrief, so that a field team never meets two names for one place.
+
+    Examples
+    --------
+    >>> site_ids([1, 2, 10])
+    ['S01', 'S02', 'S10']
+    """
+    r = [int(v) for v in ranks]
+    width = max(2, len(str(max(r)))) if r else 2
+    return [f"S{v:0{width}d}" for v in r]
+
+
+def site_keys(lon, lat) -> list:
+    """A key derived from a site's location, to match the same place across runs.
+
+    The 0.01-degree cell (about 1 km) of the site's representative (most suitable)
+    cell, written as latitude then longitude with hemisphere letters.  Two runs on the
+    same layers that find the same best cell give the same key whatever the ranks;
+    ``site_id`` follows the rank and changes with the weights.
+
+    Examples
+    --------
+    >>> site_keys([85.104], [-14.7])
+    ['14.70S085.10E']
+    """
+    out = []
+    for x, y in zip(np.atleast_1d(lon), np.atleast_1d(lat), strict=True):
+        x = float(np.round(float(x), 2)) + 0.0  # no "-0.00"
+        y = float(np.round(float(y), 2)) + 0.0
+        out.append(
+            f"{abs(y):05.2f}{'N' if y >= 0 else 'S'}{abs(x):06.2f}{'E' if x >= 0 else 'W'}"
+        )
+    return out
 
 
 def group_sites(

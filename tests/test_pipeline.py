@@ -112,7 +112,12 @@ def test_rerun_from_cache_is_identical(demo_run, tmp_path):
 def test_debrief_scores_a_survey(demo_run, tmp_path):
     project, out, _ = demo_run
     cand = pd.read_csv(out / "candidates.csv")
-    first = int(cand.iloc[0]["site_id"])
+    first = cand.iloc[0]["site_id"]
+    # one identifier per site, by rank, and a key from its location
+    assert first == "S01" and cand["site_id"].tolist() == [
+        f"S{r:02d}" for r in cand["rank"]
+    ]
+    assert cand["site_key"].is_unique
     field = tmp_path / "field.csv"
     field.write_text(
         "site_id,longitude,latitude,date,taxon,outcome,effort_hours\n"

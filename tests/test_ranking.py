@@ -38,6 +38,13 @@ def test_score_is_weighted_sum_and_order():
     assert r["rank_robustness"].iloc[0] == 1.0
     # site 2 is worst on all but access: never in the top 1
     assert r.set_index("site_id").loc[2, "rank_robustness"] == 0.0
+    # rank interval over the draws: the dominant site is first under every weighting
+    one = r.set_index("site_id").loc[1]
+    assert one["rank_low"] == one["rank_high"] == 1
+    assert (r["rank_low"] <= r["rank_high"]).all() and r["rank_high"].max() <= 4
+    # no more sites than top_k: the share in the top k is 1 for all and says nothing
+    few = rank_sites(table(), top_k=4, n_draws=100)
+    assert few["rank_robustness"].isna().all() and few["rank_low"].notna().all()
     # suitability component is the mean suitability itself, times its weight
     w = np.array(list(DEFAULT_WEIGHTS.values()))
     assert_allclose(

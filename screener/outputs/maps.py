@@ -729,11 +729,11 @@ def _draw_sites(ax, sites, *, label=True, fontsize=8):
             )
         )
     if label:
-        for rank, x, y in zip(sites["rank"], sites["x"], sites["y"], strict=True):
+        for sid, x, y in zip(sites["site_id"], sites["x"], sites["y"], strict=True):
             ax.text(
                 x,
                 y,
-                str(int(rank)),
+                str(sid),
                 ha="center",
                 va="center",
                 fontsize=fontsize,
@@ -746,7 +746,7 @@ def _draw_sites(ax, sites, *, label=True, fontsize=8):
 
 
 def plot_sites(result, *, ax=None, top_n: int | None = None, caption: bool = True):
-    """Map the ranked sites, numbered by rank, on a hillshade of the terrain."""
+    """Map the ranked sites, labelled by site id (S01 = rank 1), on a hillshade."""
     ax = _prepare(ax)
     grid = result.grid
     what = _background(ax, result)
@@ -758,7 +758,8 @@ def plot_sites(result, *, ax=None, top_n: int | None = None, caption: bool = Tru
     n = 0 if sites is None else len(sites)
     text = (
         (
-            f"The {n} best-ranked candidate sites, numbered by rank, over the {what}. "
+            f"The {n} best-ranked candidate sites, labelled by site id (S01 = rank 1), "
+            f"over the {what}. "
             "Outline style gives the kind of site. Sites are survey hypotheses; check "
             "permits and access first."
         )

@@ -240,6 +240,10 @@ def _generalise_sites(sites, grid, g):
     lon_g, lat_g = generalise_coordinates(out["longitude"], out["latitude"], g)
     out["longitude"] = lon_g
     out["latitude"] = lat_g
+    if "site_key" in out:  # derived from the location: generalised with it
+        from screener.ranking import site_keys
+
+        out["site_key"] = site_keys(lon_g, lat_g)
     x, y = grid.from_lonlat(lon_g, lat_g)
     out["x"] = np.asarray(x, float)
     out["y"] = np.asarray(y, float)
