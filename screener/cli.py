@@ -193,7 +193,8 @@ def _print_summary(result, out):
             click.echo(
                 f"  {row['site_id']}: {row['kind']}, "
                 f"{row['area_km2']:.1f} km2, nearest {row['nearest_taxon']}, "
-                f"gap {row['gap_km']:.1f} km, score {row['score']:.2f}"
+                f"gap {row['gap_km']:.1f} km, score {row['score']:.2f}, "
+                f"{row.get('threshold_set', '')} thresholds ({row.get('stability', '')})"
             )
     else:
         click.echo("No candidate sites were found at these thresholds.")

@@ -857,6 +857,7 @@ def find_candidates(
     records: dict,
     *,
     relaxed_thresholds: dict | None = None,
+    threshold_names: tuple = ("mtp", "relaxed"),
     min_gap_km: float = MIN_GAP_KM,
     min_patch_km2: float = MIN_PATCH_KM2,
     within_range_min_km: float = WITHIN_RANGE_MIN_KM,
@@ -881,7 +882,12 @@ def find_candidates(
     records : dict of str to tuple (rows, cols)
         Record cells per taxon.
     relaxed_thresholds : dict of str to float, optional
-        A second, broader set; sites found only there are ``relaxed-only``.
+        A second set (usually broader); sites found only there are
+        ``<second name>-only``.
+    threshold_names : tuple of str, default ("mtp", "relaxed")
+        Names of ``thresholds`` and ``relaxed_thresholds``, written into the
+        ``threshold_set`` and ``stability`` columns (e.g. ``("relaxed", "mtp")``
+        when the relaxed thresholds define suitable cells and the MTP is the check).
     min_gap_km : float, default 5.0
         Gaps at least this long (km) make an unoccupied patch ``isolated``.
     min_patch_km2 : float, default 1.0
@@ -918,9 +924,11 @@ def find_candidates(
         nearest_taxon, gap_km, barrier_depth, path_km, nearest_record_km,
         between_ranges, stability, relaxed_block``.  ``row``/``col`` is the site's
         most suitable cell; ``mean_suitability`` is area-weighted; ``stability`` is
-        ``"both"`` (a candidate at both threshold sets), ``"mtp-only"``,
-        ``"relaxed-only"`` or ``"untested"`` (no relaxed thresholds);
-        ``relaxed_block`` is the patch holding the site at the relaxed thresholds
+        ``"both"`` (a candidate at both threshold sets), ``"<first>-only"``,
+        ``"<second>-only"`` (names from ``threshold_names``) or ``"untested"`` (no
+        second set); ``threshold_set`` names the set a site was found at;
+        ``relaxed_block`` is the patch holding the site at the broader of the two
+        sets (the relaxed thresholds unless told otherwise)
         (used by :func:`screener.ranking.group_sites`).
 
     Raises
@@ -1003,25 +1011,31 @@ def find_candidates(
         relaxed_in_mtp = _labels_touching(
             relaxed.site_cells, mtp.site_cells > 0, len(relaxed.rows)
         )
+    # blocks for grouping come from the broader of the two sets
+    p_name, s_name = threshold_names
+    block_labels = mtp.labels
+    if relaxed is not None and all(
+        relaxed_thresholds[t] <= thresholds[t] for t in taxa
+    ):
+        block_labels = relaxed.labels
     for rec in mtp.rows:
         if relaxed is None:
             stab = "untested"
-            block = int(mtp.labels[rec["row"], rec["col"]])
         else:
-            stab = "both" if mtp_in_relaxed[rec["_local"] - 1] else "mtp-only"
-            block = int(relaxed.labels[rec["row"], rec["col"]])
-        entries.append((rec, "mtp", stab, block, mtp.paths.get(rec["_local"])))
+            stab = "both" if mtp_in_relaxed[rec["_local"] - 1] else f"{p_name}-only"
+        block = int(block_labels[rec["row"], rec["col"]])
+        entries.append((rec, p_name, stab, block, mtp.paths.get(rec["_local"])))
     if relaxed is not None:
         for rec in relaxed.rows:
             if relaxed_in_mtp[rec["_local"] - 1]:
                 continue
-            block = int(relaxed.labels[rec["row"], rec["col"]])
+            block = int(block_labels[rec["row"], rec["col"]])
             entries.append(
-                (rec, "relaxed", "relaxed-only", block, relaxed.paths.get(rec["_local"]))
+                (rec, s_name, f"{s_name}-only", block, relaxed.paths.get(rec["_local"]))
             )
     entries.sort(
         key=lambda e: (
-            e[1] != "mtp",
+            e[1] != p_name,
             _KIND_ORDER[e[0]["kind"]],
             -e[0]["area_km2"],
             e[0]["row"],
@@ -1041,7 +1055,7 @@ def find_candidates(
             relaxed_block=block if block > 0 else -1,
         )
         rows.append(row)
-        (lut_mtp if tset == "mtp" else lut_relaxed)[rec["_local"]] = sid
+        (lut_mtp if tset == p_name else lut_relaxed)[rec["_local"]] = sid
         if path is not None:
             paths_out[sid] = path
     site_lab = lut_mtp[mtp.site_cells]

@@ -808,9 +808,9 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
     use = s.thresholds.use
     suit = {n: t.suitability for n, t in taxa.items()}
     th_main = {n: t.thresholds[use].value for n, t in taxa.items()}
-    th_relaxed = None
-    if use == "mtp":
-        th_relaxed = {n: t.thresholds["relaxed"].value for n, t in taxa.items()}
+    # stability is checked against the other set, whichever one is primary
+    other = "relaxed" if use == "mtp" else "mtp"
+    th_relaxed = {n: t.thresholds[other].value for n, t in taxa.items()}
     records = {n: (t.records.rows, t.records.cols) for n, t in taxa.items()}
     agreement = None
     ags = [t.agreement for t in taxa.values() if t.agreement is not None]
@@ -829,6 +829,7 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
         th_main,
         records,
         relaxed_thresholds=th_relaxed,
+        threshold_names=(use, other),
         min_gap_km=s.isolation.min_gap_km,
         min_patch_km2=s.isolation.min_patch_km2,
         within_range_min_km=s.isolation.within_range_min_km,

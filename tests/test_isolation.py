@@ -112,6 +112,23 @@ def test_within_range_and_relaxed_only_sites():
     assert p1["stability"].tolist() == ["both"]
 
 
+def test_threshold_sets_named_whichever_is_primary():
+    """Relaxed thresholds primary, MTP as the check: labels name the sets used."""
+    grid, s = strip_scene()
+    s[:, 11:14] = 0.45
+    cs = find_candidates(
+        grid, {"A": s}, {"A": 0.4}, {"A": ([2], [0])},
+        relaxed_thresholds={"A": 0.5}, threshold_names=("relaxed", "mtp"),
+        min_patch_km2=1.0, within_range_min_km=50.0,
+    )
+    by_col = cs.sites.set_index("col")
+    assert set(cs.sites["threshold_set"]) == {"relaxed"}
+    assert by_col.loc[5, "stability"] == "both"  # P1 passes both sets
+    assert by_col.loc[11, "stability"] == "relaxed-only"  # 0.45 < the MTP of 0.5
+    # grouping blocks come from the broader (here the primary) set
+    assert (cs.sites["relaxed_block"] > 0).all()
+
+
 def test_between_ranges_and_barrier():
     """A patch between two taxa's ranges is flagged; one far off the corridor is not."""
     s = np.full((9, 15), 0.2)
