@@ -580,6 +580,44 @@ def _site_stats(grid, sc: _SiteCells, clade, agreement, novelty, elevation):
     return stats, best.rowcol()
 
 
+def _taxon_fit(grid, sc: _SiteCells, suitability, thresholds, taxa) -> dict:
+    """Whose niche each site fits: per taxon, the site's area-weighted mean suitability
+    minus the taxon's threshold (``margin_<taxon>``; negative = below it);
+    ``suitable_for``: the taxa whose margin is >= 0, best first (the best-fitting
+    taxon alone when none reaches its threshold on average); ``niche_fit``: how far
+    into the niche of the taxon it fits best the site lies, ``margin / (1 -
+    threshold)`` clipped to [0, 1] (0 at the threshold, 1 fully suitable), the
+    suitability component of the ranking."""
+    n = sc.n
+    area = grid.cell_area_km2
+    a_sum = np.zeros(n)
+    s_sum = {t: np.zeros(n) for t in taxa}
+    for r0, r1, at, k in sc.bands():
+        a = sc.take(area, r0, r1, at).astype(np.float64)
+        a_sum += np.bincount(k, weights=a, minlength=n)
+        for t in taxa:
+            v = sc.take(suitability[t], r0, r1, at).astype(np.float64)
+            s_sum[t] += np.bincount(k, weights=np.where(np.isfinite(v), v, 0.0) * a,
+                                    minlength=n)
+    out = {}
+    depth = np.full(n, -np.inf)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        for t in taxa:
+            thr = float(thresholds[t])
+            out[f"margin_{t}"] = s_sum[t] / a_sum - thr
+            d = out[f"margin_{t}"] / (1.0 - thr) if thr < 1 else np.zeros(n)
+            depth = np.fmax(depth, np.nan_to_num(d, nan=-np.inf))
+    out["niche_fit"] = np.clip(depth, 0.0, 1.0)
+    m = np.column_stack([out[f"margin_{t}"] for t in taxa]) if n else np.zeros((0, 1))
+    fits = []
+    for i in range(n):
+        order = np.argsort(-np.nan_to_num(m[i], nan=-np.inf), kind="stable")
+        names = [taxa[j] for j in order if m[i, j] >= 0] or [taxa[order[0]]]
+        fits.append(",".join(names))
+    out["suitable_for"] = np.array(fits, dtype=object)
+    return out
+
+
 def _labels_touching(labels: np.ndarray, mask: np.ndarray, n: int) -> np.ndarray:
     """For labels 1..n: does any of the label's cells lie where ``mask`` is True?
     (a band of rows at a time)."""
@@ -694,6 +732,7 @@ def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *
 
     sc = _SiteCells(site_cells, n_sites)
     stats, best = _site_stats(grid, sc, clade, p["agreement"], p["novelty"], p["elevation"])
+    stats.update(_taxon_fit(grid, sc, suitability, thresholds, taxa))
     # One cost-distance run per taxon.  Per-site costs are reduced from the float64
     # surface; only a float32 copy and the solver's compact traceback are kept (5-6
     # bytes per cell per taxon, for paths, corridors and the all-range surface).
@@ -1095,6 +1134,11 @@ def find_candidates(
         + [f"cost_to_{t}" for t in taxa]
         + [
             "nearest_taxon",
+            "suitable_for",
+            "niche_fit",
+        ]
+        + [f"margin_{t}" for t in taxa]
+        + [
             "gap_km",
             "unsuitable_km",
             "stepping_stones",
@@ -1120,7 +1164,7 @@ def find_candidates(
         for c in ("x", "y", "longitude", "latitude"):
             sites[c] = pd.Series(dtype=float)
     sites = sites[cols]
-    for c in ("nearest_taxon",):
+    for c in ("nearest_taxon", "suitable_for"):
         sites[c] = sites[c].astype(object)
 
     ranges = pd.DataFrame(

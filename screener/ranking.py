@@ -6,7 +6,8 @@ worth a visit:
 ============  ====================================  =====================================
 component     from column                           direction and scaling
 ============  ====================================  =====================================
-suitability   ``mean_suitability``                  higher is better; used as is
+suitability   ``niche_fit`` (else                   higher is better; used as is
+              ``mean_suitability``)
 isolation     ``gap_km``                            longer gap is better;
                                                     ``log1p`` then min-max over the sites
 agreement     ``agreement``                         more model families agree; as is
@@ -128,7 +129,13 @@ def component_scores(sites: pd.DataFrame, surveys=None) -> pd.DataFrame:
         return sites[name].to_numpy(float) if name in sites else nan.copy()
 
     out = {}
-    out["suitability"] = np.clip(col("mean_suitability"), 0, 1)
+    # how far into the niche of the taxon it fits best (isolation.py), so that a site
+    # suitable only through one taxon's very low threshold does not rank as if its
+    # clade suitability meant the same for every taxon; mean suitability otherwise
+    fit = col("niche_fit")
+    out["suitability"] = np.clip(
+        fit if np.isfinite(fit).any() else col("mean_suitability"), 0, 1
+    )
     gap = col("gap_km")
     gap = np.where(np.isinf(gap), np.nan, gap)
     out["isolation"] = _minmax(np.log1p(gap))

@@ -129,6 +129,31 @@ def test_threshold_sets_named_whichever_is_primary():
     assert (cs.sites["relaxed_block"] > 0).all()
 
 
+def test_whose_niche_a_site_fits():
+    """A patch passes only through A's very low threshold: margins say so."""
+    a = np.zeros((5, 20))
+    b = np.zeros((5, 20))
+    a[:, 0:3] = 0.9  # A's range
+    b[:, 17:20] = 0.9  # B's range
+    a[:, 9:12] = 0.10  # the patch: 0.10 for both taxa
+    b[:, 9:12] = 0.10
+    b[:, 5:7] = 0.5  # a patch only B's niche fits
+    grid = projected_grid(a.shape)
+    cs = find_candidates(
+        grid, {"A": a, "B": b}, {"A": 0.06, "B": 0.30},
+        {"A": ([2], [0]), "B": ([2], [19])}, min_patch_km2=1.0, within_range_min_km=50.0,
+    )
+    by_col = cs.sites.set_index("col")
+    mid, west = by_col.loc[9], by_col.loc[5]
+    assert mid["suitable_for"] == "A"
+    assert_allclose([mid["margin_A"], mid["margin_B"]], [0.04, -0.20], atol=1e-12)
+    assert west["suitable_for"] == "B"
+    assert_allclose([west["margin_A"], west["margin_B"]], [-0.06, 0.20], atol=1e-12)
+    # niche_fit: the way from the threshold to full suitability, best taxon
+    assert_allclose([mid["niche_fit"], west["niche_fit"]], [0.04 / 0.94, 0.2 / 0.7],
+                    rtol=1e-9)
+
+
 def test_between_ranges_and_barrier():
     """A patch between two taxa's ranges is flagged; one far off the corridor is not."""
     s = np.full((9, 15), 0.2)
@@ -299,7 +324,7 @@ def test_banded_site_reductions_change_nothing(salish, monkeypatch):
     monkeypatch.setattr(iso, "_BAND_CELLS", 97)
     chunked = find_candidates(*args, **kw).sites
     assert len(whole) == len(chunked) > 0
-    summed = ["area_km2", "mean_suitability"]
+    summed = ["area_km2", "mean_suitability", "margin_A", "margin_B", "niche_fit"]
     assert whole.drop(columns=summed).equals(chunked.drop(columns=summed))
     assert_allclose(whole[summed].to_numpy(float), chunked[summed].to_numpy(float), rtol=1e-12)
 
