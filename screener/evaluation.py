@@ -49,7 +49,7 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 #: Evaluation methods reported in ``FamilyEvaluation.method``.
-METHODS = ("jackknife", "block", "checkerboard", "random-kfold")
+METHODS = ("jackknife", "quadrants", "squares", "random")
 
 
 # --- metrics ------------------------------------------------------------------------
@@ -605,7 +605,7 @@ class FamilyEvaluation:
     family : str
     n_records : int
     method : str
-        "jackknife", "block", "checkerboard" or "random-kfold".
+        "jackknife", "quadrants", "squares" or "random".
     auc : float
         Test AUC (mean over folds; for the jackknife, the mean over models of the
         left-out record's AUC against the background).
@@ -686,7 +686,7 @@ def evaluate_family(
     study_area=None,
     study_area_weights=None,
     jackknife_below: int = 25,
-    partition: str = "block",
+    partition: str = "quadrants",
     k_folds: int = 5,
     checkerboard_size: float | None = None,
     n_null: int = 99,
@@ -702,18 +702,21 @@ def evaluate_family(
     presence : array_like of shape (n, p)
     background : array_like of shape (m, p)
     presence_xy, background_xy : array_like of shape (n, 2) and (m, 2), optional
-        Coordinates (x, y) for the spatial partitions; without them "random-kfold" is
+        Coordinates (x, y) for the spatial partitions; without them "random" is
         used.  With them, a family whose ``fit`` takes ``groups`` (ppm) gets the
         records' spatial blocks (:func:`block_partition`) for the mapped model.
     study_area, study_area_weights : optional
         Study-area rows and cell areas (km²) for the jackknife and null model.
     jackknife_below : int, default 25
         Use the jackknife when ``n < jackknife_below``.
-    partition : {"block", "checkerboard", "random-kfold"}, default "block"
+    partition : {"quadrants", "squares", "random"}, default "quadrants"
+        "quadrants": four spatial blocks at the records' medians
+        (:func:`block_partition`); "squares": two groups of alternating squares
+        (:func:`checkerboard_partition`); "random": random folds.
     k_folds : int, default 5
-        Folds of "random-kfold".
+        Folds of "random".
     checkerboard_size : float, optional
-        Block side (CRS units) of "checkerboard"; default a quarter of the larger side
+        Square side (CRS units) of "squares"; default a quarter of the larger side
         of the records' bounding box.
     n_null : int, default 99
         Null-model replicates (0 skips the test).
@@ -840,14 +843,14 @@ def _partition(partition, n, m, presence_xy, background_xy, k_folds, size, seed)
         raise InputError(
             f"Unknown partition {partition!r}; use one of {', '.join(METHODS[1:])}."
         )
-    if partition != "random-kfold" and (presence_xy is None or background_xy is None):
+    if partition != "random" and (presence_xy is None or background_xy is None):
         log.info(
-            "No coordinates given for %s partitions; using random k-fold", partition
+            "No coordinates given for %s partitions; using random folds", partition
         )
-        partition = "random-kfold"
-    if partition == "block":
+        partition = "random"
+    if partition == "quadrants":
         pg, bg = block_partition(presence_xy, background_xy)
-    elif partition == "checkerboard":
+    elif partition == "squares":
         pxy = _xy(presence_xy, "presence_xy")
         if size is None:
             size = float(np.max(np.ptp(pxy, axis=0))) / 4.0 or 1.0

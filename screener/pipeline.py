@@ -492,9 +492,9 @@ def model_taxon(
         )
         model = ev.extra["model"]  # the evaluated model is the one mapped (fitted once)
         if rec.n >= s.evaluation.jackknife_below:
-            # the spatial blocks above are the main estimate; a checkerboard and random
-            # k-fold (the non-spatial baseline) show how much spatial structure matters
-            for part in ("checkerboard", "random-kfold"):
+            # the spatial quadrants above are the main estimate; alternating squares and
+            # random folds (the non-spatial baseline) show how much spatial structure matters
+            for part in ("squares", "random"):
                 other = evaluate_family(
                     family, params, P, B, presence_xy=rec_xy, background_xy=bg_xy,
                     study_area=B, jackknife_below=s.evaluation.jackknife_below,

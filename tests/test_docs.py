@@ -63,6 +63,40 @@ def test_benchmarks_are_scripts_not_tests():
 METHOD_DOCS = ["intake", "models", "overlap", "isolation", "outputs"]
 
 
+def test_terms_page_lists_every_user_facing_name():
+    """docs/terms.md gives the origin of every command, option, setting and column."""
+    import click
+
+    from screener.cli import main
+    from screener.evaluation import FamilyEvaluation
+    from screener.models import PointProcessNiche
+    from screener.outputs.tables import (
+        CANDIDATE_COLUMNS,
+        EVALUATION_COLUMNS,
+        OVERLAP_COLUMNS,
+    )
+    from screener.project import SCHEMA
+
+    text = (ROOT / "docs" / "terms.md").read_text()
+    names = set()
+    for section, keys in SCHEMA.items():
+        names.add(f"[{section}]")
+        names.update(keys)
+    for param in main.params:
+        names.update(o for o in param.opts if o.startswith("--"))
+    for command_name, command in main.commands.items():
+        names.add(command_name)
+        for param in command.params:
+            if isinstance(param, click.Option):
+                names.update(o for o in param.opts if o.startswith("--"))
+    names.update(EVALUATION_COLUMNS, OVERLAP_COLUMNS, CANDIDATE_COLUMNS)
+    names.update(FamilyEvaluation("f", 1, "m").as_row())
+    deprecated = PointProcessNiche.deprecated_params
+    names.update(k for k in PointProcessNiche().get_params() if k not in deprecated)
+    missing = sorted(n for n in names if f"`{n}`" not in text)
+    assert not missing, f"docs/terms.md does not list: {missing}"
+
+
 def _validation_sections():
     """The "## Validation" section of each docs/methods/*.md, in pipeline order."""
     parts = []

@@ -195,7 +195,7 @@ def test_evaluate_family_small_sample_uses_jackknife(small):
     assert 0.1 <= row["auc_null_p"] <= 1.0
 
 
-@pytest.mark.parametrize("partition", ["block", "checkerboard", "random-kfold"])
+@pytest.mark.parametrize("partition", ["quadrants", "squares", "random"])
 def test_evaluate_family_partitions(partition):
     rng = np.random.default_rng(5)
     bg = rng.normal(size=(800, 2))
@@ -213,7 +213,7 @@ def test_evaluate_family_partitions(partition):
         n_null=0,
     )
     assert ev.method == partition
-    assert ev.n_folds == {"block": 4, "checkerboard": 2, "random-kfold": 5}[partition]
+    assert ev.n_folds == {"quadrants": 4, "squares": 2, "random": 5}[partition]
     assert 0.8 < ev.auc <= 1.0 and ev.boyce > 0 and 0 < ev.tss <= 1
     assert 0 <= ev.omission_mtp <= ev.omission_p10 <= 1
     assert ev.jackknife_p is None and math.isnan(ev.auc_null_p)
@@ -224,7 +224,7 @@ def test_evaluate_family_without_coordinates_falls_back_to_random():
     bg = rng.normal(size=(300, 2))
     pres = rng.normal(1.0, 0.4, size=(26, 2))
     ev = evaluate_family("ellipsoid", {}, pres, bg, n_null=0)
-    assert ev.method == "random-kfold"
+    assert ev.method == "random"
     with pytest.raises(InputError, match="Unknown partition"):
         evaluate_family("ellipsoid", {}, pres, bg, partition="stripes", n_null=0)
 

@@ -145,8 +145,8 @@ def test_debrief_scores_a_survey(demo_run, tmp_path):
 
 
 def test_spatial_partitions_with_non_spatial_baseline(tmp_path):
-    # Above the jackknife limit, evaluation uses spatial blocks, and reports a
-    # checkerboard and random k-fold beside them (Radosavljevic & Anderson 2014).
+    # Above the jackknife limit, evaluation uses spatial quadrants, and reports
+    # alternating squares and random folds beside them (Radosavljevic & Anderson 2014).
     from screener.pipeline import load_inputs, model_taxon
     from screener.project import load_project
 
@@ -157,8 +157,8 @@ def test_spatial_partitions_with_non_spatial_baseline(tmp_path):
     taxon = max(intake.records.taxa, key=lambda t: intake.records.taxa[t].n)
     res = model_taxon(intake, taxon)
     row = next(r for r in res.evaluation if r["algorithm"] == "ellipsoid")
-    assert row["method"] == "block"
-    for part in ("checkerboard", "random-kfold"):
+    assert row["method"] == "quadrants"
+    for part in ("squares", "random"):
         assert 0.0 <= row[f"auc_{part}"] <= 1.0
     assert row["jackknife_p"] is None or np.isnan(row["jackknife_p"])
 
