@@ -87,6 +87,7 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
 
     from screener.outputs.staging import check_output_folder, staged_output
     from screener.survey import read_field_results, render_survey_report, score_survey
+    from screener.records import read_records
     from screener.survey import updated_records
 
     inputs = [Path(field_results), Path(run_dir)]
@@ -108,8 +109,14 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
             f"The run's record file {rec_path} is not where run.json says; the updated "
             "record file needs it."
         )
-    original = pd.read_csv(rec_path, dtype=str, keep_default_na=False)
-    updated = updated_records(original, fr, sites=run["sites"], grid=grid)
+    occ = run["provenance"].get("settings", {}).get("occurrences", {})
+    raw = read_records(rec_path, encoding=occ.get("encoding") or None,
+                       taxon_column=occ.get("taxon_column", "taxon"))
+    if raw.darwin_core:
+        updated = _updated_darwin_core(raw, fr, run["sites"], grid)
+    else:
+        original = pd.read_csv(rec_path, dtype=str, keep_default_na=False)
+        updated = updated_records(original, fr, sites=run["sites"], grid=grid)
     summary = {k: (v.item() if isinstance(v, np.generic) else v)
                for k, v in vars(score).items() if not isinstance(v, pd.DataFrame)}
     with staged_output(out, overwrite=overwrite, inputs=inputs + [Path(rec_path)]) as stage:
@@ -127,3 +134,34 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
         "original was not changed)",
     ]
     return lines
+
+
+def _updated_darwin_core(raw, field_results, sites, grid):
+    """Updated records for a Darwin Core record file: every original column (with its
+    occurrenceID) kept as read, finds added with Darwin Core terms filled in."""
+    import pandas as pd
+
+    from screener.darwincore import find_term
+    from screener.survey import updated_records
+
+    cols = list(raw.columns)
+    by_name = {"taxon": raw.taxon, "longitude": raw.a, "latitude": raw.b}
+    table = pd.DataFrame({**by_name, **raw.extra})
+    updated = updated_records(table, field_results, sites=sites, grid=grid)
+    new = updated.index >= len(table)
+    out = pd.DataFrame(index=updated.index)
+    for c in cols:
+        if c in raw.extra:
+            out[c] = updated[c]
+        elif find_term([c], "decimalLongitude") is not None:
+            out[c] = updated["longitude"]
+        elif find_term([c], "decimalLatitude") is not None:
+            out[c] = updated["latitude"]
+        else:  # the taxon column (scientificName or the chosen rank)
+            out[c] = updated["taxon"]
+    if find_term(cols, "geodeticDatum") is not None:
+        out.loc[new, cols[find_term(cols, "geodeticDatum")]] = "WGS84"
+    if find_term(cols, "basisOfRecord") is not None:
+        out.loc[new, cols[find_term(cols, "basisOfRecord")]] = "HumanObservation"
+    out["source"] = updated["source"]
+    return out

@@ -27,6 +27,7 @@ from screener.background import accessible_area, draw_background
 from screener.errors import InputError, LayerError, ScreenerWarning, suggest
 from screener.layers import LayerStack, check_layers, hillshade, read_layers, slope_aspect
 from screener.project import Settings
+from screener.darwincore import DarwinCoreOptions
 from screener.records import RecordSet, read_records, validate_records
 from screener.results import RunResult, TaxonResult
 
@@ -314,8 +315,16 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
             sensitive=s.occurrences.sensitive,
             taxa=s.project.taxa or None,
             random_state=s.project.random_state,
+            darwin_core=DarwinCoreOptions(
+                max_uncertainty_m=s.occurrences.max_uncertainty_m,
+                basis_of_record=tuple(s.occurrences.basis_of_record),
+                date_from=s.occurrences.date_from,
+                date_to=s.occurrences.date_to,
+                flagged=s.occurrences.flagged_records,
+            ),
         )
         caught.extend(str(w.message) for w in wlist if issubclass(w.category, ScreenerWarning))
+    caught.extend(records.notes)
     if len(records.taxa) < 1:
         raise InputError("No taxon has usable records.")
     start_points = surveyed = None
@@ -1193,8 +1202,9 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
         pw.to_csv(folder / "overlap_pairwise.csv", float_format="%.10g", lineterminator="\n")
         rel(folder / "overlap_pairwise.csv")
     dropped = pd.DataFrame(
-        [{"line": d.line, "taxon": d.taxon, "reason": d.reason} for d in result.dropped],
-        columns=["line", "taxon", "reason"],
+        [{"line": d.line, "occurrence_id": d.occurrence_id, "taxon": d.taxon,
+          "reason": d.reason} for d in result.dropped],
+        columns=["line", "occurrence_id", "taxon", "reason"],
     )
     rel(write_csv(folder / "dropped_records.csv", dropped))
     from screener.outputs.privacy import shareable_result

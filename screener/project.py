@@ -35,12 +35,17 @@ SCHEMA: dict = {
     },
     "occurrences": {
         "path": (Path, None, "Record CSV: taxon + longitude/latitude (WGS84) or x/y (grid CRS)."),
-        "taxon_column": (str, "taxon", "Name of the taxon column."),
+        "taxon_column": (str, "taxon", "Name of the taxon column (Darwin Core files: scientificName unless another rank column, e.g. genus, is named)."),
         "encoding": (str, "", "Text encoding of the file when it is not UTF-8, e.g. latin-1."),
         "decimal": (str, "", 'Decimal mark: "." or ","; detected when empty.'),
         "min_records": (int, 3, "A taxon with fewer kept records stops the run."),
         "thin_km": (float, 0.0, "Thin records so none are closer than this (km); 0 = off."),
         "sensitive": ((bool, list), False, "Generalise these taxa's coordinates (true = all)."),
+        "max_uncertainty_m": (float, 0.0, "Darwin Core: drop records whose coordinateUncertaintyInMeters exceeds this (m); 0 = the record's cell size."),
+        "basis_of_record": (list, [], 'Darwin Core: keep only these basisOfRecord values, e.g. ["PreservedSpecimen"]; empty = all.'),
+        "date_from": (str, "", 'Darwin Core: keep records whose eventDate is on or after this, e.g. "1990" or "1990-05-17".'),
+        "date_to": (str, "", "Darwin Core: keep records whose eventDate is on or before this."),
+        "flagged_records": (str, "drop", 'Darwin Core records with a georeferencing flag (0,0 always dropped): "drop" or "keep" with a note.'),
     },
     "layers": {
         "paths": ([Path], None, "Raster files (glob patterns allowed); each band of a multi-band file is a layer named by its band description."),
@@ -321,6 +326,7 @@ def _check_choices(s, where):
         ("isolation", "resistance", ("linear", "log")),
         ("outputs", "page_size", ("A4", "letter")),
         ("layers", "alignment", ("warp", "strict")),
+        ("occurrences", "flagged_records", ("drop", "keep")),
     ]
     for section, key, allowed in choices:
         v = s[section][key]

@@ -66,6 +66,17 @@ class RawRecords:
     coords: str
     decimal_comma: bool = False
     extra: dict = field(default_factory=dict)
+    darwin_core: bool = False
+
+    def occurrence_ids(self) -> dict:
+        """Line number -> Darwin Core occurrenceID (empty when the file has none)."""
+        from screener.darwincore import find_term
+
+        cols = list(self.extra)
+        i = find_term(cols, "occurrenceID")
+        if i is None:
+            return {}
+        return {ln: v.strip() for ln, v in zip(self.lines, self.extra[cols[i]]) if v.strip()}
 
 
 @dataclass
@@ -81,12 +92,18 @@ class RecordSet:
     n_rows : int
         Data rows read.
     path : str
+    occurrence_ids : dict of int to str
+        Line number -> Darwin Core occurrenceID, where the file gives one.
+    notes : list of str
+        Darwin Core notes: records kept despite a georeferencing flag, datums assumed.
     """
 
     taxa: dict
     dropped: list
     n_rows: int
     path: str = ""
+    occurrence_ids: dict = field(default_factory=dict)
+    notes: list = field(default_factory=list)
 
     def summary_lines(self) -> list:
         """Plain-words lines for the console and the report."""
@@ -99,7 +116,9 @@ class RecordSet:
             out.append(f"{name}: {rec.n} kept, {n_drop} dropped")
         for d in self.dropped:
             who = d.taxon or "(no taxon)"
-            out.append(f"  line {d.line} ({who}): {d.reason}")
+            oid = f", {d.occurrence_id}" if d.occurrence_id else ""
+            out.append(f"  line {d.line} ({who}{oid}): {d.reason}")
+        out.extend(f"Note: {n}" for n in self.notes)
         return out
 
 
@@ -250,13 +269,21 @@ def parse_records_text(
     def find(name):
         return lower.index(name.lower()) if name.lower() in lower else None
 
+    from screener.darwincore import find_term
+
+    dwc = find_term(header, "decimalLongitude") is not None and find_term(
+        header, "decimalLatitude") is not None
     it = find(taxon_column)
+    if it is None and dwc and taxon_column == "taxon":
+        it = find_term(header, "scientificName")
     if it is None:
         raise RecordsError(
             f"{path} has no {taxon_column!r} column (columns: {', '.join(header)})."
             + _misspelt(taxon_column, header)
         )
     ilon, ilat, ix, iy = find("longitude"), find("latitude"), find("x"), find("y")
+    if dwc:
+        ilon, ilat = find_term(header, "decimalLongitude"), find_term(header, "decimalLatitude")
     if ilon is not None and ilat is not None:
         ia, ib, coords = ilon, ilat, "lonlat"
     elif ix is not None and iy is not None:
@@ -295,6 +322,7 @@ def parse_records_text(
         coords=coords,
         decimal_comma=decimal_comma,
         extra=extra,
+        darwin_core=dwc,
     )
 
 
@@ -322,8 +350,45 @@ def read_records(path, *, encoding=None, taxon_column="taxon", decimal=None) -> 
         raise RecordsError(f"Record file {p} does not exist; check [occurrences] path.")
     if p.is_dir():
         raise RecordsError(f"Record path {p} is a folder; give the CSV file itself.")
+    import zipfile
+
+    if zipfile.is_zipfile(p):
+        return _archive_records(p, taxon_column)
     text = _decode(p.read_bytes(), str(p), encoding)
     return parse_records_text(text, str(p), taxon_column=taxon_column, decimal=decimal)
+
+
+def _archive_records(path: Path, taxon_column: str) -> RawRecords:
+    """Rows of a Darwin Core Archive's occurrence core as :class:`RawRecords`."""
+    from screener.darwincore import find_term, read_archive
+
+    header, rows, where = read_archive(path)
+    if not rows:
+        raise RecordsError(f"{where} has no occurrence rows.")
+    it = find_term(header, taxon_column) if taxon_column != "taxon" else None
+    if it is None:
+        it = find_term(header, "scientificName" if taxon_column == "taxon" else taxon_column)
+    ilon, ilat = find_term(header, "decimalLongitude"), find_term(header, "decimalLatitude")
+    missing = [t for t, i in ((taxon_column if taxon_column != "taxon" else "scientificName",
+                               it), ("decimalLongitude", ilon), ("decimalLatitude", ilat))
+               if i is None]
+    if missing:
+        raise RecordsError(
+            f"{where}: meta.xml maps no column to {', '.join(missing)} "
+            f"(terms: {', '.join(header)})." + _misspelt(missing[0], header)
+        )
+    return RawRecords(
+        path=where,
+        columns=header,
+        taxon=[r[it].strip() for _, r in rows],
+        a=[r[ilon] for _, r in rows],
+        b=[r[ilat] for _, r in rows],
+        lines=[ln for ln, _ in rows],
+        coords="lonlat",
+        extra={h: [r[i] for _, r in rows] for i, h in enumerate(header)
+               if i not in (it, ilon, ilat)},
+        darwin_core=True,
+    )
 
 
 def validate_records(
@@ -335,6 +400,7 @@ def validate_records(
     sensitive=(),
     taxa=None,
     random_state=0,
+    darwin_core=None,
 ) -> RecordSet:
     """Check every row, place records on the grid, keep one per cell per taxon.
 
@@ -353,6 +419,9 @@ def validate_records(
         Only these taxa (others are reported as dropped with the reason).
     random_state : int, default 0
         Seed of the thinning shuffles.
+    darwin_core : screener.darwincore.DarwinCoreOptions, optional
+        Checks of Darwin Core records (datum, uncertainty, basis of record, dates,
+        georeferencing flags); defaults apply when the file uses Darwin Core terms.
 
     Returns
     -------
@@ -366,7 +435,16 @@ def validate_records(
     dropped: list = []
     keep_taxon, keep_a, keep_b, keep_line = [], [], [], []
     wanted = set(taxa) if taxa else None
-    for t, a, b, line in zip(raw.taxon, raw.a, raw.b, raw.lines):
+    rows_a, rows_b, screened = raw.a, raw.b, None
+    if raw.darwin_core and raw.coords == "lonlat":
+        from screener.darwincore import DarwinCoreOptions, screen_records
+
+        screened = screen_records(raw, grid, darwin_core or DarwinCoreOptions())
+        rows_a, rows_b = screened.lon, screened.lat
+    for k, (t, a, b, line) in enumerate(zip(raw.taxon, rows_a, rows_b, raw.lines)):
+        if screened is not None and not screened.keep[k] and t:
+            dropped.append(RecordDrop(line, t, screened.reasons[k]))
+            continue
         if not t:
             dropped.append(RecordDrop(line, "", "the taxon cell is empty"))
             continue
@@ -494,8 +572,12 @@ def validate_records(
             lines=np.asarray(keep_line, dtype=np.int64)[idx],
             sensitive=t in sens,
         )
+    ids = raw.occurrence_ids()
+    if ids:
+        dropped = [RecordDrop(d.line, d.taxon, d.reason, ids.get(d.line, "")) for d in dropped]
     dropped.sort(key=lambda d: d.line)
-    result = RecordSet(taxa_out, dropped, len(raw.lines), raw.path)
+    result = RecordSet(taxa_out, dropped, len(raw.lines), raw.path, ids,
+                       list(screened.notes) if screened is not None else [])
 
     in_file = [t for t in dict.fromkeys(raw.taxon) if t]
     named = [t for t in in_file if wanted is None or t in wanted]
@@ -546,6 +628,13 @@ _DROP_KINDS = [
     ("same grid cell", "in a grid cell already taken (one record per cell is kept)", ""),
     ("thinned", "thinned", "lower [occurrences] thin_km"),
     ("not in [project] taxa", "of taxa not listed in [project] taxa", ""),
+    ("georeferencing flag", "with a georeferencing flag",
+     'check the coordinates, or set flagged_records = "keep" under [occurrences]'),
+    ("coordinate uncertainty", "with a coordinate uncertainty larger than the limit",
+     "raise [occurrences] max_uncertainty_m"),
+    ("basisOfRecord", "of another basisOfRecord", "widen [occurrences] basis_of_record"),
+    ("eventDate", "outside the date range or without a date",
+     "widen [occurrences] date_from/date_to"),
 ]
 
 

@@ -26,11 +26,14 @@ class RecordDrop:
         Taxon named on the row ("" when the taxon cell itself was bad).
     reason : str
         Plain-words reason, e.g. "latitude 95.0 is beyond +/-90".
+    occurrence_id : str
+        The record's Darwin Core occurrenceID ("" when the file has none).
     """
 
     line: int
     taxon: str
     reason: str
+    occurrence_id: str = ""
 
 
 @dataclass(eq=False)

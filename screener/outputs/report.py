@@ -126,6 +126,16 @@ def _inputs(result) -> str:
             "value": ", ".join(map(str, result.layer_names)),
         },
     ]
+    aligned = [o for o in (result.provenance or {}).get("layers", [])
+               if o.get("method") != "none"]
+    if aligned:
+        rows.append({
+            "item": "layers aligned to the grid",
+            "value": "; ".join(
+                f"{o['name']} ({o['crs']}, cells {o['res'][0]:.6g} x {o['res'][1]:.6g}): "
+                f"{o['method']}" + (f", {o['note']}" if o.get("note") else "")
+                for o in aligned),
+        })
     out = [html_table(rows, ["item", "value"])]
     recs = [
         {
@@ -138,11 +148,14 @@ def _inputs(result) -> str:
     out.append(html_table(recs, ["taxon", "records kept", "sensitive"]))
     out.append("<h3>Records intake did not keep</h3>")
     drops = [
-        {"line": d.line, "taxon": d.taxon, "reason": d.reason}
+        {"line": d.line, "occurrence ID": d.occurrence_id, "taxon": d.taxon,
+         "reason": d.reason}
         for d in (result.dropped or [])
     ]
+    has_ids = any(d["occurrence ID"] for d in drops)
     out.append(
-        html_table(drops, ["line", "taxon", "reason"])
+        html_table(drops, ["line"] + (["occurrence ID"] if has_ids else [])
+                   + ["taxon", "reason"])
         if drops
         else '<p class="note">Intake kept every record row.</p>'
     )
