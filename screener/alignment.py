@@ -289,11 +289,17 @@ def _choose(src, ref: ReferenceGrid, categorical: bool):
 
 def _cache_key(band: BandRef, ref: ReferenceGrid, method: str, nodata, extra: str = "") -> str:
     path = band.path
-    try:
-        st = os.stat(path)
+    # a subdataset name ('NETCDF:"/data/clim.nc":tas') is stamped by its container file
+    candidates = [path] if isinstance(path, Path) else [
+        part.strip('"') for part in str(path).split(":")]
+    stamp = ()
+    for cand in candidates:
+        try:
+            st = os.stat(cand)
+        except (OSError, ValueError):
+            continue
         stamp = (st.st_size, st.st_mtime_ns)
-    except (OSError, TypeError):  # subdataset names: stat the container file
-        stamp = ()
+        break
     text = repr((str(path), stamp, band.band, ref.crs.to_wkt(), tuple(ref.transform),
                  ref.width, ref.height, method, nodata, extra, _CACHE_VERSION))
     return hashlib.sha256(text.encode()).hexdigest()[:24]
