@@ -72,7 +72,7 @@ def test_run_and_debrief_keep_occurrence_ids(example, tmp_path):
     field = tmp_path / "field.csv"
     field.write_text(
         "site_id,longitude,latitude,date,taxon,outcome,effort_hours\n"
-        f"{int(site['site_id'])},{site['longitude']},{site['latitude']},2027-03-02,"
+        f"{site['site_id']},{site['longitude']},{site['latitude']},2027-03-02,"
         f"{TAXA[0]},found,4\n"
     )
     deb = tmp_path / "debrief"
