@@ -151,7 +151,7 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
         family, params = {
             "predict_ppm": ("ppm", {"terms": "linear"}),
             "predict_streamed": ("ppm", {"terms": "linear"}),
-            "predict_ppm_lqh": ("ppm", {"terms": "linear+quadratic+hinge", "l1_penalty": 0.05}),
+            "predict_ppm_hinge": ("ppm", {"terms": "linear+quadratic+hinge", "l1_penalty": 0.05}),
             "predict_ellipsoid": ("ellipsoid", {}),
             "predict_envelope": ("envelope", {}),
             "novelty": ("ellipsoid", {}),
@@ -319,7 +319,7 @@ def replicate_speedup(repeats: int) -> dict:
     return out
 
 
-STAGES = ["io_read", "io_write", "predict_ppm", "predict_ppm_lqh", "predict_ellipsoid",
+STAGES = ["io_read", "io_write", "predict_ppm", "predict_ppm_hinge", "predict_ellipsoid",
           "predict_envelope", "predict_streamed", "novelty", "thresholds", "cost", "cost_tiled",
           "isolation"]
 
