@@ -17,11 +17,9 @@ import warnings
 
 import numpy as np
 from scipy.special import logsumexp
-from sklearn.cluster import KMeans
 from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import GroupKFold
 from sklearn.utils.validation import check_is_fitted
-from threadpoolctl import threadpool_limits
 
 from screener.errors import InputError, ScreenerWarning, suggest
 from screener.models.base import NicheModel, check_predictors
@@ -215,18 +213,18 @@ class PointProcessNiche(NicheModel):
 
     *Choosing the penalty (our procedure).*  The path runs from just below
     ``lambda_max``, the smallest penalty that keeps every coefficient at zero
-    (the largest absolute score of the penalised objective at zero, per record),
+    (the largest absolute score of the weighted log-likelihood at zero, per record),
     down to ``0.01 lambda_max`` in equal log steps.  The records are split into
-    blocks: the ``groups`` passed to :meth:`fit` (e.g. spatial blocks), or else
-    k-means clusters of their standardised predictor values, so that a block holds
-    records of one part of environmental space (neighbouring records share
-    environments).  Each block is left out in turn; the model is fitted to the other
-    records and the whole background at every penalty, and the left-out records are
-    scored by their log density ``eta(x) - log sum_bg exp(eta)``.  The chosen penalty
-    has the highest mean held-out log-likelihood per record; then the model is refitted
-    to every record at that penalty.  Leaving out whole blocks asks the model to
-    predict into environments it did not see, which favours the simpler fits that
-    transfer.
+    blocks: the ``groups`` passed to :meth:`fit` (the pipeline passes four spatial
+    blocks of the records), or else a seeded random split.  Each block is left out in
+    turn; the model is fitted to the other records and the background at every
+    penalty, and the left-out records are scored by their log density
+    ``eta(x) - log sum_bg exp(eta)`` over the whole background.  The chosen penalty
+    has the highest mean held-out log-likelihood per record; then the model is
+    refitted to every record at that penalty.  The path runs from strong to weak
+    penalties and stops after ``_PATIENCE`` steps without improvement; its fits use a
+    seeded subset of at most ``_PATH_BACKGROUND`` background rows, weighted up to the
+    whole background's weight.
 
     *Output.*  The complementary log-log link [3]_ turns the log intensity into a
     probability of at least one occurrence per cell: ``1 - exp(-exp(eta + c))``.
@@ -346,7 +344,7 @@ class PointProcessNiche(NicheModel):
         background : array_like of shape (m, p)
         groups : array_like of shape (n,), optional
             Block label of each record for the held-out likelihood (e.g. a spatial
-            block).  Default: k-means clusters of the records' predictor values.
+            block).  Default: a seeded random split into ``n_blocks`` blocks.
 
         Returns
         -------
@@ -399,6 +397,8 @@ class PointProcessNiche(NicheModel):
         """Penalties from just below ``lambda_max`` down to ``0.01 lambda_max``."""
         p0 = np.sum(w * y) / np.sum(w)  # fitted probability of the intercept-only model
         lam_max = float(np.max(np.abs(Fs.T @ (w * (p0 - y))))) / n
+        if not (math.isfinite(lam_max) and lam_max > 0):
+            return np.array([1.0])  # no term moves the fit from zero: a flat model
         return np.geomspace(lam_max, lam_max * _PATH_DEPTH, self.n_penalties + 1)[1:]
 
     def _blocks(self, zp, groups):
