@@ -471,41 +471,101 @@ def _derive_terrain(src, band: BandRef, ref: ReferenceGrid, cache_dir: Path, der
     """Slope/aspect at the elevation layer's own resolution, then onto the reference.
 
     Slope is aggregated like any continuous layer; aspect through the cell means of
-    its sine and cosine (circular mean), so flat cells (no aspect) are left out.
+    its sine and cosine (circular mean), so flat cells (no aspect) are left out.  The
+    native terrain is computed a band of rows at a time (with one row of overlap, so
+    the central differences equal those of the whole grid) into temporary files that
+    GDAL reads as it warps: memory stays bounded however large the DEM.
     """
+    import rasterio
+
+    from screener.grid import Grid
+
+    from affine import Affine
+
+    # east-west cell width of the DEM's middle row (a one-row grid: no full-size mask)
+    middle = Grid(src.crs, src.transform @ Affine.translation(0, src.height // 2),
+                  (1, src.width))
+    dem_m = float(middle.ew_step_km[0]) * 1000.0
+    method, _ = _choose(src, ref, False)
+    keys = {d: _cache_key(band, ref, method, nodata_extra, d) for d in ("slope", "aspect")}
+    outs = {d: cache_dir / f"{keys[d]}.tif" for d in keys}
+    wanted = [d for d in ("slope", "aspect") if d in derive]
+    todo = [d for d in wanted if not outs[d].exists()]
+    if todo:
+        natives = _native_terrain(src, band, nodata_extra, cache_dir, todo, block_cells)
+        try:
+            def warp(tag, out, description=""):
+                with rasterio.open(natives[tag]) as nat:
+                    return _warp_to_file(rasterio.band(nat, 1), out, ref, method,
+                                         src_nodata=np.nan, block_cells=block_cells,
+                                         description=description)
+
+            if "slope" in todo:
+                warp("slope", outs["slope"], "slope")
+            if "aspect" in todo:
+                tmp = keys["aspect"]
+                parts = [warp(tag, cache_dir / f"{tmp}.{tag}.tif") for tag in ("sin", "cos")]
+                _combine_aspect(parts[0], parts[1], outs["aspect"], block_cells)
+                for p in parts:
+                    p.unlink()
+        finally:
+            for p in natives.values():
+                p.unlink(missing_ok=True)
+    notes = {"slope": f"slope at {dem_m:.3g} m, then {method}",
+             "aspect": f"aspect at {dem_m:.3g} m, then circular {method} of sine and cosine"}
+    return [(d, outs[d], notes[d]) for d in wanted]
+
+
+def _native_terrain(src, band: BandRef, nodata_extra, cache_dir: Path, todo,
+                    block_cells: int) -> dict:
+    """Slope (degrees) and the sine and cosine of aspect on the DEM's own grid.
+
+    Written band by band into temporary float32 GeoTIFFs; returns tag -> path
+    ("slope", "sin", "cos").
+    """
+    import rasterio
+    from affine import Affine
+    from rasterio.windows import Window
+
     from screener.grid import Grid
     from screener.layers import LayerSource, slope_aspect
 
-    native = Grid(src.crs, src.transform, (src.height, src.width))
-    z = LayerSource(band.path, nodata_extra, band=band.band).read(src).astype(np.float64)
-    slope, aspect = slope_aspect(native, z)
-    del z
-    dem_m = float(np.nanmean(native.ew_step_km)) * 1000.0
-    method, _ = _choose(src, ref, False)
-    results = []
-    if "slope" in derive:
-        key = _cache_key(band, ref, method, nodata_extra, "slope")
-        path = _warp_to_file((slope, src.transform, src.crs), cache_dir / f"{key}.tif", ref,
-                             method, src_nodata=np.nan, block_cells=block_cells,
-                             description="slope")
-        results.append(("slope", path, f"slope at {dem_m:.3g} m, then {method}"))
-    if "aspect" in derive:
-        key = _cache_key(band, ref, method, nodata_extra, "aspect")
-        out = cache_dir / f"{key}.tif"
-        if not out.exists():
-            rad = np.radians(aspect.astype(np.float64))
-            parts = []
-            for fn, tag in ((np.sin, "sin"), (np.cos, "cos")):
-                comp = fn(rad).astype(np.float32)
-                parts.append(_warp_to_file((comp, src.transform, src.crs),
-                                           cache_dir / f"{key}.{tag}.tif", ref, method,
-                                           src_nodata=np.nan, block_cells=block_cells))
-            _combine_aspect(parts[0], parts[1], out, block_cells)
-            for p in parts:
-                p.unlink()
-        results.append(("aspect", out,
-                        f"aspect at {dem_m:.3g} m, then circular {method} of sine and cosine"))
-    return results
+    height, width = src.height, src.width
+    tags = (["slope"] if "slope" in todo else []) + (["sin", "cos"] if "aspect" in todo
+                                                      else [])
+    run = uuid.uuid4().hex
+    paths = {t: cache_dir / f".native-{run}.{t}.tif" for t in tags}
+    cache_dir.mkdir(parents=True, exist_ok=True)
+    profile = dict(driver="GTiff", width=width, height=height, count=1, dtype="float32",
+                   crs=src.crs, transform=src.transform, nodata=np.nan, tiled=True,
+                   blockxsize=256, blockysize=256, BIGTIFF="IF_SAFER")
+    reader = LayerSource(band.path, nodata_extra, band=band.band)
+    step = max(8, block_cells // max(width, 1))
+    files = {t: rasterio.open(p, "w", **profile) for t, p in paths.items()}
+    try:
+        for r0 in range(0, height, step):
+            r1 = min(height, r0 + step)
+            a0, a1 = max(0, r0 - 1), min(height, r1 + 1)  # one row of overlap each side
+            z = reader.read(src, window=Window(0, a0, width, a1 - a0)).astype(np.float64)
+            sub = Grid(src.crs, src.transform @ Affine.translation(0, a0), (a1 - a0, width))
+            slope, aspect = slope_aspect(sub, z)
+            keep = slice(r0 - a0, r0 - a0 + (r1 - r0))
+            win = Window(0, r0, width, r1 - r0)
+            if "slope" in files:
+                files["slope"].write(slope[keep], 1, window=win)
+            if "sin" in files:
+                rad = np.radians(aspect[keep].astype(np.float64))
+                files["sin"].write(np.sin(rad).astype(np.float32), 1, window=win)
+                files["cos"].write(np.cos(rad).astype(np.float32), 1, window=win)
+    except BaseException:
+        for f in files.values():
+            f.close()
+        for p in paths.values():
+            p.unlink(missing_ok=True)
+        raise
+    for f in files.values():
+        f.close()
+    return paths
 
 
 def _combine_aspect(sin_path: Path, cos_path: Path, out: Path, block_cells: int) -> None:

@@ -182,3 +182,19 @@ def test_circular_mean_of_aspect_near_north(tmp_path):
                       derive=["aspect"])
     aspect = _read(al.bands[-1].path)[0, 0]
     assert min(aspect, 360 - aspect) < 5  # a plain average of 350 and 10 would give 180
+
+
+def test_terrain_of_a_large_dem_is_derived_band_by_band(tmp_path):
+    """Bands of 20 rows (overlapping by one) give the same terrain as the whole DEM."""
+    z, t = _jacksboro()
+    dem = write_tif(tmp_path / "dem.tif", z.astype(np.float32), transform=t)
+    ref_t = Affine(t.a * 8, 0, t.c, 0, t.e * 8, t.f)
+    base = write_tif(tmp_path / "base.tif", np.ones((z.shape[0] // 8, z.shape[1] // 8),
+                                                     np.float32), transform=ref_t)
+    kw = dict(elevation="dem", derive=["slope", "aspect"])
+    whole = align_layers([base, dem], cache_dir=tmp_path / "a", **kw)
+    banded = align_layers([base, dem], cache_dir=tmp_path / "b",
+                          block_cells=20 * z.shape[1], **kw)
+    for a, b in zip(whole.bands, banded.bands):
+        assert_allclose(_read(b.path), _read(a.path), rtol=0, atol=1e-5, equal_nan=True)
+    assert not list((tmp_path / "b").glob(".native-*"))  # temporary files removed
