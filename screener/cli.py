@@ -182,6 +182,7 @@ def run(ctx, project, out, overwrite, scheduler, cache_dir, no_cache, debug):
     result = run_project(settings, out, overwrite=overwrite, echo=echo, scheduler=scheduler,
                          cache_dir=_cache_arg(cache_dir, no_cache))
     _print_summary(result, out)
+    _print_warnings(result)
 
 
 def _print_summary(result, out):
@@ -199,6 +200,12 @@ def _print_summary(result, out):
     else:
         click.echo("No candidate sites were found at these thresholds.")
     click.echo(f"Open {Path(out) / 'report.html'} for the full plan.")
+
+
+def _print_warnings(result):
+    """The run's warnings (also in run.json and the report), on stderr."""
+    for w in result.warnings:
+        _echo_err(f"Warning: {w}")
 
 
 @main.command()
@@ -317,6 +324,7 @@ def reproduce(ctx, run_json, out, overwrite, scheduler, allow_changed_inputs, de
     result = run_project(settings, out, overwrite=overwrite, echo=echo,
                          scheduler=scheduler or prov.get("scheduler"), cache_dir=None)
     _print_summary(result, out)
+    _print_warnings(result)
 
 
 if __name__ == "__main__":  # pragma: no cover

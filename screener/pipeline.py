@@ -43,6 +43,7 @@ __all__ = [
     "taxon_seed",
     "file_sha256",
     "input_paths",
+    "layer_paths",
 ]
 
 log = logging.getLogger(__name__)
@@ -201,12 +202,37 @@ def _read_points_csv(path, what: str, need=("longitude", "latitude")):
     return df
 
 
+def layer_paths(settings: Settings) -> tuple:
+    """The layer files a run reads, and the run folders skipped.
+
+    Layers inside a folder an earlier run wrote (it holds the run marker) are never
+    read as inputs: with ``paths = ["layers/*/*.tif"]`` and ``--out layers/results``,
+    a later run would otherwise take that run's outputs as predictors.
+
+    Returns
+    -------
+    paths : list of Path
+    skipped : dict of Path to list of Path
+        Run folder -> the files skipped in it.
+    """
+    from screener.outputs.staging import enclosing_run_folder
+
+    paths, skipped = [], {}
+    for p in settings.layers.paths:
+        folder = enclosing_run_folder(p, settings.base_dir)
+        if folder is None:
+            paths.append(Path(p))
+        else:
+            skipped.setdefault(folder, []).append(Path(p))
+    return paths, skipped
+
+
 def input_paths(settings: Settings) -> list:
     """Every file a run reads: layers, records, start points, surveyed places and the
     project file itself."""
     s = settings
-    named = list(s.layers.paths) + [s.occurrences.path, s.access.start_points,
-                                    s.survey.surveyed, s.path]
+    named = layer_paths(s)[0] + [s.occurrences.path, s.access.start_points,
+                                 s.survey.surveyed, s.path]
     return list(dict.fromkeys(Path(p) for p in named if p is not None))
 
 
@@ -246,13 +272,24 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
     caught: list = []
     with warnings.catch_warnings(record=True) as wlist:
         warnings.simplefilter("always", ScreenerWarning)
+        paths, skipped = layer_paths(s)
+        for folder, files in skipped.items():
+            warnings.warn(ScreenerWarning(
+                f"Skipped {len(files)} layer file(s) in {folder} ("
+                + ", ".join(f.name for f in files[:4]) + (" ..." if len(files) > 4 else "")
+                + "): that folder holds the outputs of an earlier run, which are never "
+                "read as inputs. Narrow [layers] paths to silence this."))
+        if not paths:
+            raise LayerError(
+                "Every file [layers] paths matches lies in the output folder of an "
+                "earlier run; point [layers] paths at the input layers."
+            )
         origins, derived = [], []
-        paths = s.layers.paths
         if s.layers.alignment == "warp":
             from screener.alignment import align_layers
 
             aligned = align_layers(
-                s.layers.paths,
+                paths,
                 cache_dir=_aligned_dir(cache_dir),
                 reference=s.layers.reference,
                 crs=s.layers.crs,
@@ -992,7 +1029,7 @@ def _taxon_key(intake: Intake, taxon: str) -> str:
 
     s = intake.settings
     rec = intake.records.taxa[taxon]
-    layer_hashes = [intake.input_hashes.get(str(p)) for p in s.layers.paths]
+    layer_hashes = [intake.input_hashes.get(str(p)) for p in layer_paths(s)[0]]
     layer_settings = {k: v for k, v in s.layers.items() if k != "paths"}
     return digest(
         "taxon-model",
@@ -1083,7 +1120,7 @@ def run_analysis(
         plan = plan_sites(intake, taxa, progress=progress, map_fn=executor.map)
     progress.done()
     shade = hillshade(intake.grid, intake.elevation) if intake.elevation is not None else None
-    warns = list(intake.warnings)
+    warns = list(intake.warnings) + list(cache.problems)
     warns.extend(plan["candidates"].warnings)
     novel = plan["sites"]["novel_share"].fillna(0) > 0 if len(plan["sites"]) else []
     if len(plan["sites"]) and np.any(novel):

@@ -451,6 +451,32 @@ def test_categorical_layer_warns_until_declared(scen):
     assert "distinct values" not in text
 
 
+def test_layers_in_an_earlier_runs_folder_are_skipped(scen, baseline):
+    from screener.outputs.staging import write_run_marker
+
+    # paths = ["layers/*/*.tif"] with an earlier run's --out inside layers/
+    base = scen / "layers" / "base"
+    base.mkdir()
+    for tif in (scen / "layers").glob("*.tif"):
+        tif.rename(base / tif.name)
+    results = scen / "layers" / "results"
+    results.mkdir()
+    write_run_marker(results, "an-earlier-run")
+    shutil.copy(base / "moisture.tif", results / "access_hours.tif")
+    shutil.copy(base / "cloud.tif", results / "barrier.tif")
+    p = scen / "project.toml"
+    p.write_text(p.read_text("utf-8").replace("layers/*.tif", "layers/*/*.tif"), "utf-8")
+    text = _check_lines(scen)
+    assert re.search(r"Warning: Skipped 2 layer file\(s\) in \S+results \(access_hours\.tif, "
+                     r"barrier\.tif\): that folder holds the outputs of an earlier run", text)
+    predictors = re.search(r"Predictors \(\d\): .*", text).group(0)
+    assert predictors == re.search(r"Predictors \(\d\): .*", baseline).group(0)
+    # a project inside a run folder (the demo's scenario) still reads its own layers
+    write_run_marker(scen, "the-demo")
+    text = _check_lines(scen)
+    assert text.count("Skipped 2 layer file(s)") == 1 and predictors in text
+
+
 # ------------------------------------------------------------------ output folder
 @pytest.fixture(scope="module")
 def warm(demo_base, tmp_path_factory):
@@ -657,6 +683,72 @@ def test_a_bug_is_reported_as_one_and_leaves_nothing(warm, tmp_path, monkeypatch
     result = invoke("run", warm / "project.toml", "--out", out)
     assert_refused(result, out, r"Internal error \(ZeroDivisionError.*rerun with --debug",
                    code=1)
+
+
+# ------------------------------------------------------------------ the cache runs no code
+class _Payload:
+    """Unpickling this runs code: it writes ``path``."""
+
+    def __init__(self, path):
+        self.path = str(path)
+
+    def __reduce__(self):
+        return (exec, (f"open({self.path!r}, 'w').write('code ran')",))
+
+
+@pytest.mark.slow
+def test_a_poisoned_cache_entry_never_runs(warm, tmp_path):
+    import pickle
+
+    scen = tmp_path / "scen"
+    shutil.copytree(warm, scen)
+    cache = scen / ".screener-cache"
+    sentinel = tmp_path / "code-ran.txt"
+    payload = pickle.dumps(_Payload(sentinel))
+    pickle.loads(payload)  # the payload is live: loading it would run its code
+    assert sentinel.exists()
+    sentinel.unlink()
+    entries = sorted(cache.glob("taxon/*.npz"))
+    assert len(entries) == 3
+    # a pickle planted under one entry's own name and beside it under the old name
+    entries[0].write_bytes(payload)
+    entries[0].with_suffix(".pickle").write_bytes(payload)
+    # a well-formed entry whose manifest names a class outside the screener
+    (overlap,) = cache.glob("overlap/*.npz")
+    manifest = {"format": 1, "stage": "overlap", "key": overlap.stem,
+                "value": {"__dataclass__": "subprocess:Popen", "fields": {"args": "true"}}}
+    np.savez(overlap, __manifest__=np.frombuffer(json.dumps(manifest).encode(), np.uint8))
+    out = tmp_path / "out"
+    result = invoke("run", scen / "project.toml", "--out", out)
+    assert result.exit_code == 0, result.output
+    assert not sentinel.exists()
+    assert result.output.count("Warning: Ignored the cache") == 3, result.output
+    prov = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    assert sorted(prov["cache"]["misses"]) == ["overlap", "taxon"]
+    assert sum("pickled entries are never loaded" in w for w in prov["warnings"]) == 1
+    assert sum("unreadable or was changed" in w for w in prov["warnings"]) == 2
+    # the recomputed stages replaced the bad entries with readable ones
+    result = invoke("run", scen / "project.toml", "--out", tmp_path / "again")
+    prov = json.loads((tmp_path / "again" / "run.json").read_text(encoding="utf-8"))
+    assert prov["cache"]["hits"] == ["taxon"] * 3 + ["overlap"]
+
+
+def test_cache_round_trip_keeps_types_and_refuses_other_objects():
+    from screener.cache import CacheFormatError, decode, encode
+    from screener.results import Threshold
+
+    value = {"t": Threshold("mtp", np.float64(0.25), 3.5, 0.0), ("a", 1): [np.arange(3)],
+             "nan": float("nan"), "frame": __import__("pandas").DataFrame(
+                 {"taxon": ["=cmd", None], "D": [0.5, np.nan]})}
+    arrays = {}
+    back = decode(json.loads(json.dumps(encode(value, arrays))), arrays)
+    assert back["t"] == value["t"] and isinstance(back["t"].value, np.float64)
+    assert back[("a", 1)][0].dtype == np.arange(3).dtype and np.isnan(back["nan"])
+    assert back["frame"].equals(value["frame"])
+    with pytest.raises(CacheFormatError):
+        encode({"f": open}, {})
+    with pytest.raises(CacheFormatError, match="not an allowed estimator"):
+        decode({"__estimator__": "os:system", "state": {"__dict__": []}}, {})
 
 
 # ------------------------------------------------------------------ Ctrl-C and resume

@@ -24,7 +24,7 @@ from pathlib import Path
 from screener.errors import OutputError
 
 __all__ = ["staged_output", "check_output_folder", "RUN_MARKER", "new_run_id",
-           "read_run_marker", "write_run_marker"]
+           "read_run_marker", "write_run_marker", "enclosing_run_folder"]
 
 log = logging.getLogger(__name__)
 
@@ -58,6 +58,22 @@ def read_run_marker(folder) -> dict | None:
     if not isinstance(data, dict) or not isinstance(data.get("run_id"), str):
         return None
     return data
+
+
+def enclosing_run_folder(path, project_folder=None) -> Path | None:
+    """The folder holding a run marker that contains ``path``, if any.
+
+    Folders that also contain ``project_folder`` do not count: a project inside a run
+    folder (the demo's ``scenario``) reads its own inputs.
+    """
+    q = Path(path).expanduser().resolve()
+    home = Path(project_folder).expanduser().resolve() if project_folder else None
+    for folder in q.parents:
+        if home is not None and (folder == home or folder in home.parents):
+            return None
+        if (folder / RUN_MARKER).is_file():
+            return folder
+    return None
 
 
 def _inputs_inside(out: Path, inputs) -> list:
