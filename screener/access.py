@@ -35,6 +35,7 @@ __all__ = [
     "start_cells_from_lonlat",
     "tobler_speed_kmh",
     "walking_hours",
+    "walking_surface",
 ]
 
 #: Speed factor off tracks (Tobler 1993).
@@ -136,6 +137,34 @@ def start_cells_from_lonlat(grid: Grid, lon, lat):
     return rows, cols
 
 
+def walking_surface(
+    grid: Grid,
+    elevation,
+    start_rc,
+    off_track: bool = True,
+    impassable=None,
+    *,
+    off_track_factor: float = OFF_TRACK_FACTOR,
+    memory_mb: float | None = None,
+):
+    """Walking time from the nearest start point, with its traceback.
+
+    As :func:`walking_hours`, but returns the whole
+    :class:`~screener.costdistance.CostSurface` (``cost`` in hours), so the walking
+    route to any cell can be traced with
+    :func:`~screener.costdistance.least_cost_path`.
+    """
+    slope = slope_rise_over_run(grid, elevation)
+    v = isotropic_speed_kmh(
+        slope, off_track=off_track, off_track_factor=off_track_factor
+    )
+    with np.errstate(invalid="ignore"):
+        cost = 1.0 / v  # hours per km
+    if impassable is not None:
+        cost = np.where(np.asarray(impassable, bool), np.inf, cost)
+    return cost_distance(grid, cost, start_rc, memory_mb=memory_mb)
+
+
 def walking_hours(
     grid: Grid,
     elevation,
@@ -173,12 +202,12 @@ def walking_hours(
     ----------
     .. [1] Tobler, W. (1993). NCGIA Technical Report 93-1.
     """
-    slope = slope_rise_over_run(grid, elevation)
-    v = isotropic_speed_kmh(
-        slope, off_track=off_track, off_track_factor=off_track_factor
-    )
-    with np.errstate(invalid="ignore"):
-        cost = 1.0 / v  # hours per km
-    if impassable is not None:
-        cost = np.where(np.asarray(impassable, bool), np.inf, cost)
-    return cost_distance(grid, cost, start_rc, memory_mb=memory_mb).cost
+    return walking_surface(
+        grid,
+        elevation,
+        start_rc,
+        off_track,
+        impassable,
+        off_track_factor=off_track_factor,
+        memory_mb=memory_mb,
+    ).cost

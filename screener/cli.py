@@ -240,30 +240,24 @@ def check(project, debug):
 @handle_errors
 def demo(ctx, out, overwrite, size, scheduler, debug):
     """Write the invented demo scenario into --out/scenario and run it into --out/results."""
-    import shutil
-    import tempfile
-
     from screener.demo import write_demo_scenario
     from screener.outputs.staging import check_output_folder, staged_output
-    from screener.pipeline import run_project
+    from screener.pipeline import repoint_run_json, run_project
     from screener.project import load_project
 
     out = check_output_folder(out, overwrite=overwrite)
     echo = None if ctx.obj.get("quiet") else _echo_err
-    with tempfile.TemporaryDirectory(prefix="screener-demo-") as tmp:
-        scen = Path(tmp) / "scenario"
+    # the same staging and overwrite rules as a run: a folder that appeared
+    # meanwhile, or one the screener did not write, is never replaced.  The scenario
+    # stays beside the results, and run.json is pointed at where it will be.
+    with staged_output(out, overwrite=overwrite) as stage:
         if echo:
-            echo(f"Writing the invented demo scenario ({size})")
-        project = write_demo_scenario(scen, size=size)
+            echo(f"Writing the invented demo scenario ({size}) to {out / 'scenario'}")
+        project = write_demo_scenario(stage / "scenario", size=size)
         settings = load_project(project)
-        results_tmp = Path(tmp) / "results"
-        result = run_project(settings, results_tmp, echo=echo, scheduler=scheduler,
+        result = run_project(settings, stage / "results", echo=echo, scheduler=scheduler,
                              cache_dir=None)
-        # the same staging and overwrite rules as a run: a folder that appeared
-        # meanwhile, or one the screener did not write, is never replaced
-        with staged_output(out, overwrite=overwrite) as stage:
-            shutil.copytree(scen, stage / "scenario")
-            shutil.copytree(results_tmp, stage / "results")
+        repoint_run_json(stage / "results" / "run.json", stage, out)
     _print_summary(result, out / "results")
 
 
@@ -297,17 +291,17 @@ def debrief(field_results, run_dir, out, overwrite, debug):
 @handle_errors
 def reproduce(ctx, run_json, out, overwrite, scheduler, allow_changed_inputs, debug):
     """Rerun a run from its run.json (same settings, seeds and inputs)."""
-    from screener.pipeline import file_sha256, run_project
+    from screener.pipeline import file_sha256, locate_run_inputs, relocate, run_project
     from screener.project import settings_from_dict
 
-    prov = json.loads(Path(run_json).read_text(encoding="utf-8"))
+    prov, moved = locate_run_inputs(run_json)
     changed = []
     for path, h in prov.get("input_hashes", {}).items():
-        p = Path(path)
+        p = Path(moved.get(path, path))
         if not p.exists():
             changed.append(f"{path} (missing)")
         elif file_sha256(p) != h:
-            changed.append(f"{path} (changed)")
+            changed.append(f"{p} (changed)")
     if changed and not allow_changed_inputs:
         raise InputError(
             "Inputs differ from the recorded run: " + "; ".join(changed)
@@ -315,10 +309,11 @@ def reproduce(ctx, run_json, out, overwrite, scheduler, allow_changed_inputs, de
         )
     data = {
         sec: {k: v for k, v in body.items() if v is not None}
-        for sec, body in prov["settings"].items()
+        for sec, body in relocate(prov["settings"], moved).items()
     }
     project_file = prov.get("project_file")
-    base = Path(project_file).parent if project_file else Path.cwd()
+    project_now = moved.get(project_file) if project_file else None
+    base = Path(project_now).parent if project_now else Path.cwd()
     settings = settings_from_dict(data, base_dir=base, where=str(run_json))
     echo = None if ctx.obj.get("quiet") else _echo_err
     result = run_project(settings, out, overwrite=overwrite, echo=echo,

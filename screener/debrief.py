@@ -2,8 +2,10 @@
 
 Reads a run's output folder (run.json, the consensus suitability maps, the ranges at
 the minimum training presence and candidates.gpkg), the field results, and writes a
-short report plus an updated copy of the record file for the next run.  The input
-record file is never edited in place.
+short report, an updated copy of the record file and a project file for the next run.
+The input record file is never edited in place.  A new lineage with fewer records
+than the run's ``min_records`` stays in the record file (with a note) and is left out
+of the next project's ``[project] taxa``, so the next run does not stop on it.
 """
 
 from __future__ import annotations
@@ -33,12 +35,14 @@ def load_run_outputs(run_dir):
     from screener.grid import Grid
 
     run_dir = Path(run_dir)
+    from screener.pipeline import locate_run_inputs
+
     pj = run_dir / "run.json"
     if not pj.exists():
         raise InputError(
             f"{run_dir} holds no run.json; give the output folder of a `screener run`."
         )
-    prov = json.loads(pj.read_text(encoding="utf-8"))
+    prov, moved = locate_run_inputs(pj)
     taxa = prov.get("taxa") or {}
     if not taxa:
         raise InputError(f"{pj} lists no taxa; was the run finished with this version?")
@@ -63,15 +67,51 @@ def load_run_outputs(run_dir):
     ens = ev[ev["algorithm"] == "ensemble"].set_index("taxon")["threshold_mtp"]
     mtp = {name: float(ens[name]) for name in taxa}
     return {"grid": grid, "suitability": suit, "predicted": predicted, "sites": sites,
-            "provenance": prov, "mtp": mtp}
+            "provenance": prov, "mtp": mtp, "moved": moved}
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int, float)):
+        return repr(v)
+    if isinstance(v, str):
+        return json.dumps(v)  # a TOML basic string uses the same escapes
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(x) for x in v if x is not None) + "]"
+    if isinstance(v, dict):
+        body = ", ".join(f"{json.dumps(str(k))} = {_toml_value(x)}"
+                         for k, x in v.items() if x is not None)
+        return "{" + body + "}"
+    raise TypeError(f"cannot write {v!r} to TOML")
+
+
+def next_project_text(settings: dict, records_file: str, taxa) -> str:
+    """TOML text of the next run's project: the run's settings with the updated
+    record file and ``[project] taxa`` limited to ``taxa``."""
+    lines = ["# Project for the next run, written by `screener debrief`.", ""]
+    for section, body in settings.items():
+        body = dict(body or {})
+        if section == "occurrences":
+            body["path"] = records_file
+        if section == "project":
+            body["taxa"] = list(taxa)
+        items = [(k, v) for k, v in body.items() if v is not None]
+        if not items:
+            continue
+        lines.append(f"[{section}]")
+        lines += [f"{k} = {_toml_value(v)}" for k, v in items]
+        lines.append("")
+    return "\n".join(lines)
 
 
 def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> list:
     """Score a run against field results and write the debrief into ``out_dir``.
 
     Writes ``debrief.md`` (the summary), ``debrief.json`` (the numbers),
-    ``site_outcomes.csv`` and ``records_updated.csv`` (the run's record file plus the
-    new finds, for the next run).
+    ``site_outcomes.csv``, ``records_updated.csv`` (the run's record file plus the
+    new finds at their own coordinates) and ``project_next.toml`` (the run's settings
+    with the updated record file; taxa with too few records left out of modelling).
 
     Returns
     -------
@@ -103,42 +143,71 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
     relative = {n: m / run["mtp"][n] for n, m in run["suitability"].items()}
     score = score_survey(fr, run["sites"], grid, relative, threshold=1.0, area_share=share,
                          random_state=run["provenance"].get("seeds", {}).get("random_state", 0))
-    rec_path = run["provenance"].get("settings", {}).get("occurrences", {}).get("path")
+    from screener.pipeline import relocate
+
+    settings = relocate(run["provenance"].get("settings", {}), run["moved"])
+    rec_path = settings.get("occurrences", {}).get("path")
     if not rec_path or not Path(rec_path).exists():
         raise InputError(
             f"The run's record file {rec_path} is not where run.json says; the updated "
             "record file needs it."
         )
-    occ = run["provenance"].get("settings", {}).get("occurrences", {})
+    occ = settings.get("occurrences", {})
     raw = read_records(rec_path, encoding=occ.get("encoding") or None,
                        taxon_column=occ.get("taxon_column", "taxon"))
+    modelled = list(run["provenance"].get("taxa") or {})
+    min_records = int(occ.get("min_records") or 1)
     if raw.darwin_core:
-        updated = _updated_darwin_core(raw, fr, run["sites"], grid)
+        updated, taxon_of = _updated_darwin_core(raw, fr, grid, modelled, min_records)
     else:
         original = pd.read_csv(rec_path, dtype=str, keep_default_na=False)
-        updated = updated_records(original, fr, sites=run["sites"], grid=grid)
+        updated = updated_records(original, fr, grid=grid, modelled_taxa=modelled,
+                                  min_records=min_records)
+        taxon_of = updated["taxon"]
+    taxon_of = taxon_of.astype(str)
+    left_out = sorted(set(taxon_of[(updated["note"] != "").to_numpy()]))
+    next_taxa = [t for t in dict.fromkeys(taxon_of) if t not in left_out]
+    report = render_survey_report(score)
+    if left_out:
+        report += (
+            "
+Left out of the next run's modelling (kept in records_updated.csv with a "
+            f"note; fewer than min_records = {min_records} records): "
+            + ", ".join(left_out) + ". project_next.toml lists the taxa it models.
+"
+        )
     summary = {k: (v.item() if isinstance(v, np.generic) else v)
                for k, v in vars(score).items() if not isinstance(v, pd.DataFrame)}
     with staged_output(out, overwrite=overwrite, inputs=inputs + [Path(rec_path)]) as stage:
-        (stage / "debrief.md").write_text(render_survey_report(score), encoding="utf-8")
+        (stage / "debrief.md").write_text(report, encoding="utf-8")
         (stage / "debrief.json").write_text(
             json.dumps(summary, indent=2, sort_keys=True, default=str) + "\n", encoding="utf-8")
         score.per_site.to_csv(stage / "site_outcomes.csv", index=False, lineterminator="\n")
         updated.to_csv(stage / "records_updated.csv", index=False, lineterminator="\n")
+        (stage / "project_next.toml").write_text(
+            next_project_text(settings, "records_updated.csv", next_taxa), encoding="utf-8")
     lines = [
         f"Visited predicted sites: {score.n_visited}, with a find: {score.n_hits}",
         f"Share of the area predicted suitable: {share:.3f}",
         f"Binomial test of the hit rate (Anderson et al. 2002): p = {score.binomial_p:.4g}",
-        f"AUC of the new records: {score.auc:.3f}",
-        f"Wrote {out} (records_updated.csv is the record file for the next run; the "
-        "original was not changed)",
+        f"AUC of the new find localities: {score.auc:.3f} ({score.n_new_records} "
+        "records with their own coordinates)",
+        f"Wrote {out} (records_updated.csv and project_next.toml are for the next run; "
+        "the original record file was not changed)",
     ]
+    if score.finds_without_locality:
+        lines.insert(-1, f"{len(score.finds_without_locality)} find(s) had no coordinates "
+                     "of their own: see debrief.md")
+    if left_out:
+        lines.insert(-1, "Left out of the next run's modelling (too few records): "
+                     + ", ".join(left_out))
     return lines
 
 
-def _updated_darwin_core(raw, field_results, sites, grid):
+def _updated_darwin_core(raw, field_results, grid, modelled_taxa, min_records):
     """Updated records for a Darwin Core record file: every original column (with its
-    occurrenceID) kept as read, finds added with Darwin Core terms filled in."""
+    occurrenceID) kept as read, finds added with Darwin Core terms filled in; and the
+    taxon of each row."""
     import pandas as pd
 
     from screener.darwincore import find_term
@@ -147,7 +216,8 @@ def _updated_darwin_core(raw, field_results, sites, grid):
     cols = list(raw.columns)
     by_name = {"taxon": raw.taxon, "longitude": raw.a, "latitude": raw.b}
     table = pd.DataFrame({**by_name, **raw.extra})
-    updated = updated_records(table, field_results, sites=sites, grid=grid)
+    updated = updated_records(table, field_results, grid=grid,
+                              modelled_taxa=modelled_taxa, min_records=min_records)
     new = updated.index >= len(table)
     out = pd.DataFrame(index=updated.index)
     for c in cols:
@@ -164,4 +234,5 @@ def _updated_darwin_core(raw, field_results, sites, grid):
     if find_term(cols, "basisOfRecord") is not None:
         out.loc[new, cols[find_term(cols, "basisOfRecord")]] = "HumanObservation"
     out["source"] = updated["source"]
-    return out
+    out["note"] = updated["note"]
+    return out, updated["taxon"]

@@ -44,6 +44,10 @@ __all__ = [
     "file_sha256",
     "input_paths",
     "layer_paths",
+    "input_locations",
+    "locate_run_inputs",
+    "relocate",
+    "repoint_run_json",
 ]
 
 log = logging.getLogger(__name__)
@@ -92,6 +96,112 @@ def file_sha256(path) -> str:
         for chunk in iter(lambda: f.read(1 << 20), b""):
             h.update(chunk)
     return h.hexdigest()
+
+
+def input_locations(provenance: dict, results_folder) -> dict:
+    """Where a run's inputs lie relative to its project file, and the project file
+    relative to the results folder (so a moved pair of folders still reproduces).
+
+    Parameters
+    ----------
+    provenance : dict
+        With ``project_file`` and ``input_hashes`` (absolute paths).
+    results_folder : path-like
+        The folder run.json is written into (or a sibling staging folder of it).
+
+    Returns
+    -------
+    dict
+        ``project_file_from_results`` (str or None) and ``inputs_from_project``
+        (absolute path -> path relative to the project file's folder).
+    """
+    import os
+
+    project = provenance.get("project_file")
+    if not project:
+        return {"project_file_from_results": None, "inputs_from_project": {}}
+    project = Path(project).resolve()
+    here = Path(results_folder).resolve()
+    return {
+        "project_file_from_results": Path(os.path.relpath(project, here)).as_posix(),
+        "inputs_from_project": {
+            str(p): Path(os.path.relpath(Path(p).resolve(), project.parent)).as_posix()
+            for p in provenance.get("input_hashes", {})
+        },
+    }
+
+
+def locate_run_inputs(run_json) -> tuple:
+    """Find the inputs of a recorded run, also after its folders were moved.
+
+    Each input is looked for at its recorded absolute path and, failing that, at its
+    path relative to the project file, whose own place is taken relative to the
+    folder that holds ``run_json``.
+
+    Returns
+    -------
+    provenance : dict
+        run.json as read.
+    moved : dict of str to str
+        Recorded absolute path -> path where the file is now (the recorded one when
+        it cannot be found; callers report it as missing).
+    """
+    run_json = Path(run_json)
+    try:
+        prov = json.loads(run_json.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{run_json} is not a readable run.json: {exc}") from None
+    here = run_json.resolve().parent
+    recorded = prov.get("project_file")
+    rel_project = prov.get("project_file_from_results")
+    project_now = None
+    if recorded and Path(recorded).exists():
+        project_now = Path(recorded)
+    elif rel_project and (here / rel_project).exists():
+        project_now = (here / rel_project).resolve()
+    moved = {}
+    if recorded:
+        moved[str(recorded)] = str(project_now or recorded)
+    rel_inputs = prov.get("inputs_from_project") or {}
+    for old in prov.get("input_hashes", {}):
+        now = old
+        rel = rel_inputs.get(old)
+        if not Path(old).exists() and project_now is not None and rel:
+            cand = (project_now.parent / rel).resolve()
+            if cand.exists():
+                now = str(cand)
+        moved[str(old)] = str(now)
+    return prov, moved
+
+
+def relocate(value, moved: dict):
+    """``value`` (settings: nested dicts, lists, strings) with moved paths replaced."""
+    if isinstance(value, dict):
+        return {k: relocate(v, moved) for k, v in value.items()}
+    if isinstance(value, list):
+        return [relocate(v, moved) for v in value]
+    if isinstance(value, str):
+        return moved.get(value, value)
+    return value
+
+
+def repoint_run_json(run_json, old_root, new_root) -> None:
+    """Rewrite the paths in a run.json that lie under ``old_root`` to lie under
+    ``new_root`` (for outputs built in a staging folder that is then renamed)."""
+    old_root, new_root = str(Path(old_root)), str(Path(new_root))
+
+    def move(v):
+        if isinstance(v, dict):
+            return {move(k) if isinstance(k, str) else k: move(x) for k, x in v.items()}
+        if isinstance(v, list):
+            return [move(x) for x in v]
+        if isinstance(v, str) and (v == old_root or v.startswith(old_root + "/")):
+            return new_root + v[len(old_root):]
+        return v
+
+    path = Path(run_json)
+    prov = json.loads(path.read_text(encoding="utf-8"))
+    path.write_text(json.dumps(move(prov), indent=2, sort_keys=True) + "\n", encoding="utf-8")
 
 
 def taxon_seed(random_state: int, taxon: str) -> int:
@@ -558,7 +668,9 @@ def model_taxon(
         )
         family_maps[family] = m
         evaluations[family] = ev
-        curves[family] = response_curves(model, B, names=stack.names)
+        # held at the records' medians, so each curve crosses the niche
+        curves[family] = response_curves(model, B, names=stack.names,
+                                         at=np.median(P, axis=0))
         importance[family] = permutation_importance(
             model, P, B, random_state=seed, names=stack.names
         )
@@ -887,8 +999,10 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
     )
     sites = cand.sites.copy()
     access_hours = None
+    routes, starts = {}, None
     if intake.start_points is not None and intake.elevation is not None:
-        from screener.access import walking_hours
+        from screener.access import walking_surface
+        from screener.routes import walking_routes
 
         progress.step("walking time from start points (Tobler's hiking function)")
         sp = intake.start_points
@@ -900,16 +1014,20 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
                 f"None of the start points in {s.access.start_points} lies on a valid "
                 "cell of the grid; check their coordinates."
             )
-        access_hours = walking_hours(
+        walk = walking_surface(
             grid,
             intake.elevation,
             np.column_stack([r[ok], c[ok]]),
             off_track=s.access.off_track,
             memory_mb=s.compute.memory_mb or None,
         )
+        access_hours = walk.cost
         sites["walk_hours"] = access_hours[
             sites["row"].to_numpy(int), sites["col"].to_numpy(int)
         ]
+        starts = sp.loc[ok].copy()
+        starts["row"], starts["col"] = r[ok], c[ok]
+        routes = walking_routes(grid, intake.elevation, walk, starts, sites)
     else:
         sites["walk_hours"] = np.nan
     surveyed = _surveyed_points(intake, taxa)
@@ -949,6 +1067,8 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
         "access_hours": access_hours,
         "candidates": cand,
         "clade_mess": clade_mess,
+        "routes": {k: v for k, v in routes.items() if k in set(gdf["site_id"].astype(str))},
+        "start_points": starts,
     }
 
 
@@ -1167,6 +1287,8 @@ def run_analysis(
         comparisons=comparisons,
         candidates=plan["candidates"],
         clade_mess=plan["clade_mess"],
+        routes=plan["routes"],
+        start_points=plan["start_points"],
     )
 
 
@@ -1269,7 +1391,14 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
         result.paths.to_file(gpkg, layer="least_cost_paths", driver="GPKG")
     rel(gpkg)
     progress.step("waypoints, field sheets and report")
-    rel(gpx.write_gpx(folder / "sites.gpx", sites, shareable.sampling_points))
+    # routes end at the exact site points: left out when sites are generalised
+    exact_sites = not so.get("generalise_sites", False)
+    rel(gpx.write_gpx(
+        folder / "sites.gpx", sites,
+        sheets.site_sampling_points(shareable, top_n=so.get("field_sheets", 10)),
+        start_points=result.start_points,
+        routes=result.routes if exact_sites else None,
+    ))
     rel(sheets.write_field_sheets(
         folder / "field_sheets.pdf", shareable, top_n=so.get("field_sheets", 10),
         page_size=so.get("page_size", "A4"),
@@ -1280,6 +1409,7 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     prov = dict(result.provenance)
     prov["taxa"] = {name: _safe_name(name) for name in result.taxa}
     prov["outputs"] = sorted(written + ["run.json"])
+    prov.update(input_locations(prov, folder))
     (folder / "run.json").write_text(json.dumps(_jsonable(prov), indent=2, sort_keys=True)
                                      + "\n", encoding="utf-8")
     return sorted(written + ["run.json"])

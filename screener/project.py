@@ -98,6 +98,8 @@ SCHEMA: dict = {
         "start_points": (Path, None, "CSV of start points: name, longitude, latitude."),
         "off_track": (bool, True, "Walking off track (Tobler speed x 0.6)."),
         "max_walk_hours": (float, 0.0, "Leave out sites farther than this walk (0 = off)."),
+        "walking_day_hours": (float, 7.0, "Hours of walking in a field day, for the days "
+                              "on field sheets (common practice: 6 to 8)."),
     },
     "survey": {
         "surveyed": (Path, None, "CSV of places already surveyed: longitude, latitude[, found]."),
@@ -340,6 +342,7 @@ def _check_choices(s, where):
         ("background", "max_points", 10),
         ("overlap", "grid_cells", 10),
         ("ranking", "top_k", 1),
+        ("access", "walking_day_hours", 1),
     ]:
         if s[section][key] < lo:
             raise ProjectError(f"{where}: [{section}] {key} must be at least {lo}.")

@@ -183,6 +183,11 @@ class RunResult:
         :class:`screener.overlap.PairComparison` per pair (null distributions etc.).
     candidates : screener.isolation.CandidateSet or None
         Rasters behind the sites (patch labels, cost surfaces).
+    routes : dict of str to screener.routes.WalkingRoute
+        Walking route from the nearest start point to each reachable site, by
+        site id (empty without start points and elevation).
+    start_points : pandas.DataFrame or None
+        The start points (``name``, ``longitude``, ``latitude``) on the grid.
     clade_mess : ndarray or None
         MESS against the pooled calibration background of all taxa.
     """
@@ -208,3 +213,5 @@ class RunResult:
     comparisons: list = field(default_factory=list)
     candidates: object = None
     clade_mess: np.ndarray | None = None
+    routes: dict = field(default_factory=dict)
+    start_points: object = None

@@ -227,6 +227,9 @@ class SurveyScore:
         One row per ranked site: site_id, rank, kind, visited, found, effort_hours.
     unmatched : list of str
         Field rows that matched no site and lay off the grid, in plain words.
+    finds_without_locality : list of str
+        Finds given by site only: they count for the hit rate but are neither test
+        records nor new records.
     """
 
     n_visited: int
@@ -242,6 +245,7 @@ class SurveyScore:
     n_new_lineage: int
     per_site: pd.DataFrame
     unmatched: list = field(default_factory=list)
+    finds_without_locality: list = field(default_factory=list)
 
 
 def _clade_map(suitability) -> np.ndarray:
@@ -378,7 +382,14 @@ def score_survey(
         f"line {int(fr.loc[i, 'line'])}: no ranked site and off the grid"
         for i in np.flatnonzero((sid == "") & ~on)
     ]
-    new = find & on
+    # Test records are find *localities*: a find given only by its site would stand
+    # at the site's representative point, the site's most suitable cell, and make
+    # the AUC circular.  Such finds count for the hit rate only.
+    new = find & on & has_xy
+    no_locality = [
+        f"line {int(fr.loc[i, 'line'])}: a find given by site only (no coordinates)"
+        for i in np.flatnonzero(find & ~has_xy)
+    ]
     # One test presence per cell and taxon, as for the training records.
     keys = pd.DataFrame(
         {"r": rows[new], "c": cols[new], "t": fr.loc[new, "taxon"].to_numpy()}
@@ -420,6 +431,7 @@ def score_survey(
         auc=auc,
         n_background=take,
         n_new_lineage=int((fr["outcome"] == "new-lineage").sum()),
+        finds_without_locality=no_locality,
         per_site=per_site[
             ["site_id", "rank", "kind", "visited", "found", "effort_hours"]
         ].reset_index(drop=True),
@@ -445,7 +457,8 @@ def render_survey_report(score: SurveyScore) -> str:
         f"- Share of the study area predicted suitable: {_f(score.area_share)}.",
         f"- One-sided binomial test of the hit rate against that share "
         f"(Anderson et al. 2002): p = {_f(score.binomial_p, '.4g')}.",
-        f"- New find localities used as test records: {score.n_new_records}, of which "
+        f"- New find localities (finds with their own coordinates) used as test "
+        f"records: {score.n_new_records}, of which "
         f"{score.n_new_in_predicted} in predicted suitable cells "
         f"(binomial p = {_f(score.records_binomial_p, '.4g')}).",
         f"- AUC of the new records against {score.n_background} background cells: "
@@ -464,6 +477,15 @@ def render_survey_report(score: SurveyScore) -> str:
     if score.unmatched:
         lines += ["", "Rows not used:", ""]
         lines += [f"- {html.escape(u)}" for u in score.unmatched]
+    if score.finds_without_locality:
+        lines += [
+            "",
+            "Finds without their own coordinates (counted for the hit rate; not test "
+            "records and not added to the record file; add the coordinates where the "
+            "animal was found):",
+            "",
+        ]
+        lines += [f"- {html.escape(u)}" for u in score.finds_without_locality]
     lines += [
         "",
         "A site where nothing was found is not evidence of absence: "
@@ -478,8 +500,9 @@ def updated_records(
     original_records: pd.DataFrame,
     field_results: pd.DataFrame,
     *,
-    sites=None,
     grid=None,
+    modelled_taxa=None,
+    min_records: int = 1,
 ) -> pd.DataFrame:
     """The record table plus the survey's new finds, for the next run.
 
@@ -489,24 +512,29 @@ def updated_records(
         The record table as read (``taxon`` and ``longitude``/``latitude``, or
         ``x``/``y`` in the grid CRS).  Not modified.
     field_results : pandas.DataFrame
-        From :func:`read_field_results`; rows with outcome found or new-lineage
-        are added.
-    sites : GeoDataFrame, optional
-        Needed for finds given only by ``site_id``: their coordinates become the
-        site's representative point, and ``source`` says so.
+        From :func:`read_field_results`; rows with outcome found or new-lineage and
+        their own coordinates are added at those coordinates (finds given by site
+        only are left out: a site point is not a locality).
     grid : screener.grid.Grid, optional
         Needed when the record table has ``x``/``y`` instead of longitude/latitude.
+    modelled_taxa : iterable of str, optional
+        Taxa the run modelled.  A taxon not among them with fewer than
+        ``min_records`` rows in the result is kept in the table but marked in the
+        ``note`` column as left out of modelling.
+    min_records : int, default 1
+        The run's ``[occurrences] min_records``.
 
     Returns
     -------
     pandas.DataFrame
         A new table: the original rows, then one row per find, with a ``source``
-        column ("input" for the original rows unless it already had one).
+        column ("input" for the original rows unless it already had one) and a
+        ``note`` column.
 
     Raises
     ------
     screener.errors.InputError
-        A find cannot be placed (unknown site_id, or no sites/grid given).
+        The record table lacks the columns needed to add a find.
     """
     orig = original_records.copy()
     if "taxon" not in orig.columns:
@@ -519,25 +547,14 @@ def updated_records(
         )
     if "source" not in orig.columns:
         orig["source"] = "input"
+    if "note" not in orig.columns:
+        orig["note"] = ""
     finds = field_results[field_results["outcome"].isin(FIND_OUTCOMES)]
-    site_xy = None
-    if sites is not None:
-        site_xy = sites.set_index(sites["site_id"].astype(str))[
-            ["longitude", "latitude"]
-        ]
     new_rows = []
     for r in finds.to_dict("records"):
         lon, lat = r["longitude"], r["latitude"]
-        src = f"field survey {r['date']} ({r['outcome']})"
         if not (np.isfinite(lon) and np.isfinite(lat)):
-            if site_xy is None or str(r["site_id"]) not in site_xy.index:
-                raise InputError(
-                    f"field results line {r['line']}: a find at site "
-                    f"{r['site_id']!r} has no coordinates and the site is unknown; "
-                    "add longitude/latitude or pass the run's sites."
-                )
-            lon, lat = site_xy.loc[str(r["site_id"])].to_numpy(float)
-            src += ", site point, not the exact locality"
+            continue  # listed in the debrief as a find without a locality
         row = {c: pd.NA for c in orig.columns}
         row["taxon"] = r["taxon"]
         if use_xy:
@@ -548,10 +565,21 @@ def updated_records(
         for key in ("date", "site_id", "effort_hours"):
             if key in orig.columns:
                 row[key] = r[key]
-        row["source"] = src
+        row["source"] = f"field survey {r['date']} ({r['outcome']})"
+        row["note"] = ""
         new_rows.append(row)
-    if not new_rows:
-        return orig
-    return pd.concat(
-        [orig, pd.DataFrame(new_rows, columns=orig.columns)], ignore_index=True
-    )
+    out = orig
+    if new_rows:
+        out = pd.concat(
+            [orig, pd.DataFrame(new_rows, columns=orig.columns)], ignore_index=True
+        )
+    if modelled_taxa is not None:
+        counts = out["taxon"].astype(str).value_counts()
+        known = {str(t) for t in modelled_taxa}
+        for taxon, n in counts.items():
+            if taxon not in known and n < int(min_records):
+                out.loc[out["taxon"].astype(str) == taxon, "note"] = (
+                    f"{n} record(s), fewer than min_records = {int(min_records)}: kept "
+                    "here, left out of modelling until more records are found"
+                )
+    return out

@@ -120,7 +120,7 @@ def make_run(
         kinds = ["within-range", "near-range", "isolated"]
         rows_out.append(
             {
-                "site_id": f"site-{i + 1:03d}",
+                "site_id": f"S{i + 1:02d}",
                 "kind": kinds[i % 3],
                 "longitude": float(lon),
                 "latitude": float(lat),

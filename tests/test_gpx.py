@@ -33,23 +33,65 @@ def test_gpx_validates_and_reads_back(tmp_path, run, schema):
     schema.validate(str(path))
     with path.open() as fh:
         gpx = gpxpy.parse(fh)
-    assert len(gpx.waypoints) == len(run.sites) + len(points)
     by_name = {w.name: w for w in gpx.waypoints}
     for site in run.sites.itertuples():
-        w = by_name[f"S{site.rank:02d}"]
+        w = by_name[site.site_id]
         np.testing.assert_allclose(
             [w.latitude, w.longitude], [site.latitude, site.longitude], atol=1e-6
         )
         assert site.kind in w.description and f"rank {site.rank}" in w.description
         assert "m" in w.description and w.symbol
-    rank = dict(zip(run.sites.site_id, run.sites["rank"], strict=True))
+    # no two waypoints on the same spot: a sampling point at the site point is the
+    # site's own waypoint
+    spots = [(round(w.latitude, 7), round(w.longitude, 7)) for w in gpx.waypoints]
+    assert len(spots) == len(set(spots))
+    site_xy = run.sites.set_index("site_id")[["longitude", "latitude"]]
+    n_same = 0
     for p in points.itertuples():
-        w = by_name[f"S{rank[p.site_id]:02d}-{p.point_id}"]
+        same = np.allclose([p.longitude, p.latitude], site_xy.loc[p.site_id], atol=1e-9)
+        n_same += same
+        w = by_name[p.site_id if same else f"{p.site_id}-{p.point_id}"]
         np.testing.assert_allclose(
             [w.latitude, w.longitude], [p.latitude, p.longitude], atol=1e-6
         )
+        if not same:
+            assert w.elevation == pytest.approx(p.elevation_m, abs=0.05)
+    assert n_same >= 1
+    assert len(gpx.waypoints) == len(run.sites) + len(points) - n_same
     # Names fit a handheld's short display (common practice: <= 8 characters).
     assert all(len(w.name) <= 8 for w in gpx.waypoints)
+
+
+def test_gpx_start_points_and_route_tracks(tmp_path, run, schema):
+    import pandas as pd
+
+    from screener.access import walking_surface
+    from screener.routes import walking_routes
+
+    lon, lat = run.grid.lonlat(38, 48)
+    starts = pd.DataFrame({"name": ["Road end"], "longitude": [float(lon)],
+                           "latitude": [float(lat)], "row": [38], "col": [48]})
+    surf = walking_surface(run.grid, run.elevation, np.array([[38, 48]]))
+    sites = run.sites.copy()
+    sites["row"], sites["col"], _ = run.grid.rowcol(sites["x"].to_numpy(),
+                                                    sites["y"].to_numpy())
+    routes = walking_routes(run.grid, run.elevation, surf, starts, sites.head(2))
+    path = write_gpx(tmp_path / "w.gpx", run.sites, start_points=starts, routes=routes)
+    schema.validate(str(path))
+    with path.open() as fh:
+        gpx = gpxpy.parse(fh)
+    start = [w for w in gpx.waypoints if w.name == "Road end"]
+    assert len(start) == 1 and start[0].latitude == pytest.approx(float(lat), abs=1e-6)
+    assert [t.name for t in gpx.tracks] == [f"{sid} route" for sid in routes]
+    for trk, route in zip(gpx.tracks, routes.values(), strict=True):
+        pts = trk.segments[0].points
+        assert len(pts) == len(route.cells)
+        # the track runs from the start point to the site's cell
+        assert (pts[0].latitude, pts[0].longitude) == pytest.approx(
+            (float(lat), float(lon)), abs=1e-6)
+        # gpxpy's own 2D length (haversine) agrees with the route's geodesic length
+        assert trk.length_2d() / 1000 == pytest.approx(route.distance_km, rel=5e-3)
+        assert "Road end" in trk.description
 
 
 def test_gpx_wraps_longitude_and_stays_valid(tmp_path, run, schema):

@@ -292,6 +292,26 @@ def test_response_curves_and_importance(data):
     assert imp.drops.shape == (3, 3)
 
 
+def test_response_curves_through_the_records_show_a_narrow_niche():
+    # A narrow niche in a corner of the available environment: held at the
+    # background medians every curve misses it; held at the records' medians each
+    # curve crosses it and peaks near the records (invented fixture values).
+    rng = np.random.default_rng(3)
+    bg = rng.uniform(0, 10, (2000, 2))
+    pres = rng.normal(9.0, 0.3, (25, 2))
+    model = make_model("ellipsoid").fit(pres, bg)
+    flat = response_curves(model, bg, n_points=41)
+    assert flat.suitability.max() < 0.05
+    rc = response_curves(model, bg, n_points=41, at=np.median(pres, axis=0))
+    assert_allclose(rc.medians, np.median(pres, axis=0))
+    assert rc.suitability.max(axis=0).min() > 0.5
+    for j in range(2):
+        peak = rc.values[np.argmax(rc.suitability[:, j]), j]
+        assert abs(peak - np.median(pres[:, j])) < 0.5
+    with pytest.raises(ValueError, match="2 finite values"):
+        response_curves(model, bg, at=[1.0])
+
+
 def test_model_figures(data):
     import matplotlib
 

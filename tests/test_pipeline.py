@@ -112,27 +112,37 @@ def test_rerun_from_cache_is_identical(demo_run, tmp_path):
 def test_debrief_scores_a_survey(demo_run, tmp_path):
     project, out, _ = demo_run
     cand = pd.read_csv(out / "candidates.csv")
-    first = cand.iloc[0]["site_id"]
+    first = cand.iloc[0]
     # one identifier per site, by rank, and a key from its location
-    assert first == "S01" and cand["site_id"].tolist() == [
+    assert first["site_id"] == "S01" and cand["site_id"].tolist() == [
         f"S{r:02d}" for r in cand["rank"]
     ]
     assert cand["site_key"].is_unique
     field = tmp_path / "field.csv"
+    # a single-record new lineage, found at its own coordinates inside the top site,
+    # and a find logged by site only (no locality)
     field.write_text(
         "site_id,longitude,latitude,date,taxon,outcome,effort_hours\n"
-        f"{first},,,2027-03-02,Nebrivex sp.,new-lineage,6\n"
+        f"{first['site_id']},{first['longitude']},{first['latitude']},2027-03-02,"
+        "Nebrivex sp. nov.,new-lineage,6\n"
+        f"{first['site_id']},,,2027-03-03,Nebrivex tarvelli,found,2\n"
     )
     deb = tmp_path / "debrief"
     r = CliRunner().invoke(main, ["debrief", str(field), "--run", str(out), "--out", str(deb)])
     assert r.exit_code == 0, r.output
-    upd = pd.read_csv(deb / "records_updated.csv")
+    upd = pd.read_csv(deb / "records_updated.csv", keep_default_na=False)
     orig = pd.read_csv(project.parent / "occurrences.csv")
+    # only the find with its own coordinates is a new record, at those coordinates
     assert len(upd) == len(orig) + 1
+    new = upd.iloc[-1]
+    assert new["taxon"] == "Nebrivex sp. nov."
+    assert float(new["longitude"]) == pytest.approx(first["longitude"])
+    assert "left out of modelling" in new["note"]
     # the input record file itself is untouched
     assert len(pd.read_csv(project.parent / "occurrences.csv")) == len(orig)
     summary = json.loads((deb / "debrief.json").read_text())
     assert summary["n_visited"] == 1 and summary["n_hits"] == 1
+    assert summary["n_new_records"] == 1  # the site-only find is not a test record
     assert 0 < summary["area_share"] < 1
     # the binomial p-value of one hit in one visit equals the predicted area share
     # (P(X >= 1), X ~ Bin(1, p) = p; scipy.stats.binomtest reference)
@@ -142,6 +152,51 @@ def test_debrief_scores_a_survey(demo_run, tmp_path):
         binomtest(1, 1, summary["area_share"], alternative="greater").pvalue
     )
     assert np.isfinite(summary["auc"])
+    assert "line 3" in (deb / "debrief.md").read_text()
+    # the next project models the run's taxa, not the single-record lineage, and its
+    # intake does not stop on it
+    from screener.pipeline import check_project
+    from screener.project import load_project
+
+    nxt = load_project(deb / "project_next.toml")
+    assert "Nebrivex sp. nov." not in nxt.project.taxa
+    lines = check_project(nxt)
+    assert any("Records:" in line for line in lines)
+
+
+@pytest.mark.slow
+def test_demo_then_reproduce_and_debrief_after_a_move(tmp_path):
+    import shutil
+
+    demo_dir = tmp_path / "demo"
+    r = CliRunner().invoke(main, ["-q", "demo", "--out", str(demo_dir), "--size", "small"])
+    assert r.exit_code == 0, r.output
+    prov = json.loads((demo_dir / "results" / "run.json").read_text())
+    # run.json points at the scenario the demo left behind
+    assert (demo_dir / "scenario" / "project.toml").samefile(prov["project_file"])
+    for path in prov["input_hashes"]:
+        assert (demo_dir / "scenario") in __import__("pathlib").Path(path).parents
+    assert prov["project_file_from_results"] == "../scenario/project.toml"
+    # moved as a whole, the results still find their inputs
+    moved = tmp_path / "elsewhere" / "demo"
+    moved.parent.mkdir()
+    shutil.move(str(demo_dir), str(moved))
+    again = tmp_path / "again"
+    r = CliRunner().invoke(main, ["-q", "reproduce", str(moved / "results" / "run.json"),
+                                  "--out", str(again)])
+    assert r.exit_code == 0, r.output
+    for name in ("candidates.csv", "evaluation.csv"):
+        assert (again / name).read_bytes() == (moved / "results" / name).read_bytes()
+    site = pd.read_csv(moved / "results" / "candidates.csv").iloc[0]
+    field = tmp_path / "field.csv"
+    field.write_text(
+        "site_id,longitude,latitude,date,taxon,outcome,effort_hours\n"
+        f"{site['site_id']},{site['longitude']},{site['latitude']},2027-03-02,"
+        "Nebrivex tarvelli,found,6\n"
+    )
+    r = CliRunner().invoke(main, ["debrief", str(field), "--run", str(moved / "results"),
+                                  "--out", str(tmp_path / "debrief")])
+    assert r.exit_code == 0, r.output
 
 
 def test_spatial_partitions_with_non_spatial_baseline(tmp_path):

@@ -11,9 +11,13 @@ from pyproj import Geod, Proj
 from pyproj.aoi import AreaOfInterest
 from pyproj.database import query_utm_crs_info
 
+from screener import __version__
 from screener.errors import InputError
+from screener.outputs.cautions import CAUTIONS
 from screener.outputs.sheets import (
+    coordinate_precision,
     site_cell_mask,
+    site_model,
     suggest_sampling_points,
     utm_position,
     utm_zone,
@@ -134,12 +138,65 @@ def test_field_sheets_pages_hold_coordinates(tmp_path, run, page_size):
     assert path.read_bytes()[:5] == b"%PDF-"
     pages = _pdf_pages_text(path)
     assert len(pages) == 2
+    # 1 km cells: 3 decimals (about 0.1 km) and UTM to 100 m, not 6 decimals
+    assert coordinate_precision(run.grid) == (3, 100)
     for page, site in zip(pages, run.sites.itertuples(), strict=False):
         flat = " ".join(page.split())
-        assert f"lat {site.latitude:.6f}, lon {site.longitude:.6f}" in flat
-        assert f"{utm_position(site.longitude, site.latitude)}" in flat
+        assert f"lat {site.latitude:.3f}, lon {site.longitude:.3f}" in flat
+        assert f"{site.latitude:.6f}" not in flat
+        u = utm_position(site.longitude, site.latitude)
+        assert f"{u.zone}{u.band} {round(u.easting, -2):.0f} E" in flat
         assert "FULL PRECISION: do not share" in flat
         assert "Biosecurity" in flat and "Field safety" in flat
+
+
+def test_field_sheets_in_poppler_text(tmp_path, run):
+    """pdftotext (poppler) finds each sheet's site id, header and every caution."""
+    exe = ensure_debian_tool("pdftotext", "poppler-utils")
+    if exe is None:
+        pytest.skip("pdftotext (poppler-utils) is absent and could not be installed")
+    import copy
+
+    run = copy.copy(run)
+    run.settings = {**run.settings, "project": {"name": "Test <ridge> survey"}}
+    path = write_field_sheets(tmp_path / "sheets.pdf", run, top_n=3)
+    out = subprocess.run([exe, str(path), "-"], capture_output=True, check=True,
+                         timeout=60).stdout.decode("utf-8", "replace")
+    pages = [" ".join(p.split()) for p in out.split("\f") if p.strip()]
+    assert len(pages) == 3
+    for page, site in zip(pages, run.sites.head(3).to_dict("records"), strict=True):
+        assert f"Field sheet: site {site['site_id']} (rank {site['rank']})" in page
+        assert "Project: Test <ridge> survey" in page and f"screener {__version__}" in page
+        taxon, th, _ = site_model(run, site)
+        assert f"Suitability from the {taxon} model" in page
+        assert f"minimum training presence threshold, {th.value:.3f}" in page
+        for heading, text in CAUTIONS:
+            assert f"{heading}: {text}" in page, heading
+        assert "elevation (m)" in page
+
+
+def test_sheet_walk_and_point_elevations(run):
+    from screener.outputs.sheets import _facts, site_sampling_points
+
+    site = run.sites.iloc[0].to_dict()
+    lines = " ".join(_facts(run, site, len(run.sites)))
+    assert f"Walk in: {site['walk_hours']:.1f} h from the nearest start point" in lines
+    pts = site_sampling_points(run, top_n=1, n=3)
+    rows, cols, _ = run.grid.rowcol(pts["x"].to_numpy(), pts["y"].to_numpy())
+    np.testing.assert_allclose(pts["elevation_m"], run.elevation[rows, cols])
+
+
+def test_coordinate_precision_follows_the_cell():
+    from affine import Affine
+
+    from screener.grid import Grid
+
+    fine = Grid("EPSG:32736", Affine(30, 0, 400_000, 0, -30, 9_800_000), (10, 10))
+    coarse = Grid("EPSG:4326", Affine(0.1, 0, 36, 0, -0.1, -2), (10, 10))
+    # half a 30 m cell is 15 m: 4 decimals (about 11 m) and 10 m; half a 0.1 degree
+    # cell (about 5.5 km): 2 decimals (about 1.1 km) and 1000 m
+    assert coordinate_precision(fine) == (4, 10)
+    assert coordinate_precision(coarse) == (2, 1000)
 
 
 def test_field_sheets_bad_page_size(tmp_path, run):

@@ -92,11 +92,11 @@ def test_score_survey_against_scipy_and_sklearn(tmp_path, run, field_csv):
     )
     assert score.binomial_p == pytest.approx(stats.binom.sf(1, 3, share), rel=1e-9)
     # AUC of the new records against every valid cell, vs sklearn.metrics.roc_auc_score.
-    r, c, _ = run.grid.rowcol(run.sites.x[[0, 2]], run.sites.y[[0, 2]])
-    pres = np.r_[s[r, c], s[35, 3]]
+    # finds given by site only are not test records: only the find at (35, 3)
+    pres = np.r_[s[35, 3]]
     bg = s[valid]
     y = np.r_[np.ones(pres.size), np.zeros(bg.size)]
-    assert score.n_new_records == 3 and score.n_background == bg.size
+    assert score.n_new_records == 1 and score.n_background == bg.size
     assert score.auc == pytest.approx(roc_auc_score(y, np.r_[pres, bg]), rel=1e-12)
     assert score.n_new_lineage == 1
     md = render_survey_report(score)
@@ -122,15 +122,55 @@ def test_score_survey_needs_threshold_or_share(run):
         score_survey(fr, run.sites, run.grid, _clade(run), area_share=1.5)
 
 
-def test_updated_records_appends_finds_without_editing_input(tmp_path, run, field_csv):
+def test_updated_records_appends_find_localities_without_editing_input(
+    tmp_path, run, field_csv
+):
     fr = read_field_results(_write(tmp_path, field_csv))
     orig = pd.DataFrame({"taxon": [TAXA[0]], "longitude": [36.1], "latitude": [-2.1]})
     keep = orig.copy()
-    out = updated_records(orig, fr, sites=run.sites)
+    out = updated_records(orig, fr, modelled_taxa=TAXA, min_records=3)
     pd.testing.assert_frame_equal(orig, keep)
-    assert len(out) == 4 and list(out["source"])[0] == "input"
-    assert out["taxon"].tolist()[1:] == [TAXA[0], "Alpha sp. nov.", TAXA[0]]
-    assert out["longitude"][1] == pytest.approx(run.sites.longitude[0])
-    assert "site point" in out["source"][1] and "site point" not in out["source"][3]
-    with pytest.raises(InputError, match="line 2"):
-        updated_records(orig, fr)
+    # finds given by site only (lines 2 and 4) are not localities: not added
+    assert len(out) == 2 and list(out["source"]) == ["input", "field survey 2025-03-04 (found)"]
+    lon, lat = run.grid.lonlat(35, 3)
+    assert out["longitude"][1] == pytest.approx(float(lon))
+    assert list(out["note"]) == ["", ""]
+
+
+def test_single_record_new_lineage_is_kept_with_a_note(tmp_path, run):
+    lon, lat = run.grid.lonlat(20, 20)
+    text = (
+        "site_id,longitude,latitude,date,taxon,outcome,effort_hours\n"
+        f",{float(lon)},{float(lat)},2025-03-04,Alpha sp. nov.,new-lineage,2\n"
+    )
+    fr = read_field_results(_write(tmp_path, text))
+    orig = pd.DataFrame({"taxon": [TAXA[0]] * 3, "longitude": [36.1] * 3,
+                         "latitude": [-2.1] * 3})
+    out = updated_records(orig, fr, modelled_taxa=TAXA, min_records=3)
+    assert out["taxon"].tolist()[-1] == "Alpha sp. nov."
+    assert "left out of modelling" in out["note"].iloc[-1]
+    assert (out["note"].iloc[:3] == "").all()
+
+
+def test_auc_uses_find_localities_only(tmp_path, run):
+    # the same find given by site only, and at its own coordinates: only the second
+    # is a test record
+    s = run.sites
+    lon, lat = run.grid.lonlat(35, 3)
+    text = (
+        "site_id,longitude,latitude,date,taxon,outcome,effort_hours\n"
+        f"{s.site_id[0]},,,2025-03-01,{TAXA[0]},found,6\n"
+        f",{float(lon)},{float(lat)},2025-03-04,{TAXA[0]},found,2\n"
+    )
+    fr = read_field_results(_write(tmp_path, text))
+    clade = _clade(run)
+    score = score_survey(fr, s, run.grid, clade, threshold=0.35, n_background=10**6)
+    assert score.n_new_records == 1
+    assert score.finds_without_locality == [
+        "line 2: a find given by site only (no coordinates)"
+    ]
+    valid = run.grid.mask & np.isfinite(clade)
+    bg = clade[valid]
+    y = np.r_[1.0, np.zeros(bg.size)]
+    # sklearn.metrics.roc_auc_score as the reference
+    assert score.auc == pytest.approx(roc_auc_score(y, np.r_[clade[35, 3], bg]), rel=1e-12)

@@ -45,27 +45,39 @@ def _names(names, p):
 
 
 def response_curves(
-    model, background, n_points: int = 50, *, names=None
+    model, background, n_points: int = 50, *, names=None, at=None
 ) -> ResponseCurves:
-    """Response curve of every predictor, others fixed at their background median.
+    """Response curve of every predictor, the others fixed at reference values.
 
     Parameters
     ----------
     model : fitted niche model
     background : array_like of shape (m, p)
-        Sets each predictor's range (min to max) and the medians.
+        Sets each predictor's range (min to max), and the reference values when
+        ``at`` is not given (the background medians).
     n_points : int, default 50
     names : sequence of str, optional
         Predictor names for labels.
+    at : array_like of shape (p,), optional
+        Values the other predictors are held at.  The pipeline passes the medians
+        at the taxon's records: held at the background median (often lowland where
+        nothing is suitable) every curve of a narrow montane niche is flat at 0,
+        while through the records' medians each curve crosses the niche.
 
     Returns
     -------
     ResponseCurves
+        ``medians`` holds the reference values used.
     """
     check_is_fitted(model)
     bg = check_predictors(background, "background", n_features=model.n_features_in_)
     p = bg.shape[1]
-    med = np.median(bg, axis=0)
+    if at is None:
+        med = np.median(bg, axis=0)
+    else:
+        med = np.asarray(at, dtype=float).reshape(-1)
+        if med.shape != (p,) or not np.all(np.isfinite(med)):
+            raise ValueError(f"`at` must hold {p} finite values; got {med!r}")
     lo, hi = bg.min(axis=0), bg.max(axis=0)
     values = np.linspace(lo, hi, int(n_points))  # (n_points, p)
     suit = np.empty_like(values, dtype=float)

@@ -1,9 +1,11 @@
-"""Waypoints of the ranked sites and their sampling points, as GPX 1.1.
+"""Waypoints and walking tracks of the ranked sites, as GPX 1.1.
 
-One waypoint per candidate site (named ``S01``, ``S02``, ... by rank) and one per
-suggested sampling point (``S01-1``, ``S01-2``, ...): short names that fit the
-display of a handheld GPS.  The description holds kind, rank, suitability and
-elevation band; the symbol is a generic one that most units know.
+One waypoint per candidate site, named by its site id (``S01``, ``S02``, ...), one per
+suggested sampling point (``S01-2``, ``S01-3``, ...), one per start point, and for
+each site with a walking route a track from its start point along the route the
+access stage computed.  A site's best sampling point usually *is* its representative
+point; it is then written once, under the site's name, so a handheld does not show
+two flags on one spot.  The description holds kind, rank, suitability and elevation.
 
 References
 ----------
@@ -21,35 +23,49 @@ from pathlib import Path
 
 from screener.errors import InputError, OutputError
 
-__all__ = ["GPX_NAMESPACE", "site_waypoint_name", "point_waypoint_name", "write_gpx"]
+__all__ = ["GPX_NAMESPACE", "sampling_waypoint_names", "write_gpx"]
 
 log = logging.getLogger(__name__)
 
 GPX_NAMESPACE = "http://www.topografix.com/GPX/1/1"
 _SITE_SYMBOL = "Flag, Blue"
 _POINT_SYMBOL = "Waypoint"
+_START_SYMBOL = "Trailhead"
+#: Two points closer than this (degrees, about 1 cm) are the same place.
+_SAME_PLACE_DEG = 1e-7
 
 
-def site_waypoint_name(rank: int) -> str:
-    """Short waypoint name of a site from its rank.
+def sampling_waypoint_names(site, points) -> list:
+    """Waypoint name of each sampling point of a site.
+
+    A point at the site's own representative point takes the site's name (it is the
+    same waypoint); the others are ``<site id>-<point id>``.
+
+    Parameters
+    ----------
+    site : mapping
+        A row of the site table (``site_id``, ``longitude``, ``latitude``).
+    points : pandas.DataFrame
+        Its sampling points (``point_id``, ``longitude``, ``latitude``).
 
     Examples
     --------
-    >>> site_waypoint_name(3), site_waypoint_name(120)
-    ('S03', 'S120')
+    >>> import pandas as pd
+    >>> site = {"site_id": "S04", "longitude": 85.1, "latitude": -14.7}
+    >>> pts = pd.DataFrame({"point_id": [1, 2], "longitude": [85.1, 85.11],
+    ...                     "latitude": [-14.7, -14.71]})
+    >>> sampling_waypoint_names(site, pts)
+    ['S04', 'S04-2']
     """
-    return f"S{int(rank):02d}"
-
-
-def point_waypoint_name(rank: int, point_id: int) -> str:
-    """Short waypoint name of a sampling point.
-
-    Examples
-    --------
-    >>> point_waypoint_name(1, 3)
-    'S01-3'
-    """
-    return f"{site_waypoint_name(rank)}-{int(point_id)}"
+    sid = str(site["site_id"])
+    out = []
+    for p in points.to_dict("records"):
+        same = (
+            abs(float(p["longitude"]) - float(site["longitude"])) < _SAME_PLACE_DEG
+            and abs(float(p["latitude"]) - float(site["latitude"])) < _SAME_PLACE_DEG
+        )
+        out.append(sid if same else f"{sid}-{int(p['point_id'])}")
+    return out
 
 
 def _fmt(value, spec: str, missing: str = "n/a") -> str:
@@ -80,9 +96,11 @@ def _check_lonlat(lon, lat, where: str):
     return lon, lat
 
 
-def _wpt(parent, lon, lat, name, cmt, desc, sym, kind=None):
+def _wpt(parent, lon, lat, name, cmt, desc, sym, kind=None, ele=None):
     wpt = ET.SubElement(parent, "wpt", lat=f"{lat:.6f}", lon=f"{lon:.6f}")
     # Child order follows the schema's wptType sequence.
+    if ele is not None and _fmt(ele, ".1f") != "n/a":
+        ET.SubElement(wpt, "ele").text = f"{float(ele):.1f}"
     ET.SubElement(wpt, "name").text = name
     ET.SubElement(wpt, "cmt").text = cmt
     ET.SubElement(wpt, "desc").text = desc
@@ -97,10 +115,12 @@ def write_gpx(
     sites,
     sampling_points=None,
     *,
+    start_points=None,
+    routes=None,
     creator: str = "screener",
     description: str | None = None,
 ) -> Path:
-    """Write the sites (and their sampling points) as GPX 1.1 waypoints.
+    """Write sites, sampling points, start points and walking tracks as GPX 1.1.
 
     Parameters
     ----------
@@ -111,8 +131,13 @@ def write_gpx(
         ``latitude`` (WGS84 degrees); ``mean_suitability``, ``max_suitability``,
         ``elevation_min`` and ``elevation_max`` (m) are used when present.
     sampling_points : pandas.DataFrame, optional
-        ``site_id, point_id, longitude, latitude, suitability``; points whose site is
-        not in ``sites`` are skipped.
+        ``site_id, point_id, longitude, latitude, suitability`` and optionally
+        ``elevation_m``; points whose site is not in ``sites`` are skipped.
+    start_points : pandas.DataFrame, optional
+        ``name, longitude, latitude`` of villages, road ends or camps.
+    routes : dict of str to screener.routes.WalkingRoute, optional
+        Walking routes by site id; each becomes a track (sites not in ``sites`` are
+        skipped).
     creator : str, default "screener"
         The GPX ``creator`` attribute.
     description : str, optional
@@ -146,49 +171,79 @@ def write_gpx(
     ET.SubElement(meta, "name").text = "Candidate survey sites"
     ET.SubElement(meta, "desc").text = description or (
         "Predicted survey targets ranked by the screener: hypotheses for survey, not "
-        "known localities. Check permits, access and safety before any visit."
+        "known localities. Walking tracks are model estimates from slope alone. Check "
+        "permits, access and safety before any visit."
     )
-    rank_of = {}
+    site_rows = {}
     for i, site in enumerate(sites.to_dict("records")):
         rank = int(site["rank"])
-        rank_of[str(site["site_id"])] = rank
+        sid = str(site["site_id"])
+        site_rows[sid] = site
         lon, lat = _check_lonlat(site["longitude"], site["latitude"], f"site row {i}")
         desc = (
             f"{site['kind']}, rank {rank}, suitability mean "
             f"{_fmt(site.get('mean_suitability'), '.2f')} max "
             f"{_fmt(site.get('max_suitability'), '.2f')}, {elevation_band(site)}"
         )
-        _wpt(
-            root,
-            lon,
-            lat,
-            site_waypoint_name(rank),
-            f"site {site['site_id']}",
-            desc,
-            _SITE_SYMBOL,
-            str(site["kind"]),
-        )
+        _wpt(root, lon, lat, sid, f"site {sid}, rank {rank}", desc, _SITE_SYMBOL,
+             str(site["kind"]))
     n_points = 0
     if sampling_points is not None and len(sampling_points):
-        for j, pt in enumerate(sampling_points.to_dict("records")):
-            rank = rank_of.get(str(pt["site_id"]))
-            if rank is None:
-                continue
-            lon, lat = _check_lonlat(
-                pt["longitude"], pt["latitude"], f"sampling point row {j}"
-            )
-            name = point_waypoint_name(rank, pt["point_id"])
-            desc = (
-                f"sampling point {int(pt['point_id'])} of site rank {rank}, "
-                f"suitability {_fmt(pt.get('suitability'), '.2f')}"
-            )
-            _wpt(root, lon, lat, name, f"site {pt['site_id']}", desc, _POINT_SYMBOL)
-            n_points += 1
+        pts = sampling_points[sampling_points["site_id"].astype(str).isin(site_rows)]
+        for sid, group in pts.groupby(pts["site_id"].astype(str), sort=False):
+            site = site_rows[sid]
+            names = sampling_waypoint_names(site, group)
+            for j, (pt, name) in enumerate(
+                zip(group.to_dict("records"), names, strict=True)
+            ):
+                if name == sid:
+                    continue  # the site's own waypoint is this point
+                lon, lat = _check_lonlat(
+                    pt["longitude"], pt["latitude"], f"sampling point {j} of site {sid}"
+                )
+                desc = (
+                    f"sampling point {int(pt['point_id'])} of site {sid} (rank "
+                    f"{int(site['rank'])}), suitability {_fmt(pt.get('suitability'), '.2f')}"
+                )
+                _wpt(root, lon, lat, name, f"site {sid}", desc, _POINT_SYMBOL,
+                     ele=pt.get("elevation_m"))
+                n_points += 1
+    n_starts = 0
+    if start_points is not None and len(start_points):
+        for j, sp in enumerate(start_points.to_dict("records")):
+            lon, lat = _check_lonlat(sp["longitude"], sp["latitude"], f"start point {j}")
+            name = str(sp.get("name") or f"start {j + 1}")
+            _wpt(root, lon, lat, name, "start point", f"start point {name}",
+                 _START_SYMBOL, "start point")
+            n_starts += 1
+    n_tracks = 0
+    for sid, route in (routes or {}).items():
+        if str(sid) not in site_rows:
+            continue
+        trk = ET.SubElement(root, "trk")
+        ET.SubElement(trk, "name").text = f"{sid} route"
+        ET.SubElement(trk, "cmt").text = f"walk from {route.start_name} to site {sid}"
+        ET.SubElement(trk, "desc").text = (
+            f"from {route.start_name}: {route.distance_km:.1f} km, "
+            f"ascent {route.ascent_m:.0f} m, descent {route.descent_m:.0f} m, about "
+            f"{route.hours:.1f} h walking (slope-only estimate)"
+        )
+        ET.SubElement(trk, "type").text = "walking route"
+        seg = ET.SubElement(trk, "trkseg")
+        for lon, lat, ele in zip(route.lon, route.lat, route.elevation_m, strict=True):
+            lon, lat = _check_lonlat(lon, lat, f"route of site {sid}")
+            pt = ET.SubElement(seg, "trkpt", lat=f"{lat:.6f}", lon=f"{lon:.6f}")
+            if math.isfinite(float(ele)):
+                ET.SubElement(pt, "ele").text = f"{float(ele):.1f}"
+        n_tracks += 1
     ET.indent(root)
     data = ET.tostring(root, encoding="utf-8", xml_declaration=True)
     try:
         path.write_bytes(data + b"\n")
     except OSError as exc:
         raise OutputError(f"cannot write waypoints to {path}: {exc}") from exc
-    log.info("wrote %d site and %d point waypoints to %s", len(rank_of), n_points, path)
+    log.info(
+        "wrote %d site, %d point and %d start waypoints and %d tracks to %s",
+        len(site_rows), n_points, n_starts, n_tracks, path,
+    )
     return path

@@ -817,7 +817,9 @@ def _site_window(grid, geom, pad_frac=0.6, min_cells=8):
     return (cx - side / 2, cx + side / 2, cy - side / 2, cy + side / 2)
 
 
-def plot_site_zoom(result, site, *, ax=None, points=None, caption: bool = True):
+def plot_site_zoom(
+    result, site, *, ax=None, points=None, route=None, caption: bool = True
+):
     """Zoomed map of one site: hillshade with elevation contours, or suitability.
 
     Parameters
@@ -827,6 +829,8 @@ def plot_site_zoom(result, site, *, ax=None, points=None, caption: bool = True):
         One row of ``result.sites`` (a pandas Series or dict with ``geometry``).
     points : pandas.DataFrame, optional
         Sampling points of the site (``x``, ``y``, ``point_id``), drawn numbered.
+    route : screener.routes.WalkingRoute, optional
+        The walking route to the site, drawn as a dashed line.
     """
     ax = _prepare(ax, figsize=(5, 5))
     grid = result.grid
@@ -894,6 +898,14 @@ def plot_site_zoom(result, site, *, ax=None, points=None, caption: bool = True):
                 markeredgecolor="black",
                 label="sampling point",
             )
+        )
+    if route is not None and len(route.x) > 1:
+        ax.plot(route.x, route.y, color="white", linewidth=3.0, zorder=6)
+        ax.plot(route.x, route.y, color="black", linewidth=1.3, linestyle=(0, (4, 2)),
+                zorder=6)
+        handles.append(
+            Line2D([], [], color="black", linewidth=1.3, linestyle=(0, (4, 2)),
+                   label=f"walking route from {route.start_name}")
         )
     handles += _plot_records(ax, result, size=14)
     text = (

@@ -188,7 +188,7 @@ def _taxon_section(result, name, tr) -> str:
         out.append(_safe_figure(
             lambda c=curves: model_figures.plot_response_curves(c),
             f"Response curves of the {family} model for {name}: suitability along each "
-            "layer with the others held at their background median.",
+            "layer with the others held at their medians at the records.",
             f"response curves {family} {name}",
         ))
     for family, imp in (figs.get("importance") or {}).items():

@@ -1,16 +1,20 @@
 """Field sheets: one printed page per top-ranked site, as a multi-page PDF.
 
-Each page holds a locator map, a zoomed map of the site (hillshade with elevation
-contours where an elevation layer exists), the representative point in decimal degrees
-and in UTM (zone and latitude band), the elevation band, suitability and agreement, the
-kind of site and why it ranks where it does (its weighted score components), the
-estimated walking time, suggested sampling points and the cautions.  Greys, hatching,
-line styles and markers carry every distinction, so a black-and-white print reads the
-same as the screen.
+Each page holds the project name, the date and the tool version; which taxon's model
+the site's suitability comes from and at which threshold; a locator map and a zoomed
+map of the site (hillshade with elevation contours where an elevation layer exists);
+the representative point in decimal degrees and in UTM (zone and latitude band),
+rounded to the precision the cell size supports; the elevation band; the walk in from
+the named start point (route length, ascent, descent, hours and days at a stated
+walking day); why the site ranks where it does (its weighted score components); the
+suggested sampling points with their elevations; and every caution in full.  Greys,
+hatching, line styles and markers carry every distinction, so a black-and-white print
+reads the same as the screen.
 """
 
 from __future__ import annotations
 
+import datetime as dt
 import logging
 import math
 import os
@@ -28,13 +32,16 @@ from pyproj import Transformer
 from screener.errors import InputError, OutputError
 from screener.grid import geodesic_distance_km
 from screener.outputs import maps
-from screener.outputs.cautions import cautions_short
-from screener.outputs.gpx import elevation_band, point_waypoint_name, site_waypoint_name
+from screener import __version__
+from screener.outputs.cautions import CAUTIONS
+from screener.outputs.gpx import elevation_band, sampling_waypoint_names
 from screener.outputs.privacy import FULL_PRECISION_MARKER, has_full_precision_sensitive
 
 __all__ = [
     "PAGE_SIZES_IN",
     "UTMPosition",
+    "coordinate_precision",
+    "site_model",
     "utm_zone",
     "utm_position",
     "suggest_sampling_points",
@@ -138,6 +145,80 @@ def utm_position(lon: float, lat: float) -> UTMPosition:
     tr = Transformer.from_crs("EPSG:4326", f"EPSG:{epsg}", always_xy=True)
     e, n = tr.transform(float(lon), float(lat))
     return UTMPosition(zone, band, "S" if south else "N", float(e), float(n), epsg)
+
+
+#: Threshold names in words, for people.
+THRESHOLD_WORDS = {
+    "mtp": "minimum training presence",
+    "p10": "10th-percentile training presence",
+    "relaxed": "relaxed",
+    "maxsss": "maximum sensitivity plus specificity",
+}
+
+#: Ground length of one degree of latitude, km (about 110.6-111.7 on WGS84; the mean
+#: is used only to choose how many decimals to print; from memory).
+_KM_PER_DEG_LAT = 111.32
+
+
+def coordinate_precision(grid) -> tuple[int, int]:
+    """Decimals of degrees and the UTM rounding step (m) that match the cell size.
+
+    Coordinates are printed to the coarsest step no larger than half a cell: more
+    digits would claim a precision the model's cells do not have.
+
+    Returns
+    -------
+    (int, int)
+        Decimals for decimal degrees, and the step in metres for UTM.
+
+    Examples
+    --------
+    A 0.005 degree cell (about 0.55 km) gives 3 decimals (about 0.1 km) and 100 m:
+
+    >>> from affine import Affine
+    >>> from screener.grid import Grid
+    >>> coordinate_precision(Grid("EPSG:4326", Affine(0.005, 0, 85, 0, -0.005, -14),
+    ...                           (10, 10)))
+    (3, 100)
+    """
+    cell_m = 1000.0 * float(
+        min(np.median(np.asarray(grid.ew_step_km)), np.median(np.asarray(grid.ns_step_km)))
+    )
+    half_m = max(cell_m / 2.0, 1e-3)
+    decimals = max(0, math.ceil(-math.log10(half_m / 1000.0 / _KM_PER_DEG_LAT)))
+    step_m = int(10 ** max(0, math.floor(math.log10(half_m))))
+    return decimals, step_m
+
+
+def site_model(result, site) -> tuple:
+    """The taxon whose model gives the site its suitability, and that taxon's
+    threshold in use.
+
+    The site's suitability is the highest of any taxon's at each cell; the taxon is
+    the one highest at the site's representative cell.
+
+    Returns
+    -------
+    (str, screener.results.Threshold or None, str)
+        Taxon, its threshold in use, and the threshold's name.
+    """
+    if not result.taxa:
+        return "", None, ""
+    r, c = _site_cell(result.grid, site)
+    best = max(
+        result.taxa.items(),
+        key=lambda kv: np.nan_to_num(float(kv[1].suitability[r, c]), nan=-1.0),
+    )
+    use = str((result.settings.get("thresholds") or {}).get("use", "mtp"))
+    th = (best[1].thresholds or {}).get(use)
+    return best[0], th, use
+
+
+def _site_cell(grid, site) -> tuple:
+    if "row" in site and "col" in site and site["row"] is not None:
+        return int(site["row"]), int(site["col"])
+    rows, cols, _ = grid.rowcol(np.atleast_1d(float(site["x"])), np.atleast_1d(float(site["y"])))
+    return int(rows[0]), int(cols[0])
 
 
 # --- sampling points ---------------------------------------------------------------
@@ -310,9 +391,20 @@ def site_sampling_points(
                 "x",
                 "y",
                 "suitability",
+                "elevation_m",
             ]
         )
-    return pd.concat(parts, ignore_index=True)
+    out = pd.concat(parts, ignore_index=True)
+    out["elevation_m"] = np.nan
+    if result.elevation is not None and len(out):
+        if {"row", "col"} <= set(out.columns):
+            rows = out["row"].to_numpy(int)
+            cols = out["col"].to_numpy(int)
+        else:
+            rows, cols, _ = result.grid.rowcol(out["x"].to_numpy(float),
+                                               out["y"].to_numpy(float))
+        out["elevation_m"] = np.asarray(result.elevation, float)[rows, cols]
+    return out
 
 
 # --- the page ----------------------------------------------------------------------
@@ -324,26 +416,45 @@ def _num(v, spec=".2f", missing="not estimated"):
     return format(f, spec) if math.isfinite(f) else missing
 
 
-def _facts(site, n_sites) -> list[str]:
+def _walk_lines(result, site) -> list[str]:
+    route = (getattr(result, "routes", None) or {}).get(str(site["site_id"]))
+    day = float((result.settings.get("access") or {}).get("walking_day_hours", 7.0))
+    if route is None:
+        walk = site.get("walk_hours")
+        if _num(walk) == "not estimated":
+            return ["Walk in: not estimated (no start points or no elevation layer)."]
+        return [f"Walk in: {_num(walk, '.1f')} h from the nearest start point "
+                "(slope-only estimate; no route traced)."]
+    return [
+        f"Walk in from {route.start_name}: {route.distance_km:.1f} km along the "
+        f"route, ascent {route.ascent_m:,.0f} m, descent {route.descent_m:,.0f} m, "
+        f"about {route.hours:.1f} h walking",
+        f"    = {route.days(day)} day(s) at a {day:g} h walking day (common practice "
+        "6-8 h); slope-only estimate: add time for vegetation, rivers and loads.",
+    ]
+
+
+def _facts(result, site, n_sites) -> list[str]:
     lon, lat = float(site["longitude"]), float(site["latitude"])
+    decimals, step_m = coordinate_precision(result.grid)
     try:
-        utm = str(utm_position(lon, lat))
+        u = utm_position(lon, lat)
+        utm = (f"{u.zone}{u.band} {_round_to(u.easting, step_m):.0f} E "
+               f"{_round_to(u.northing, step_m):.0f} N (to {step_m} m)")
     except InputError:
         utm = "outside the UTM range (polar)"
-    walk = site.get("walk_hours")
-    walk_txt = (
-        f"{_num(walk, '.1f')} h from the nearest start (slope-only estimate)"
-        if _num(walk) != "not estimated"
-        else "not estimated"
-    )
     novel = site.get("novel_share")
+    taxon, th, use = site_model(result, site)
+    th_txt = (f"suitable at or above its {THRESHOLD_WORDS.get(use, use)} threshold, "
+              f"{th.value:.3f}"
+              if th is not None else "no threshold recorded")
     return [
         f"Rank {int(site['rank'])} of {n_sites}    kind: {site['kind']}    "
-        f"site id: {site['site_id']}",
-        f"Point (WGS84, decimal degrees): lat {lat:.6f}, lon {lon:.6f}",
-        f"UTM (WGS84): {utm}",
-        f"Elevation band: {elevation_band(site)}    "
-        f"area: {_num(site.get('area_km2'), ',.1f')} km²",
+        f"area: {_num(site.get('area_km2'), ',.1f')} km²    elevation band: "
+        f"{elevation_band(site)}",
+        f"Point (WGS84): lat {lat:.{decimals}f}, lon {lon:.{decimals}f} "
+        f"(to {decimals} decimals, matched to the cell size)    UTM: {utm}",
+        f"Suitability from the {taxon} model (consensus of its families); {th_txt}",
         f"Suitability: mean {_num(site.get('mean_suitability'))}, max "
         f"{_num(site.get('max_suitability'))}    agreement "
         f"{_num(site.get('agreement'))}    novel environment "
@@ -352,10 +463,14 @@ def _facts(site, n_sites) -> list[str]:
         f"{_num(site.get('nearest_record_km'), '.1f')} km    gap "
         f"{_num(site.get('gap_km'), '.1f')} km    barrier depth "
         f"{_num(site.get('barrier_depth'))}",
-        f"Walking time: {walk_txt}",
+        *_walk_lines(result, site),
         f"Rank robustness: {_num(site.get('rank_robustness'))} (share of random "
         "weightings that keep it among the top sites)",
     ]
+
+
+def _round_to(v: float, step: float) -> float:
+    return round(float(v) / step) * step
 
 
 _HATCHES = ["", "///", "...", "xxx", "\\\\\\", "ooo", "---", "+++"]
@@ -394,7 +509,7 @@ def _score_panel(ax, site, score_cols):
     )
 
 
-def _points_table(ax, site, points):
+def _points_table(ax, result, site, points):
     ax.axis("off")
     ax.set_title(
         "Suggested sampling points (best cells, spread apart)", fontsize=8, loc="left"
@@ -408,29 +523,33 @@ def _points_table(ax, site, points):
             transform=ax.transAxes,
         )
         return
+    decimals, step_m = coordinate_precision(result.grid)
     rows = []
-    for p in points.to_dict("records"):
+    names = sampling_waypoint_names(site, points)
+    for p, name in zip(points.to_dict("records"), names, strict=True):
         try:
             u = utm_position(p["longitude"], p["latitude"])
-            utm = f"{u.zone}{u.band} {u.easting:.0f} {u.northing:.0f}"
+            utm = (f"{u.zone}{u.band} {_round_to(u.easting, step_m):.0f} "
+                   f"{_round_to(u.northing, step_m):.0f}")
         except InputError:
             utm = "n/a"
         rows.append(
             [
-                point_waypoint_name(site["rank"], p["point_id"]),
-                f"{p['latitude']:.6f}",
-                f"{p['longitude']:.6f}",
+                name,
+                f"{p['latitude']:.{decimals}f}",
+                f"{p['longitude']:.{decimals}f}",
                 utm,
+                _num(p.get("elevation_m"), ",.0f", "n/a"),
                 _num(p.get("suitability")),
             ]
         )
     tab = ax.table(
         cellText=rows,
-        colLabels=["waypoint", "lat", "lon", "UTM (E N)", "suitability"],
+        colLabels=["waypoint", "lat", "lon", "UTM (E N)", "elevation (m)", "suitability"],
         loc="upper left",
         cellLoc="left",
         colLoc="left",
-        colWidths=[0.14, 0.18, 0.18, 0.34, 0.14],
+        colWidths=[0.12, 0.15, 0.15, 0.28, 0.14, 0.14],
     )
     tab.auto_set_font_size(False)
     tab.set_fontsize(7)
@@ -438,21 +557,31 @@ def _points_table(ax, site, points):
         cell.set_linewidth(0.4)
 
 
-def _page(result, site, points, *, page_size, n_sites, marker, score_cols):
+def _caution_lines(width: int = 140) -> list:
+    """Every caution in full, wrapped: (text, is_heading_line) pairs."""
+    out = []
+    for heading, text in CAUTIONS:
+        wrapped = textwrap.wrap(f"{heading}: {text}", width, break_on_hyphens=False)
+        for k, line in enumerate(wrapped):
+            out.append((line, k == 0))
+    return out
+
+
+def _page(result, site, points, *, page_size, n_sites, marker, score_cols, header):
     w, h = PAGE_SIZES_IN[page_size]
     fig = Figure(figsize=(w, h))
-    name = site_waypoint_name(site["rank"])
     fig.text(
         0.06,
-        0.965,
-        f"Field sheet {name}: candidate site {site['site_id']}",
+        0.972,
+        f"Field sheet: site {site['site_id']} (rank {int(site['rank'])})",
         fontsize=13,
         fontweight="bold",
         va="top",
     )
+    fig.text(0.06, 0.949, header, fontsize=7.5, va="top")
     fig.text(
         0.06,
-        0.94,
+        0.935,
         "A hypothesis for survey, not a known locality.",
         fontsize=8,
         va="top",
@@ -461,7 +590,7 @@ def _page(result, site, points, *, page_size, n_sites, marker, score_cols):
     if marker:
         fig.text(
             0.94,
-            0.965,
+            0.972,
             marker,
             fontsize=9,
             fontweight="bold",
@@ -469,29 +598,32 @@ def _page(result, site, points, *, page_size, n_sites, marker, score_cols):
             va="top",
             bbox={"facecolor": "white", "edgecolor": "black"},
         )
-    loc_ax = fig.add_axes((0.06, 0.66, 0.27, 0.25))
+    loc_ax = fig.add_axes((0.06, 0.69, 0.25, 0.22))
     maps.plot_locator(result, site, ax=loc_ax)
     loc_ax.set_title("Locator", fontsize=8, loc="left")
-    zoom_ax = fig.add_axes((0.40, 0.60, 0.54, 0.32))
-    maps.plot_site_zoom(result, site, ax=zoom_ax, points=points, caption=False)
+    zoom_ax = fig.add_axes((0.40, 0.65, 0.54, 0.27))
+    route = (getattr(result, "routes", None) or {}).get(str(site["site_id"]))
+    maps.plot_site_zoom(result, site, ax=zoom_ax, points=points, route=route,
+                        caption=False)
     zoom_ax.set_title("Site", fontsize=8, loc="left")
-    y = 0.57
-    for line in _facts(site, n_sites):
-        fig.text(0.06, y, line, fontsize=8, va="top")
-        y -= 0.017
+    y = 0.625
+    for line in _facts(result, site, n_sites):
+        fig.text(0.06, y, line, fontsize=7.5, va="top")
+        y -= 0.0155
     if score_cols:
-        sc_ax = fig.add_axes((0.22, y - 0.10, 0.5, 0.08))
+        sc_ax = fig.add_axes((0.22, y - 0.085, 0.5, 0.07))
         _score_panel(sc_ax, site, score_cols)
-        y -= 0.125
-    pt_ax = fig.add_axes((0.06, y - 0.10, 0.88, 0.09))
-    _points_table(pt_ax, site, points)
-    y -= 0.12
+        y -= 0.11
+    pt_ax = fig.add_axes((0.06, y - 0.085, 0.88, 0.075))
+    _points_table(pt_ax, result, site, points)
+    y -= 0.10
     fig.text(0.06, y, "Cautions", fontsize=9, fontweight="bold", va="top")
-    y -= 0.017
-    for c in cautions_short():
-        for k, line in enumerate(textwrap.wrap(c, 140)):
-            fig.text(0.06 if k == 0 else 0.075, y, line, fontsize=6.5, va="top")
-            y -= 0.012
+    y -= 0.015
+    for line, first in _caution_lines():
+        fig.text(0.06 if first else 0.075, y, line, fontsize=6.8, va="top")
+        y -= 0.0113
+    if y < 0.0:
+        log.warning("field sheet of site %s runs off the page", site["site_id"])
     return fig
 
 
@@ -539,8 +671,11 @@ def write_field_sheets(path, result, *, top_n: int = 10, page_size: str = "A4") 
     points = site_sampling_points(result, top_n=top_n)
     score_cols = [c for c in sites.columns if str(c).startswith("score_")]
     marker = FULL_PRECISION_MARKER if has_full_precision_sensitive(result) else None
+    project = str((result.settings.get("project") or {}).get("name") or "unnamed project")
+    header = (f"Project: {project}    written {dt.date.today().isoformat()}    "
+              f"screener {__version__}")
     meta = {
-        "Title": "Field sheets: candidate survey sites",
+        "Title": f"Field sheets: {project}",
         "Creator": "screener",
         "Subject": "Survey hypotheses, not known localities",
     }
@@ -557,6 +692,7 @@ def write_field_sheets(path, result, *, top_n: int = 10, page_size: str = "A4") 
                         n_sites=len(sites),
                         marker=marker,
                         score_cols=score_cols,
+                        header=header,
                     )
                     pdf.savefig(fig)
     except OSError as exc:
