@@ -61,13 +61,14 @@ def test_report_parses_and_holds_the_tables(report, run):
             if attr == "src"
             else value.startswith("#")
         ), (tag, attr, value)
-    assert sum(1 for t in p.tags if t == "img") >= 5
+    assert sum(1 for t in p.tags if t == "img") >= len(run.taxa) + 2  # maps, plan, paths
     site_rows = [
         r
         for r in p.rows
         if r and r[0].isdigit() and len(r) > 5 and r[1] in set(run.sites.site_id)
     ]
-    assert [r[1] for r in site_rows] == list(run.sites.site_id)
+    # the plan and its score components, both in rank order
+    assert [r[1] for r in site_rows] == list(run.sites.site_id) * 2
     text = " ".join(p.text)
     for d in run.dropped:
         assert any(r[:1] == [str(d.line)] and d.reason in r for r in p.rows)
@@ -77,6 +78,36 @@ def test_report_parses_and_holds_the_tables(report, run):
     for heading, _ in CAUTIONS:
         assert heading in text
     assert "score_isolation" in text and "Provenance" in text
+
+
+def test_report_reads_plan_first_and_provenance_last(report, run):
+    p = _Collect()
+    p.feed(report)
+    text = " ".join(p.text)
+    order = [text.index(h) for h in ("Where to go first", "The plan",
+                                     "The evidence, taxon by taxon", "Cautions",
+                                     "Raw provenance")]
+    assert order == sorted(order)
+    top = run.sites.iloc[0]
+    assert f"Go first to site {top['site_id']}" in " ".join(text.split())
+    # one evidence card per taxon, each with its three parts
+    for part in ("How well the model is supported", "What limits it",
+                 "What it implies for the sites"):
+        assert text.count(part) == len(run.taxa)
+    # no per-taxon block of response curves, AUC-drop importance or threshold rows
+    for gone in ("Permutation importance", "drop in training AUC", "Response curves",
+                 "<caption>Thresholds</caption>"):
+        assert gone not in report
+
+
+def test_report_title_holds_the_project_name(run):
+    import copy
+
+    r = copy.copy(run)
+    r.settings = {**run.settings, "project": {"name": "Ridge <frogs> 2027"}}
+    out = render_report(r)
+    assert "<title>Ridge &lt;frogs&gt; 2027: survey screening report</title>" in out
+    assert "<h1>Ridge &lt;frogs&gt; 2027: survey screening report</h1>" in out
 
 
 def test_report_escapes_user_text(report):
@@ -117,8 +148,15 @@ def chromium():
 
 @pytest.mark.slow
 def test_report_renders_in_headless_chromium(tmp_path, report, chromium):
+    from _browser import probe
+
     page = tmp_path / "report.html"
     page.write_text(report, encoding="utf-8")
+    got = probe(chromium, page, tmp_path, width=1400)
+    # no horizontal page scroll in a 1400 px window, no errors, every figure loads
+    assert got["scrollWidth"] <= got["innerWidth"], got
+    assert got["errors"] == []
+    assert got["images"] >= 4 and got["brokenImages"] == []
     shot = tmp_path / "shot.png"
     cmd = [
         chromium,
@@ -132,11 +170,22 @@ def test_report_renders_in_headless_chromium(tmp_path, report, chromium):
         "--disable-sync",
         f"--user-data-dir={tmp_path / 'profile'}",
         f"--screenshot={shot}",
-        "--window-size=1280,2000",
+        "--window-size=1400,2000",
         page.as_uri(),
     ]
     subprocess.run(cmd, capture_output=True, timeout=120, check=False)
-    assert shot.exists()
     pixels = mimage.imread(str(shot))
-    assert pixels.shape[0] == 2000 and pixels.shape[1] == 1280
+    assert pixels.shape[0] == 2000 and pixels.shape[1] == 1400
     assert float(np.var(pixels[..., :3])) > 1e-3  # not a blank page
+
+
+def test_a_wide_table_is_caught_by_the_overflow_check(tmp_path, chromium):
+    # the check itself can fail: a bare 40-column table overflows a 1400 px window
+    from _browser import probe
+
+    cells = "".join(f"<td>column-{i:02d}-value</td>" for i in range(40))
+    page = tmp_path / "wide.html"
+    page.write_text(f"<!DOCTYPE html><html><head></head><body><table><tr>{cells}"
+                    "</tr></table></body></html>", encoding="utf-8")
+    got = probe(chromium, page, tmp_path)
+    assert got["scrollWidth"] > got["innerWidth"]

@@ -365,6 +365,10 @@ def _deg_label(value: float, axis: str, step: float) -> str:
     return f"{abs(v):.{decimals}f}°{hemi}"
 
 
+#: Graticule labels keep this share of the map side clear of each corner.
+_CORNER = 0.08
+
+
 def add_graticule(
     ax, grid, *, step_deg: float | None = None, window=None, color: str = "0.55"
 ) -> dict:
@@ -409,7 +413,8 @@ def add_graticule(
         line.set_gid("graticule")
         order = np.argsort(y)
         xb = float(np.interp(bottom, np.asarray(y)[order], np.asarray(x)[order]))
-        if left <= xb <= right:
+        # labels too near a corner would overprint the other axis's labels
+        if left + _CORNER * (right - left) <= xb <= right - _CORNER * (right - left):
             ax.annotate(
                 _deg_label(m, "lon", step),
                 xy=(xb, 0),
@@ -427,7 +432,7 @@ def add_graticule(
         line.set_gid("graticule")
         order = np.argsort(x)
         yl = float(np.interp(left, np.asarray(x)[order], np.asarray(y)[order]))
-        if bottom <= yl <= top:
+        if bottom + _CORNER * (top - bottom) <= yl <= top - _CORNER * (top - bottom):
             ax.annotate(
                 _deg_label(p, "lat", step),
                 xy=(0, yl),
@@ -959,5 +964,7 @@ def figure_to_png_bytes(fig, dpi: int = 110) -> bytes:
     True
     """
     buf = io.BytesIO()
-    fig.savefig(buf, format="png", dpi=dpi, facecolor="white")
+    # a tight box keeps labels and captions drawn outside the axes on the image
+    fig.savefig(buf, format="png", dpi=dpi, facecolor="white", bbox_inches="tight",
+                pad_inches=0.08)
     return buf.getvalue()

@@ -1,4 +1,8 @@
-"""The run report: one self-contained HTML file.
+"""The run report: one self-contained HTML file, laid out around the survey plan.
+
+The conclusion comes first, in plain words; then the plan; then one evidence card per
+taxon (how well its model is supported, what limits it, what it implies for the
+sites); then overlap, inputs, warnings, cautions and the raw provenance at the end.
 
 Figures are embedded as base64 PNG, the style sheet is inline, and there is no
 JavaScript and no external asset, so the file can be mailed, archived or opened
@@ -17,6 +21,7 @@ import math
 
 import numpy as np
 
+from screener import __version__
 from screener.outputs import maps
 from screener.outputs.cautions import cautions_html
 from screener.outputs.privacy import FULL_PRECISION_MARKER, has_full_precision_sensitive
@@ -27,20 +32,28 @@ log = logging.getLogger(__name__)
 
 _CSS = """
 body{font-family:system-ui,-apple-system,"Segoe UI",Roboto,sans-serif;color:#222;
-max-width:1100px;margin:2em auto;padding:0 1.5em;line-height:1.45;background:#fff}
+max-width:1200px;margin:2em auto;padding:0 1.5em;line-height:1.45;background:#fff}
 h1{font-size:1.6em;border-bottom:2px solid #222;padding-bottom:.2em}
 h2{font-size:1.25em;margin-top:2em;border-bottom:1px solid #bbb}
 h3{font-size:1.05em;margin-top:1.4em}
+.wide{max-width:100%;overflow-x:auto}
 table{border-collapse:collapse;font-size:.85em;margin:.6em 0 1.2em}
 th,td{border:1px solid #ccc;padding:.25em .5em;text-align:left;vertical-align:top}
 th{background:#f0f0f0}
-td.num{text-align:right;font-variant-numeric:tabular-nums}
-figure{margin:1em 0}figure img{max-width:100%;border:1px solid #ddd}
+td.num{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
+figure{margin:1em 0}figure img{max-width:100%;height:auto;border:1px solid #ddd}
 figcaption{font-size:.85em;color:#444}
 .marker{border:2px solid #000;padding:.3em .6em;font-weight:bold;display:inline-block}
 .note{color:#444;font-size:.9em}
+.conclusion{background:#f6f6f2;border-left:4px solid #444;padding:.6em 1.2em}
+.card{border:1px solid #bbb;border-radius:4px;padding:.2em 1.2em 1em;margin:1.4em 0}
+.card .cols{display:flex;flex-wrap:wrap;gap:1.5em}
+.card .cols>div{flex:1 1 380px;min-width:0}
+.card dt{font-weight:bold;margin-top:.6em}.card dd{margin-left:1em}
 dl.cautions dt{font-weight:bold;margin-top:.6em}dl.cautions dd{margin-left:1em}
-nav a{margin-right:1em}
+pre{white-space:pre-wrap;overflow-wrap:anywhere;font-size:.8em;background:#f7f7f7;
+padding:.8em;border:1px solid #ddd}
+nav a{margin-right:1em;white-space:nowrap}
 """
 
 
@@ -81,7 +94,7 @@ def html_table(rows, columns=None, *, caption: str | None = None) -> str:
             columns += [k for k in r if k not in columns]
     if not rows:
         return '<p class="note">None.</p>'
-    out = ["<table>"]
+    out = ['<div class="wide"><table>']
     if caption:
         out.append(f"<caption>{_e(caption)}</caption>")
     out.append(
@@ -91,7 +104,7 @@ def html_table(rows, columns=None, *, caption: str | None = None) -> str:
     )
     for r in rows:
         out.append("<tr>" + "".join(_cell(r.get(c, "")) for c in columns) + "</tr>")
-    out.append("</tbody></table>")
+    out.append("</tbody></table></div>")
     return "\n".join(out)
 
 
@@ -110,6 +123,344 @@ def _safe_figure(make, caption, alt):
     except Exception as exc:  # a figure must not sink the whole report
         log.warning("figure %r failed: %s", alt, exc)
         return f'<p class="note">Figure "{_e(alt)}" could not be drawn: {_e(exc)}</p>'
+
+
+def _fmt(v, spec=".2f", missing="n/a") -> str:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return missing
+    return format(f, spec) if math.isfinite(f) else missing
+
+
+def _day_hours(result) -> float:
+    return float((result.settings.get("access") or {}).get("walking_day_hours", 7.0))
+
+
+def _threshold_name(result) -> str:
+    return str((result.settings.get("thresholds") or {}).get("use", "mtp"))
+
+
+def _taxon_card(result, name, tr) -> str:
+    """One taxon's evidence: support, limits, implications for the sites."""
+    from screener.evidence import taxon_evidence
+    from screener.outputs import model_figures
+    from screener.outputs.sheets import THRESHOLD_WORDS
+
+    ev = taxon_evidence(result, name, threshold_name=_threshold_name(result))
+    support = [
+        f"<strong>{_e(ev.supported.capitalize())}.</strong> {ev.n_records} records kept."
+    ]
+    for h in ev.held_out:
+        tests = []
+        if math.isfinite(h["null_p"]):
+            tests.append(f"null-model p = {_fmt(h['null_p'], '.3g')}")
+        if math.isfinite(h["jackknife_p"]):
+            tests.append(f"jackknife p = {_fmt(h['jackknife_p'], '.3g')}")
+        support.append(
+            f"{_e(h['family'])} ({_e(h['method'])} hold-out): AUC "
+            f"{_fmt(h['auc'])}, omission at the minimum training presence "
+            f"{_fmt(h['omission'])}" + (f"; {', '.join(tests)}" if tests else "")
+        )
+    limits = ev.limits or ["None of the checked limits applies (records, clustering, "
+                           "extrapolation)."]
+    if ev.clustering is not None and not any("clustered" in x for x in ev.limits):
+        limits.append(
+            f"Records are not detectably clustered (Clark-Evans R = "
+            f"{ev.clustering.ratio:.2f})."
+        )
+    words = THRESHOLD_WORDS.get(ev.threshold_name, ev.threshold_name)
+    implied = [
+        f"Suitable at or above {_fmt(ev.threshold, '.3f')} (its {_e(words)}), "
+        f"{_fmt(ev.range_km2, ',.0f')} km² of ground."
+    ]
+    if ev.site_ids:
+        implied.append(
+            "Sites whose suitability comes from this model: "
+            + ", ".join(_e(s) for s in ev.site_ids)
+            + "."
+        )
+    else:
+        implied.append("No ranked site takes its suitability from this model.")
+    if ev.supported != "supported":
+        implied.append("Treat those sites as weaker leads than the score alone says.")
+
+    def dl(items):
+        return "<ul>" + "".join(f"<li>{i}</li>" for i in items) + "</ul>"
+
+    left = (
+        "<dl><dt>How well the model is supported</dt><dd>" + dl(support) + "</dd>"
+        "<dt>What limits it</dt><dd>" + dl([_e(x) for x in limits]) + "</dd>"
+        "<dt>What it implies for the sites</dt><dd>" + dl(implied) + "</dd></dl>"
+    )
+    right = _safe_figure(
+        lambda: maps.plot_suitability(result, name, caption=False),
+        f"Consensus suitability of {name} with its {tr.records.n} records; a "
+        "hypothesis for survey, not a map of presence.",
+        f"suitability map of {name}",
+    )
+    out = [
+        f'<article class="card"><h3>{_e(name)}</h3>',
+        f'<div class="cols"><div>{left}</div><div>{right}</div></div>',
+    ]
+    if tr.presence_env is not None and tr.background_env is not None:
+        curves = list(((tr.figures or {}).get("response_curves") or {}).values())
+        out.append(
+            _safe_figure(
+                lambda: model_figures.plot_niche_profile(
+                    tr.presence_env, tr.background_env, result.layer_names,
+                    curves or None, taxon=name,
+                ),
+                f"Where the records of {name} sit in the environment available to it, "
+                "layer by layer, with the model's suitability along each layer (the "
+                "other layers at the records' medians).",
+                f"niche profile of {name}",
+            )
+        )
+    out.append("</article>")
+    return "\n".join(out)
+
+
+def _overlap(result) -> str:
+    out = []
+    if result.overlap_readings:
+        out.append(
+            "<ul>"
+            + "".join(f"<li>{_e(r)}</li>" for r in result.overlap_readings)
+            + "</ul>"
+        )
+    ov = result.overlap
+    if ov is not None and len(ov):
+        out.append(html_table(ov))
+    else:
+        out.append('<p class="note">No niche overlap was computed.</p>')
+    out.append(
+        '<p class="note">D (Schoener) and I (Hellinger-based) run from 0 (no overlap) '
+        "to 1 (identical). A small equivalency p means the niches are less alike "
+        "than random reassignment of the records gives; a small similarity p means "
+        "they are more (or less) alike than random records from the other taxon's "
+        "accessible area give. Each p-value comes with its Monte Carlo standard error "
+        "and the replicates behind it; the readings claim only what survives Holm's "
+        "correction over every p-value of the run (columns ending _holm). In "
+        "geographic space the tests refit one model per replicate, so the D they test "
+        "(D_tested) can differ from the D of the reported maps.</p>"
+    )
+    out.extend(_overlap_figures(result))
+    return "\n".join(out)
+
+
+def _overlap_figures(result) -> list:
+    """Occupancy surfaces and null distributions of each compared pair."""
+    from screener.outputs import overlap_figures
+
+    out = []
+    for cmp in getattr(result, "comparisons", None) or []:
+        a, b = cmp.taxon_a, cmp.taxon_b
+        if cmp.space is not None:
+            d_env = cmp.environmental.D if cmp.environmental is not None else None
+            out.append(_safe_figure(
+                lambda cmp=cmp, a=a, b=b, d=d_env: overlap_figures.plot_niches(
+                    cmp.space, names=(a, b), D=d),
+                f"Niches of {a} and {b} in their shared environmental space.",
+                f"niches in environmental space {a} {b}",
+            ))
+        for sc in (cmp.environmental, cmp.geographic):
+            if sc is None:
+                continue
+            for label, test in (("equivalency", sc.equivalency),
+                                ("similarity A to B", sc.similarity_ab),
+                                ("similarity B to A", sc.similarity_ba)):
+                if not test:
+                    continue
+                out.append(_safe_figure(
+                    lambda t=test["D"], d=sc.D: overlap_figures.plot_null_distribution(
+                        t, reported_d=d),
+                    f"{a} vs {b}, {sc.space} space, {label} test: null distribution of "
+                    "D with the tested value marked.",
+                    f"null distribution {label} {sc.space} {a} {b}",
+                ))
+    return out
+
+
+def _plan_rows(result) -> list:
+    from screener.evidence import site_taxa
+    from screener.outputs.sheets import coordinate_precision
+
+    decimals, _ = coordinate_precision(result.grid)
+    day = _day_hours(result)
+    routes = getattr(result, "routes", None) or {}
+    models = site_taxa(result)
+    rows = []
+    for r in result.sites.drop(columns="geometry", errors="ignore").to_dict("records"):
+        sid = str(r["site_id"])
+        route = routes.get(sid)
+        row = {
+            "rank": int(r["rank"]),
+            "site": r["site_id"],
+            "kind": r.get("kind", ""),
+            "lat, lon": f"{float(r['latitude']):.{decimals}f}, "
+            f"{float(r['longitude']):.{decimals}f}",
+            "area (km²)": r.get("area_km2", math.nan),
+            "suitability (mean)": r.get("mean_suitability", math.nan),
+            "model": models.get(sid, ""),
+            "gap (km)": r.get("gap_km", math.nan),
+            "walk from": route.start_name if route else "",
+            "walk (h)": r.get("walk_hours", math.nan),
+            "days": route.days(day) if route else "",
+            "score": r.get("score", math.nan),
+            "robustness": r.get("rank_robustness", math.nan),
+        }
+        rows.append(row)
+    return rows
+
+
+def _plan(result) -> str:
+    sites = result.sites
+    if sites is None or len(sites) == 0:
+        return '<p class="note">No candidate sites were found.</p>'
+    out = [
+        _safe_figure(
+            lambda: maps.plot_sites(result, caption=False),
+            "Ranked candidate sites, numbered by rank, over the terrain; outline "
+            "style gives the kind of site. Sites are survey hypotheses; check permits "
+            "and access first.",
+            "site map",
+        )
+    ]
+    day = _day_hours(result)
+    out.append(
+        html_table(
+            _plan_rows(result),
+            caption=f"Ranked plan. Walk: slope-only estimate from the nearest start "
+            f"point; days at a {day:g} h walking day (common practice 6-8 h). "
+            "Robustness: share of random weightings that keep the site among the top.",
+        )
+    )
+    score_cols = [c for c in sites.columns if str(c).startswith("score_")]
+    if score_cols:
+        comp = sites.drop(columns="geometry", errors="ignore")[
+            ["rank", "site_id", "score", *score_cols]
+        ]
+        out.append("<h3>Why each site ranks where it does</h3>")
+        out.append(html_table(comp, caption="Weighted score components (they add up "
+                              "to the score)"))
+    if result.paths is not None and len(result.paths):
+        out.append(
+            _safe_figure(
+                lambda: maps.plot_paths(result, caption=False),
+                "Least-cost paths over inverted suitability from the known ranges to "
+                "near-range and isolated sites; shaded cells are barriers, darker "
+                "where less suitable.",
+                "path map",
+            )
+        )
+    return "\n".join(out)
+
+
+def _conclusion(result) -> str:
+    """Where to go first and why, in plain words."""
+    from screener.evidence import site_taxa
+
+    sites = result.sites
+    if sites is None or len(sites) == 0:
+        return (
+            '<div class="conclusion"><p>No candidate site was found at these '
+            "thresholds. Relax the threshold or the minimum patch area, or add "
+            "records.</p></div>"
+        )
+    day = _day_hours(result)
+    routes = getattr(result, "routes", None) or {}
+    models = site_taxa(result)
+    top = sites.iloc[0]
+    sid = str(top["site_id"])
+    why = (
+        f"Go first to site <strong>{_e(sid)}</strong>: a {_e(top.get('kind', ''))} "
+        f"patch of {_fmt(top.get('area_km2'), ',.1f')} km²"
+    )
+    if math.isfinite(_float(top.get("gap_km"))) and _float(top.get("gap_km")) > 0:
+        why += (
+            f", {_fmt(top.get('gap_km'), '.1f')} km of unsuitable ground from the "
+            f"nearest known range ({_e(top.get('nearest_taxon', ''))})"
+        )
+    why += (
+        f". Its suitability ({_fmt(top.get('mean_suitability'))} on average) comes "
+        f"from the {_e(models.get(sid, ''))} model, and it stays among the top sites in "
+        f"{_fmt(100 * _float(top.get('rank_robustness')), '.0f')}% of random "
+        "weightings of the score."
+    )
+    route = routes.get(sid)
+    if route is not None:
+        why += (
+            f" Walk in from {_e(route.start_name)}: {route.distance_km:.1f} km, "
+            f"{route.ascent_m:,.0f} m of climbing, about {route.hours:.1f} h "
+            f"({route.days(day)} day(s) at {day:g} h a day)."
+        )
+    head = sites.head(min(len(sites), 10))
+    cheap, care = [], []
+    for r in head.to_dict("records"):
+        s_id = str(r["site_id"])
+        walk = _float(r.get("walk_hours"))
+        reasons = []
+        if math.isfinite(walk) and walk > 2 * day:
+            reasons.append(f"more than two walking days ({walk:.0f} h)")
+        if not math.isfinite(walk) and routes:
+            reasons.append("no walking route from any start point")
+        if _float(r.get("novel_share")) > 0.25:
+            reasons.append(
+                f"{100 * _float(r.get('novel_share')):.0f}% novel environment"
+            )
+        if _float(r.get("rank_robustness")) < 0.5:
+            reasons.append("its rank depends on the weights")
+        if reasons:
+            care.append(f"{_e(s_id)} ({_e('; '.join(reasons))})")
+        elif math.isfinite(walk) and walk <= day:
+            cheap.append(f"{_e(s_id)} ({walk:.1f} h)")
+    items = [why]
+    items.append(
+        "Cheap to reach (within one walking day): "
+        + (", ".join(cheap) if cheap else "none of the top sites")
+        + "."
+    )
+    items.append(
+        "Need care: " + (", ".join(care) if care else "none of the top sites") + "."
+    )
+    items.append(_overlap_summary(result))
+    items.append(
+        "All of this is a set of hypotheses for survey, resting on few records: a "
+        "site may hold nothing, and finding nothing is not proof of absence."
+    )
+    return '<div class="conclusion">' + "".join(f"<p>{i}</p>" for i in items) + "</div>"
+
+
+def _float(v) -> float:
+    try:
+        return float(v)
+    except (TypeError, ValueError):
+        return math.nan
+
+
+def _overlap_summary(result) -> str:
+    ov = result.overlap
+    if ov is None or not len(ov) or "equivalency_p" not in getattr(ov, "columns", []):
+        return "Niche overlap: not computed (one taxon, or no tests run)."
+    env = ov[ov["space"] == "environmental"] if "space" in ov.columns else ov
+    n = len(env)
+    p = env["equivalency_p"].astype(float)
+    differ = int((p <= 0.05).sum())
+    txt = (
+        f"Niche overlap: of {n} pair(s) of taxa compared in environmental space, "
+        f"{differ} differ more than random reassignment of their records gives "
+        "(equivalency p &le; 0.05)"
+    )
+    if "D" in env.columns and n:
+        txt += (
+            f"; D ranges from {env['D'].astype(float).min():.2f} to "
+            f"{env['D'].astype(float).max():.2f}"
+        )
+    return txt + (
+        ". With few records these tests have little power: 'not different' is not "
+        "'the same', and D describes the models, not the animals."
+    )
 
 
 def _inputs(result) -> str:
@@ -162,174 +513,6 @@ def _inputs(result) -> str:
     return "\n".join(out)
 
 
-def _taxon_section(result, name, tr) -> str:
-    out = [f"<h3>{_e(name)}</h3>"]
-    out.append(
-        _safe_figure(
-            lambda: maps.plot_suitability(result, name),
-            f"Consensus suitability of {name} with its records.",
-            f"suitability map of {name}",
-        )
-    )
-    if tr.thresholds:
-        out.append(
-            _safe_figure(
-                lambda: maps.plot_ranges(result, name),
-                f"Range of {name} at the MTP and relaxed thresholds.",
-                f"range map of {name}",
-            )
-        )
-    if tr.evaluation:
-        out.append(html_table(tr.evaluation, caption="Evaluation"))
-    figs = getattr(tr, "figures", None) or {}
-    from screener.outputs import model_figures
-
-    for family, curves in (figs.get("response_curves") or {}).items():
-        out.append(_safe_figure(
-            lambda c=curves: model_figures.plot_response_curves(c),
-            f"Response curves of the {family} model for {name}: suitability along each "
-            "layer with the others held at their medians at the records.",
-            f"response curves {family} {name}",
-        ))
-    for family, imp in (figs.get("importance") or {}).items():
-        out.append(_safe_figure(
-            lambda i=imp: model_figures.plot_importance(i),
-            f"Permutation importance of each layer in the {family} model for {name}: the "
-            "drop in training AUC when that layer's values are shuffled.",
-            f"permutation importance {family} {name}",
-        ))
-    th = [
-        {
-            "threshold": t.name,
-            "value": t.value,
-            "area (km²)": t.area_km2,
-            "training omission": t.training_omission,
-        }
-        for t in (tr.thresholds or {}).values()
-    ]
-    if th:
-        out.append(html_table(th, caption="Thresholds"))
-    if tr.mess is not None:
-        m = np.asarray(tr.mess, float)
-        ok = np.isfinite(m)
-        if ok.any():
-            share = float((m[ok] < 0).mean())
-            out.append(
-                f'<p class="note">Novel environment (MESS &lt; 0) covers '
-                f"{100 * share:.1f}% of the valid cells for this taxon; "
-                "predictions there are extrapolations.</p>"
-            )
-    return "\n".join(out)
-
-
-def _overlap(result) -> str:
-    out = []
-    ov = result.overlap
-    if ov is not None and len(ov):
-        out.append(html_table(ov))
-    else:
-        out.append('<p class="note">No niche overlap was computed.</p>')
-    if result.overlap_readings:
-        out.append(
-            "<ul>"
-            + "".join(f"<li>{_e(r)}</li>" for r in result.overlap_readings)
-            + "</ul>"
-        )
-    out.append(
-        '<p class="note">D (Schoener) and I (Hellinger-based) run from 0 (no overlap) '
-        "to 1 (identical). A small equivalency p means the niches are less alike "
-        "than random reassignment of the records gives; a small similarity p means "
-        "they are more (or less) alike than random records from the other taxon's "
-        "accessible area give. Each p-value comes with its Monte Carlo standard error "
-        "and the replicates behind it; the readings claim only what survives Holm's "
-        "correction over every p-value of the run (columns ending _holm). In "
-        "geographic space the tests refit one model per replicate, so the D they test "
-        "(D_tested) can differ from the D of the reported maps.</p>"
-    )
-    out.extend(_overlap_figures(result))
-    return "\n".join(out)
-
-
-def _overlap_figures(result) -> list:
-    """Occupancy surfaces and null distributions of each compared pair."""
-    from screener.outputs import overlap_figures
-
-    out = []
-    for cmp in getattr(result, "comparisons", None) or []:
-        a, b = cmp.taxon_a, cmp.taxon_b
-        if cmp.space is not None:
-            d_env = cmp.environmental.D if cmp.environmental is not None else None
-            out.append(_safe_figure(
-                lambda cmp=cmp, a=a, b=b, d=d_env: overlap_figures.plot_niches(
-                    cmp.space, names=(a, b), D=d),
-                f"Niches of {a} and {b} in their shared environmental space.",
-                f"niches in environmental space {a} {b}",
-            ))
-        for sc in (cmp.environmental, cmp.geographic):
-            if sc is None:
-                continue
-            for label, test in (("equivalency", sc.equivalency),
-                                ("similarity A to B", sc.similarity_ab),
-                                ("similarity B to A", sc.similarity_ba)):
-                if not test:
-                    continue
-                out.append(_safe_figure(
-                    lambda t=test["D"], d=sc.D: overlap_figures.plot_null_distribution(
-                        t, reported_d=d),
-                    f"{a} vs {b}, {sc.space} space, {label} test: null distribution of "
-                    "D with the tested value marked.",
-                    f"null distribution {label} {sc.space} {a} {b}",
-                ))
-    return out
-
-
-def _plan(result) -> str:
-    sites = result.sites
-    if sites is None or len(sites) == 0:
-        return '<p class="note">No candidate sites were found.</p>'
-    out = [
-        _safe_figure(
-            lambda: maps.plot_sites(result),
-            "Ranked candidate sites, numbered by rank.",
-            "site map",
-        )
-    ]
-    if result.paths is not None and len(result.paths):
-        out.append(
-            _safe_figure(
-                lambda: maps.plot_paths(result),
-                "Least-cost paths and barriers.",
-                "path map",
-            )
-        )
-    base = [
-        "rank",
-        "site_id",
-        "kind",
-        "longitude",
-        "latitude",
-        "area_km2",
-        "mean_suitability",
-        "agreement",
-        "novel_share",
-        "nearest_taxon",
-        "gap_km",
-        "walk_hours",
-        "score",
-        "rank_robustness",
-    ]
-    cols = [c for c in base if c in sites.columns]
-    cols += [c for c in sites.columns if str(c).startswith("score_")]
-    out.append(
-        html_table(
-            sites.drop(columns="geometry", errors="ignore"),
-            cols,
-            caption="Ranked plan with the weighted score components",
-        )
-    )
-    return "\n".join(out)
-
-
 def _novelty(result) -> str:
     items = [str(w) for w in (result.warnings or [])]
     sites = result.sites
@@ -352,48 +535,55 @@ def _provenance(result) -> str:
         prov["settings"] = result.settings
     if not prov:
         return '<p class="note">No provenance recorded.</p>'
-    rows = [
-        {
-            "key": k,
-            "value": v
-            if isinstance(v, (int, float, str))
-            else json.dumps(v, default=str, sort_keys=True),
-        }
-        for k, v in prov.items()
-    ]
-    return html_table(rows, ["key", "value"])
+    text = json.dumps(prov, default=str, sort_keys=True, indent=2)
+    return (
+        '<p class="note">Versions, settings, input hashes and seeds of this run, as '
+        "recorded in run.json.</p><details><summary>Raw provenance (JSON)</summary>"
+        f"<pre>{_e(text)}</pre></details>"
+    )
 
 
-def render_report(result, *, title: str = "Survey screening report") -> str:
+def render_report(result, *, title: str | None = None) -> str:
     """Render a RunResult as one self-contained HTML page.
 
     Parameters
     ----------
     result : screener.results.RunResult
-    title : str, default "Survey screening report"
+    title : str, optional
+        Page title; by default the project name followed by "survey screening
+        report".
 
     Returns
     -------
     str
-        The HTML document.  It holds the inputs and the dropped records (line and
-        reason), per-taxon maps, evaluation and thresholds, niche overlap in plain
-        words, the ranked plan with its score components, novelty warnings,
-        provenance and the cautions.  Pages with sensitive records at full
-        precision carry the marker "FULL PRECISION: do not share".
+        The HTML document, in the order a survey leader reads it: the conclusion in
+        plain words (where to go first and why, which sites are cheap to reach and
+        which need care, what the overlap tests say), the plan (site map, ranked
+        table with walking estimates, score components, paths), one evidence card
+        per taxon (how well the model is supported, what limits it, what it implies
+        for the sites), niche overlap, inputs and dropped records, warnings, the
+        cautions, and the raw provenance at the end.  Pages with sensitive records at
+        full precision carry the marker "FULL PRECISION: do not share".
     """
+    project = str((result.settings.get("project") or {}).get("name") or "").strip()
+    if title is None:
+        title = f"{project}: survey screening report" if project else (
+            "Survey screening report"
+        )
     marker = has_full_precision_sensitive(result)
     sections = [
-        ("inputs", "Inputs", _inputs(result)),
+        ("conclusion", "Where to go first", _conclusion(result)),
+        ("plan", "The plan", _plan(result)),
         (
             "taxa",
-            "Per taxon: models, evaluation and thresholds",
-            "\n".join(_taxon_section(result, n, t) for n, t in result.taxa.items()),
+            "The evidence, taxon by taxon",
+            "\n".join(_taxon_card(result, n, t) for n, t in result.taxa.items()),
         ),
         ("overlap", "Niche overlap and its tests", _overlap(result)),
-        ("plan", "Ranked survey plan", _plan(result)),
+        ("inputs", "Inputs", _inputs(result)),
         ("novelty", "Novelty and other warnings", _novelty(result)),
-        ("provenance", "Provenance", _provenance(result)),
         ("cautions", "Cautions", cautions_html()),
+        ("provenance", "Provenance", _provenance(result)),
     ]
     nav = "".join(f'<a href="#{sid}">{_e(head)}</a>' for sid, head, _ in sections)
     body = [f"<h1>{_e(title)}</h1>"]
@@ -404,15 +594,16 @@ def render_report(result, *, title: str = "Survey screening report") -> str:
             "full precision. Share only a generalised version.</p>"
         )
     body.append(
-        f'<p class="note">Written {_e(dt.date.today().isoformat())}. '
-        "Predictions are hypotheses for survey, not evidence of presence or "
-        "absence.</p>"
+        f'<p class="note">Written {_e(dt.date.today().isoformat())} by screener '
+        f"{_e(__version__)}. Predictions are hypotheses for survey, not evidence of "
+        "presence or absence.</p>"
     )
     body.append(f"<nav>{nav}</nav>")
     for sid, head, content in sections:
         body.append(f'<section id="{sid}"><h2>{_e(head)}</h2>\n{content}</section>')
     return (
         '<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8">'
+        '<meta name="viewport" content="width=device-width, initial-scale=1">'
         f"<title>{_e(title)}</title><style>{_CSS}</style></head><body>\n"
         + "\n".join(body)
         + "\n</body></html>\n"
