@@ -1406,6 +1406,11 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     html = report.render_report(shareable)
     (folder / "report.html").write_text(html, encoding="utf-8")
     rel(folder / "report.html")
+    from screener.outputs.mappage import render_map_page
+
+    page = shareable if exact_sites else _without_routes(shareable)
+    (folder / "map.html").write_text(render_map_page(page), encoding="utf-8")
+    rel(folder / "map.html")
     prov = dict(result.provenance)
     prov["taxa"] = {name: _safe_name(name) for name in result.taxa}
     prov["outputs"] = sorted(written + ["run.json"])
@@ -1413,6 +1418,15 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     (folder / "run.json").write_text(json.dumps(_jsonable(prov), indent=2, sort_keys=True)
                                      + "\n", encoding="utf-8")
     return sorted(written + ["run.json"])
+
+
+def _without_routes(result: RunResult) -> RunResult:
+    """A copy without walking routes (they end at exact site points)."""
+    import copy
+
+    out = copy.copy(result)
+    out.routes = {}
+    return out
 
 
 def _jsonable(obj):

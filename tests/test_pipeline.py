@@ -34,7 +34,7 @@ def test_outputs_follow_the_contract(demo_run):
     for taxon in truth.taxa:
         assert (out / "suitability" / f"{taxon.replace(' ', '_')}.tif").exists()
     for name in ["evaluation.csv", "overlap.csv", "candidates.csv", "candidates.gpkg",
-                 "report.html", "field_sheets.pdf", "sites.gpx", "run.json"]:
+                 "report.html", "map.html", "field_sheets.pdf", "sites.gpx", "run.json"]:
         assert (out / name).stat().st_size > 0, name
     ev = pd.read_csv(out / "evaluation.csv")
     assert list(ev.columns[: len(EVALUATION_COLUMNS)]) == EVALUATION_COLUMNS
