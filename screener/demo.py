@@ -735,6 +735,9 @@ def _project_toml(seed: int) -> str:
         "[layers]\n"
         'paths = ["layers/*.tif"]\n'
         'elevation = "elevation"\n'
+        "# temperature is elevation through the lapse rate (r = -1): model on the\n"
+        "# climate, keep elevation for walking times and terrain\n"
+        'exclude = ["elevation"]\n'
         "\n"
         "[access]\n"
         'start_points = "start_points.csv"\n'

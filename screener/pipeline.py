@@ -265,8 +265,6 @@ class Intake:
         rep = self.layer_report
         if rep.constant:
             out.append(f"Constant layers (left out): {', '.join(rep.constant)}")
-        for a, b, r in rep.collinear:
-            out.append(f"Collinear pair (|r| > 0.7, common practice): {a} / {b}, r = {r:+.2f}")
         out.append(
             f"Records: {self.records.n_rows} rows in {self.records.path}; "
             f"{sum(t.n for t in self.records.taxa.values())} kept, "

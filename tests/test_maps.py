@@ -139,3 +139,38 @@ def test_every_map_has_its_furniture(geographic):
 def test_unknown_taxon():
     with pytest.raises(KeyError, match="no taxon"):
         maps.plot_suitability(make_run(), "Nobody")
+
+
+@pytest.mark.parametrize("geographic", [False, True])
+def test_no_label_overprints_another_or_leaves_the_image(geographic):
+    # every text on the report's maps lies inside the saved (tight) image, and no two
+    # graticule or caption labels overlap: corners stay clear
+    import io
+
+    from matplotlib import image as mimage
+
+    run = make_run(geographic=geographic)
+    for make in (lambda: maps.plot_sites(run), lambda: maps.plot_paths(run),
+                 lambda: maps.plot_suitability(run, next(iter(run.taxa)))):
+        ax = make()
+        fig = ax.figure
+        png = maps.figure_to_png_bytes(fig)
+        h, w = mimage.imread(io.BytesIO(png)).shape[:2]
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.text import Text
+
+        canvas = FigureCanvasAgg(fig)
+        canvas.draw()
+        renderer = canvas.get_renderer()
+        texts = [t for t in fig.findobj(Text) if t.get_visible() and t.get_text()]
+        boxes = [t.get_window_extent(renderer) for t in texts]
+        # the tight box grows the image to hold everything drawn
+        tight = fig.get_tightbbox(renderer).transformed(fig.dpi_scale_trans)
+        for t, b in zip(texts, boxes, strict=True):
+            assert tight.x0 - 1 <= b.x0 and b.x1 <= tight.x1 + 1, t.get_text()
+            assert tight.y0 - 1 <= b.y0 and b.y1 <= tight.y1 + 1, t.get_text()
+        assert w > 0 and h > 0
+        degree = [b for t, b in zip(texts, boxes, strict=True) if "°" in t.get_text()]
+        for i, a in enumerate(degree):
+            for b in degree[:i]:
+                assert not a.overlaps(b), "graticule labels overprint"
