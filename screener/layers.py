@@ -737,7 +737,8 @@ class _RefInfo:
     res: tuple
 
 
-def check_layers(stack: LayerStack, *, sample: int = 200_000, random_state=0):
+def check_layers(stack: LayerStack, *, sample: int = 200_000, random_state=0,
+                 names=None):
     """Report constant layers and collinear pairs over the valid cells.
 
     Parameters
@@ -746,6 +747,8 @@ def check_layers(stack: LayerStack, *, sample: int = 200_000, random_state=0):
     sample : int, default 200000
         Valid cells sampled for the correlations.
     random_state : int, default 0
+    names : sequence of str, optional
+        Layers to check (default all); layers left out of the models need not be.
 
     Returns
     -------
@@ -758,7 +761,9 @@ def check_layers(stack: LayerStack, *, sample: int = 200_000, random_state=0):
     """
     grid = stack.grid
     report = LayerReport()
-    for name in stack.names:
+    names = list(stack.names) if names is None else list(names)
+    cols_of = [stack.names.index(n) for n in names]
+    for name in names:
         if name in stack.nodata_share:
             report.nodata_share[name] = stack.nodata_share[name]
         elif stack.data is not None:
@@ -769,10 +774,10 @@ def check_layers(stack: LayerStack, *, sample: int = 200_000, random_state=0):
         rng = np.random.default_rng(random_state)
         idx = np.sort(rng.choice(idx, size=sample, replace=False))
     rows, cols = np.unravel_index(idx, grid.shape)
-    X = stack.values_at(rows, cols).T
+    X = stack.values_at(rows, cols).T[cols_of]
     sd = X.std(axis=1)
     const = sd <= 1e-12 * np.maximum(1.0, np.abs(X).max(axis=1))
-    report.constant = [n for n, c in zip(stack.names, const) if c]
+    report.constant = [n for n, c in zip(names, const) if c]
     keep = np.flatnonzero(~const)
     if keep.size >= 2:
         r = np.corrcoef(X[keep])
@@ -780,7 +785,7 @@ def check_layers(stack: LayerStack, *, sample: int = 200_000, random_state=0):
             for b in range(a + 1, keep.size):
                 if abs(r[a, b]) > COLLINEARITY_R:
                     report.collinear.append(
-                        (stack.names[keep[a]], stack.names[keep[b]], float(r[a, b]))
+                        (names[keep[a]], names[keep[b]], float(r[a, b]))
                     )
     for name in report.constant:
         warnings.warn(

@@ -440,7 +440,10 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
                     f"[layers] exclude names {name!r}, which is not a layer."
                     + suggest(name, stack.names)
                 )
-        report = check_layers(stack, random_state=s.project.random_state)
+        # layers left out of the models cannot make them collinear: checked are the
+        # candidate predictors only
+        report = check_layers(stack, random_state=s.project.random_state,
+                              names=[n for n in stack.names if n not in s.layers.exclude])
         predictors = [
             n for n in stack.names if n not in report.constant and n not in s.layers.exclude
         ]

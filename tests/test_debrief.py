@@ -76,15 +76,18 @@ def test_debrief_writes_its_files_and_leaves_the_records_alone(run_dir, tmp_path
     run, grid, maps, mtp, records = run_dir
     before = records.read_bytes()
     field = tmp_path / "field.csv"
+    # the find at its own coordinates inside site 1 (north-east corner cells)
+    lon, lat = grid.lonlat(0, 10)
     field.write_text(
         "site_id,longitude,latitude,date,taxon,outcome,effort_hours\n"
-        "1,,,2027-03-02,Alpha one,found,4\n"
+        f"1,{float(lon)},{float(lat)},2027-03-02,Alpha one,found,4\n"
         "2,,,2027-03-03,Beta two,not-found,5\n"
     )
     lines = debrief_run(field, run, tmp_path / "debrief")
     out = tmp_path / "debrief"
     assert sorted(p.name for p in out.iterdir()) == [
-        ".screener-run", "debrief.json", "debrief.md", "records_updated.csv", "site_outcomes.csv"]
+        ".screener-run", "debrief.json", "debrief.md", "project_next.toml",
+        "records_updated.csv", "site_outcomes.csv"]
     summary = json.loads((out / "debrief.json").read_text())
     assert summary["n_visited"] == 2 and summary["n_hits"] == 1
     # the predicted share is the union of the MTP ranges over the (geodesic) cell areas
@@ -94,6 +97,7 @@ def test_debrief_writes_its_files_and_leaves_the_records_alone(run_dir, tmp_path
     assert any("area predicted suitable" in line for line in lines)
     upd = pd.read_csv(out / "records_updated.csv")
     assert len(upd) == 2 and upd["taxon"].tolist() == ["Alpha one", "Alpha one"]
+    assert upd["longitude"].iloc[-1] == pytest.approx(float(lon))
     assert records.read_bytes() == before
 
 

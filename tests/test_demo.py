@@ -386,7 +386,8 @@ def test_project_file_has_exactly_the_agreed_shape(small):
     assert cfg == {
         "project": {"name": demo.SCENARIO_NAME, "random_state": demo.DEFAULT_SEED},
         "occurrences": {"path": "occurrences.csv"},
-        "layers": {"paths": ["layers/*.tif"], "elevation": "elevation"},
+        "layers": {"paths": ["layers/*.tif"], "elevation": "elevation",
+                   "exclude": ["elevation"]},
         "access": {"start_points": "start_points.csv"},
         "survey": {"surveyed": "surveys.csv"},
     }

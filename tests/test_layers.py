@@ -139,6 +139,13 @@ def test_constant_and_collinear_are_reported(small_layers, tif_writer):
     m = stack.grid.mask
     assert rep.collinear[0][2] == pytest.approx(pearsonr(stack.data[0][m], stack.data[2][m])[0])
     assert issubclass(CollinearityWarning, ScreenerWarning)
+    # a layer left out of the models is not checked, so its twin raises no warning
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", CollinearityWarning)
+        rep = check_layers(stack, names=["twin", "gamma"])
+    assert rep.collinear == [] and rep.constant == []
 
 
 def test_slope_uses_true_metre_spacing_on_lat_lon_grid():
