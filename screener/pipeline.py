@@ -9,6 +9,7 @@ without redoing finished stages.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import io
 import json
@@ -1068,7 +1069,8 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
         "access_hours": access_hours,
         "candidates": cand,
         "clade_mess": clade_mess,
-        "routes": {k: v for k, v in routes.items() if k in set(gdf["site_id"].astype(str))},
+        "routes": {ids[int(k)]: dataclasses.replace(v, site_id=ids[int(k)])
+                   for k, v in routes.items() if int(k) in ids},
         "start_points": starts,
     }
 

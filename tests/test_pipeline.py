@@ -53,6 +53,24 @@ def test_outputs_follow_the_contract(demo_run):
 
 
 @pytest.mark.slow
+@pytest.mark.slow
+def test_field_pack_names_sites_by_site_id_with_walking_routes(demo_run):
+    import gpxpy
+
+    _, out, _ = demo_run
+    cand = pd.read_csv(out / "candidates.csv")
+    with (out / "sites.gpx").open() as fh:
+        gpx = gpxpy.parse(fh)
+    names = {w.name for w in gpx.waypoints}
+    assert set(cand["site_id"]) <= names
+    # every site reached from a start point has a track named by its site id
+    reached = cand.loc[np.isfinite(cand["walk_hours"].astype(float)), "site_id"]
+    assert {t.name for t in gpx.tracks} == {f"{sid} route" for sid in reached}
+    assert {"Port Elvarre", "Tollo road end"} <= names  # start points
+    page = (out / "map.html").read_text()
+    assert all(f'data-site="{sid}"' in page for sid in cand["site_id"])
+
+
 def test_unrecorded_massif_is_the_top_isolated_site(demo_run):
     _, out, _ = demo_run
     truth = DEMO_TRUTH["small"].unrecorded
