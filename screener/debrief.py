@@ -170,11 +170,9 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
     report = render_survey_report(score)
     if left_out:
         report += (
-            "
-Left out of the next run's modelling (kept in records_updated.csv with a "
+            "\nLeft out of the next run's modelling (kept in records_updated.csv with a "
             f"note; fewer than min_records = {min_records} records): "
-            + ", ".join(left_out) + ". project_next.toml lists the taxa it models.
-"
+            + ", ".join(left_out) + ". project_next.toml lists the taxa it models.\n"
         )
     summary = {k: (v.item() if isinstance(v, np.generic) else v)
                for k, v in vars(score).items() if not isinstance(v, pd.DataFrame)}
