@@ -31,9 +31,11 @@ log = logging.getLogger(__name__)
 #: Term sets, in the order their columns are built.
 TERM_SETS = ("linear", "quadratic", "interaction", "hinge", "step")
 
-#: Term sets used when none are given: smooth one-humped responses (linear +
-#: quadratic) plus hinges for asymmetric ones; the penalty path decides what is kept.
-DEFAULT_TERMS = ("linear", "quadratic", "hinge")
+#: Term sets used when none are given, whatever the number of records: smooth
+#: one-humped responses (linear + quadratic), the classic niche shape, cheap to fit;
+#: the penalty path decides what is kept.  Add "hinge" for asymmetric responses when
+#: records are many (each hinge predictor adds 2 x n_knots columns to every fit).
+DEFAULT_TERMS = ("linear", "quadratic")
 
 #: Penalties on the path: this many values from just below the smallest penalty
 #: that zeroes every term down to ``_PATH_DEPTH`` times that value.
@@ -148,7 +150,7 @@ class PointProcessNiche(NicheModel):
 
     Parameters
     ----------
-    terms : sequence of str, default ("linear", "quadratic", "hinge")
+    terms : sequence of str, default ("linear", "quadratic")
         Term sets built from each predictor: any of ``"linear"``, ``"quadratic"``,
         ``"interaction"`` (pairwise products), ``"hinge"`` (``max(z - t, 0)`` and
         ``max(t - z, 0)`` at knots ``t``) and ``"step"`` (``z > t``).  A string joined
