@@ -125,7 +125,8 @@ def test_ppm_deprecated_names_warn_and_map_to_new_ones(data):
     pres, bg = data
     with pytest.warns(ScreenerWarning, match="feature_classes .* deprecated"):
         with pytest.warns(ScreenerWarning, match="regularization .* deprecated"):
-            old = make_model("ppm", feature_classes="lq", regularization=1.0).fit(pres, bg)
+            old = make_model("ppm", feature_classes="lq", regularization=1.0)
+            old.fit(pres, bg)
     new = make_model(
         "ppm", terms=["quadratic", "linear"], l1_penalty=0.5 / np.sqrt(len(pres))
     ).fit(pres, bg)
@@ -140,8 +141,8 @@ def test_ppm_deprecated_names_warn_and_map_to_new_ones(data):
 
 
 def test_ppm_path_starts_where_every_term_is_zero(data):
-    """lambda_max from the score at zero (lasso KKT conditions; Tibshirani 1996), checked
-    against scikit-learn's liblinear solver: just above it no term survives."""
+    """lambda_max from the score at zero (lasso KKT conditions; Tibshirani 1996),
+    checked against scikit-learn's liblinear solver: just above it no term survives."""
     pres, bg = data
     model = make_model("ppm", n_penalties=5).fit(pres, bg)
     lam_max = model.path_[0]["l1_penalty"] / 0.01 ** (1 / 5)
@@ -220,7 +221,8 @@ def test_ppm_matches_poisson_point_process_glm(terms, n_knots, min_rho, max_p95)
     idx = rng.choice(len(bg), size=200, p=np.exp(eta - logsumexp(eta)))
     pres = bg[idx] + rng.normal(scale=0.01, size=(200, 2))
     # A weak penalty: 0.02 x 0.5 / sqrt(200) per record.
-    model = PointProcessNiche(terms=terms, l1_penalty=7.071e-4, n_knots=n_knots).fit(pres, bg)
+    model = PointProcessNiche(terms=terms, l1_penalty=7.071e-4, n_knots=n_knots)
+    model.fit(pres, bg)
 
     mu, sd = bg.mean(axis=0), bg.std(axis=0)
     zb = (bg - mu) / sd

@@ -286,11 +286,11 @@ class PointProcessNiche(NicheModel):
         if self.feature_classes is not None:
             terms = _terms_from_letters(self.feature_classes)
             warnings.warn(
-                f"[models.ppm] feature_classes = {self.feature_classes!r} is deprecated "
-                f"and will be removed in the next release; write terms = "
-                f"{list(terms)!r} instead (letters: L linear, Q quadratic, P interaction, "
-                "H hinge, T step; 'auto' is the default terms, whose complexity is now "
-                "chosen along the L1 penalty path).",
+                f"[models.ppm] feature_classes = {self.feature_classes!r} is "
+                "deprecated and will be removed in the next release; write terms = "
+                f"{list(terms)!r} instead (letters: L linear, Q quadratic, "
+                "P interaction, H hinge, T step; 'auto' is the default terms, whose "
+                "complexity is now chosen along the L1 penalty path).",
                 ScreenerWarning,
                 stacklevel=3,
             )
@@ -304,10 +304,13 @@ class PointProcessNiche(NicheModel):
                 )
             lam = mult * _LEGACY_BASE / math.sqrt(n)
             penalty = float(lam[0]) if lam.size == 1 else lam
+            shown = np.round(lam, 6).tolist()
+            shown = shown[0] if lam.size == 1 else shown
             warnings.warn(
                 f"[models.ppm] regularization = {self.regularization!r} is deprecated "
                 "and will be removed in the next release; write l1_penalty = "
-                f"{np.round(lam, 6).tolist()!r} for these {n} records (a multiplier m is "
+                f"{shown!r} "
+                f"for these {n} records (a multiplier m is "
                 "0.5 m / sqrt(n)), or leave it out to choose the penalty by held-out "
                 "likelihood.",
                 ScreenerWarning,
@@ -385,7 +388,11 @@ class PointProcessNiche(NicheModel):
             blocks = self._blocks(zp, groups)
             if blocks is None:
                 penalty = float(path[len(path) // 2])
-                log.info("ppm: %d record(s), too few to hold out; l1_penalty %.3g", n, penalty)
+                log.info(
+                    "ppm: %d record(s), too few to hold out; l1_penalty %.3g",
+                    n,
+                    penalty,
+                )
             else:
                 penalty = self._choose(Fs, y, w, n, np.sort(path)[::-1], blocks)
         beta = self._fit_one(Fs, y, w, n, float(penalty))
@@ -418,7 +425,8 @@ class PointProcessNiche(NicheModel):
             if k < 2:
                 return None
             folds = np.empty(n, dtype=np.intp)
-            for f, (_, test) in enumerate(GroupKFold(n_splits=k).split(zp, groups=labels)):
+            splits = GroupKFold(n_splits=k).split(zp, groups=labels)
+            for f, (_, test) in enumerate(splits):
                 folds[test] = f
             return folds
         k = min(self.n_blocks, n)
@@ -452,7 +460,9 @@ class PointProcessNiche(NicheModel):
             ll = np.zeros(n)
             nnz = []
             for test, rows, n_train in splits:
-                beta = self._fit_one(Fs[rows], y[rows], wb[rows], n_train, lam, tol=_PATH_TOL)
+                beta = self._fit_one(
+                    Fs[rows], y[rows], wb[rows], n_train, lam, tol=_PATH_TOL
+                )
                 nnz.append(np.count_nonzero(beta))
                 ll[test] = Fs[test] @ beta - logsumexp(Fs[bg] @ beta)
             per_block = np.array([ll[blocks == b].mean() for b in ids])
@@ -461,7 +471,9 @@ class PointProcessNiche(NicheModel):
                 {
                     "l1_penalty": float(lam),
                     "heldout_log_likelihood": mean_ll,
-                    "standard_error": float(per_block.std(ddof=1) / math.sqrt(len(ids))),
+                    "standard_error": float(
+                        per_block.std(ddof=1) / math.sqrt(len(ids))
+                    ),
                     "n_coefficients": float(np.mean(nnz)),
                 }
             )
