@@ -256,7 +256,7 @@ class DemoScenario:
     layers : dict of str to ndarray
         float32 arrays (n_rows, n_cols), NaN over the sea, keyed by
         :data:`LAYER_NAMES`: elevation (m), temperature (deg C), moisture (mm/yr),
-        cloud (cloud-forest frequency, %).
+        cloud (cloud cover, % of days: windward slopes cloudier).
     massif_id : ndarray of int, shape (n_rows, n_cols)
         Index into :data:`MASSIFS` of each massif's upland (cells at or above
         :data:`LOWLAND_MAX_M` connected to its summit); -1 elsewhere.
@@ -454,11 +454,12 @@ def _climate(grid: Grid, elevation: np.ndarray, land: np.ndarray, rng):
     )
     moisture = np.clip((base + orographic) * (1.0 + 0.06 * np.tanh(n_m)), 400.0, None)
 
-    cloud = (
-        92.0
-        * np.exp(-(((z - _CLOUD_BELT_M) / 600.0) ** 2))
-        / (1.0 + np.exp(-(moisture - 2500.0) / 400.0))
-    )
+    # Cloud cover follows which way a slope faces more than its height: orographic
+    # cloud where the trade wind rises against windward slopes, clearer in the lee
+    # (so that, unlike a cloud-belt layer, it is not a copy of elevation).
+    n_c = _smooth_noise(rng, grid.shape, n_cols / 60.0)
+    cloud = np.clip(20.0 + 35.0 * (1.0 + np.tanh(rise / 30.0)) + 8.0 * np.tanh(n_c),
+                    0.0, 100.0)
 
     out = {}
     for name, arr, ndp in (
