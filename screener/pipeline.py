@@ -1062,6 +1062,10 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
                site_keys(gdf["longitude"], gdf["latitude"]))
     paths = paths[paths["site_id"].isin(found)].copy()
     paths["site_id"] = paths["site_id"].map(ids).astype(object)
+    shares = _record_resampling(intake, taxa, cand, len(gdf), progress, map_fn, use, other)
+    for name, row in zip(("refit_suitable", "refit_isolated", "refit_top_k"), shares,
+                         strict=True):
+        gdf[name] = row
     return {
         "sites": gdf,
         "paths": paths,
@@ -1073,6 +1077,41 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
                    for k, v in routes.items() if int(k) in ids},
         "start_points": starts,
     }
+
+
+def _record_resampling(intake, taxa, cand, n_sites, progress, map_fn, use, other):
+    """Shares of bootstrap refits keeping each plan site suitable, isolated, top k."""
+    from screener.robustness import RefitPlan, record_resampling
+
+    s = intake.settings
+    n = s.ranking.n_refits
+    if n <= 0 or n_sites == 0:
+        return np.full((3, n_sites), np.nan)
+    family = s.models.families[0]
+    progress.step(f"record resampling: {n} bootstrap refits of {family} per taxon")
+    iso = s.isolation
+    plan = RefitPlan(
+        grid=intake.grid,
+        values=intake.predictor_stack().valid_matrix(),
+        family=family,
+        params=_family_params(s, family),
+        records={k: (t.records.rows, t.records.cols) for k, t in taxa.items()},
+        background={k: t.background_env for k, t in taxa.items()},
+        relax=s.thresholds.relax,
+        use=use,
+        isolation=dict(
+            min_gap_km=iso.min_gap_km, min_patch_km2=iso.min_patch_km2,
+            within_range_min_km=iso.within_range_min_km, resistance=iso.resistance,
+            threshold_names=(use, other), memory_mb=s.compute.memory_mb or None,
+        ),
+        site_labels=cand.patch_labels,
+        n_sites=n_sites,
+        top_k=s.ranking.top_k,
+        weights=s.ranking.weights or None,
+        seeded=_takes_seed(family),
+    )
+    return record_resampling(plan, n, random_state=s.project.random_state,
+                             map_fn=map_fn or map)
 
 
 def _surveyed_points(intake: Intake, taxa: dict):

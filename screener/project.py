@@ -108,6 +108,7 @@ SCHEMA: dict = {
     "ranking": {
         "top_k": (int, 10, "Rank robustness: share of weight draws keeping a site in the top k."),
         "n_draws": (int, 1000, "Random weight draws for rank robustness."),
+        "n_refits": (int, 20, "Bootstrap refits of the records for record-resampling robustness (0 = off)."),
         "weights": (dict, {}, "Score component weights (see the methods)."),
     },
     "outputs": {
@@ -343,6 +344,7 @@ def _check_choices(s, where):
         ("overlap", "grid_cells", 10),
         ("ranking", "top_k", 1),
         ("access", "walking_day_hours", 1),
+        ("ranking", "n_refits", 0),
     ]:
         if s[section][key] < lo:
             raise ProjectError(f"{where}: [{section}] {key} must be at least {lo}.")
