@@ -14,6 +14,7 @@ import hashlib
 import io
 import json
 import logging
+import os
 import platform
 import time
 import warnings
@@ -351,7 +352,11 @@ _TEMP_ALIGNED: list = []
 def _aligned_dir(cache_dir) -> Path:
     """Folder for aligned layers: in the stage cache, else a folder for this process."""
     if cache_dir is not None:
-        return Path(cache_dir) / "aligned"
+        folder = Path(cache_dir) / "aligned"
+        existing = next(p for p in (folder, *folder.parents) if p.exists())
+        if os.access(existing, os.W_OK):
+            return folder  # created only when a layer needs aligning
+        log.warning("cannot write aligned layers to %s; using a temporary folder", folder)
     if not _TEMP_ALIGNED:
         import atexit
         import shutil
