@@ -37,6 +37,8 @@ __all__ = [
     "ClarkEvans",
     "TaxonEvidence",
     "clark_evans",
+    "site_taxa",
+    "site_taxon",
     "taxon_evidence",
 ]
 
@@ -165,25 +167,35 @@ def _f(v) -> float:
     return out
 
 
-def site_taxa(result) -> dict:
-    """Site id -> the taxon whose model is highest at the site's representative cell."""
-    out = {}
-    sites = result.sites
-    if sites is None or not len(sites) or not result.taxa:
-        return out
+def _site_cells(result, sites) -> tuple:
     if {"row", "col"} <= set(sites.columns):
-        rows = sites["row"].to_numpy(int)
-        cols = sites["col"].to_numpy(int)
-    else:
-        rows, cols, _ = result.grid.rowcol(sites["x"].to_numpy(float),
-                                           sites["y"].to_numpy(float))
+        return sites["row"].to_numpy(int), sites["col"].to_numpy(int)
+    rows, cols, _ = result.grid.rowcol(sites["x"].to_numpy(float),
+                                       sites["y"].to_numpy(float))
+    return rows, cols
+
+
+def site_taxa(result, sites=None) -> dict:
+    """Site id -> the taxon whose model is highest at the site's representative cell
+    (the taxon the site's suitability comes from)."""
+    sites = result.sites if sites is None else sites
+    if sites is None or not len(sites) or not result.taxa:
+        return {}
+    rows, cols = _site_cells(result, sites)
     names = list(result.taxa)
     vals = np.stack([np.nan_to_num(np.asarray(result.taxa[n].suitability)[rows, cols],
                                    nan=-1.0) for n in names])
     best = np.argmax(vals, axis=0)
-    for sid, k in zip(sites["site_id"].astype(str), best, strict=True):
-        out[sid] = names[int(k)]
-    return out
+    return {sid: names[int(k)]
+            for sid, k in zip(sites["site_id"].astype(str), best, strict=True)}
+
+
+def site_taxon(result, site) -> str:
+    """The taxon one site's suitability comes from (a row of the site table)."""
+    import pandas as pd
+
+    one = pd.DataFrame([dict(site)])
+    return site_taxa(result, one)[str(site["site_id"])]
 
 
 def taxon_evidence(result, taxon: str, *, threshold_name: str = "mtp") -> TaxonEvidence:

@@ -195,30 +195,21 @@ def site_model(result, site) -> tuple:
     threshold in use.
 
     The site's suitability is the highest of any taxon's at each cell; the taxon is
-    the one highest at the site's representative cell.
+    the one highest at the site's representative cell
+    (:func:`screener.evidence.site_taxon`).
 
     Returns
     -------
     (str, screener.results.Threshold or None, str)
         Taxon, its threshold in use, and the threshold's name.
     """
+    from screener.evidence import site_taxon
+
     if not result.taxa:
         return "", None, ""
-    r, c = _site_cell(result.grid, site)
-    best = max(
-        result.taxa.items(),
-        key=lambda kv: np.nan_to_num(float(kv[1].suitability[r, c]), nan=-1.0),
-    )
+    taxon = site_taxon(result, site)
     use = str((result.settings.get("thresholds") or {}).get("use", "mtp"))
-    th = (best[1].thresholds or {}).get(use)
-    return best[0], th, use
-
-
-def _site_cell(grid, site) -> tuple:
-    if "row" in site and "col" in site and site["row"] is not None:
-        return int(site["row"]), int(site["col"])
-    rows, cols, _ = grid.rowcol(np.atleast_1d(float(site["x"])), np.atleast_1d(float(site["y"])))
-    return int(rows[0]), int(cols[0])
+    return taxon, (result.taxa[taxon].thresholds or {}).get(use), use
 
 
 # --- sampling points ---------------------------------------------------------------
