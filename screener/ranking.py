@@ -229,6 +229,14 @@ def rank_sites(
         df = df[keep]
     if "site_id" not in df:
         df["site_id"] = np.arange(1, len(df) + 1)
+    if len(df) == 0:
+        # no sites: an empty plan with every column a plan has
+        for c in ["score", *[f"score_{k}" for k, v in w.items() if v > 0]]:
+            df[c] = pd.Series(dtype=float)
+        df["rank"] = pd.Series(dtype=np.int64)
+        for c in ("rank_low", "rank_high", "rank_robustness"):
+            df[c] = pd.Series(dtype=float)
+        return df.reset_index(drop=True)
     df = df.sort_values("site_id", kind="stable").reset_index(drop=True)
     comp = component_scores(df, surveys=surveys)
     names = [k for k, v in w.items() if v > 0 and comp[k].notna().any()]

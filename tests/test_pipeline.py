@@ -247,3 +247,23 @@ def test_auto_scheduler_uses_processes_only_for_heavy_work(tmp_path):
     s.models["families"] = ["ellipsoid", "ppm"]
     assert resolve_scheduler("auto", intake) == "processes"
     assert resolve_scheduler("tcp://127.0.0.1:8786", intake) == "tcp://127.0.0.1:8786"
+
+
+@pytest.mark.slow
+def test_no_candidate_sites_gives_a_finished_plan(tmp_path):
+    # patches larger than the study area and within-range sites farther than any
+    # record: no site at all, and still a finished run with an empty plan
+    project = write_demo_scenario(tmp_path / "scen", size="small")
+    project.write_text(
+        project.read_text()
+        + "\n[overlap]\nn_replicates = 0\n\n[evaluation]\nn_null = 0\n"
+        + "\n[isolation]\nmin_patch_km2 = 1e9\nwithin_range_min_km = 1e6\n"
+    )
+    out = tmp_path / "results"
+    result = CliRunner().invoke(main, ["run", str(project), "--out", str(out)])
+    assert result.exit_code == 0, result.output
+    assert "No candidate sites" in result.output
+    cand = pd.read_csv(out / "candidates.csv")
+    assert len(cand) == 0 and list(cand.columns[: len(CANDIDATE_COLUMNS)]) == CANDIDATE_COLUMNS
+    for name in ("report.html", "sites.gpx", "field_sheets.pdf", "barrier.tif"):
+        assert (out / name).exists(), name

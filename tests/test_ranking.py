@@ -89,3 +89,10 @@ def test_group_sites_by_block_and_distance():
     assert g2["group_id"].tolist()[:2] == [1, 1] and g2["group_id"].nunique() == 3
     g3 = group_sites(t, by=None, max_distance_km=km - 0.01)
     assert g3["group_id"].nunique() == 4
+
+
+def test_no_sites_gives_an_empty_plan():
+    empty = table().iloc[0:0]
+    r = group_sites(rank_sites(empty, n_draws=100))
+    assert len(r) == 0
+    assert {"score", "rank", "rank_low", "rank_high", "rank_robustness", "group_id"} <= set(r)
