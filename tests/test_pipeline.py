@@ -256,7 +256,7 @@ def test_no_candidate_sites_gives_a_finished_plan(tmp_path):
     project = write_demo_scenario(tmp_path / "scen", size="small")
     project.write_text(
         project.read_text()
-        + "\n[overlap]\nn_replicates = 0\n\n[evaluation]\nn_null = 0\n"
+        + "\n[overlap]\nn_replicates = 9\ngeographic_tests = \"off\"\n\n[evaluation]\nn_null = 0\n"
         + "\n[isolation]\nmin_patch_km2 = 1e9\nwithin_range_min_km = 1e6\n"
     )
     out = tmp_path / "results"

@@ -384,9 +384,11 @@ def _conclusion(result) -> str:
         )
     why += (
         f". Its suitability ({_fmt(top.get('mean_suitability'))} on average) comes "
-        f"from the {_e(models.get(sid, ''))} model, and it stays among the top sites in "
-        f"{_fmt(100 * _float(top.get('rank_robustness')), '.0f')}% of random "
-        "weightings of the score."
+        f"from the {_e(models.get(sid, ''))} model; under 90 % of random weightings of "
+        f"the score it ranks {_fmt(top.get('rank_low'), '.0f')} to "
+        f"{_fmt(top.get('rank_high'), '.0f')}, and bootstrap refits of the records keep "
+        f"it suitable in {_fmt(100 * _float(top.get('refit_suitable')), '.0f')}% of "
+        "refits."
     )
     route = routes.get(sid)
     if route is not None:
@@ -411,6 +413,8 @@ def _conclusion(result) -> str:
             )
         if _float(r.get("rank_robustness")) < 0.5:
             reasons.append("its rank depends on the weights")
+        if _float(r.get("refit_suitable")) < 0.5:
+            reasons.append("refits of the records often lose it")
         if reasons:
             care.append(f"{_e(s_id)} ({_e('; '.join(reasons))})")
         elif math.isfinite(walk) and walk <= day:

@@ -399,6 +399,14 @@ def site_sampling_points(
 
 
 # --- the page ----------------------------------------------------------------------
+def _float0(v) -> float:
+    """A number or NaN (for shares that may be missing)."""
+    try:
+        return float(v)
+    except (TypeError, ValueError):
+        return math.nan
+
+
 def _num(v, spec=".2f", missing="not estimated"):
     try:
         f = float(v)
@@ -455,9 +463,45 @@ def _facts(result, site, n_sites) -> list[str]:
         f"{_num(site.get('gap_km'), '.1f')} km    barrier depth "
         f"{_num(site.get('barrier_depth'))}",
         *_walk_lines(result, site),
-        f"Rank robustness: {_num(site.get('rank_robustness'))} (share of random "
-        "weightings that keep it among the top sites)",
+        f"Rank {_num(site.get('rank_low'), '.0f')}-{_num(site.get('rank_high'), '.0f')} "
+        "under 90 % of random weightings of the score; kept by bootstrap refits of the "
+        f"records: suitable {_num(100 * _float0(site.get('refit_suitable')), '.0f')}%, "
+        f"isolated {_num(100 * _float0(site.get('refit_isolated')), '.0f')}%, top sites "
+        f"{_num(100 * _float0(site.get('refit_top_k')), '.0f')}%",
     ]
+
+
+def _write_no_sites_sheet(path: Path, result, page_size: str) -> Path:
+    """One page saying the run found no candidate site (a finished plan, not an error)."""
+    project = str((result.settings.get("project") or {}).get("name") or "unnamed project")
+    iso = result.settings.get("isolation") or {}
+    use = (result.settings.get("thresholds") or {}).get("use", "mtp")
+    text = (
+        f"Field sheets: {project}\n\n"
+        f"This run found no candidate site at the {use} thresholds (smallest patch "
+        f"{iso.get('min_patch_km2', 'default')} km2, within-range sites beyond "
+        f"{iso.get('within_range_min_km', 'default')} km of every record), so there is "
+        "no site to survey from this plan. That is a result, not a failure: the "
+        "models find no unrecorded suitable ground of that size. Relaxing the "
+        "threshold or the minimum patch area may show smaller or weaker candidates; "
+        "treat them with more caution.\n\n"
+        f"screener {__version__}, written {dt.date.today().isoformat()}"
+    )
+    w, h = PAGE_SIZES_IN[page_size]
+    fig = Figure(figsize=(w, h))
+    lines = []
+    for para in text.split("\n"):
+        lines.extend(textwrap.wrap(para, 90) or [""])
+    fig.text(0.08, 0.92, "\n".join(lines), va="top", ha="left", fontsize=9)
+    try:
+        with matplotlib.rc_context({"pdf.fonttype": 42}):
+            with PdfPages(path, metadata={"Title": f"Field sheets: {project}",
+                                          "Creator": "screener"}) as pdf:
+                pdf.savefig(fig)
+    except OSError as exc:
+        raise OutputError(f"cannot write field sheets to {path}: {exc}") from exc
+    log.info("no candidate sites: wrote a one-page note to %s", path)
+    return path
 
 
 def _round_to(v: float, step: float) -> float:
@@ -652,12 +696,9 @@ def write_field_sheets(path, result, *, top_n: int = 10, page_size: str = "A4") 
             f"page_size {page_size!r} is not known; use one of {sorted(PAGE_SIZES_IN)}."
         )
     sites = result.sites
-    if sites is None or len(sites) == 0:
-        raise InputError(
-            "the run found no candidate sites, so there are no field "
-            "sheets to write; relax the threshold or the minimum area."
-        )
     path = Path(os.fspath(path))
+    if sites is None or len(sites) == 0:
+        return _write_no_sites_sheet(path, result, page_size)
     top = sites.iloc[: int(top_n)]
     points = site_sampling_points(result, top_n=top_n)
     score_cols = [c for c in sites.columns if str(c).startswith("score_")]
