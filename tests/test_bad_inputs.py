@@ -429,10 +429,13 @@ def test_integer_layer_with_tagged_sentinel(scen, baseline):
 
 
 def test_constant_layer_is_left_out_with_a_warning(scen):
+    baseline = re.search(r"Predictors \(\d\): (.*)", _check_lines(scen)).group(1)
+    assert "cloud" in baseline.split(", ")
     rewrite_layer(scen / "layers" / "cloud.tif", fn=lambda a: np.where(a == -9999, a, 5.0))
     text = _check_lines(scen)
     assert "Constant layers (left out): cloud" in text
-    assert "Predictors (3): elevation, moisture, temperature" in text
+    kept = [name for name in baseline.split(", ") if name != "cloud"]
+    assert f"Predictors ({len(kept)}): {', '.join(kept)}" in text
     assert "Warning: Layer 'cloud' is constant" in text
 
 
@@ -582,6 +585,7 @@ def test_demo_does_not_delete_a_folder_that_appears_while_it_runs(tmp_path, monk
 
     def fake_run(settings, results, **kw):  # the demo's run, much faster
         Path(results).mkdir()
+        (Path(results) / "run.json").write_text("{}", encoding="utf-8")
         out.mkdir()
         (out / "notes.txt").write_text("made meanwhile", encoding="utf-8")
 
