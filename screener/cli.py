@@ -291,30 +291,9 @@ def debrief(field_results, run_dir, out, overwrite, debug):
 @handle_errors
 def reproduce(ctx, run_json, out, overwrite, scheduler, allow_changed_inputs, debug):
     """Rerun a run from its run.json (same settings, seeds and inputs)."""
-    from screener.pipeline import file_sha256, locate_run_inputs, relocate, run_project
-    from screener.project import settings_from_dict
+    from screener.pipeline import reproduction_settings, run_project
 
-    prov, moved = locate_run_inputs(run_json)
-    changed = []
-    for path, h in prov.get("input_hashes", {}).items():
-        p = Path(moved.get(path, path))
-        if not p.exists():
-            changed.append(f"{path} (missing)")
-        elif file_sha256(p) != h:
-            changed.append(f"{p} (changed)")
-    if changed and not allow_changed_inputs:
-        raise InputError(
-            "Inputs differ from the recorded run: " + "; ".join(changed)
-            + ". Restore them, or pass --allow-changed-inputs to run anyway."
-        )
-    data = {
-        sec: {k: v for k, v in body.items() if v is not None}
-        for sec, body in relocate(prov["settings"], moved).items()
-    }
-    project_file = prov.get("project_file")
-    project_now = moved.get(project_file) if project_file else None
-    base = Path(project_now).parent if project_now else Path.cwd()
-    settings = settings_from_dict(data, base_dir=base, where=str(run_json))
+    settings, prov = reproduction_settings(run_json, allow_changed_inputs=allow_changed_inputs)
     echo = None if ctx.obj.get("quiet") else _echo_err
     result = run_project(settings, out, overwrite=overwrite, echo=echo,
                          scheduler=scheduler or prov.get("scheduler"), cache_dir=None)

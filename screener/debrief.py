@@ -126,6 +126,7 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
     import pandas as pd
 
     from screener.outputs.staging import check_output_folder, staged_output
+    from screener.outputs.tables import neutralise_frame
     from screener.survey import read_field_results, render_survey_report, score_survey
     from screener.records import read_records
     from screener.survey import updated_records
@@ -180,8 +181,10 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
         (stage / "debrief.md").write_text(report, encoding="utf-8")
         (stage / "debrief.json").write_text(
             json.dumps(summary, indent=2, sort_keys=True, default=str) + "\n", encoding="utf-8")
-        score.per_site.to_csv(stage / "site_outcomes.csv", index=False, lineterminator="\n")
-        updated.to_csv(stage / "records_updated.csv", index=False, lineterminator="\n")
+        neutralise_frame(score.per_site).to_csv(stage / "site_outcomes.csv", index=False,
+                                                lineterminator="\n")
+        neutralise_frame(updated).to_csv(stage / "records_updated.csv", index=False,
+                                         lineterminator="\n")
         (stage / "project_next.toml").write_text(
             next_project_text(settings, "records_updated.csv", next_taxa), encoding="utf-8")
     lines = [

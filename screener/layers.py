@@ -37,6 +37,10 @@ log = logging.getLogger(__name__)
 COLLINEARITY_R = 0.7
 
 
+#: values beyond +/- this (and +/-inf) are fill values written for "no data" (such as
+#: the float32 extremes +/-3.4e38), never measurements of an environmental variable
+FILL_ABOVE = 1e30
+
 @dataclass(frozen=True)
 class LayerSource:
     """Where one layer's values come from on disk, and how to read them.
@@ -57,8 +61,13 @@ class LayerSource:
     category: float | None = None
     band: int = 1
 
-    def read(self, src, window=None, out=None, *, mark_nodata: bool = True) -> np.ndarray:
+    def read(self, src, window=None, out=None, *, mark_nodata: bool = True,
+             fills: list | None = None) -> np.ndarray:
         """Read from an open dataset as float32, NaN for nodata.
+
+        Values beyond +/-:data:`FILL_ABOVE` (and +/-inf) are fill values, never data:
+        they are nodata whatever the file's tag says; ``fills``, a list, receives the
+        number of such cells that were not the tagged nodata value.
 
         ``out``, a float32 array of the window's shape, receives the values when
         given (no intermediate copy).  ``mark_nodata=False`` leaves nodata cells as
@@ -85,6 +94,12 @@ class LayerSource:
         for nd in (nodata, self.nodata_extra):
             if nd is not None and np.isfinite(nd):
                 bad |= values == np.float32(nd)
+        with np.errstate(invalid="ignore"):
+            fill = np.abs(values) > FILL_ABOVE  # includes +/-inf, never NaN
+        fill &= ~bad | np.isinf(values)
+        if fills is not None:
+            fills.append(int(np.count_nonzero(fill)))
+        bad |= fill
         values[bad] = np.nan
         if self.category is not None:
             values = np.where(
@@ -639,13 +654,14 @@ def read_layers(
     sources = [LayerSource(m["path"], nodata_values.get(m["name"]), band=m["band"])
                for m in meta]
     mask = np.ones((height, width), dtype=bool)
+    fills = [[] for _ in meta]
     full = [None] * len(meta)
     n_nan = [0] * len(meta)
     for r0 in range(0, height, step):
         win = Window(0, r0, width, min(step, height - r0))
         for i, m in enumerate(meta):
             with rasterio.open(m["path"]) as src:
-                values = sources[i].read(src, window=win)
+                values = sources[i].read(src, window=win, fills=fills[i])
             stats[i].add(values)
             nan = np.isnan(values)
             n_nan[i] += int(nan.sum())
@@ -657,6 +673,11 @@ def read_layers(
     out_names, out_paths, units, out_sources, arrays = [], [], [], [], []
     for i, m in enumerate(meta):
         path, name, st = m["path"], m["name"], stats[i]
+        if sum(fills[i]):
+            warnings.warn(ScreenerWarning(
+                f"Layer {name!r} ({path}): {sum(fills[i]):,} cells hold values beyond "
+                f"+/-{FILL_ABOVE:g} or infinite ones, fill values rather than data; they "
+                "are read as nodata. Tag the file's nodata value to silence this."))
         if not m["tagged"] and name not in nodata_values:
             sentinel, n_sent = st.sentinel()
             if sentinel is not None:

@@ -368,6 +368,72 @@ def _aligned_dir(cache_dir) -> Path:
     return _TEMP_ALIGNED[0]
 
 
+def reproduction_settings(run_json, *, allow_changed_inputs: bool = False):
+    """Settings of a finished run from its run.json, after checking its inputs.
+
+    Every input the recorded settings name (layers, records, start points, surveyed
+    places) must be listed in ``input_hashes`` with the same SHA-256 as the file has
+    now, and so must every other recorded input.  A run.json from elsewhere is not
+    trusted: an edited path or a deleted hash table is refused.
+
+    Returns
+    -------
+    settings : Settings
+    provenance : dict
+        The parsed run.json.
+
+    Raises
+    ------
+    InputError
+        run.json is unreadable or has no hashes; an input is missing, changed or was
+        not recorded (the last two pass with ``allow_changed_inputs``).
+    """
+    from screener.project import settings_from_dict
+
+    where = str(run_json)
+    prov, moved = locate_run_inputs(run_json)
+    if not isinstance(prov, dict) or not isinstance(prov.get("settings"), dict):
+        raise InputError(f"{where} has no settings; give the run.json of a finished run.")
+    hashes = prov.get("input_hashes")
+    if not isinstance(hashes, dict) or not hashes:
+        raise InputError(
+            f"{where} records no input hashes, so the inputs cannot be checked; it will "
+            "not be reproduced. Use the run.json a run wrote, unedited."
+        )
+    data = {
+        sec: {k: v for k, v in body.items() if v is not None}
+        for sec, body in relocate(prov["settings"], moved).items() if isinstance(body, dict)
+    }
+    project_file = prov.get("project_file")
+    project_now = moved.get(project_file) if project_file else None
+    base = Path(project_now).parent if project_now else Path.cwd()
+    settings = settings_from_dict(data, base_dir=base, where=where)
+    recorded_as = {str(now): old for old, now in moved.items()}
+    problems, unrecorded = [], []
+    for p in input_paths(settings):
+        old = recorded_as.get(str(p), str(p))
+        if old not in hashes:
+            unrecorded.append(str(p))
+    for old, h in hashes.items():
+        now = Path(moved.get(old, old))
+        if not now.exists():
+            problems.append(f"{old} (missing)")
+        elif file_sha256(now) != h:
+            problems.append(f"{now} (changed)")
+    if unrecorded and not allow_changed_inputs:
+        raise InputError(
+            f"{where} names input(s) it holds no hash for: {'; '.join(unrecorded)}. The "
+            "settings were edited after the run; pass --allow-changed-inputs to run on "
+            "them anyway."
+        )
+    if problems and not allow_changed_inputs:
+        raise InputError(
+            "Inputs differ from the recorded run: " + "; ".join(problems)
+            + ". Restore them, or pass --allow-changed-inputs to run anyway."
+        )
+    return settings, prov
+
+
 def load_inputs(settings: Settings, *, progress: Progress | None = None,
                 cache_dir=None) -> Intake:
     """Read and check layers and records (no model is fitted).
@@ -1313,6 +1379,15 @@ def run_analysis(
         "warnings": warns,
         "platform": platform.platform(),
     }
+    dropped = intake.records.dropped
+    if dropped:
+        from screener.records import drop_summary_lines, summarise_drops
+
+        lines = drop_summary_lines(dropped)
+        warns.append(lines[0] + " " + "; ".join(ln.strip() for ln in lines[1:]) + ".")
+        provenance["dropped_rows"] = {"total": len(dropped),
+                                      "by_reason": summarise_drops(dropped),
+                                      "full_list": "dropped_records.csv"}
     return RunResult(
         grid=intake.grid,
         layer_names=intake.predictors,
@@ -1405,14 +1480,11 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
         from screener.overlap import pairwise_table
 
         pw = pairwise_table(result.comparisons)
-        pw.to_csv(folder / "overlap_pairwise.csv", float_format="%.10g", lineterminator="\n")
+        from screener.outputs.tables import neutralise_frame
+
+        neutralise_frame(pw).to_csv(folder / "overlap_pairwise.csv", float_format="%.10g",
+                                    lineterminator="\n")
         rel(folder / "overlap_pairwise.csv")
-    dropped = pd.DataFrame(
-        [{"line": d.line, "occurrence_id": d.occurrence_id, "taxon": d.taxon,
-          "reason": d.reason} for d in result.dropped],
-        columns=["line", "occurrence_id", "taxon", "reason"],
-    )
-    rel(write_csv(folder / "dropped_records.csv", dropped))
     from screener.outputs.privacy import shareable_result
 
     so = s.get("outputs", {})
@@ -1423,6 +1495,12 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
             result, sites=so.get("generalise_sites", False),
             grid_deg=so.get("generalise_deg", 0.1),
         )
+    dropped = pd.DataFrame(
+        [{"line": d.line, "occurrence_id": d.occurrence_id, "taxon": d.taxon,
+          "reason": d.reason} for d in shareable.dropped],
+        columns=["line", "occurrence_id", "taxon", "reason"],
+    )
+    rel(write_csv(folder / "dropped_records.csv", dropped))
     sites = shareable.sites
     rel(write_csv(folder / "candidates.csv", sites, CANDIDATE_COLUMNS))
     gpkg = folder / "candidates.gpkg"

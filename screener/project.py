@@ -14,6 +14,8 @@ import sys
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
+
 from screener.errors import ProjectError, suggest
 
 if sys.version_info >= (3, 11):
@@ -338,16 +340,46 @@ def _check_choices(s, where):
                 f"{where}: [{section}] {key} = {v!r} is not one of "
                 f"{', '.join(map(repr, allowed))}." + suggest(v, allowed)
             )
-    for section, key, lo in [
-        ("occurrences", "min_records", 1),
-        ("background", "max_points", 10),
-        ("overlap", "grid_cells", 10),
-        ("ranking", "top_k", 1),
-        ("access", "walking_day_hours", 1),
-        ("ranking", "n_refits", 0),
+    for section, spec in SCHEMA.items():
+        for key, (t, _, _) in spec.items():
+            v = s[section][key]
+            if t is float and isinstance(v, float) and not np.isfinite(v):
+                raise ProjectError(f"{where}: [{section}] {key} must be a finite number, "
+                                   f"got {v!r}.")
+    for section, key, lo, note in [
+        ("occurrences", "min_records", 1, ""),
+        ("occurrences", "thin_km", 0, " (0 = no thinning)"),
+        ("layers", "cell_budget", 1, ""),
+        ("background", "max_points", 10, ""),
+        ("evaluation", "jackknife_below", 0, ""),
+        ("evaluation", "n_null", 0, " (0 = no null-model test)"),
+        ("overlap", "n_replicates", 1, "; the smallest possible p is 1 / (n_replicates + 1), "
+         "so 99 or more are usual"),
+        ("overlap", "grid_cells", 10, ""),
+        ("isolation", "min_gap_km", 0, ""),
+        ("isolation", "min_patch_km2", 0, ""),
+        ("isolation", "within_range_min_km", 0, ""),
+        ("access", "max_walk_hours", 0, " (0 = off)"),
+        ("ranking", "top_k", 1, ""),
+        ("ranking", "n_draws", 0, " (0 = no rank robustness)"),
+        ("outputs", "field_sheets", 0, ""),
+        ("outputs", "sampling_points", 0, ""),
+        ("compute", "n_workers", 0, " (0 = all cores)"),
+        ("compute", "memory_mb", 0, ""),
+        ("access", "walking_day_hours", 1, ""),
+        ("ranking", "n_refits", 0, ""),
     ]:
         if s[section][key] < lo:
-            raise ProjectError(f"{where}: [{section}] {key} must be at least {lo}.")
+            raise ProjectError(f"{where}: [{section}] {key} must be at least {lo}{note}; "
+                               f"got {s[section][key]!r}.")
+    g = s["outputs"]["generalise_deg"]
+    if not 0 < g <= 90:
+        raise ProjectError(
+            f"{where}: [outputs] generalise_deg must be above 0 and at most 90 degrees "
+            f"(0.1 is common practice); got {g!r}."
+        )
+    _check_weights(s, where)
+    _check_model_parameters(s, where)
     if not 0 < s["overlap"]["alpha"] < 1:
         raise ProjectError(f"{where}: [overlap] alpha must be between 0 and 1.")
     if not 0 <= s["thresholds"]["relax"] < 1:
@@ -374,6 +406,40 @@ def _check_choices(s, where):
         raise ProjectError(
             f"{where}: [layers] derive needs [layers] elevation to name the elevation layer."
         )
+
+
+def _check_weights(s, where):
+    from screener.ranking import DEFAULT_WEIGHTS
+
+    for k, v in s["ranking"]["weights"].items():
+        if k not in DEFAULT_WEIGHTS:
+            raise ProjectError(
+                f"{where}: [ranking] weights: unknown component {k!r}."
+                + suggest(k, DEFAULT_WEIGHTS)
+                + f" Components: {', '.join(DEFAULT_WEIGHTS)}."
+            )
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not np.isfinite(v) \
+                or v < 0:
+            raise ProjectError(
+                f"{where}: [ranking] weights: {k} = {v!r} must be a finite number >= 0."
+            )
+
+
+def _check_model_parameters(s, where):
+    """Parameter names of each family's table must be the estimator's own."""
+    import inspect
+
+    from screener.models import FAMILIES
+
+    for family, cls in FAMILIES.items():
+        table = s["models"].get(family) or {}
+        params = [n for n in inspect.signature(cls.__init__).parameters if n != "self"]
+        for k in table:
+            if k not in params:
+                raise ProjectError(
+                    f"{where}: [models.{family}]: unknown parameter {k!r}."
+                    + suggest(k, params) + f" Parameters: {', '.join(params) or 'none'}."
+                )
 
 
 def load_project(path) -> Settings:

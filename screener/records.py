@@ -7,6 +7,7 @@ works on rows already in memory.
 
 from __future__ import annotations
 
+import codecs
 import csv
 import io
 import logging
@@ -29,6 +30,8 @@ __all__ = [
     "validate_records",
     "parse_coordinate",
     "thin_by_distance",
+    "summarise_drops",
+    "drop_summary_lines",
 ]
 
 log = logging.getLogger(__name__)
@@ -196,6 +199,8 @@ def parse_coordinate(text: str, *, decimal_comma: bool = False):
 def _decode(data: bytes, path: str, encoding: str | None) -> str:
     if encoding:
         try:
+            if codecs.lookup(encoding).name == "utf-8":
+                encoding = "utf-8-sig"  # a byte-order mark is not part of the header
             return data.decode(encoding)
         except (UnicodeDecodeError, LookupError) as exc:
             raise RecordsError(
@@ -240,15 +245,17 @@ def parse_records_text(
     if counts[delim] == 0:
         delim = ","
     reader = csv.reader(io.StringIO(text), delimiter=delim)
+    rows = []  # (first physical line of the record, its cells)
     try:
-        rows = list(reader)
+        last = 0
+        for row in reader:
+            rows.append((last + 1, row))
+            last = reader.line_num  # counts the newlines inside quoted fields too
     except csv.Error as exc:
         raise RecordsError(f"{path} is not a readable CSV file ({exc}).") from None
-    line_no = 0
     header = None
     body = []
-    for row in rows:
-        line_no += 1
+    for line_no, row in rows:
         if header is None:
             if not any(c.strip() for c in row):
                 continue
@@ -256,7 +263,6 @@ def parse_records_text(
             header_line = line_no
             continue
         body.append((line_no, row))
-    # csv line numbers ignore embedded newlines: reader.line_num is exact
     if header is None:
         raise RecordsError(f"{path} is empty: it needs a header row and one row per record.")
     lower = [h.lower() for h in header]
@@ -585,6 +591,16 @@ def validate_records(
         raise RecordsError(
             f"{raw.path} has no rows with a taxon name: fill in the taxon column."
         )
+    if sensitive is not True and sensitive:
+        from screener.errors import suggest
+
+        unknown = [t for t in sensitive if t not in in_file]
+        if unknown:
+            raise RecordsError(
+                f"[occurrences] sensitive names {unknown[0]!r}, which is no taxon in "
+                f"{raw.path}, so nothing would be protected under that name."
+                + suggest(unknown[0], in_file) + f" Taxa in the file: {', '.join(in_file)}."
+            )
     if wanted is not None:
         from screener.errors import suggest
 
@@ -612,6 +628,7 @@ def validate_records(
 
 #: (substring of a drop reason, short description of the kind, advice shown once)
 _DROP_KINDS = [
+    ("taxon cell is empty", "with an empty taxon cell", "fill in the taxon column"),
     ("would fall on the grid", "outside the grid that would be on it with longitude "
      "and latitude swapped", "check which column holds which coordinate"),
     ("look swapped", "with longitude and latitude apparently swapped",
@@ -623,6 +640,7 @@ _DROP_KINDS = [
     ("nodata cell", "on nodata cells of the layers", ""),
     ("is empty", "with an empty coordinate", ""),
     ("not a number", "with a coordinate that is not a number", ""),
+    ("not a finite number", "with a coordinate that is not a finite number", ""),
     ("beyond", "with latitude beyond +/-90 or longitude beyond +/-180", ""),
     ("duplicate", "exact duplicates", ""),
     ("same grid cell", "in a grid cell already taken (one record per cell is kept)", ""),
@@ -642,7 +660,42 @@ def _drop_kind(reason: str):
     for needle, kind, advice in _DROP_KINDS:
         if needle in reason:
             return kind, advice
-    return reason, ""
+    # an unlisted reason: its wording without numbers or quoted values (which can be
+    # coordinates of sensitive taxa)
+    return re.sub(r"'[^']*'|-?\d+(?:[.,]\d+)?", "...", reason), ""
+
+
+def summarise_drops(dropped, n_first: int = 5) -> list:
+    """Dropped rows counted by reason, most frequent first.
+
+    Returns
+    -------
+    list of dict
+        ``reason`` (plain words, no coordinates), ``rows`` (count), ``first_lines``
+        (the first ``n_first`` line numbers) and ``advice`` ("" if none).
+    """
+    groups: dict = {}
+    for d in dropped:
+        groups.setdefault(_drop_kind(d.reason), []).append(d.line)
+    out = []
+    for (kind, advice), lines in sorted(groups.items(), key=lambda kv: -len(kv[1])):
+        lines = sorted(lines)
+        out.append({"reason": kind, "rows": len(lines), "first_lines": lines[:n_first],
+                    "advice": advice})
+    return out
+
+
+def drop_summary_lines(dropped, where: str = "dropped_records.csv") -> list:
+    """Console lines: rows dropped per reason, the first lines, where the full list is."""
+    if not dropped:
+        return []
+    out = [f"Dropped {len(dropped)} record row(s); the full list is in {where}:"]
+    for g in summarise_drops(dropped):
+        more = ", ..." if g["rows"] > len(g["first_lines"]) else ""
+        lines = ", ".join(map(str, g["first_lines"])) + more
+        out.append(f"  {g['rows']} {g['reason']} (line{'s' if g['rows'] > 1 else ''} "
+                   f"{lines})" + (f": {g['advice']}" if g["advice"] else ""))
+    return out
 
 
 def _reason_digest(dropped, taxa) -> str:

@@ -283,6 +283,63 @@ def _unknown_elevation_layer(s):
                                               'elevation = "elevaton"'), "utf-8")
 
 
+def _replace(s, old, new):
+    p = s / "project.toml"
+    text = p.read_text("utf-8")
+    assert old in text
+    p.write_text(text.replace(old, new), "utf-8")
+
+
+def _zero_replicates(s):
+    _replace(s, "n_replicates = 9", "n_replicates = 0")
+
+
+def _negative_draws(s):
+    _replace(s, "n_draws = 50", "n_draws = -5")
+
+
+def _negative_gap(s):
+    add_settings(s, "[isolation]\nmin_gap_km = -1")
+
+
+def _unknown_weight(s):
+    _replace(s, "n_draws = 50", "n_draws = 50\nweights = { suitabilty = 0.5 }")
+
+
+def _unknown_model_parameter(s):
+    add_settings(s, "[models.ellipsoid]\nrigde = 0.1")
+
+
+def _generalise_deg_zero(s):
+    add_settings(s, "[outputs]\ngeneralise_deg = 0.0")
+
+
+def _infinite_setting(s):
+    add_settings(s, "[background]\nbuffer_km = inf")
+
+
+LATE_CHECKS = [
+    (_zero_replicates, r"\[overlap\] n_replicates must be at least 1; the smallest possible p"),
+    (_negative_draws, r"\[ranking\] n_draws must be at least 0 \(0 = no rank robustness\); "
+                      r"got -5"),
+    (_negative_gap, r"\[isolation\] min_gap_km must be at least 0; got -1"),
+    (_unknown_weight, r"\[ranking\] weights: unknown component 'suitabilty'\. Did you mean "
+                      r"'suitability'\?"),
+    (_unknown_model_parameter, r"\[models\.ellipsoid\]: unknown parameter 'rigde'\. Did you "
+                               r"mean 'ridge'\?"),
+    (_generalise_deg_zero, r"\[outputs\] generalise_deg must be above 0"),
+    (_infinite_setting, r"\[background\] buffer_km must be a finite number, got inf"),
+]
+
+
+@pytest.mark.parametrize("damage, pattern", LATE_CHECKS, ids=[c[0].__name__[1:] for c in LATE_CHECKS])
+def test_check_refuses_what_run_would_fail_on(scen, damage, pattern):
+    damage(scen)
+    result = invoke("check", scen / "project.toml")
+    assert result.exit_code == 2 and re.search(pattern, result.output), result.output
+    assert "Traceback" not in result.output
+
+
 CASES = [
     (_empty, r"occurrences\.csv is empty: it needs a header row"),
     (_header_only, r"has a header \(line 1\) but no records below it"),
@@ -315,7 +372,7 @@ CASES = [
     (_layer_glob_matches_nothing, r"'layer/\*\.tif' matches no file"),
     (_missing_start_points, r"\[access\] start_points .* does not exist"),
     (_unknown_elevation_layer, r"elevation = 'elevaton' names no layer.*Did you mean 'elevation'"),
-]
+] + LATE_CHECKS
 
 
 @pytest.mark.parametrize("damage, pattern", CASES, ids=[c[0].__name__[1:] for c in CASES])
@@ -426,6 +483,41 @@ def test_integer_layer_with_tagged_sentinel(scen, baseline):
     assert _valid_cells(text) == _valid_cells(baseline)
     predictors = re.search(r"Predictors \(\d\): .*", text).group(0)
     assert predictors == re.search(r"Predictors \(\d\): .*", baseline).group(0)
+
+
+@pytest.mark.parametrize("fill, nodata", [
+    (float(np.finfo(np.float32).min), float("nan")),  # tagged NaN, holding -3.4e38
+    (3e38, None), (-3e38, None),                      # untagged huge values
+    (np.inf, None), (-np.inf, -9999.0),
+], ids=["nan-tag-with-min-float32", "untagged+3e38", "untagged-3e38", "inf", "-inf"])
+def test_fill_values_beyond_1e30_are_nodata_with_a_warning(scen, baseline, fill, nodata):
+    n = {}
+
+    def fill_nodata(a):
+        n["cells"] = int((a == -9999).sum())
+        return np.where(a == -9999, fill, a)
+
+    rewrite_layer(scen / "layers" / "moisture.tif", fn=fill_nodata, nodata=nodata)
+    text = _check_lines(scen)
+    assert _valid_cells(text) == _valid_cells(baseline)
+    assert n["cells"] > 0 and (f"Warning: Layer 'moisture' ({scen / 'layers' / 'moisture.tif'}"
+                               f"): {n['cells']:,} cells hold values beyond +/-1e+30") in text
+
+
+def test_line_numbers_count_newlines_inside_quoted_fields(scen):
+    rows = read_rows(scen)
+    rows[1][3] = "collected after rain;\nsee notebook 4"  # the record spans lines 2-3
+    rows[5][2] = "123.4"  # the fifth record: file line 7
+    write_rows(scen, rows)
+    text = invoke("check", scen / "project.toml").output
+    assert re.search(r"line 7 \(Nebrivex \w+\): latitude 123\.4 is beyond", text), text
+
+
+def test_byte_order_mark_with_utf8_named(scen, baseline):
+    occ = scen / "occurrences.csv"
+    occ.write_bytes(b"\xef\xbb\xbf" + occ.read_bytes())
+    set_in_section(scen, "occurrences", 'encoding = "utf-8"')
+    assert _kept(_check_lines(scen)) == _kept(baseline)
 
 
 def test_constant_layer_is_left_out_with_a_warning(scen):
@@ -688,6 +780,147 @@ def test_a_bug_is_reported_as_one_and_leaves_nothing(warm, tmp_path, monkeypatch
     result = invoke("run", warm / "project.toml", "--out", out)
     assert_refused(result, out, r"Internal error \(ZeroDivisionError.*rerun with --debug",
                    code=1)
+
+
+# ------------------------------------------------------------------ sensitive localities
+_TOKEN = re.compile(rb"-?\d+\.\d+")
+
+
+def _file_texts(path: Path) -> list:
+    """The bytes of a file, plus the inflated streams of a PDF."""
+    import zlib
+
+    raw = path.read_bytes()
+    texts = [raw]
+    if path.suffix == ".pdf":
+        for m in re.finditer(rb"stream\r?\n(.*?)\r?\nendstream", raw, re.S):
+            try:
+                texts.append(zlib.decompress(m.group(1)))
+            except zlib.error:
+                pass
+    return texts
+
+
+def _full_precision_leaks(folder: Path, coords) -> list:
+    """(file, lon, lat) where a file holds a record's longitude and latitude both, as
+    text to 4 or more decimals (about 10 m) or as packed floats."""
+    import struct
+
+    leaks = []
+    for path in sorted(p for p in folder.rglob("*") if p.is_file()):
+        texts = _file_texts(path)
+        tokens = {t.decode() for text in texts for t in _TOKEN.findall(text)
+                  if len(t.split(b".")[1]) >= 4}
+        values = [(float(t), len(t.split(".")[1])) for t in tokens]
+
+        def seen(v):
+            if any(abs(x - v) < 0.5 * 10.0 ** -min(d, 5) for x, d in values):
+                return True
+            packed = [struct.pack(f, v) for f in ("<d", ">d", "<f", ">f")]
+            return any(b in text for b in packed for text in texts)
+
+        leaks.extend((path.name, lon, lat) for lon, lat in coords if seen(lon) and seen(lat))
+    return leaks
+
+
+@pytest.mark.slow
+def test_sensitive_localities_never_leave_at_full_precision(warm, tmp_path):
+    scen = tmp_path / "scen"
+    shutil.copytree(warm, scen)  # with its cache: the kept records are unchanged
+    set_in_section(scen, "occurrences", "sensitive = true")
+    rows = read_rows(scen)
+    # rows dropped for reasons that quote coordinates
+    rows.append(["Nebrivex tarvelli", "120.12345", "-14.65432", "MVNC 9001"])
+    rows.append(["Nebrivex quennomae", "84.91234", "123.45678", "MVNC 9002"])
+    write_rows(scen, rows)
+    coords = [(float(r[1]), float(r[2])) for r in rows[1:]]
+    out = tmp_path / "out"
+    result = invoke("run", scen / "project.toml", "--out", out)
+    assert result.exit_code == 0, result.output
+    written = {p.suffix for p in out.rglob("*") if p.is_file()}
+    assert {".csv", ".html", ".json", ".gpkg", ".gpx", ".pdf", ".tif"} <= written
+    assert _full_precision_leaks(out, coords) == []
+    dropped = (out / "dropped_records.csv").read_text(encoding="utf-8")
+    assert "(about 120.150, -14.650, generalised to 0.1 degrees) is outside the grid" in dropped
+    assert "latitude [withheld] is beyond" in dropped
+    # the scan finds what it looks for: asked for full precision, the outputs hold it
+    add_settings(scen, "[outputs]\nfull_precision = true")
+    full = tmp_path / "full"
+    assert invoke("run", scen / "project.toml", "--out", full).exit_code == 0
+    leaked = {name for name, *_ in _full_precision_leaks(full, coords)}
+    assert {"dropped_records.csv", "report.html"} <= leaked
+
+
+def test_unknown_sensitive_taxon_is_an_error(scen):
+    set_in_section(scen, "occurrences", 'sensitive = ["Nebrivex sorakensis"]')
+    out = scen.parent / "out"
+    result = invoke("run", scen / "project.toml", "--out", out)
+    assert_refused(result, out, r"\[occurrences\] sensitive names 'Nebrivex sorakensis', "
+                   r"which is no taxon .*Did you mean 'Nebrivex sorrakensis'")
+
+
+# ------------------------------------------------------------------ spreadsheet formulas
+_FORMULA = "=HYPERLINK(\"http://example.invalid\",\"open\")"
+
+
+@pytest.mark.slow
+def test_no_csv_cell_is_a_spreadsheet_formula(scen):
+    from screener.outputs.tables import FORMULA_STARTS, neutralise_cell
+
+    rows = read_rows(scen)
+    names = {"Nebrivex quennomae": _FORMULA, "Nebrivex sorrakensis": "@SUM(1+1)"}
+    write_rows(scen, [rows[0]] + [[names.get(r[0], r[0])] + r[1:] for r in rows[1:]])
+    out = scen.parent / "out"
+    result = invoke("run", scen / "project.toml", "--out", out)
+    assert result.exit_code == 0, result.output
+    tables = sorted(out.rglob("*.csv"))
+    assert len(tables) >= 4
+    cells = [c for t in tables for row in csv.reader(io.StringIO(t.read_text("utf-8")))
+             for c in row]
+    # OWASP's guidance on CSV injection: no cell may start with = + - @ tab or CR,
+    # unless it is a plain number
+    bad = [c for c in cells if c.startswith(FORMULA_STARTS) and neutralise_cell(c) != c]
+    assert bad == []
+    assert "'" + _FORMULA in cells and "'@SUM(1+1)" in cells
+
+
+# ------------------------------------------------------------------ reproduce trusts no run.json
+def _edited_run_json(warm, tmp_path, edit) -> Path:
+    prov = json.loads((warm.parent / "first" / "run.json").read_text(encoding="utf-8"))
+    edit(prov)
+    p = tmp_path / "run.json"
+    p.write_text(json.dumps(prov), encoding="utf-8")
+    return p
+
+
+def _other_records(prov):
+    src = Path(prov["settings"]["occurrences"]["path"])
+    other = src.with_name("other_records.csv")
+    other.write_text(src.read_text("utf-8") + "Nebrivex tarvelli,84.8,-14.8,X\n", "utf-8")
+    prov["settings"]["occurrences"]["path"] = str(other)
+
+
+REPRODUCE_CASES = [
+    (_other_records, r"names input\(s\) it holds no hash for: \S*other_records\.csv"),
+    (lambda prov: prov.pop("input_hashes"), r"records no input hashes.* will not be reproduced"),
+    (lambda prov: prov.update(input_hashes={}), r"records no input hashes"),
+]
+
+
+@pytest.mark.parametrize("edit, pattern", REPRODUCE_CASES,
+                         ids=["other record file", "hashes deleted", "hashes emptied"])
+def test_reproduce_refuses_an_edited_run_json(warm, tmp_path, edit, pattern):
+    out = tmp_path / "again"
+    result = invoke("reproduce", _edited_run_json(warm, tmp_path, edit), "--out", out)
+    assert_refused(result, out, pattern)
+
+
+def test_reproduce_refuses_a_truncated_run_json(warm, tmp_path):
+    text = (warm.parent / "first" / "run.json").read_text(encoding="utf-8")
+    (tmp_path / "run.json").write_text(text[: len(text) // 2], encoding="utf-8")
+    out = tmp_path / "again"
+    result = invoke("reproduce", tmp_path / "run.json", "--out", out)
+    assert_refused(result, out, r"run\.json is not a readable run\.json")
 
 
 # ------------------------------------------------------------------ the cache runs no code

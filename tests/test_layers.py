@@ -172,8 +172,7 @@ def test_slope_uses_true_metre_spacing_on_lat_lon_grid():
 
 @pytest.mark.parametrize(
     "dtype, sentinel",
-    [("int16", -32768), ("uint8", 255), ("uint16", 65535), ("float32", -9999.0),
-     ("float32", float(np.finfo(np.float32).min))],
+    [("int16", -32768), ("uint8", 255), ("uint16", 65535), ("float32", -9999.0)],
 )
 def test_untagged_sentinel_is_refused(small_layers, tif_writer, dtype, sentinel):
     arr = (np.arange(1200).reshape(30, 40) % 97).astype(dtype)

@@ -18,12 +18,15 @@ from __future__ import annotations
 
 import copy
 import logging
+import re
 from dataclasses import replace
 
 import numpy as np
 
 __all__ = [
     "FULL_PRECISION_MARKER",
+    "sensitive_taxa",
+    "withhold_coordinates",
     "DEFAULT_GRID_DEG",
     "generalise_coordinates",
     "generalised_result",
@@ -101,6 +104,22 @@ def generalise_coordinates(lon, lat, grid_deg: float = DEFAULT_GRID_DEG):
     return lon_g, lat_g
 
 
+def sensitive_taxa(result):
+    """Names of the sensitive taxa of a run, or True when every taxon is sensitive.
+
+    Taxa flagged on their records, plus those named by ``[occurrences] sensitive``
+    (which also covers a sensitive taxon whose every record was dropped).
+    """
+    named = ((getattr(result, "settings", None) or {}).get("occurrences") or {}).get(
+        "sensitive", False)
+    if named is True:
+        return True
+    out = set(named or ())
+    out.update(n for n, t in (getattr(result, "taxa", None) or {}).items()
+               if getattr(t.records, "sensitive", False))
+    return out
+
+
 def has_full_precision_sensitive(result) -> bool:
     """True when a RunResult holds records of a sensitive taxon at full precision.
 
@@ -109,10 +128,47 @@ def has_full_precision_sensitive(result) -> bool:
     """
     if (getattr(result, "provenance", None) or {}).get("generalised"):
         return False
-    return any(
-        bool(getattr(t.records, "sensitive", False))
-        for t in (getattr(result, "taxa", None) or {}).values()
-    )
+    return bool(sensitive_taxa(result))
+
+
+#: a coordinate pair as intake writes it in a reason: "(84.81234, -14.78901)"
+_PAIR = re.compile(r"\((-?\d+(?:\.\d+)?), (-?\d+(?:\.\d+)?)\)")
+#: any other number with a fractional part (one coordinate, a raw cell value)
+_NUMBER = re.compile(r"-?\d+[.,]\d+(?:[eE][-+]?\d+)?")
+#: a grid cell named in a reason
+_CELL = re.compile(r" ?\(row \d+, col \d+\)")
+
+
+def withhold_coordinates(reason: str, grid_deg: float = DEFAULT_GRID_DEG) -> str:
+    """A dropped-row reason with its coordinates generalised or withheld.
+
+    A longitude/latitude pair becomes the centre of its generalisation cell; any other
+    number with a fractional part (a single coordinate, a raw cell value) and a named
+    grid cell are withheld.
+    """
+    g = _check_grid_deg(grid_deg)
+
+    def pair(m):
+        lon, lat = float(m.group(1)), float(m.group(2))
+        if abs(lat) > 90:
+            return "(coordinates withheld)"
+        glon, glat = generalise_coordinates(lon, lat, g)
+        return f"(about {float(glon):.3f}, {float(glat):.3f}, generalised to {g:g} degrees)"
+
+    text = _PAIR.sub(pair, reason)
+    parts = re.split(r"(\(about [^)]*\))", text)
+    parts = [p if p.startswith("(about ") else _CELL.sub("", _NUMBER.sub("[withheld]", p))
+             for p in parts]
+    return "".join(parts)
+
+
+def _withhold_dropped(dropped, sensitive, g):
+    out = []
+    for d in dropped or []:
+        if sensitive is True or d.taxon in sensitive or not d.taxon:
+            d = replace(d, reason=withhold_coordinates(d.reason, g))
+        out.append(d)
+    return out
 
 
 def _generalise_records(records, grid, g):
@@ -176,6 +232,9 @@ def generalised_result(
     out = copy.copy(result)
     out.taxa = {}
     done = []
+    sensitive = True if all_taxa else sensitive_taxa(result)
+    out.dropped = _withhold_dropped(result.dropped, sensitive, g) if sensitive else list(
+        result.dropped or [])
     for name, tr in result.taxa.items():
         tr2 = copy.copy(tr)
         if all_taxa or tr.records.sensitive:

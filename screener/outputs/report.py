@@ -502,19 +502,33 @@ def _inputs(result) -> str:
     ]
     out.append(html_table(recs, ["taxon", "records kept", "sensitive"]))
     out.append("<h3>Records intake did not keep</h3>")
-    drops = [
-        {"line": d.line, "occurrence ID": d.occurrence_id, "taxon": d.taxon,
-         "reason": d.reason}
-        for d in (result.dropped or [])
-    ]
-    has_ids = any(d["occurrence ID"] for d in drops)
-    out.append(
-        html_table(drops, ["line"] + (["occurrence ID"] if has_ids else [])
-                   + ["taxon", "reason"])
-        if drops
-        else '<p class="note">Intake kept every record row.</p>'
-    )
+    dropped = list(result.dropped or [])
+    if not dropped:
+        out.append('<p class="note">Intake kept every record row.</p>')
+        return "\n".join(out)
+    from screener.records import summarise_drops
+
+    groups = [{"reason": g["reason"], "rows": g["rows"],
+               "first lines": ", ".join(map(str, g["first_lines"]))
+               + (", ..." if g["rows"] > len(g["first_lines"]) else ""),
+               "what to do": g["advice"]} for g in summarise_drops(dropped)]
+    out.append(f'<p>{len(dropped):,} record rows were dropped. Every row, with its reason, '
+               'is in <a href="dropped_records.csv">dropped_records.csv</a>.</p>')
+    out.append(html_table(groups, ["reason", "rows", "first lines", "what to do"]))
+    shown = dropped[:_DROPPED_SHOWN]
+    rows = [{"line": d.line, "occurrence ID": d.occurrence_id, "taxon": d.taxon,
+             "reason": d.reason} for d in shown]
+    has_ids = any(r["occurrence ID"] for r in rows)
+    out.append(html_table(rows, ["line"] + (["occurrence ID"] if has_ids else [])
+                          + ["taxon", "reason"]))
+    if len(dropped) > len(shown):
+        out.append(f'<p class="note">The first {len(shown)} rows are shown; see '
+                   'dropped_records.csv for the rest.</p>')
     return "\n".join(out)
+
+
+#: dropped rows listed one by one in the report (the rest are in dropped_records.csv)
+_DROPPED_SHOWN = 20
 
 
 def _novelty(result) -> str:
