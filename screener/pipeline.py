@@ -1200,12 +1200,6 @@ def _surveyed_points(intake: Intake, taxa: dict):
 
 
 # --------------------------------------------------------------------------- run
-def _safe_name(name: str) -> str:
-    import re
-
-    return re.sub(r"[^A-Za-z0-9._-]+", "_", name).strip("_") or "taxon"
-
-
 def _versions() -> dict:
     import importlib.metadata as md
 
@@ -1439,11 +1433,14 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     def rel(p):
         written.append(str(Path(p).relative_to(folder)))
 
+    from screener.outputs.names import taxon_file_stems
+
+    stems = taxon_file_stems(result.taxa)
     for sub in ("suitability", "ranges", "novelty"):
         (folder / sub).mkdir(exist_ok=True)
     progress.step("rasters")
     for name, t in result.taxa.items():
-        safe = _safe_name(name)
+        safe = stems[name]
         rel(write_raster(folder / "suitability" / f"{safe}.tif", t.suitability, grid,
                          description=f"consensus suitability of {name}"))
         for fam, m in t.family_maps.items():
@@ -1505,7 +1502,7 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     rel(write_csv(folder / "candidates.csv", sites, CANDIDATE_COLUMNS))
     gpkg = folder / "candidates.gpkg"
     if len(sites):
-        sites.to_file(gpkg, layer="sites", driver="GPKG")
+        _casefold_unique_columns(sites).to_file(gpkg, layer="sites", driver="GPKG")
     else:
         import geopandas as gpd
 
@@ -1537,12 +1534,28 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     (folder / "map.html").write_text(render_map_page(page), encoding="utf-8")
     rel(folder / "map.html")
     prov = dict(result.provenance)
-    prov["taxa"] = {name: _safe_name(name) for name in result.taxa}
+    prov["taxa"] = stems
     prov["outputs"] = sorted(written + ["run.json"])
     prov.update(input_locations(prov, folder))
     (folder / "run.json").write_text(json.dumps(_jsonable(prov), indent=2, sort_keys=True)
                                      + "\n", encoding="utf-8")
     return sorted(written + ["run.json"])
+
+
+def _casefold_unique_columns(frame):
+    """Columns renamed so no two differ only by case (GeoPackage, like SQLite, ignores
+    case in field names): the second of a clash gets ``_2``, the third ``_3``."""
+    seen, names = set(), []
+    for c in frame.columns:
+        name, k = str(c), 1
+        while name.casefold() in seen:
+            k += 1
+            name = f"{c}_{k}"
+        seen.add(name.casefold())
+        names.append(name if name != str(c) else c)
+    out = frame.copy()
+    out.columns = names
+    return out
 
 
 def _without_routes(result: RunResult) -> RunResult:

@@ -13,6 +13,7 @@ import io
 import logging
 import math
 import re
+import unicodedata
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -438,6 +439,14 @@ def validate_records(
     RecordsError
         A taxon is left with fewer than ``min_records`` records, or nothing is left.
     """
+    for t, line in zip(raw.taxon, raw.lines):
+        ctrl = next((c for c in t if unicodedata.category(c) == "Cc"), None)
+        if ctrl is not None:
+            raise RecordsError(
+                f"{raw.path} line {line}: the taxon name {t!r} holds the control character "
+                f"{ctrl!r}, which breaks files and terminals; remove it (names hold "
+                "letters, digits, spaces and punctuation)."
+            )
     dropped: list = []
     keep_taxon, keep_a, keep_b, keep_line = [], [], [], []
     wanted = set(taxa) if taxa else None

@@ -923,6 +923,53 @@ def test_reproduce_refuses_a_truncated_run_json(warm, tmp_path):
     assert_refused(result, out, r"run\.json is not a readable run\.json")
 
 
+# ------------------------------------------------------------------ names that break files
+_LONG = "$\\x$ " + "n" * 300  # parsed as maths by a figure renderer; too long for a file
+
+
+@pytest.mark.slow
+def test_awkward_taxon_names_finish_the_run_with_a_file_each(scen):
+    rows = read_rows(scen)
+    names = {"Nebrivex quennomae": "Nebrivex a/b", "Nebrivex sorrakensis": "Nebrivex a b"}
+    out_rows, k = [rows[0]], 0
+    for r in rows[1:]:
+        name = names.get(r[0], r[0])
+        if r[0] == "Nebrivex tarvelli":  # split in two: a case-only twin of "a b"
+            name, k = ("NEBRIVEX A B" if k % 2 else _LONG), k + 1
+        out_rows.append([name] + r[1:])
+    write_rows(scen, out_rows)
+    out = scen.parent / "out"
+    result = invoke("run", scen / "project.toml", "--out", out)
+    assert result.exit_code == 0, result.output
+    taxa = json.loads((out / "run.json").read_text(encoding="utf-8"))["taxa"]
+    assert set(taxa) == {"Nebrivex a/b", "Nebrivex a b", "NEBRIVEX A B", _LONG}
+    stems = list(taxa.values())
+    assert len({s.casefold() for s in stems}) == 4  # distinct even ignoring case
+    for stem in stems:
+        assert (out / "suitability" / f"{stem}.tif").exists()
+        assert len(f"{stem}.most_dissimilar.tif") < 100
+    import geopandas as gpd
+
+    sites = gpd.read_file(out / "candidates.gpkg", layer="sites")
+    cols = [c for c in sites.columns if c.startswith("margin_")]
+    assert len(cols) == 4 and len({c.casefold() for c in cols}) == 4
+
+
+def _control_character(s):
+    rows = read_rows(s)
+    rows[3][0] = "Nebrivex\x1b[2Jquennomae"
+    write_rows(s, rows)
+
+
+def test_control_characters_in_a_taxon_name_are_refused(scen):
+    _control_character(scen)
+    out = scen.parent / "out"
+    result = invoke("run", scen / "project.toml", "--out", out)
+    assert_refused(result, out, r"line 4: the taxon name 'Nebrivex\\x1b\[2Jquennomae' holds the "
+                   r"control character '\\x1b'")
+    assert "\x1b" not in result.output  # printed escaped, never sent to the terminal
+
+
 # ------------------------------------------------------------------ the cache runs no code
 class _Payload:
     """Unpickling this runs code: it writes ``path``."""

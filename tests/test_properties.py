@@ -11,6 +11,7 @@ from __future__ import annotations
 import csv
 import io
 import math
+import re
 
 import numpy as np
 import pytest
@@ -180,3 +181,26 @@ def test_cost_distance_properties(crs, transform, r, sources, end):
             step = length * (r[a] + r[b]) / 2
             assert cost[b] <= cost[a] + step + 1e-9 * (1 + cost[a])
             assert cost[a] <= cost[b] + step + 1e-9 * (1 + cost[b])
+
+
+# ------------------------------------------------------------------ taxon file names
+@FAST
+@given(st.lists(st.text(min_size=1, max_size=400), min_size=2, max_size=8, unique=True))
+def test_distinct_taxon_names_give_distinct_file_names(names):
+    # distinct names -> distinct stems, even where a file system ignores case (the
+    # case-folded stems differ too); stems are short and made of portable characters
+    from screener.outputs.names import taxon_file_stem
+
+    stems = [taxon_file_stem(n) for n in names]
+    assert len({s.casefold() for s in stems}) == len(names)
+    for s in stems:
+        assert re.fullmatch(r"[A-Za-z0-9_-]{1,70}", s), s
+    assert stems == [taxon_file_stem(n) for n in names]  # stable
+
+
+def test_file_names_that_used_to_collide():
+    from screener.outputs.names import taxon_file_stem
+
+    group = ["Nebrivex a/b", "Nebrivex a b", "Nebrivex A b", "Небривекс", "Небривекс б",
+             "Небривекс в"]
+    assert len({taxon_file_stem(n).casefold() for n in group}) == len(group)

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["subplots", "get_cmap"]
+__all__ = ["subplots", "get_cmap", "literal_text"]
 
 _FIGURE_KW = ("figsize", "dpi", "layout", "constrained_layout")
 
@@ -20,3 +20,13 @@ def get_cmap(name: str):
     import matplotlib
 
     return matplotlib.colormaps[name]
+
+
+def literal_text(fig):
+    """Show every text of ``fig`` as written: no ``$...$`` maths, so a taxon name such
+    as ``$\\x$`` is printed, not parsed (and cannot stop the writer)."""
+    from matplotlib.text import Text
+
+    for t in fig.findobj(Text):
+        t.set_parse_math(False)
+    return fig

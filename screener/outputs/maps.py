@@ -31,6 +31,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch, Rectangle
 
 from screener.grid import geodesic_distance_km
+from screener.outputs._figure import literal_text
 
 __all__ = [
     "OKABE_ITO",
@@ -965,6 +966,7 @@ def figure_to_png_bytes(fig, dpi: int = 110) -> bytes:
     """
     buf = io.BytesIO()
     # a tight box keeps labels and captions drawn outside the axes on the image
-    fig.savefig(buf, format="png", dpi=dpi, facecolor="white", bbox_inches="tight",
+    literal_text(fig).savefig(buf, format="png", dpi=dpi, facecolor="white",
+                              bbox_inches="tight",
                 pad_inches=0.08)
     return buf.getvalue()

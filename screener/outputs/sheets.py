@@ -35,6 +35,7 @@ from screener.outputs import maps
 from screener import __version__
 from screener.outputs.cautions import CAUTIONS
 from screener.outputs.gpx import elevation_band, sampling_waypoint_names
+from screener.outputs._figure import literal_text
 from screener.outputs.privacy import FULL_PRECISION_MARKER, has_full_precision_sensitive
 
 __all__ = [
@@ -726,7 +727,7 @@ def write_field_sheets(path, result, *, top_n: int = 10, page_size: str = "A4") 
                         score_cols=score_cols,
                         header=header,
                     )
-                    pdf.savefig(fig)
+                    pdf.savefig(literal_text(fig))
     except OSError as exc:
         raise OutputError(f"cannot write field sheets to {path}: {exc}") from exc
     log.info("wrote %d field sheets to %s", len(top), path)
