@@ -513,7 +513,7 @@ def _inputs(result) -> str:
                + (", ..." if g["rows"] > len(g["first_lines"]) else ""),
                "what to do": g["advice"]} for g in summarise_drops(dropped)]
     out.append(f'<p>{len(dropped):,} record rows were dropped. Every row, with its reason, '
-               'is in <a href="dropped_records.csv">dropped_records.csv</a>.</p>')
+               'is in <code>dropped_records.csv</code>, beside this report.</p>')
     out.append(html_table(groups, ["reason", "rows", "first lines", "what to do"]))
     shown = dropped[:_DROPPED_SHOWN]
     rows = [{"line": d.line, "occurrence ID": d.occurrence_id, "taxon": d.taxon,
