@@ -1348,6 +1348,13 @@ def run_analysis(
     progress.done()
     shade = hillshade(intake.grid, intake.elevation) if intake.elevation is not None else None
     warns = list(intake.warnings) + list(cache.problems)
+    if not len(plan["sites"]):
+        warns.append(
+            "No candidate sites: no suitable patch outside the known ranges passed the "
+            "isolation settings ([isolation] min_patch_km2, min_gap_km) at these "
+            "thresholds. The plan is empty; the models, maps and overlap results are "
+            "complete and written."
+        )
     warns.extend(plan["candidates"].warnings)
     novel = plan["sites"]["novel_share"].fillna(0) > 0 if len(plan["sites"]) else []
     if len(plan["sites"]) and np.any(novel):

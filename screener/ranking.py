@@ -243,6 +243,8 @@ def rank_sites(
     dropped = [k for k, v in w.items() if v > 0 and k not in names]
     if dropped:
         log.info("ranking components without data, dropped: %s", dropped)
+    if not len(df):  # no candidate sites is a result: an empty, fully formed plan
+        names = [k for k, v in w.items() if v > 0]
     if not names:
         raise InputError("No ranking component has both a weight > 0 and data.")
     wv = np.array([w[k] for k in names])

@@ -923,6 +923,27 @@ def test_reproduce_refuses_a_truncated_run_json(warm, tmp_path):
     assert_refused(result, out, r"run\.json is not a readable run\.json")
 
 
+# ------------------------------------------------------------------ results that are not errors
+@pytest.mark.slow
+def test_zero_candidate_sites_is_a_result(warm, tmp_path):
+    scen = tmp_path / "scen"
+    shutil.copytree(warm, scen)
+    add_settings(scen, "[isolation]\nmin_patch_km2 = 1e9")  # no patch is that large
+    out = tmp_path / "out"
+    result = invoke("run", scen / "project.toml", "--out", out)
+    assert result.exit_code == 0, result.output
+    assert "No candidate sites were found" in result.output
+    assert "Warning: No candidate sites: no suitable patch" in result.output
+    import pandas as pd
+
+    assert len(pd.read_csv(out / "candidates.csv")) == 0
+    assert len(pd.read_csv(out / "overlap.csv")) > 0  # the overlap results are kept
+    for name in ("report.html", "sites.gpx", "field_sheets.pdf", "candidates.gpkg",
+                 "run.json"):
+        assert (out / name).exists(), name
+    assert "No candidate sites were found" in (out / "report.html").read_text("utf-8")
+
+
 # ------------------------------------------------------------------ names that break files
 _LONG = "$\\x$ " + "n" * 300  # parsed as maths by a figure renderer; too long for a file
 
