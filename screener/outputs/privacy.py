@@ -134,7 +134,7 @@ def has_full_precision_sensitive(result) -> bool:
 #: a coordinate pair as intake writes it in a reason: "(84.81234, -14.78901)"
 _PAIR = re.compile(r"\((-?\d+(?:\.\d+)?), (-?\d+(?:\.\d+)?)\)")
 #: any other number with a fractional part (one coordinate, a raw cell value)
-_NUMBER = re.compile(r"-?\d+[.,]\d+(?:[eE][-+]?\d+)?")
+_NUMBER = re.compile(r"-?\d+[.,]\d+(?:[eE][-+]?\d+)?(?![\d.])(?! ?km)")
 #: a grid cell named in a reason
 _CELL = re.compile(r" ?\(row \d+, col \d+\)")
 
