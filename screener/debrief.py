@@ -10,6 +10,7 @@ of the next project's ``[project] taxa``, so the next run does not stop on it.
 
 from __future__ import annotations
 
+import io
 import json
 from pathlib import Path
 
@@ -43,7 +44,7 @@ def load_run_outputs(run_dir):
             f"{run_dir} holds no run.json; give the output folder of a `screener run`."
         )
     prov, moved = locate_run_inputs(pj)
-    taxa = prov.get("taxa") or {}
+    taxa = (prov.get("taxa") or {}) if isinstance(prov, dict) else {}
     if not taxa:
         raise InputError(f"{pj} lists no taxa; was the run finished with this version?")
     suit, predicted, grid = {}, None, None
@@ -52,19 +53,39 @@ def load_run_outputs(run_dir):
         r = run_dir / "ranges" / f"{safe}.mtp.tif"
         if not p.exists() or not r.exists():
             raise InputError(f"{p} or {r} is missing from the run folder {run_dir}.")
-        with rasterio.open(p) as src:
-            m = np.ma.filled(src.read(1, masked=True).astype(np.float32), np.nan)
-            if grid is None:
-                grid = Grid(src.crs, src.transform, (src.height, src.width), np.isfinite(m))
-        with rasterio.open(r) as src:
-            rng = src.read(1) == 1
+        try:
+            with rasterio.open(p) as src:
+                m = np.ma.filled(src.read(1, masked=True).astype(np.float32), np.nan)
+                if grid is None:
+                    grid = Grid(src.crs, src.transform, (src.height, src.width),
+                                np.isfinite(m))
+            with rasterio.open(r) as src:
+                rng = src.read(1) == 1
+        except rasterio.errors.RasterioError as exc:
+            raise InputError(f"A map of {name!r} in {run_dir} cannot be read ({exc}); the "
+                             "run folder is damaged: run again.") from None
         suit[name] = m
         predicted = rng if predicted is None else (predicted | rng)
-    sites = gpd.read_file(run_dir / "candidates.gpkg", layer="sites")
     import pandas as pd
 
-    ev = pd.read_csv(run_dir / "evaluation.csv")
+    gpkg, ev_csv = run_dir / "candidates.gpkg", run_dir / "evaluation.csv"
+    for f in (gpkg, ev_csv):
+        if not f.exists():
+            raise InputError(f"{f} is missing from the run folder {run_dir}; it is not a "
+                             "complete run folder: run again.")
+    try:
+        sites = gpd.read_file(gpkg, layer="sites")
+    except Exception as exc:  # the GeoPackage readers raise several error types
+        raise InputError(f"{gpkg} cannot be read ({type(exc).__name__}: {exc}); the run "
+                         "folder is damaged: run again.") from None
+    # taxon names stay text: a taxon named "1" or "NA" is not a number or missing
+    ev = pd.read_csv(ev_csv, dtype={"taxon": str, "algorithm": str}, keep_default_na=False,
+                     na_values={"threshold_mtp": [""]})
     ens = ev[ev["algorithm"] == "ensemble"].set_index("taxon")["threshold_mtp"]
+    missing = [name for name in taxa if name not in ens.index]
+    if missing:
+        raise InputError(f"{ev_csv} has no ensemble row for {missing[0]!r}; the run folder "
+                         "is damaged: run again.")
     mtp = {name: float(ens[name]) for name in taxa}
     return {"grid": grid, "suitability": suit, "predicted": predicted, "sites": sites,
             "provenance": prov, "mtp": mtp, "moved": moved}
@@ -105,6 +126,38 @@ def next_project_text(settings: dict, records_file: str, taxa) -> str:
     return "\n".join(lines)
 
 
+def _check_field_taxa(fr, run_taxa, path) -> None:
+    """Every field taxon is a run taxon, or its row says it is a new lineage."""
+    from screener.errors import suggest
+
+    for _, row in fr.iterrows():
+        t = row["taxon"]
+        if row["outcome"] == "new-lineage" or not t or t in run_taxa:
+            continue
+        raise InputError(
+            f"{path} line {int(row['line'])}: taxon {t!r} is not a taxon of the run "
+            f"({', '.join(run_taxa)})." + suggest(t, run_taxa)
+            + " If it is a lineage the run did not model, set its outcome to new-lineage."
+        )
+
+
+def _read_record_table(path, provenance):
+    """The run's record file as a table of text, read as `run` reads it: the same
+    encoding setting, byte-order mark handling and delimiter detection."""
+    import pandas as pd
+
+    from screener.records import _decode, detect_delimiter
+
+    occ = (provenance.get("settings") or {}).get("occurrences") or {}
+    text = _decode(Path(path).read_bytes(), str(path), occ.get("encoding") or None)
+    try:
+        return pd.read_csv(io.StringIO(text), sep=detect_delimiter(text), dtype=str,
+                           keep_default_na=False)
+    except (pd.errors.ParserError, ValueError) as exc:
+        raise InputError(f"{path} (the run's record file) is not a readable CSV file "
+                         f"({exc}).") from None
+
+
 def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> list:
     """Score a run against field results and write the debrief into ``out_dir``.
 
@@ -136,6 +189,7 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
     run = load_run_outputs(run_dir)
     grid = run["grid"]
     fr = read_field_results(field_results)
+    _check_field_taxa(fr, list(run["suitability"]), field_results)
     areas = np.asarray(grid.cell_area_km2, float)
     valid = grid.mask
     share = float(areas[run["predicted"] & valid].sum() / areas[valid].sum())
@@ -161,7 +215,7 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
     if raw.darwin_core:
         updated, taxon_of = _updated_darwin_core(raw, fr, grid, modelled, min_records)
     else:
-        original = pd.read_csv(rec_path, dtype=str, keep_default_na=False)
+        original = _read_record_table(rec_path, run["provenance"])
         updated = updated_records(original, fr, grid=grid, modelled_taxa=modelled,
                                   min_records=min_records)
         taxon_of = updated["taxon"]

@@ -219,6 +219,15 @@ def _decode(data: bytes, path: str, encoding: str | None) -> str:
         ) from None
 
 
+def detect_delimiter(text: str) -> str:
+    """The delimiter of a record file: the most frequent of comma, semicolon and tab
+    on the first non-blank line (comma when none occurs)."""
+    first = next((ln for ln in text.splitlines() if ln.strip()), "")
+    counts = {d: first.count(d) for d in (",", ";", "\t")}
+    delim = max(counts, key=counts.get)
+    return delim if counts[delim] else ","
+
+
 def parse_records_text(
     text: str,
     path: str = "<records>",
@@ -239,12 +248,7 @@ def parse_records_text(
     """
     if not text.strip():
         raise RecordsError(f"{path} is empty: it needs a header row and one row per record.")
-    lines = text.splitlines()
-    first = next((ln for ln in lines if ln.strip()), "")
-    counts = {d: first.count(d) for d in (",", ";", "\t")}
-    delim = max(counts, key=counts.get)
-    if counts[delim] == 0:
-        delim = ","
+    delim = detect_delimiter(text)
     reader = csv.reader(io.StringIO(text), delimiter=delim)
     rows = []  # (first physical line of the record, its cells)
     try:

@@ -88,29 +88,41 @@ def read_field_results(path) -> pd.DataFrame:
         fh = path.open(newline="", encoding="utf-8-sig")
     except OSError as exc:
         raise InputError(f"cannot open field results {path}: {exc}") from exc
-    with fh:
-        reader = csv.DictReader(fh)
-        header = [h.strip().lower() for h in (reader.fieldnames or [])]
-        reader.fieldnames = header
-        required = ["date", "taxon", "outcome"]
-        missing = [c for c in required if c not in header]
-        has_site = "site_id" in header
-        has_xy = "longitude" in header and "latitude" in header
-        if missing or not (has_site or has_xy):
-            if not (has_site or has_xy):
-                missing.append("site_id or longitude+latitude")
-            raise InputError(
-                f"{path}: missing column(s) {', '.join(missing)}; the header has "
-                f"{header}. Expected site_id or longitude/latitude, date, taxon, "
-                "outcome, effort_hours."
-            )
-        rows, problems = [], []
-        for raw in reader:
-            line = reader.line_num  # last physical line of this record
-            rec, errs = _parse_row(raw, line)
-            problems += errs
-            if not errs:
-                rows.append(rec)
+    try:
+        with fh:
+            return _read_field_rows(fh, path)
+    except (UnicodeDecodeError, csv.Error) as exc:
+        raise InputError(
+            f"{path} is not a readable CSV file of field results ({exc}); save it as "
+            "UTF-8 CSV with the columns site_id or longitude/latitude, date, taxon, "
+            "outcome, effort_hours."
+        ) from None
+
+
+def _read_field_rows(fh, path) -> pd.DataFrame:
+    """The rows of an open field-results file, checked (see read_field_results)."""
+    reader = csv.DictReader(fh)
+    header = [h.strip().lower() for h in (reader.fieldnames or [])]
+    reader.fieldnames = header
+    required = ["date", "taxon", "outcome"]
+    missing = [c for c in required if c not in header]
+    has_site = "site_id" in header
+    has_xy = "longitude" in header and "latitude" in header
+    if missing or not (has_site or has_xy):
+        if not (has_site or has_xy):
+            missing.append("site_id or longitude+latitude")
+        raise InputError(
+            f"{path}: missing column(s) {', '.join(missing)}; the header has "
+            f"{header}. Expected site_id or longitude/latitude, date, taxon, "
+            "outcome, effort_hours."
+        )
+    rows, problems = [], []
+    for raw in reader:
+        line = reader.line_num  # last physical line of this record
+        rec, errs = _parse_row(raw, line)
+        problems += errs
+        if not errs:
+            rows.append(rec)
     if problems:
         shown = problems[:_MAX_LISTED]
         more = len(problems) - len(shown)

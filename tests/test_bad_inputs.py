@@ -944,6 +944,77 @@ def test_zero_candidate_sites_is_a_result(warm, tmp_path):
     assert "No candidate sites were found" in (out / "report.html").read_text("utf-8")
 
 
+# ------------------------------------------------------------------ debrief
+def _field_file(path: Path, taxon: str, outcome: str = "found") -> Path:
+    path.write_text("site_id,date,taxon,outcome,effort_hours\n"
+                    f"S01,2026-10-02,{taxon},{outcome},3\n"
+                    "S02,2026-10-03,Nebrivex tarvelli,not-found,2\n", encoding="utf-8")
+    return path
+
+
+def _run_copy(warm, tmp_path) -> Path:
+    run_dir = tmp_path / "run"
+    shutil.copytree(warm.parent / "first", run_dir)
+    return run_dir
+
+
+def _truncated_run_json(run_dir):
+    text = (run_dir / "run.json").read_text(encoding="utf-8")
+    (run_dir / "run.json").write_text(text[: len(text) // 3], encoding="utf-8")
+
+
+def _no_candidates(run_dir):
+    (run_dir / "candidates.gpkg").unlink()
+
+
+DEBRIEF_CASES = [
+    (_truncated_run_json, None, r"run\.json is not a readable run\.json .*truncated or edited"),
+    (_no_candidates, None, r"candidates\.gpkg is missing from the run folder"),
+    (None, b"\x89PNG\r\n\x1a\n\xff\xfe\x00garbage", r"not a readable CSV file of field results"),
+    (None, "Nebrivex tarveli", r"line 2: taxon 'Nebrivex tarveli' is not a taxon of the run "
+                               r".*Did you mean 'Nebrivex tarvelli'\?.*set its outcome to "
+                               r"new-lineage"),
+]
+
+
+@pytest.mark.parametrize("damage, field, pattern", DEBRIEF_CASES,
+                         ids=["truncated run.json", "no candidates.gpkg", "binary field file",
+                              "unknown field taxon"])
+def test_debrief_refuses_damaged_input(warm, tmp_path, damage, field, pattern):
+    run_dir = _run_copy(warm, tmp_path)
+    if damage is not None:
+        damage(run_dir)
+    fpath = tmp_path / "field.csv"
+    if isinstance(field, bytes):
+        fpath.write_bytes(field)
+    else:
+        _field_file(fpath, field or "Nebrivex tarvelli")
+    out = tmp_path / "debrief"
+    result = invoke("debrief", fpath, "--run", run_dir, "--out", out)
+    assert_refused(result, out, pattern)
+
+
+def test_debrief_with_taxa_named_1_and_na_and_a_new_lineage(warm, tmp_path):
+    run_dir = _run_copy(warm, tmp_path)
+    renames = {"Nebrivex tarvelli": "NA", "Nebrivex quennomae": "1"}
+    prov = json.loads((run_dir / "run.json").read_text(encoding="utf-8"))
+    prov["taxa"] = {renames.get(k, k): v for k, v in prov["taxa"].items()}
+    (run_dir / "run.json").write_text(json.dumps(prov), encoding="utf-8")
+    ev = (run_dir / "evaluation.csv").read_text(encoding="utf-8")
+    for old, new in renames.items():
+        ev = ev.replace(old, new)
+    (run_dir / "evaluation.csv").write_text(ev, encoding="utf-8")
+    fpath = _field_file(tmp_path / "field.csv", "1")
+    fpath.write_text(fpath.read_text("utf-8").replace("Nebrivex tarvelli", "NA"), "utf-8")
+    with fpath.open("a", encoding="utf-8") as f:
+        f.write("S01,2026-10-04,Nebrivex sp. Quenmor,new-lineage,4\n")
+    out = tmp_path / "debrief"
+    result = invoke("debrief", fpath, "--run", run_dir, "--out", out)
+    assert result.exit_code == 0, result.output
+    updated = (out / "records_updated.csv").read_text(encoding="utf-8")
+    assert "\n1," in updated and "Nebrivex sp. Quenmor" in updated
+
+
 # ------------------------------------------------------------------ names that break files
 _LONG = "$\\x$ " + "n" * 300  # parsed as maths by a figure renderer; too long for a file
 
