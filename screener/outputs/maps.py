@@ -967,6 +967,5 @@ def figure_to_png_bytes(fig, dpi: int = 110) -> bytes:
     buf = io.BytesIO()
     # a tight box keeps labels and captions drawn outside the axes on the image
     literal_text(fig).savefig(buf, format="png", dpi=dpi, facecolor="white",
-                              bbox_inches="tight",
-                pad_inches=0.08)
+                              bbox_inches="tight", pad_inches=0.08)
     return buf.getvalue()
