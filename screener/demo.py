@@ -54,6 +54,8 @@ __all__ = [
     "LOWLAND_MAX_M",
     "LAPSE_RATE_C_PER_KM",
     "LAYER_NAMES",
+    "PAST_SLICE",
+    "PAST_LAYER_NAMES",
     "Massif",
     "MASSIFS",
     "Niche",
@@ -93,6 +95,17 @@ LOWLAND_MAX_M = 300.0
 LAPSE_RATE_C_PER_KM = 6.5
 #: Layer file stems, in the order they are written.
 LAYER_NAMES = ("elevation", "temperature", "moisture", "cloud")
+#: Name of the invented past time slice: a cold stage with a lower sea level.
+PAST_SLICE = "cold_stage"
+#: Layers written for the past slice (elevation does not change and is no predictor).
+PAST_LAYER_NAMES = ("temperature", "moisture", "cloud")
+#: Cold stage: cooling (deg C) in the west of the island, where an invented cold
+#: current ran along the coast, and in the east; it changes linearly between.
+PAST_COOLING_C = (8.0, 2.0)
+#: Cold stage: the cloud belt sat this many m lower per deg C of cooling.
+PAST_CLOUD_DROP_M_PER_C = 150.0
+#: Cold stage: width (km) of the sea shelf exposed by the lower sea level.
+PAST_SHELF_KM = 2.5
 
 #: Centre of the island grid, WGS84 degrees (open Indian Ocean, no real land near).
 _CENTRE_LON = 85.0
@@ -268,6 +281,9 @@ class DemoScenario:
         Rows ``(longitude, latitude, date, found)``, date ISO 8601, found bool.
     truth : DemoTruth
     seed : int
+    past_layers : dict of str to ndarray
+        The cold-stage slice (:data:`PAST_SLICE`): :data:`PAST_LAYER_NAMES` as float32
+        arrays, NaN over its sea (a shelf is land then, see :func:`_past_climate`).
     """
 
     grid: Grid
@@ -278,6 +294,7 @@ class DemoScenario:
     surveys: list
     truth: DemoTruth
     seed: int
+    past_layers: dict | None = None
 
 
 # --- geometry ------------------------------------------------------------------------
@@ -409,8 +426,13 @@ def _terrain(grid: Grid, rng: np.random.Generator):
     return elevation, land, massif_id
 
 
-def _climate(grid: Grid, elevation: np.ndarray, land: np.ndarray, rng):
-    """Temperature (deg C), moisture (mm/yr) and cloud (%) on land; NaN over the sea."""
+def _climate(grid: Grid, elevation: np.ndarray, land: np.ndarray, rng, *,
+             cooling_c: float = 0.0, cloud_belt_m: float = _CLOUD_BELT_M):
+    """Temperature (deg C), moisture (mm/yr) and cloud (%) on land; NaN over the sea.
+
+    ``cooling_c`` lowers every temperature and ``cloud_belt_m`` sets the height of the
+    cloud belt: the present climate by default, a colder one for the past slice.
+    """
     n_rows, n_cols = grid.shape
     dx_km, dy_km, x_km, y_km = _local_km(grid)
     z = np.where(land, elevation, 0.0)
@@ -422,6 +444,7 @@ def _climate(grid: Grid, elevation: np.ndarray, land: np.ndarray, rng):
 
     temperature = (
         _SEA_LEVEL_T_C
+        - cooling_c
         - LAPSE_RATE_C_PER_KM * z / 1000.0
         + _LAT_T_C_PER_DEG * (lat - _CENTRE_LAT)
         + 0.3 * np.tanh(n_t)
@@ -446,8 +469,8 @@ def _climate(grid: Grid, elevation: np.ndarray, land: np.ndarray, rng):
     across = np.clip((u + v) / 0.7, -1.0, 1.0)
 
     base = 1500.0 + 350.0 * across - 0.35 * np.clip(upwind - z, 0.0, None)
-    w = np.where(z < _CLOUD_BELT_M, 1100.0, 650.0)
-    belt = np.exp(-(((z - _CLOUD_BELT_M) / w) ** 2))
+    w = np.where(z < cloud_belt_m, 1100.0, 650.0)
+    belt = np.exp(-(((z - cloud_belt_m) / w) ** 2))
     # The trade-wind air has lost part of its water by the time it reaches the lee.
     orographic = (
         2600.0 * belt * (1.0 + 0.55 * np.tanh(rise / 60.0)) * (1.0 + 0.3 * across)
@@ -469,6 +492,32 @@ def _climate(grid: Grid, elevation: np.ndarray, land: np.ndarray, rng):
     ):
         out[name] = np.where(land, np.round(arr, ndp), np.nan).astype(np.float32)
     return out
+
+
+def _past_climate(grid: Grid, elevation: np.ndarray, land: np.ndarray, climate_ss):
+    """The invented cold stage: cooler, a lower cloud belt and a lower sea level.
+
+    The sea stood low enough to expose a shelf :data:`PAST_SHELF_KM` wide around the
+    island.  A cold current ran along the west coast, so the west cooled by
+    ``PAST_COOLING_C[0]`` and the east by ``PAST_COOLING_C[1]`` deg C (linearly
+    between), and the cloud belt sat :data:`PAST_CLOUD_DROP_M_PER_C` m lower per deg C.
+    The climate noise is the present's (same seed), so only these changes differ.
+    In the cool, wet west the lowland between Pelto Heights and the Askerra Range
+    became cloud forest; the warm north-east kept Hullavar apart.
+    """
+    dx_km, dy_km, x_km, _ = _local_km(grid)
+    shelf = ndimage.distance_transform_edt(~land, sampling=(dy_km, dx_km)) <= PAST_SHELF_KM
+    past_land = land | shelf
+    past_land[:2, :] = past_land[-2:, :] = False
+    past_land[:, :2] = past_land[:, -2:] = False
+    u = x_km / float(x_km[0, -1] + x_km[0, 0])
+    west, east = PAST_COOLING_C
+    cooling = east + (west - east) * np.clip((0.45 - u) / 0.2, 0.0, 1.0)
+    z = np.where(land, elevation, 0.0)
+    layers = _climate(grid, z, past_land, np.random.default_rng(climate_ss),
+                      cooling_c=cooling,
+                      cloud_belt_m=_CLOUD_BELT_M - PAST_CLOUD_DROP_M_PER_C * cooling)
+    return {name: layers[name] for name in PAST_LAYER_NAMES}
 
 
 def niche_suitability(temperature, moisture, taxon: str) -> np.ndarray:
@@ -697,6 +746,7 @@ def make_demo_scenario(seed: int = DEFAULT_SEED, size: str = "full") -> DemoScen
             np.random.default_rng(climate_ss),
         )
     )
+    past = _past_climate(grid, layers["elevation"].astype(float), land, climate_ss)
     grid = grid.with_mask(land)
     occurrences = _occurrences(
         grid, layers, massif_id, land, np.random.default_rng(records_ss)
@@ -713,6 +763,7 @@ def make_demo_scenario(seed: int = DEFAULT_SEED, size: str = "full") -> DemoScen
         surveys=surveys,
         truth=DEMO_TRUTH[size],
         seed=int(seed),
+        past_layers=past,
     )
 
 
@@ -739,6 +790,13 @@ def _project_toml(seed: int) -> str:
         "# temperature is elevation through the lapse rate (r = -1): model on the\n"
         "# climate, keep elevation for walking times and terrain\n"
         'exclude = ["elevation"]\n'
+        "\n"
+        "[slices]\n"
+        "# an invented cold stage: cooler, with a lower cloud belt and sea level\n"
+        'stability = "geometric_mean"\n'
+        "\n"
+        "[slices.layers]\n"
+        f'{PAST_SLICE} = ["past/{PAST_SLICE}/*.tif"]\n'
         "\n"
         "[access]\n"
         'start_points = "start_points.csv"\n'
@@ -812,6 +870,10 @@ def write_demo_scenario(
             _write_layer(
                 folder / "layers" / f"{name}.tif", scenario.layers[name], scenario.grid
             )
+        (folder / "past" / PAST_SLICE).mkdir(parents=True, exist_ok=True)
+        for name in PAST_LAYER_NAMES:
+            _write_layer(folder / "past" / PAST_SLICE / f"{name}.tif",
+                         scenario.past_layers[name], scenario.grid)
         occ = [(t, f"{x:.5f}", f"{y:.5f}", c) for t, x, y, c in scenario.occurrences]
         files = {
             "occurrences.csv": _csv_text(

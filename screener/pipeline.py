@@ -242,6 +242,7 @@ class Intake:
     start_points: object = None
     surveyed: object = None
     layer_origins: list = field(default_factory=list)
+    slices: list = field(default_factory=list)
 
     @property
     def grid(self):
@@ -273,6 +274,11 @@ class Intake:
             f"{len(self.records.dropped)} dropped"
         )
         out.extend(self.records.summary_lines())
+        for sl in self.slices:
+            gone = int((self.grid.mask & ~sl.grid.mask).sum())
+            new = int((sl.grid.mask & ~self.grid.mask).sum())
+            out.append(f"Time slice {sl.name}: {sl.grid.n_valid:,} valid cells "
+                       f"({new:,} not valid today, {gone:,} valid today but not then)")
         return out
 
 
@@ -341,8 +347,9 @@ def input_paths(settings: Settings) -> list:
     """Every file a run reads: layers, records, start points, surveyed places and the
     project file itself."""
     s = settings
-    named = layer_paths(s)[0] + [s.occurrences.path, s.access.start_points,
-                                 s.survey.surveyed, s.path]
+    slices = [p for paths in s.slices.layers.values() for p in paths]
+    named = layer_paths(s)[0] + slices + [s.occurrences.path, s.access.start_points,
+                                          s.survey.surveyed, s.path]
     return list(dict.fromkeys(Path(p) for p in named if p is not None))
 
 
@@ -547,6 +554,7 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
     caught.extend(records.notes)
     if len(records.taxa) < 1:
         raise InputError("No taxon has usable records.")
+    slices = _read_slices(s, stack.select(predictors))
     start_points = surveyed = None
     if s.access.start_points is not None:
         start_points = _read_points_csv(s.access.start_points, "start points")
@@ -565,7 +573,32 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
         warnings=caught,
         start_points=start_points,
         surveyed=surveyed,
+        slices=slices,
     )
+
+
+def _read_slices(s: Settings, present: LayerStack) -> list:
+    """Each time slice's predictors (:class:`screener.slices.TimeSlice`), in project
+    order, each on its own valid mask."""
+    from screener.slices import TimeSlice, slice_stack
+
+    out = []
+    for name, paths in s.slices.layers.items():
+        for st in s.slices.static:
+            if st not in present.names:
+                raise LayerError(
+                    f"[slices] static names {st!r}, which is not a predictor layer; "
+                    f"predictors are {', '.join(present.names)}." + suggest(st, present.names)
+                )
+        raw = read_layers(
+            paths,
+            categorical=s.layers.categorical,
+            cell_budget=s.layers.cell_budget,
+            nodata_values=s.layers.nodata,
+            memory_mb=s.compute.memory_mb or None,
+        )
+        out.append(TimeSlice(name, slice_stack(name, raw, present, static=s.slices.static)))
+    return out
 
 
 def check_project(settings: Settings) -> list:
@@ -702,7 +735,7 @@ def model_taxon(
     from screener.models.inspect import permutation_importance, response_curves
 
     family_maps, evaluations, thresholds_by_family, rec_scores = {}, {}, {}, {}
-    bg_scores, curves, importance, baselines = {}, {}, {}, {}
+    bg_scores, curves, importance, baselines, models = {}, {}, {}, {}, {}
     for family in s.models.families:
         params = _family_params(s, family)
         progress.step(f"{taxon}: {family} model ({rec.n} records, {bg.n} background)")
@@ -740,6 +773,7 @@ def model_taxon(
             scores, m, areas, relax=s.thresholds.relax, background_scores=b_scores
         )
         family_maps[family] = m
+        models[family] = model
         evaluations[family] = ev
         # held at the records' medians, so each curve crosses the niche
         curves[family] = response_curves(model, B, names=stack.names,
@@ -801,6 +835,8 @@ def model_taxon(
         background_env=B,
         background_cells=(bg.rows, bg.cols),
         seed=seed,
+        models=models,
+        ensemble_weights=dict(weights),
     )
 
 
@@ -1071,6 +1107,28 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
         memory_mb=s.compute.memory_mb or None,
     )
     sites = cand.sites.copy()
+    slices = None
+    if intake.slices:
+        from screener.slices import analyse_slices
+
+        progress.step(f"time slices: {', '.join(sl.name for sl in intake.slices)} "
+                      "(projection, stability, isolation per slice)")
+        slices = analyse_slices(
+            grid, intake.slices, taxa, cand, th_main,
+            method=s.slices.stability,
+            isolation={
+                "min_gap_km": s.isolation.min_gap_km,
+                "min_patch_km2": s.isolation.min_patch_km2,
+                "within_range_min_km": s.isolation.within_range_min_km,
+                "resistance": s.isolation.resistance,
+                "memory_mb": s.compute.memory_mb or None,
+            },
+            map_fn=map_fn,
+        )
+        sites = sites.merge(slices.history, on="site_id", how="left")
+        sites["climatic_stability"] = _site_mean(grid, cand.patch_labels,
+                                                 slices.clade_stability,
+                                                 sites["site_id"].to_numpy(np.int64))
     access_hours = None
     routes, starts = {}, None
     if intake.start_points is not None and intake.elevation is not None:
@@ -1147,6 +1205,7 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
         "routes": {ids[int(k)]: dataclasses.replace(v, site_id=ids[int(k)])
                    for k, v in routes.items() if int(k) in ids},
         "start_points": starts,
+        "slices": slices,
     }
 
 
@@ -1183,6 +1242,18 @@ def _record_resampling(intake, taxa, cand, n_sites, progress, map_fn, use, other
     )
     return record_resampling(plan, n, random_state=s.project.random_state,
                              map_fn=map_fn or map)
+
+
+def _site_mean(grid, labels, values, ids) -> np.ndarray:
+    """Area-weighted mean of ``values`` over each site's cells (NaN cells left out)."""
+    n = int(ids.max()) + 1 if len(ids) else 1
+    on = (labels > 0) & np.isfinite(values)
+    lab = labels[on].astype(np.int64)
+    a = np.broadcast_to(np.asarray(grid.cell_area_km2, float), grid.shape)[on]
+    tot = np.bincount(lab, weights=a, minlength=n)
+    s = np.bincount(lab, weights=a * values[on], minlength=n)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(tot > 0, s / tot, np.nan)[ids]
 
 
 def _surveyed_points(intake: Intake, taxa: dict):
@@ -1259,7 +1330,7 @@ def _taxon_key(intake: Intake, taxon: str) -> str:
     layer_hashes = [intake.input_hashes.get(str(p)) for p in layer_paths(s)[0]]
     layer_settings = {k: v for k, v in s.layers.items() if k != "paths"}
     return digest(
-        "taxon-model",
+        "taxon-model-with-models",
         taxon,
         layer_hashes,
         layer_settings,
@@ -1412,6 +1483,7 @@ def run_analysis(
         clade_mess=plan["clade_mess"],
         routes=plan["routes"],
         start_points=plan["start_points"],
+        slices=plan["slices"],
     )
 
 
@@ -1469,6 +1541,11 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
                              t.most_dissimilar.astype(np.int32), grid,
                              description="index of the most dissimilar layer: "
                              + ", ".join(f"{i}={n}" for i, n in enumerate(result.layer_names))))
+    if result.slices is not None:
+        from screener.outputs.timeslices import write_slice_rasters
+
+        for p in write_slice_rasters(result, folder):
+            rel(p)
     if result.barrier is not None:
         rel(write_raster(folder / "barrier.tif", result.barrier, grid,
                          description="depth of unsuitable gaps between sister ranges"))

@@ -96,6 +96,14 @@ SCHEMA: dict = {
         "within_range_min_km": (float, 10.0, "Within-range sites lie this far from records (km)."),
         "resistance": (str, "linear", '"linear" (1 - s) or "log" (-ln s).'),
     },
+    "slices": {
+        "layers": (dict, {}, "Time slices: name -> list of rasters (glob patterns allowed) "
+                   "with the present layers' names, e.g. a mid-Holocene and a glacial set."),
+        "static": (list, [], "Layers that do not change between slices, taken from the "
+                   "present where a slice lacks them (e.g. terrain)."),
+        "stability": (str, "geometric_mean", '"geometric_mean", "product" or "minimum": '
+                      "how suitability combines across the present and the slices."),
+    },
     "access": {
         "start_points": (Path, None, "CSV of start points: name, longitude, latitude."),
         "off_track": (bool, True, "Walking off track (Tobler speed x 0.6)."),
@@ -318,17 +326,37 @@ def settings_from_dict(data: dict, *, base_dir=".", where="project file") -> Set
             else:
                 sec[key] = copy.deepcopy(kspec[1])
         sections[section] = sec
-    _check_choices(sections, where)
+    _check_choices(sections, where, base_dir)
     return Settings(sections, None, base_dir)
 
 
-def _check_choices(s, where):
+def _slice_paths(body: dict, base_dir, where) -> dict:
+    """[slices] layers: each slice's globs resolved to files (project order kept)."""
+    out = {}
+    for name, patterns in body.items():
+        if name == "present":
+            raise ProjectError(
+                f"{where}: [slices] layers: 'present' names the present layers; give "
+                "the slice another name (e.g. mid_holocene, glacial_max)."
+            )
+        if isinstance(patterns, dict):
+            raise ProjectError(
+                f"{where}: [slices] layers.{name} must be a list of raster paths or glob "
+                "patterns, e.g. [\"past/glacial/*.tif\"]."
+            )
+        out[name] = _check_value("slices", f"layers.{name}", patterns, ([Path], None, ""),
+                                 base_dir, where)
+    return out
+
+
+def _check_choices(s, where, base_dir="."):
     choices = [
         ("thresholds", "use", ("mtp", "relaxed")),
         ("overlap", "similarity_hypothesis", ("conserved", "diverged")),
         ("overlap", "available_environment", ("accessible", "study_area")),
         ("overlap", "geographic_tests", ("auto", "on", "off")),
         ("isolation", "resistance", ("linear", "log")),
+        ("slices", "stability", ("geometric_mean", "product", "minimum")),
         ("outputs", "page_size", ("A4", "letter")),
         ("layers", "alignment", ("warp", "strict")),
         ("occurrences", "flagged_records", ("drop", "keep")),
@@ -402,6 +430,7 @@ def _check_choices(s, where):
                 f"{where}: [layers] derive: {d!r} is not 'slope' or 'aspect'."
                 + suggest(d, ["slope", "aspect"])
             )
+    s["slices"]["layers"] = _slice_paths(s["slices"]["layers"], base_dir, where)
     if s["layers"]["derive"] and not s["layers"]["elevation"]:
         raise ProjectError(
             f"{where}: [layers] derive needs [layers] elevation to name the elevation layer."

@@ -18,6 +18,8 @@ survey_gap    ``nearest_record_km`` and surveys     farther from every record an
                                                     is better; ``log1p`` min-max
 access        ``walk_hours``                        fewer hours is better; reversed
                                                     min-max
+isolation_    ``n_slices_isolated`` / ``n_slices``  isolated in more time slices is
+history       (runs with time slices only)          better; the share, as is
 ============  ====================================  =====================================
 
 Min-max scaling maps the lowest value among the sites to 0 and the highest to 1 (all
@@ -29,7 +31,11 @@ isolation 0.20 (long gaps are where unknown lineages are most likely), survey_ga
 (unsurveyed ground adds the most information), agreement 0.15 (sites all model
 families call suitable are less model-dependent), area 0.10 (large patches hold larger,
 easier to find populations), novelty 0.10 (penalise extrapolation), access 0.05 (a
-tie-breaker: remote sites are not worse biologically, only costlier).
+tie-breaker: remote sites are not worse biologically, only costlier).  With time
+slices, isolation_history 0.15 (a patch cut off through past climates is a stronger
+candidate for an old, unrecorded lineage than one joined to a known range in a cold
+period); without them the component has no data and drops out, so runs without slices
+rank as before.
 
 Ranks are hypotheses for planning.  A top rank is not a prediction that anything will
 be found; remote sites need safety planning, permits and consent, and new finds of
@@ -68,6 +74,7 @@ DEFAULT_WEIGHTS = {
     "area": 0.10,
     "novelty": 0.10,
     "access": 0.05,
+    "isolation_history": 0.15,
 }
 
 #: Default Dirichlet concentration for the robustness draws: weights are drawn from
@@ -153,6 +160,8 @@ def component_scores(sites: pd.DataFrame, surveys=None) -> pd.DataFrame:
     out["access"] = 1.0 - _minmax(np.where(np.isfinite(hours), hours, np.nan))
     if np.isfinite(hours).any():  # unreachable sites get the worst access
         out["access"][~np.isfinite(hours) & ~np.isnan(hours)] = 0.0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out["isolation_history"] = np.clip(col("n_slices_isolated") / col("n_slices"), 0, 1)
     for k, v in out.items():
         if not np.isfinite(v).any():
             out[k] = nan

@@ -123,6 +123,11 @@ class TaxonResult:
         ``(rows, cols)`` of the background cells.
     seed : int or None
         Seed of this taxon's random draws.
+    models : dict of str to NicheModel
+        The fitted model of each family, as mapped (projected onto time slices
+        without refitting).
+    ensemble_weights : dict of str to float
+        Weight of each family in the consensus map.
     """
 
     taxon: str
@@ -140,6 +145,8 @@ class TaxonResult:
     background_env: np.ndarray | None = None
     background_cells: tuple | None = None
     seed: int | None = None
+    models: dict = field(default_factory=dict)
+    ensemble_weights: dict = field(default_factory=dict)
 
 
 @dataclass(eq=False)
@@ -190,6 +197,8 @@ class RunResult:
         The start points (``name``, ``longitude``, ``latitude``) on the grid.
     clade_mess : ndarray or None
         MESS against the pooled calibration background of all taxa.
+    slices : screener.slices.SliceSet or None
+        Time slices: projections, climatic stability and the sites' history.
     """
 
     grid: object
@@ -215,3 +224,4 @@ class RunResult:
     clade_mess: np.ndarray | None = None
     routes: dict = field(default_factory=dict)
     start_points: object = None
+    slices: object = None

@@ -135,6 +135,13 @@ def test_committed_demo_matches_the_generator(tmp_path):
     assert sorted(p.name for p in (COMMITTED / "layers").glob("*.tif")) == sorted(
         f"{n}.tif" for n in demo.LAYER_NAMES
     )
+    past = Path("past") / demo.PAST_SLICE
+    for name in demo.PAST_LAYER_NAMES:
+        with (
+            rasterio.open(COMMITTED / past / f"{name}.tif") as a,
+            rasterio.open(tmp_path / past / f"{name}.tif") as b,
+        ):
+            np.testing.assert_array_equal(a.read(1), b.read(1), err_msg=hint)
     size_mb = sum(p.stat().st_size for p in COMMITTED.rglob("*") if p.is_file()) / 1e6
     assert size_mb < 3.0
 
@@ -398,6 +405,8 @@ def test_project_file_has_exactly_the_agreed_shape(small):
         "occurrences": {"path": "occurrences.csv"},
         "layers": {"paths": ["layers/*.tif"], "elevation": "elevation",
                    "exclude": ["elevation"]},
+        "slices": {"layers": {demo.PAST_SLICE: [f"past/{demo.PAST_SLICE}/*.tif"]},
+                   "stability": "geometric_mean"},
         "access": {"start_points": "start_points.csv"},
         "survey": {"surveyed": "surveys.csv"},
     }

@@ -60,7 +60,7 @@ def test_benchmarks_are_scripts_not_tests():
     assert names and all(re.fullmatch(r"bench_\w+\.py", n) for n in names), names
 
 
-METHOD_DOCS = ["intake", "models", "overlap", "isolation", "outputs"]
+METHOD_DOCS = ["intake", "models", "overlap", "isolation", "timeslices", "outputs"]
 
 
 def test_terms_page_lists_every_user_facing_name():

@@ -86,6 +86,29 @@ def test_unrecorded_massif_is_the_top_isolated_site(demo_run):
 
 
 @pytest.mark.slow
+def test_cold_stage_joins_one_massif_and_leaves_the_unrecorded_one_isolated(demo_run):
+    _, out, _ = demo_run
+    cand = pd.read_csv(out / "candidates.csv")
+    truth = {m.role: m for m in DEMO_TRUTH["small"].massifs}
+
+    def on(massif):
+        lo_lon, lo_lat, hi_lon, hi_lat = massif.bbox
+        inside = cand["longitude"].between(lo_lon, hi_lon) & cand["latitude"].between(
+            lo_lat, hi_lat)
+        assert inside.any(), massif.name
+        return cand[inside & (cand["kind"] != "within-range")].iloc[0]
+
+    hullavar, pelto = on(truth["unrecorded"]), on(truth["dry"])
+    assert hullavar["n_slices_isolated"] == hullavar["n_slices"] == 2
+    assert not hullavar["ever_connected"]
+    assert pelto["kind_cold_stage"] == "joined" and "cold_stage" in pelto["connected_in"]
+    assert hullavar["rank"] < pelto["rank"]
+    assert (out / "stability" / "clade.tif").stat().st_size > 0
+    report = (out / "report.html").read_text()
+    assert "Climate through time" in report and "every past slice" in report
+
+
+@pytest.mark.slow
 def test_run_json_is_provenance(demo_run):
     project, out, _ = demo_run
     prov = json.loads((out / "run.json").read_text())

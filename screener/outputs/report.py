@@ -599,6 +599,13 @@ def render_report(result, *, title: str | None = None) -> str:
         ),
         ("overlap", "Niche overlap and its tests", _overlap(result)),
         ("inputs", "Inputs", _inputs(result)),
+    ]
+    if getattr(result, "slices", None) is not None:
+        from screener.outputs.timeslices import report_section
+
+        sections.append(("history", "Climate through time",
+                         report_section(result, _safe_figure, html_table)))
+    sections += [
         ("novelty", "Novelty and other warnings", _novelty(result)),
         ("cautions", "Cautions", cautions_html()),
         ("provenance", "Provenance", _provenance(result)),
