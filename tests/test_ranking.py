@@ -46,10 +46,26 @@ def test_score_is_weighted_sum_and_order():
     few = rank_sites(table(), top_k=4, n_draws=100)
     assert few["rank_robustness"].isna().all() and few["rank_low"].notna().all()
     # suitability component is the mean suitability itself, times its weight
-    w = np.array(list(DEFAULT_WEIGHTS.values()))
+    # (weights renormalised over the components with data: no time slices here)
+    w = np.array([v for k, v in DEFAULT_WEIGHTS.items() if f"score_{k}" in r])
+    assert "score_isolation_history" not in r
     assert_allclose(
         r["score_suitability"].iloc[0], 0.9 * DEFAULT_WEIGHTS["suitability"] / w.sum()
     )
+
+
+def test_isolation_history_component_is_the_share_of_slices_isolated():
+    t = table()
+    t["n_slices"] = 3
+    t["n_slices_isolated"] = [3, 0, 1, 2]
+    r = rank_sites(t, {"isolation_history": 0.5}, top_k=1, n_draws=0).set_index("site_id")
+    w = {k: v for k, v in DEFAULT_WEIGHTS.items()}
+    w["isolation_history"] = 0.5
+    total = sum(w.values())
+    assert_allclose(r["score_isolation_history"].sort_index(),
+                    np.array([3, 0, 1, 2]) / 3 * 0.5 / total, rtol=1e-12)
+    off = rank_sites(t, {"isolation_history": 0}, top_k=1, n_draws=0)
+    assert "score_isolation_history" not in off
 
 
 def test_ties_and_reproducibility():
