@@ -334,12 +334,11 @@ def climatic_stability(maps, method: str = "geometric_mean", mask=None) -> np.nd
 
 
 def gap_column(sites: pd.DataFrame) -> str:
-    """The column holding a site's separating gap (km): the minimax gap where the
-    isolation stage reports it, else the gap along the least-cost path."""
-    for c in ("separating_gap_km", "gap_km"):
-        if c in sites.columns:
-            return c
-    raise InputError("The candidate sites have no gap column (separating_gap_km, gap_km).")
+    """The column holding a site's separating gap (km): ``gap_km``, the minimax over
+    every route from the known ranges of the longest unsuitable crossing."""
+    if "gap_km" in sites.columns:
+        return "gap_km"
+    raise InputError("The candidate sites have no separating gap column (gap_km).")
 
 
 def _edt_km(grid: Grid, empty: np.ndarray):
