@@ -550,11 +550,11 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
                 flagged=s.occurrences.flagged_records,
             ),
         )
+        slices = _read_slices(s, stack.select(predictors))
         caught.extend(str(w.message) for w in wlist if issubclass(w.category, ScreenerWarning))
     caught.extend(records.notes)
     if len(records.taxa) < 1:
         raise InputError("No taxon has usable records.")
-    slices = _read_slices(s, stack.select(predictors))
     start_points = surveyed = None
     if s.access.start_points is not None:
         start_points = _read_points_csv(s.access.start_points, "start points")

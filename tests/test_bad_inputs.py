@@ -539,6 +539,9 @@ def _three_classes(a):
 
 def test_categorical_layer_warns_until_declared(scen):
     rewrite_layer(scen / "layers" / "cloud.tif", fn=_three_classes, dtype="uint8", nodata=0)
+    # the demo's past slice carries the layer too: the same classes there
+    for past in (scen / "past").glob("*/cloud.tif"):
+        rewrite_layer(past, fn=_three_classes, dtype="uint8", nodata=0)
     text = _check_lines(scen)
     assert "only 3 distinct values" in text and "[layers] categorical" in text
     set_in_section(scen, "layers", 'categorical = ["cloud"]')
