@@ -1195,6 +1195,10 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
     for name, row in zip(("refit_suitable", "refit_isolated", "refit_top_k"), shares,
                          strict=True):
         gdf[name] = row
+    if slices is not None:
+        hist = slices.history[slices.history["site_id"].isin(found)].copy()
+        hist["site_id"] = hist["site_id"].map(ids).astype(object)
+        slices = dataclasses.replace(slices, history=hist)
     return {
         "sites": gdf,
         "paths": paths,

@@ -104,7 +104,7 @@ def _panel(ax, result, title, grid, cand, suitable, paths, kinds):
         sites.boundary.plot(ax=ax, color="black", linewidth=0.8, zorder=8)
         for sid, rank, x, y in zip(sites["site_id"], sites["rank"], sites["x"], sites["y"]):
             k = kinds.get(sid, "")
-            if k:
+            if isinstance(k, str) and k:
                 ax.text(x, y, f"{int(rank)}{'' if k == 'isolated' else '*'}", ha="center",
                         va="center", fontsize=6, fontweight="bold", zorder=9,
                         path_effects=maps._HALO)
@@ -141,13 +141,12 @@ def plot_slices(result, *, top_n: int = 10):
                                                     for t, r in result.taxa.items()}, th)
     for ax, name in zip(axes, names):
         maps._prepare(ax)
+        col = "kind" if name == PRESENT else f"kind_{name}"
+        kinds = dict(zip(result.sites["site_id"], result.sites[col]))
         if name == PRESENT:
             cand, grid, suit = result.candidates, result.grid, present_suitable
-            kinds = dict(zip(result.sites["site_id"], result.sites["kind"]))
         else:
             cand, grid, suit = ss.candidates[name], ss.grids[name], ss.suitable[name]
-            h = ss.history
-            kinds = dict(zip(h["site_id"], h[f"kind_{name}"]))
         paths = cand.paths if cand is not None else {}
         _panel(ax, short, name, grid, cand, suit, paths, kinds)
     handles = [
