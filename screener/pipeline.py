@@ -735,7 +735,7 @@ def model_taxon(
     from screener.models.inspect import permutation_importance, response_curves
 
     family_maps, evaluations, thresholds_by_family, rec_scores = {}, {}, {}, {}
-    bg_scores, curves, importance, baselines, models = {}, {}, {}, {}, {}
+    bg_scores, curves, importance, baselines, slice_maps = {}, {}, {}, {}, {}
     for family in s.models.families:
         params = _family_params(s, family)
         progress.step(f"{taxon}: {family} model ({rec.n} records, {bg.n} background)")
@@ -773,7 +773,9 @@ def model_taxon(
             scores, m, areas, relax=s.thresholds.relax, background_scores=b_scores
         )
         family_maps[family] = m
-        models[family] = model
+        for sl in intake.slices:  # the same fitted model on each time slice
+            slice_maps.setdefault(sl.name, {})[family] = predict_map(
+                model, sl.stack, map_fn=map_fn)
         evaluations[family] = ev
         # held at the records' medians, so each curve crosses the niche
         curves[family] = response_curves(model, B, names=stack.names,
@@ -835,7 +837,7 @@ def model_taxon(
         background_env=B,
         background_cells=(bg.rows, bg.cols),
         seed=seed,
-        models=models,
+        slice_maps=slice_maps,
         ensemble_weights=dict(weights),
     )
 
@@ -1333,11 +1335,15 @@ def _taxon_key(intake: Intake, taxon: str) -> str:
     rec = intake.records.taxa[taxon]
     layer_hashes = [intake.input_hashes.get(str(p)) for p in layer_paths(s)[0]]
     layer_settings = {k: v for k, v in s.layers.items() if k != "paths"}
+    slice_paths = [p for paths in s.slices.layers.values() for p in paths]
+    slices = {k: v for k, v in s.as_dict()["slices"].items() if k != "stability"}
     return digest(
-        "taxon-model-with-models",
+        "taxon-model",
         taxon,
         layer_hashes,
         layer_settings,
+        [intake.input_hashes.get(str(p)) for p in slice_paths],
+        slices,
         intake.predictors,
         rec.rows,
         rec.cols,

@@ -123,11 +123,11 @@ class TaxonResult:
         ``(rows, cols)`` of the background cells.
     seed : int or None
         Seed of this taxon's random draws.
-    models : dict of str to NicheModel
-        The fitted model of each family, as mapped (projected onto time slices
-        without refitting).
     ensemble_weights : dict of str to float
         Weight of each family in the consensus map.
+    slice_maps : dict of str to dict of str to ndarray
+        Per time slice, each family's fitted model mapped over the slice's layers
+        (the same model as above, not refitted; float32, NaN off the slice's mask).
     """
 
     taxon: str
@@ -145,8 +145,8 @@ class TaxonResult:
     background_env: np.ndarray | None = None
     background_cells: tuple | None = None
     seed: int | None = None
-    models: dict = field(default_factory=dict)
     ensemble_weights: dict = field(default_factory=dict)
+    slice_maps: dict = field(default_factory=dict)
 
 
 @dataclass(eq=False)

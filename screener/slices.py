@@ -7,8 +7,9 @@ slice and not today; land drowned in the slice is valid today and not in the sli
 
 The stages here work on what the present run produced and never refit a model:
 
-1. :func:`project_taxon` maps each fitted model of a taxon over a slice's layers and
-   combines them with the present ensemble weights, with the MESS map and the share of
+1. :func:`map_models` maps each fitted model of a taxon over a slice's layers (the
+   model stage does this while the models are at hand) and :func:`project_taxon`
+   combines the maps with the present ensemble weights, with the MESS map and the share of
    cells whose predictors lie outside the calibration range (where models clamp or
    extrapolate) for that slice.
 2. :func:`climatic_stability` combines suitability across the present and the past
@@ -62,6 +63,7 @@ __all__ = [
     "analyse_slices",
     "gap_column",
     "history_readings",
+    "map_models",
     "outside_range_share",
     "project_taxon",
     "shifted_records",
@@ -236,32 +238,54 @@ def outside_range_share(stack: LayerStack, reference: np.ndarray) -> float:
     return n_out / n if n else float("nan")
 
 
-def project_taxon(models: dict, weights: dict, stack: LayerStack, reference: np.ndarray,
-                  *, map_fn=None) -> SliceProjection:
-    """Map a taxon's fitted models over a slice (no refitting).
+def map_models(models: dict, stack: LayerStack, *, map_fn=None) -> dict:
+    """Each fitted model mapped over a slice's layers (no refitting).
 
     Parameters
     ----------
     models : dict of str to NicheModel
         Fitted model per family, as mapped in the present.
+    stack : LayerStack
+        The slice's predictors (:func:`slice_stack`).
+    map_fn : callable, optional
+        An executor's ``map`` (used for stacks streamed from disk).
+
+    Returns
+    -------
+    dict of str to ndarray of float32 (NaN off the slice's mask)
+    """
+    from screener.pipeline import predict_map
+
+    return {f: predict_map(m, stack, map_fn=map_fn) for f, m in models.items()}
+
+
+def project_taxon(family_maps: dict, weights: dict, stack: LayerStack,
+                  reference: np.ndarray, *, map_fn=None) -> SliceProjection:
+    """A taxon's projection onto a slice from its family maps there.
+
+    Parameters
+    ----------
+    family_maps : dict of str to ndarray
+        Each family's fitted model mapped over the slice (:func:`map_models`; the
+        pipeline maps them while the models are at hand).
     weights : dict of str to float
         The present ensemble weights per family.
     stack : LayerStack
-        The slice's predictors (:func:`slice_stack`).
+        The slice's predictors.
     reference : ndarray of shape (m, n_layers)
         Calibration rows for MESS and the outside-range share.
     map_fn : callable, optional
         An executor's ``map`` (used for stacks streamed from disk).
     """
     from screener.models.ensemble import weighted_mean_map
-    from screener.pipeline import _mess_map, predict_map
+    from screener.pipeline import _mess_map
 
-    if not models:
-        raise InputError("No fitted models to project onto the time slice.")
-    maps = {f: predict_map(m, stack, map_fn=map_fn) for f, m in models.items()}
-    consensus = weighted_mean_map(maps, {f: weights[f] for f in maps}).astype(np.float32)
+    if not family_maps:
+        raise InputError("No family maps to combine on the time slice.")
+    consensus = weighted_mean_map(family_maps, {f: weights[f] for f in family_maps})
     mess, _ = _mess_map(stack, reference, map_fn=map_fn)
-    return SliceProjection(consensus, maps, mess, outside_range_share(stack, reference))
+    return SliceProjection(consensus.astype(np.float32), dict(family_maps), mess,
+                           outside_range_share(stack, reference))
 
 
 # --------------------------------------------------------------------------------------
@@ -557,7 +581,8 @@ def analyse_slices(present_grid: Grid, slices, taxa: dict, present, thresholds: 
     slices : sequence of TimeSlice
         Past slices in order (their stacks hold the predictors in model order).
     taxa : dict of str to screener.results.TaxonResult
-        The present results; each needs its fitted ``models``, ``ensemble_weights``,
+        The present results; each needs ``slice_maps`` (its fitted models mapped over
+        each slice, :func:`map_models`), ``ensemble_weights``,
         ``presence_env``/``background_env`` and ``records``.
     present : screener.isolation.CandidateSet
         The present candidate sites.
@@ -592,10 +617,11 @@ def analyse_slices(present_grid: Grid, slices, taxa: dict, present, thresholds: 
             f"Time slice names must be unique, non-empty and not {PRESENT!r}; got {names}."
         )
     for t in taxa.values():
-        if not getattr(t, "models", None):
+        missing = [n for n in names if n not in (t.slice_maps or {})]
+        if missing:
             raise InputError(
-                f"The results of {t.taxon!r} hold no fitted models to project onto the "
-                "time slices; rerun the models (delete the stage cache)."
+                f"The results of {t.taxon!r} hold no maps of its models on the time "
+                f"slices {missing}; rerun the model stage with these slices."
             )
     records = {n: (t.records.rows, t.records.cols) for n, t in taxa.items()}
     pooled = np.vstack([t.background_env for t in taxa.values()])
@@ -608,8 +634,8 @@ def analyse_slices(present_grid: Grid, slices, taxa: dict, present, thresholds: 
         proj = {}
         for n, t in taxa.items():
             ref = np.vstack([t.presence_env, t.background_env])
-            proj[n] = project_taxon(t.models, t.ensemble_weights, sl.stack, ref,
-                                    map_fn=map_fn)
+            proj[n] = project_taxon(t.slice_maps[sl.name], t.ensemble_weights, sl.stack,
+                                    ref, map_fn=map_fn)
             per_taxon[n].append(proj[n].suitability)
             if proj[n].outside_range_share > 0:
                 log.info("%s in %s: %.1f%% of cells outside the calibration range",

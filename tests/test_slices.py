@@ -22,6 +22,7 @@ from screener.slices import (
     analyse_slices,
     climatic_stability,
     history_readings,
+    map_models,
     outside_range_share,
     project_taxon,
     shifted_records,
@@ -107,7 +108,7 @@ def test_projection_maps_the_fitted_models_without_refitting():
     sg = _grid(shape, mask)
     cold = _stack(sg, {"t": t - 6.0, "m": m})
     weights = {"ellipsoid": 0.7, "envelope": 0.3}
-    proj = project_taxon(models, weights, cold, np.vstack([P, B]))
+    proj = project_taxon(map_models(models, cold), weights, cold, np.vstack([P, B]))
     X = cold.valid_matrix()
     want = sum(w * models[f].predict(X) for f, w in weights.items()) / sum(weights.values())
     np.testing.assert_allclose(proj.suitability[mask], want, rtol=1e-5, atol=1e-6)
@@ -218,7 +219,8 @@ def test_real_terrain_block_joined_in_the_cold_slice_and_block_isolated_througho
                        np.array([2]))
     X = present.valid_matrix().astype(np.float64)
     tr = TaxonResult("taxon", rec, suit, presence_env=X[:1], background_env=X[::50],
-                     models={"known": model}, ensemble_weights={"known": 1.0})
+                     ensemble_weights={"known": 1.0},
+                     slice_maps={"cooled": map_models({"known": model}, cold)})
     ss = analyse_slices(g, [TimeSlice("cooled", cold)], {"taxon": tr}, cand, th,
                         isolation=iso)
     lab = cand.patch_labels
