@@ -40,6 +40,7 @@ __all__ = [
     "JackknifeResult",
     "jackknife",
     "null_model_test",
+    "pattern_draws",
     "NullModelResult",
     "FamilyEvaluation",
     "evaluate_family",
@@ -523,11 +524,89 @@ class NullModelResult:
     null : ndarray of shape (R,)
     p_value : float
         ``(1 + #{null >= observed}) / (1 + R)``.
+    structured : bool
+        The random records kept the records' spatial pattern.
     """
 
     observed: float
     null: np.ndarray
     p_value: float
+    structured: bool = False
+
+
+def _local_xy(xy, lat0_deg: float | None) -> np.ndarray:
+    """Longitude/latitude to a local equirectangular plane (degrees of latitude)."""
+    xy = np.asarray(xy, float)
+    if lat0_deg is None:
+        return xy
+    return np.column_stack([xy[:, 0] * math.cos(math.radians(lat0_deg)), xy[:, 1]])
+
+
+def pattern_draws(presence_xy, pool_xy, n_draws: int, random_state=0, *,
+                  lonlat: bool = True, max_tries: int = 200) -> list[np.ndarray]:
+    """Rows of ``pool_xy`` that carry the records' spatial pattern to random places.
+
+    Each draw rotates the whole record pattern by a random angle about its centroid,
+    moves the centroid onto a random pool point, and takes for every moved record the
+    nearest pool point (cell).  Distances between records and their clustering are
+    kept; only where the pattern lies changes.  A placement is accepted when every
+    moved record lands within twice the pool's typical point spacing of a pool point
+    (inside the study area); after ``max_tries`` failures a draw falls back to
+    records drawn at random (logged).
+
+    Parameters
+    ----------
+    presence_xy : array_like of shape (n, 2)
+        Record coordinates (longitude, latitude when ``lonlat``).
+    pool_xy : array_like of shape (m, 2)
+        Coordinates of the cells records may be moved to (the study area).
+    n_draws : int
+    random_state : int or Generator, default 0
+    lonlat : bool, default True
+        Coordinates are degrees; rotation is done on a local equirectangular plane
+        (longitude scaled by the cosine of the mean latitude).
+
+    Returns
+    -------
+    list of ndarray of int
+        ``n_draws`` index arrays into ``pool_xy``, ``n`` each.
+
+    References
+    ----------
+    .. [1] Fortin, M.-J. & Dale, M. R. T. (2005). Spatial Analysis: A Guide for
+       Ecologists. Cambridge University Press (restricted randomisation that keeps a
+       pattern's spatial structure; from memory).
+    """
+    from scipy.spatial import cKDTree
+
+    pxy = _xy(presence_xy, "presence_xy")
+    qxy = _xy(pool_xy, "pool_xy")
+    lat0 = float(np.mean(qxy[:, 1])) if lonlat else None
+    p = _local_xy(pxy, lat0)
+    q = _local_xy(qxy, lat0)
+    tree = cKDTree(q)
+    spacing = np.median(tree.query(q[: min(len(q), 2000)], k=2)[0][:, 1])
+    tol = 2.0 * max(float(spacing), 1e-12)
+    rel = p - p.mean(axis=0)
+    rng = np.random.default_rng(random_state)
+    out, fallbacks = [], 0
+    for _ in range(int(n_draws)):
+        for _try in range(max_tries):
+            theta = rng.uniform(0.0, 2.0 * math.pi)
+            c, s_ = math.cos(theta), math.sin(theta)
+            moved = rel @ np.array([[c, s_], [-s_, c]]) + q[rng.integers(len(q))]
+            dist, idx = tree.query(moved)
+            if np.all(dist <= tol):
+                out.append(idx)
+                break
+        else:
+            fallbacks += 1
+            out.append(rng.choice(len(q), size=len(p), replace=len(q) < len(p)))
+    if fallbacks:
+        log.warning(
+            "%d of %d null draws could not place the record pattern inside the study "
+            "area and used random records instead", fallbacks, n_draws)
+    return out
 
 
 def null_model_test(
@@ -541,25 +620,37 @@ def null_model_test(
     n_null: int = 99,
     random_state=0,
     map_fn: Callable = map,
+    presence_xy=None,
+    study_area_xy=None,
+    lonlat: bool = True,
 ) -> NullModelResult:
     """Null-model test of the training AUC (Raes & ter Steege 2007).
 
-    Each replicate draws ``n`` rows at random (without replacement) from the study area
-    (the background when omitted), fits the same family with the same parameters to
-    them against the background, and records its training AUC.  Training scores are
-    those of :func:`screener.models.training_presence_scores` (out-of-bag for the
-    forest, whose in-sample AUC is near 1 for any points).
+    Each replicate takes ``n`` study-area rows as random "records", fits the same
+    family with the same parameters to them against the background, and records its
+    training AUC.  When the records' coordinates and the study area's are given, the
+    random records keep the records' spatial pattern (:func:`pattern_draws`): ten
+    records in two clusters are compared with ten records in two clusters, not with
+    ten scattered ones, which would make any clustered sample look significant.
+    Without coordinates the rows are drawn at random (without replacement).  Training
+    scores are those of :func:`screener.models.training_presence_scores`.
 
     Parameters
     ----------
     family, params, presence, background
         As in :func:`jackknife`.
     study_area : array_like of shape (c, p), optional
+        Rows records may be drawn from (the background when omitted).
     observed_auc : float, optional
         Training AUC of the model fitted to the real records; computed when omitted.
     n_null : int, default 99
     random_state : int, default 0
     map_fn : callable, default builtin ``map``
+    presence_xy, study_area_xy : array_like of shape (n, 2) and (c, 2), optional
+        Coordinates of the records and of the study-area rows (of the background when
+        ``study_area`` is omitted).
+    lonlat : bool, default True
+        The coordinates are longitude/latitude degrees.
 
     Returns
     -------
@@ -569,6 +660,8 @@ def null_model_test(
     ----------
     .. [1] Raes, N. & ter Steege, H. (2007). A null-model for significance testing of
        presence-only species distribution models. Ecography 30:727-736.
+    .. [2] Fortin, M.-J. & Dale, M. R. T. (2005). Spatial Analysis: A Guide for
+       Ecologists. Cambridge University Press.
     """
     presence = check_predictors(presence, "presence", min_rows=2)
     background = check_predictors(
@@ -582,17 +675,23 @@ def null_model_test(
             "the null model needs at least as many cells as records."
         )
     rng = np.random.default_rng(random_state)
-    obs_seed, *seeds = _seeds(rng, int(n_null) + 1)
+    obs_seed, pattern_seed, *seeds = _seeds(rng, int(n_null) + 2)
     if observed_auc is None:
         model = _make(family, params, obs_seed).fit(presence, background)
         observed_auc = _training_auc(model, presence, background)
-    tasks = []
-    for s in seeds:
-        idx = np.random.default_rng(s).choice(pool.shape[0], size=n, replace=False)
-        tasks.append(_FitTask(family, params or {}, s, pool[idx], background))
+    structured = presence_xy is not None and study_area_xy is not None
+    if structured:
+        draws = pattern_draws(presence_xy, study_area_xy, len(seeds), pattern_seed,
+                              lonlat=lonlat)
+    else:
+        draws = [np.random.default_rng(s).choice(pool.shape[0], size=n, replace=False)
+                 for s in seeds]
+    tasks = [_FitTask(family, params or {}, s, pool[idx], background)
+             for s, idx in zip(seeds, draws, strict=True)]
     null = np.array(list(map_fn(_run_null, tasks)), dtype=float)
     p = (1.0 + np.sum(null >= observed_auc)) / (1.0 + null.size)
-    return NullModelResult(observed=float(observed_auc), null=null, p_value=float(p))
+    return NullModelResult(observed=float(observed_auc), null=null, p_value=float(p),
+                           structured=structured)
 
 
 # --- one entry point ----------------------------------------------------------------
@@ -692,6 +791,8 @@ def evaluate_family(
     n_null: int = 99,
     random_state=0,
     map_fn: Callable = map,
+    study_area_xy=None,
+    lonlat: bool = True,
 ) -> FamilyEvaluation:
     """Evaluate one family: jackknife below ``jackknife_below`` records, else folds.
 
@@ -719,9 +820,15 @@ def evaluate_family(
         Square side (CRS units) of "squares"; default a quarter of the larger side
         of the records' bounding box.
     n_null : int, default 99
-        Null-model replicates (0 skips the test).
+        Null-model replicates (0 skips the test).  With ``presence_xy`` and the
+        study area's coordinates (``study_area_xy``, or ``background_xy`` when
+        ``study_area`` is omitted) the null records keep the records' spatial pattern
+        (:func:`pattern_draws`).
     random_state : int, default 0
     map_fn : callable, default builtin ``map``
+    study_area_xy : array_like of shape (c, 2), optional
+    lonlat : bool, default True
+        Coordinates are longitude/latitude degrees.
 
     Returns
     -------
@@ -832,6 +939,9 @@ def evaluate_family(
             n_null=n_null,
             random_state=null_seed,
             map_fn=map_fn,
+            presence_xy=presence_xy,
+            study_area_xy=background_xy if study_area is None else study_area_xy,
+            lonlat=lonlat,
         )
         ev.auc_null_p = nm.p_value
         ev.extra["null_model"] = nm

@@ -747,6 +747,7 @@ def model_taxon(
             presence_xy=rec_xy,
             background_xy=bg_xy,
             study_area=B,
+            study_area_xy=bg_xy,
             jackknife_below=s.evaluation.jackknife_below,
             n_null=s.evaluation.n_null,
             random_state=seed,

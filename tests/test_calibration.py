@@ -1,0 +1,56 @@
+"""Type I error of the environmental-space overlap tests on real terrain (slow).
+
+Terrain: matplotlib's sample elevation grid ``jacksboro_fault_dem.npz`` (via
+``matplotlib.cbook.get_sample_data``), scenarios in ``tests/_calibration.py``.  The
+full measurement (>= 200 null pairs per scenario, power) is
+``tests/benchmarks/bench_calibration.py``, reported in ``docs/calibration.md``.
+
+Checks and their sources:
+- each test's rejection rate at alpha = 0.05 under its null: the Clopper-Pearson 95 %
+  interval (scipy.stats.binomtest) must overlap [0.02, 0.08] (the project's target);
+- the plain-language reading claims something in at most 5 % of null pairs plus
+  binomial noise (Holm 1979 keeps the family-wise error rate at or below alpha);
+- permutation and background tests are exact under exchangeability (Warren et al.
+  2008, Evolution 62:2868).
+"""
+
+from __future__ import annotations
+
+import pytest
+
+from _calibration import binomial_ci, rejection_rates, terrain
+
+N_PAIRS = 60
+
+
+@pytest.fixture(scope="module")
+def cube():
+    return terrain("jacksboro", "skewed")
+
+
+def _overlaps_target(k, n):
+    low, high = binomial_ci(k, n)
+    return low <= 0.08 and high >= 0.02
+
+
+@pytest.mark.slow
+def test_every_test_is_calibrated_when_records_are_exchangeable(cube):
+    # One window, 2n dispersed records split at random: every test is under its null.
+    rates = rejection_rates(cube, "equivalency-null", "dispersed", N_PAIRS, seed=11)
+    for test in ("equivalency", "similarity_ab", "similarity_ba"):
+        k, n = rates[test]
+        assert k / n <= 0.15 and _overlaps_target(k, n), (test, k, n)
+    k, n = rates["claims_any"]
+    # family-wise error <= 0.05; with 60 pairs allow binomial noise (upper 95 % bound)
+    assert binomial_ci(k, n)[0] <= 0.05, (k, n)
+
+
+@pytest.mark.slow
+def test_similarity_test_is_calibrated_when_records_are_random_points(cube):
+    # Each taxon's records are random points of its own accessible window.
+    rates = rejection_rates(cube, "similarity-null", "dispersed", N_PAIRS, seed=12)
+    for test in ("similarity_ab", "similarity_ba"):
+        k, n = rates[test]
+        assert _overlaps_target(k, n), (test, k, n)
+    k, n = rates["claims_similar"]
+    assert binomial_ci(k, n)[0] <= 0.05, (k, n)
