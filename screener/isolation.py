@@ -517,8 +517,10 @@ class _Extreme:
         return out
 
 
-def _site_stats(grid, sc: _SiteCells, clade, agreement, novelty, elevation):
-    """Area, suitability, agreement, novelty and elevation per site, in one banded pass."""
+def _site_stats(grid, sc: _SiteCells, clade, agreement, novelty, elevation,
+                clamped=None):
+    """Area, suitability, agreement, novelty, clamping and elevation per site, in one
+    banded pass."""
     n = sc.n
     area = grid.cell_area_km2
     n_cols = grid.n_cols
@@ -527,6 +529,7 @@ def _site_stats(grid, sc: _SiteCells, clade, agreement, novelty, elevation):
     s_max = np.full(n, -np.inf)
     ag = [np.zeros(n), np.zeros(n)]
     nov = [np.zeros(n), np.zeros(n)]
+    clm = [np.zeros(n), np.zeros(n)]
     e_min, e_max = np.full(n, np.inf), np.full(n, -np.inf)
     best = _Extreme(n, n_cols, largest=True)
 
@@ -552,6 +555,11 @@ def _site_stats(grid, sc: _SiteCells, clade, agreement, novelty, elevation):
             ok = np.isfinite(x)
             nov[0] += bc(k, (ok & (x < 0)).astype(np.float64))
             nov[1] += bc(k, ok.astype(np.float64))
+        if clamped is not None:
+            x = sc.take(clamped, r0, r1, at).astype(np.float64)
+            ok = np.isfinite(x)
+            clm[0] += bc(k, (ok & (x > 0)).astype(np.float64))
+            clm[1] += bc(k, ok.astype(np.float64))
         if elevation is not None:
             x = sc.take(elevation, r0, r1, at).astype(np.float64)
             ok = np.isfinite(x)
@@ -574,6 +582,7 @@ def _site_stats(grid, sc: _SiteCells, clade, agreement, novelty, elevation):
         "max_suitability": s_max,
         "agreement": share(ag, agreement),
         "novel_share": share(nov, novelty),
+        "clamped_share": share(clm, clamped),
         "elevation_min": np.where(np.isfinite(e_min), e_min, np.nan),
         "elevation_max": np.where(np.isfinite(e_max), e_max, np.nan),
     }
@@ -731,7 +740,8 @@ def _run_stage(grid, graphs, suitability, clade, thresholds, records, taxa, p, *
     )
 
     sc = _SiteCells(site_cells, n_sites)
-    stats, best = _site_stats(grid, sc, clade, p["agreement"], p["novelty"], p["elevation"])
+    stats, best = _site_stats(grid, sc, clade, p["agreement"], p["novelty"], p["elevation"],
+                               p.get("clamped"))
     stats.update(_taxon_fit(grid, sc, suitability, thresholds, taxa))
     # One cost-distance run per taxon.  Per-site costs are reduced from the float64
     # surface; only a float32 copy and the solver's compact traceback are kept (5-6
@@ -906,6 +916,7 @@ def find_candidates(
     agreement=None,
     novelty=None,
     elevation=None,
+    clamped=None,
     backend: str = "auto",
     memory_mb: float | None = None,
 ) -> CandidateSet:
@@ -946,6 +957,9 @@ def find_candidates(
     agreement, novelty, elevation : ndarray (n_rows, n_cols), optional
         Model agreement (mean reported), MESS (share of cells < 0 reported) and
         elevation (min and max reported).
+    clamped : ndarray (n_rows, n_cols), optional
+        1 where some taxon's model was clamped (a predictor beyond its calibration
+        range), 0 elsewhere; the share of a site's cells at 1 is ``clamped_share``.
     backend : {"auto", "mcp", "dijkstra", "tiled"}, default "auto"
         Cost-distance solver (:class:`~screener.costdistance.CostGraph`).
     memory_mb : float, optional
@@ -959,7 +973,7 @@ def find_candidates(
     CandidateSet
         ``sites`` columns: ``site_id, kind, threshold_set, row, col, x, y, longitude,
         latitude, area_km2, n_cells, mean_suitability, max_suitability, agreement,
-        novel_share, elevation_min, elevation_max, cost_distance, cost_to_<taxon>,
+        novel_share, clamped_share, elevation_min, elevation_max, cost_distance, cost_to_<taxon>,
         nearest_taxon, gap_km, barrier_depth, path_km, nearest_record_km,
         between_ranges, stability, relaxed_block``.  ``row``/``col`` is the site's
         most suitable cell; ``mean_suitability`` is area-weighted; ``stability`` is
@@ -1019,6 +1033,7 @@ def find_candidates(
         "corridor_slack": float(corridor_slack),
         "agreement": agreement,
         "novelty": novelty,
+        "clamped": clamped,
         "elevation": elevation,
         "memory_mb": memory_mb,
     }
@@ -1127,6 +1142,7 @@ def find_candidates(
             "max_suitability",
             "agreement",
             "novel_share",
+            "clamped_share",
             "elevation_min",
             "elevation_max",
             "cost_distance",

@@ -713,7 +713,7 @@ def model_taxon(
     TaxonResult
     """
     from screener.evaluation import evaluate_family
-    from screener.models.base import training_presence_scores
+    from screener.models.base import ClampedModel, training_presence_scores
     from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
     from screener.thresholds import compute_thresholds
 
@@ -767,7 +767,8 @@ def model_taxon(
                     f"auc_{part}": other.auc,
                     f"omission_mtp_{part}": other.omission_mtp,
                 })
-        m = predict_map(model, stack, map_fn=map_fn)
+        mapped = ClampedModel.from_rows(model, P, B) if s.models.clamp else model
+        m = predict_map(mapped, stack, map_fn=map_fn)
         scores = training_presence_scores(model, P)
         b_scores = model.predict(B)
         th = compute_thresholds(
@@ -799,6 +800,7 @@ def model_taxon(
         family_maps, {f: thresholds_by_family[f]["mtp"].value for f in family_maps}
     )
     novelty, most = _mess_map(stack, B, map_fn=map_fn)
+    clamped = _outside_map(stack, ClampedModel.from_rows(None, P, B), map_fn=map_fn)
 
     rows = []
     for family, ev in evaluations.items():
@@ -829,6 +831,7 @@ def model_taxon(
         family_maps=family_maps,
         agreement=agreement,
         mess=novelty,
+        clamped=clamped,
         most_dissimilar=most,
         thresholds=c_th,
         accessible=acc,
@@ -857,6 +860,29 @@ def _threshold_columns(th: dict) -> dict:
         out[f"training_omission_{name}"] = t.training_omission
     if "mtp" in th:
         out["omission_mtp_train"] = th["mtp"].training_omission
+    return out
+
+
+def _outside_rows(stack: LayerStack, clamp, rows: tuple, max_cells: int):
+    """1.0 where any predictor lies outside ``clamp``'s range, at the valid cells of a
+    band of rows (a task)."""
+    parts = [clamp.outside(X) for _, X, _ in
+             stack.iter_blocks(max_cells, rows=slice(*rows)) if X.shape[0]]
+    return (np.concatenate(parts) if parts else np.empty(0, bool)).astype(np.float32)
+
+
+def _outside_map(stack: LayerStack, clamp, max_cells: int = 1 << 20, map_fn=None):
+    """Map (float32, NaN off-mask) of cells beyond a model's calibration range: 1 where
+    the mapped prediction was clamped (or extrapolated, with clamping off), else 0."""
+    import functools
+
+    grid = stack.grid
+    out = np.full(grid.shape, np.nan, dtype=np.float32)
+    run = map_fn if map_fn is not None and stack.streamed else map
+    bands = _row_bands(stack, max_cells)
+    task = functools.partial(_outside_rows, stack, clamp, max_cells=max_cells)
+    for (r0, r1), values in zip(bands, run(task, bands)):
+        out[r0:r1][grid.mask[r0:r1]] = values
     return out
 
 
@@ -1092,6 +1118,10 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
             np.maximum(agreement, a, out=agreement)
         agreement[~grid.mask] = np.nan
     clade_mess, _ = _clade_mess(intake, taxa, map_fn)
+    clamped = None
+    for t in taxa.values():
+        if getattr(t, "clamped", None) is not None:
+            clamped = t.clamped.copy() if clamped is None else np.fmax(clamped, t.clamped)
     progress.step("patches, known ranges and cost distance")
     cand = find_candidates(
         grid,
@@ -1106,6 +1136,7 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
         resistance=s.isolation.resistance,
         agreement=agreement,
         novelty=clade_mess,
+        clamped=clamped,
         elevation=intake.elevation,
         memory_mb=s.compute.memory_mb or None,
     )

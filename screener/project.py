@@ -69,6 +69,7 @@ SCHEMA: dict = {
     },
     "models": {
         "families": (list, ["ellipsoid", "envelope"], "Model families to fit and combine."),
+        "clamp": (bool, True, "Map with predictors clamped to each model's calibration range (records and background); false lets models extrapolate. Either way candidates.csv gives each site's clamped_share."),
         "ellipsoid": (dict, {}, "Parameters of the ellipsoid (Mahalanobis) family."),
         "ppm": (dict, {}, "Parameters of the Poisson point-process family (terms, l1_penalty, ...)."),
         "envelope": (dict, {}, "Parameters of the environmental-envelope family."),

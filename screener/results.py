@@ -108,6 +108,10 @@ class TaxonResult:
         Share of families that call a cell suitable at their own threshold.
     mess : ndarray or None
         Multivariate environmental similarity surface; < 0 is novel environment.
+    clamped : ndarray of float32 or None
+        1 where a predictor lies outside the taxon's calibration range (records and
+        background), so its mapped suitability was clamped (or extrapolated with
+        ``[models] clamp = false``); 0 inside; NaN off the mask.
     most_dissimilar : ndarray of int16 or None
         Index of the layer that is most dissimilar at each cell (-1 outside mask).
     thresholds : dict of str to Threshold
@@ -136,6 +140,7 @@ class TaxonResult:
     family_maps: dict = field(default_factory=dict)
     agreement: np.ndarray | None = None
     mess: np.ndarray | None = None
+    clamped: np.ndarray | None = None
     most_dissimilar: np.ndarray | None = None
     thresholds: dict = field(default_factory=dict)
     accessible: np.ndarray | None = None

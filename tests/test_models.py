@@ -350,3 +350,28 @@ def test_chi2_upper_tail_equals_scipy(df):
     ok = ~np.isnan(want)
     assert_allclose(got[ok], want[ok], rtol=1e-12, atol=1e-300)
     assert got[0] == 1.0 and got[-2] == 0.0
+
+
+def test_clamped_model_scores_beyond_the_range_as_at_its_edge():
+    # Clamping (Elith, Kearney & Phillips 2010): a predictor beyond the calibration
+    # range is set to the range's edge before predicting.  A linear-trend model would
+    # keep rising outside the data; clamped, it stays at the edge value.
+    from screener.models import make_model
+    from screener.models.base import ClampedModel
+
+    rng = np.random.default_rng(0)
+    pres = rng.normal([1.0, 0.0], 0.3, size=(30, 2))
+    bg = rng.normal(0.0, 1.0, size=(300, 2))
+    model = make_model("ellipsoid").fit(pres, bg)
+    clamped = ClampedModel.from_rows(model, pres, bg)
+    lo = np.vstack([pres, bg]).min(axis=0)
+    hi = np.vstack([pres, bg]).max(axis=0)
+    assert_allclose(clamped.low, lo) and assert_allclose(clamped.high, hi)
+    far = np.array([[hi[0] + 5.0, 0.0], [lo[0] - 3.0, hi[1] + 9.0], [0.5, 0.1]])
+    edge = np.clip(far, lo, hi)
+    assert_allclose(clamped.predict(far), model.predict(edge), rtol=1e-12)
+    assert clamped.outside(far).tolist() == [True, True, False]
+    # inside the range nothing changes
+    inside = bg[:50]
+    assert_allclose(clamped.predict(inside), model.predict(inside), rtol=1e-12)
+    assert clamped.accepts_invalid_rows == model.accepts_invalid_rows

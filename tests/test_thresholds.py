@@ -69,3 +69,29 @@ def test_threshold_errors():
         compute_thresholds([0.2, np.nan], np.zeros(3), 1.0)
     with pytest.raises(InputError, match="relax"):
         compute_thresholds([0.2], np.zeros(3), 1.0, relax=1.5)
+
+
+def test_maxsss_equals_mtp_exactly_when_background_between_records_is_scarce():
+    # Why max-SSS often equals the minimum training presence (MTP) with few records:
+    # raising t past the k-th lowest record score costs k/n sensitivity and gains only
+    # the background share between the lowest record and there.  By the definition
+    # (Liu et al. 2013), max-SSS = MTP when F_bg(s_(k+1)) - F_bg(s_(1)) <= k/n for all
+    # k, F_bg the background's empirical distribution (checked against a brute-force
+    # search over every candidate threshold).
+    rng = np.random.default_rng(4)
+    hits = misses = 0
+    for _ in range(200):
+        n = int(rng.integers(5, 30))
+        pres = rng.beta(rng.uniform(1, 8), 1.5, size=n)
+        bg = rng.beta(1.0, rng.uniform(1, 8), size=int(rng.integers(50, 400)))
+        s = np.sort(pres)
+        f = np.searchsorted(np.sort(bg), s, side="left") / bg.size
+        condition = all(f[k] - f[0] <= k / n + 1e-12 for k in range(1, n))
+        t = max_sss_threshold(pres, bg)
+        cand = np.unique(np.r_[pres, bg])
+        total = [np.mean(pres >= c) + np.mean(bg < c) for c in cand]
+        assert np.mean(pres >= t) + np.mean(bg < t) == pytest.approx(max(total))
+        assert (t == s[0]) == condition
+        hits += condition
+        misses += not condition
+    assert hits > 20 and misses > 20  # both cases occur in the draw

@@ -152,6 +152,53 @@ class NicheModel(BaseEstimator):
         return presence, background
 
 
+class ClampedModel:
+    """A fitted model whose predictors are clamped to its calibration range.
+
+    ``predict(X)`` is the wrapped model's prediction at ``clip(X, low, high)``: a cell
+    beyond the range of the rows the model was fitted on is scored as if at the edge
+    of that range, so terms that grow without bound (linear, hinge) cannot carry
+    suitability to 1 far outside the data.  Family-independent; the grid mapping uses
+    it for every family when ``[models] clamp`` is on.
+
+    Parameters
+    ----------
+    model : fitted niche model
+    low, high : array_like of shape (p,)
+        Per-predictor calibration range (minimum and maximum over the presence and
+        background rows the model was fitted on).
+
+    References
+    ----------
+    .. [1] Elith, J., Kearney, M. & Phillips, S. (2010). The art of modelling
+       range-shifting species. Methods in Ecology and Evolution 1, 330-342
+       (clamping and MESS as the two guards against extrapolation).
+    """
+
+    def __init__(self, model, low, high):
+        self.model = model
+        self.low = np.asarray(low, dtype=np.float64)
+        self.high = np.asarray(high, dtype=np.float64)
+        self.accepts_invalid_rows = getattr(model, "accepts_invalid_rows", False)
+
+    @classmethod
+    def from_rows(cls, model, *rows):
+        """Clamp to the range of the given row sets (e.g. presence and background)."""
+        stacked = np.vstack([np.asarray(r, dtype=np.float64) for r in rows])
+        return cls(model, np.nanmin(stacked, axis=0), np.nanmax(stacked, axis=0))
+
+    def outside(self, X) -> np.ndarray:
+        """True for rows with any predictor outside the calibration range."""
+        X = np.asarray(X)
+        return np.any((X < self.low) | (X > self.high), axis=1)
+
+    def predict(self, X, **kwargs) -> np.ndarray:
+        X = np.asarray(X)
+        lo = self.low.astype(X.dtype, copy=False)
+        hi = self.high.astype(X.dtype, copy=False)
+        return self.model.predict(np.clip(X, lo, hi), **kwargs)
+
+
 def training_presence_scores(model, presence) -> np.ndarray:
     """Scores of a fitted model at its own training records, fit for thresholds.
 
