@@ -321,8 +321,18 @@ class _FitTask:
     study_area_weights: np.ndarray | None = None
 
 
+#: Family name under which :func:`evaluate_family` evaluates the consensus of several
+#: families (parameters: ``families`` and ``weights`` of
+#: :class:`screener.models.ensemble.ConsensusModel`).
+CONSENSUS = "consensus"
+
+
 def _make(family, params, seed):
     params = dict(params or {})
+    if family == CONSENSUS:
+        from screener.models.ensemble import ConsensusModel
+
+        return ConsensusModel(random_state=int(seed), **params)
     if accepts_random_state(family):
         params["random_state"] = int(seed)
     return make_model(family, **params)
@@ -726,6 +736,8 @@ class FamilyEvaluation:
         MTP of the model fitted to all records (out-of-bag for the forest).
     n_folds : int
         Folds that had test records.
+    note : str
+        Why a metric is empty, when one is.
     """
 
     family: str
@@ -742,6 +754,7 @@ class FamilyEvaluation:
     jackknife_p: float | None = None
     threshold_mtp: float = math.nan
     n_folds: int = 0
+    note: str = ""
     extra: dict = field(default_factory=dict, repr=False)
 
     def as_row(self) -> dict:
@@ -764,6 +777,7 @@ class FamilyEvaluation:
             "jackknife_successes",
             "jackknife_p",
             "n_folds",
+            "note",
         ]
         return {k: row[k] for k in order}
 
@@ -879,6 +893,10 @@ def evaluate_family(
         ev.jackknife_successes = jk.successes
         ev.jackknife_p = jk.p_value
         ev.n_folds = n
+        ev.note = (
+            "Boyce and TSS left empty: the jackknife holds out one record per model, "
+            "and both need several held-out records scored by the same model."
+        )
         ev.extra["jackknife"] = jk
     else:
         method, pg, bgg = _partition(

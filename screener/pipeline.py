@@ -812,15 +812,28 @@ def model_taxon(
         row.update(_threshold_columns(th))
         row["ensemble_weight"] = weights[family]
         rows.append(row)
+    from screener.evaluation import CONSENSUS
     from screener.evaluation import auc as auc_fn
 
-    ens = {
-        "taxon": taxon,
-        "algorithm": "ensemble",
-        "n_records": rec.n,
-        "method": "training",
-        "auc_train": auc_fn(c_rec, c_bg),
-    }
+    # the consensus map is evaluated like a family: same jackknife or spatial blocks,
+    # same pattern-keeping null model, the families refitted with the weights fixed
+    ens = {"taxon": taxon, "algorithm": "ensemble", "n_records": rec.n}
+    if len(family_maps) > 1:
+        ev_c = evaluate_family(
+            CONSENSUS,
+            {"families": {f: _family_params(s, f) for f in family_maps},
+             "weights": weights},
+            P, B, presence_xy=rec_xy, background_xy=bg_xy, study_area=B,
+            study_area_xy=bg_xy, jackknife_below=s.evaluation.jackknife_below,
+            n_null=s.evaluation.n_null, random_state=seed, map_fn=map_fn,
+        )
+        ens.update({k: v for k, v in ev_c.as_row().items()
+                    if k not in ("algorithm", "n_records")})
+    else:
+        ens.update({k: v for k, v in evaluations[next(iter(evaluations))].as_row().items()
+                    if k not in ("algorithm", "n_records")})
+    # the training AUC and thresholds of the mapped consensus (weights of the maps)
+    ens["auc_train"] = auc_fn(c_rec, c_bg)
     ens.update(_threshold_columns(c_th))
     ens["ensemble_weight"] = 1.0
     rows.append(ens)

@@ -304,3 +304,28 @@ def test_pattern_draws_keep_distances_between_records():
         assert np.all(np.abs(d - d0) <= 4.0 + 1e-9)
         assert np.mean(np.abs(d - d0)) <= 1.0
     assert len({tuple(idx) for idx in draws}) > 10
+
+
+def test_consensus_is_evaluated_like_a_family():
+    # The consensus map is the weighted mean of the families (Araujo & New 2007); as
+    # a model it must predict exactly that mean, and get the same evaluation columns
+    # (jackknife p below 25 records, null-model p) as any family.
+    from screener.models import make_model
+    from screener.models.ensemble import ConsensusModel
+
+    rng = np.random.default_rng(8)
+    bg = rng.normal(size=(300, 2))
+    pres = rng.normal([1.0, 0.5], 0.4, size=(12, 2))
+    weights = {"ellipsoid": 0.7, "envelope": 0.3}
+    cm = ConsensusModel({"ellipsoid": {}, "envelope": {}}, weights).fit(pres, bg)
+    want = 0.7 * make_model("ellipsoid").fit(pres, bg).predict(bg) + 0.3 * make_model(
+        "envelope").fit(pres, bg).predict(bg)
+    assert_allclose(cm.predict(bg), want, rtol=1e-12)
+    ev = evaluate_family(
+        "consensus", {"families": {"ellipsoid": {}, "envelope": {}}, "weights": weights},
+        pres, bg, n_null=9, random_state=1,
+    )
+    row = ev.as_row()
+    assert row["method"] == "jackknife" and 0 < row["jackknife_p"] <= 1
+    assert 0 < row["auc_null_p"] <= 1 and 0.5 < row["auc"] <= 1
+    assert "Boyce" in row["note"]  # says why Boyce and TSS are empty

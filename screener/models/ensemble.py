@@ -6,10 +6,11 @@ import math
 from collections.abc import Mapping
 
 import numpy as np
+from sklearn.base import BaseEstimator
 
 from screener.errors import InputError
 
-__all__ = ["ensemble_weights", "weighted_mean_map", "agreement_map"]
+__all__ = ["ensemble_weights", "weighted_mean_map", "agreement_map", "ConsensusModel"]
 
 
 def ensemble_weights(
@@ -129,3 +130,71 @@ def agreement_map(
     out = count / np.float32(len(names))
     out[nan] = np.nan
     return out
+
+
+class ConsensusModel(BaseEstimator):
+    """The weighted mean of several families as one model, so it can be evaluated
+    (jackknife, spatial blocks, null model) exactly like a single family.
+
+    ``fit`` fits every family with a positive weight to the same records and
+    background; ``predict`` is the weighted mean of their predictions, the same
+    combination :func:`weighted_mean_map` makes of the mapped families.  The weights
+    are held fixed (they come from the families' own evaluation on the same records,
+    which makes the consensus's evaluation slightly optimistic).
+
+    Parameters
+    ----------
+    families : mapping of str to dict
+        Family name -> its parameters.
+    weights : mapping of str to float
+        Family -> weight (normalised; families at 0 are not fitted).
+    random_state : int, default 0
+        Seed passed to the families that take one.
+
+    Attributes
+    ----------
+    models_ : dict of str to fitted model
+    oob_presence_ : ndarray
+        Weighted mean of the families' own training-record scores (out-of-bag for
+        the forest), used for thresholds and the training AUC.
+    """
+
+    accepts_invalid_rows = False
+
+    def __init__(self, families=None, weights=None, random_state=0):
+        self.families = families
+        self.weights = weights
+        self.random_state = random_state
+
+    def _normalised(self) -> dict:
+        w = {f: float((self.weights or {}).get(f, 0.0)) for f in (self.families or {})}
+        total = sum(v for v in w.values() if v > 0)
+        if not total > 0:
+            raise InputError("Consensus weights must have a positive sum.")
+        return {f: v / total for f, v in w.items() if v > 0}
+
+    def fit(self, presence, background):
+        from screener.models import accepts_random_state, make_model
+        from screener.models.base import training_presence_scores
+
+        self.weights_ = self._normalised()
+        self.models_ = {}
+        scores = 0.0
+        for family, w in self.weights_.items():
+            params = dict(self.families[family] or {})
+            if accepts_random_state(family):
+                params["random_state"] = int(self.random_state)
+            model = make_model(family, **params).fit(presence, background)
+            self.models_[family] = model
+            scores = scores + w * np.asarray(
+                training_presence_scores(model, presence), float)
+        self.oob_presence_ = np.asarray(scores, float)
+        return self
+
+    def predict(self, X, **kwargs) -> np.ndarray:
+        out = None
+        for family, w in self.weights_.items():
+            p = w * np.asarray(self.models_[family].predict(X, **kwargs), np.float64)
+            out = p if out is None else out + p
+        dtype = kwargs.get("dtype", np.float64)
+        return out.astype(dtype, copy=False)
