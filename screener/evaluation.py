@@ -857,7 +857,8 @@ def evaluate_family(
     full_seed, jk_seed, part_seed, fold_seed, null_seed = _seeds(rng, 5)
 
     fit_kw = {}
-    if presence_xy is not None and background_xy is not None and accepts_groups(family):
+    takes_groups = family == CONSENSUS or accepts_groups(family)
+    if presence_xy is not None and background_xy is not None and takes_groups:
         # Families that choose their own complexity by held-out blocks (ppm) get the
         # records' spatial blocks for the mapped model.
         fit_kw["groups"] = block_partition(presence_xy, background_xy)[0]

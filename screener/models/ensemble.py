@@ -173,8 +173,10 @@ class ConsensusModel(BaseEstimator):
             raise InputError("Consensus weights must have a positive sum.")
         return {f: v / total for f, v in w.items() if v > 0}
 
-    def fit(self, presence, background):
-        from screener.models import accepts_random_state, make_model
+    def fit(self, presence, background, groups=None):
+        """Fit every weighted family; ``groups`` (block labels of the records) go to
+        the families whose ``fit`` takes them."""
+        from screener.models import accepts_groups, accepts_random_state, make_model
         from screener.models.base import training_presence_scores
 
         self.weights_ = self._normalised()
@@ -184,7 +186,8 @@ class ConsensusModel(BaseEstimator):
             params = dict(self.families[family] or {})
             if accepts_random_state(family):
                 params["random_state"] = int(self.random_state)
-            model = make_model(family, **params).fit(presence, background)
+            kw = {"groups": groups} if groups is not None and accepts_groups(family) else {}
+            model = make_model(family, **params).fit(presence, background, **kw)
             self.models_[family] = model
             scores = scores + w * np.asarray(
                 training_presence_scores(model, presence), float)
