@@ -16,6 +16,10 @@ import os
 import sys
 import time
 from concurrent.futures import ProcessPoolExecutor
+
+# one BLAS thread per worker: two workers share two cores
+for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
@@ -30,8 +34,6 @@ GRID_CELLS = 24
 #: (scenario, record process, environment shape, pairs, what it measures)
 PLAN = [
     ("equivalency-null", "dispersed", "skewed", 200, "null"),
-    ("equivalency-null", "dispersed", "symmetric", 200, "null"),
-    ("equivalency-null", "clustered", "skewed", 200, "null"),
     ("equivalency-null", "clustered", "symmetric", 200, "null"),
     ("similarity-null", "dispersed", "skewed", 200, "null"),
     ("similarity-null", "clustered", "symmetric", 200, "null"),
