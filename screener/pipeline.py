@@ -777,7 +777,7 @@ def model_taxon(
         family_maps[family] = m
         for sl in intake.slices:  # the same fitted model on each time slice
             slice_maps.setdefault(sl.name, {})[family] = predict_map(
-                model, sl.stack, map_fn=map_fn)
+                mapped, sl.stack, map_fn=map_fn)  # clamped like the main map
         evaluations[family] = ev
         # held at the records' medians, so each curve crosses the niche
         curves[family] = response_curves(model, B, names=stack.names,
