@@ -94,3 +94,22 @@ def test_shareable_result():
     sens = make_run()
     out = shareable_result(sens)
     assert out is not sens and not has_full_precision_sensitive(out)
+
+
+def test_generalised_sites_carry_no_exact_grid_cell():
+    # The row/col of a site's best cell locate it as precisely as its coordinates, so a
+    # shared table must give the cell of the generalised point instead.
+    run = make_run()
+    rows, cols, inside = run.grid.rowcol(run.sites.x.to_numpy(), run.sites.y.to_numpy())
+    assert inside.all()
+    sites = run.sites.copy()
+    sites["row"], sites["col"] = rows, cols
+    run.sites = sites
+    out = generalised_result(run, sites=True)
+    g_rows, g_cols, g_inside = run.grid.rowcol(out.sites.x.to_numpy(), out.sites.y.to_numpy())
+    on = g_inside
+    np.testing.assert_array_equal(out.sites["row"].to_numpy()[on], g_rows[on])
+    np.testing.assert_array_equal(out.sites["col"].to_numpy()[on], g_cols[on])
+    assert ((out.sites["row"] >= 0) & (out.sites["row"] < run.grid.n_rows)).all()
+    assert ((out.sites["col"] >= 0) & (out.sites["col"] < run.grid.n_cols)).all()
+    assert run.sites["row"].tolist() == rows.tolist()  # the input is left unchanged

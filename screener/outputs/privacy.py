@@ -306,6 +306,14 @@ def _generalise_sites(sites, grid, g):
     x, y = grid.from_lonlat(lon_g, lat_g)
     out["x"] = np.asarray(x, float)
     out["y"] = np.asarray(y, float)
+    if "row" in out and "col" in out:
+        # the grid cell locates a site as precisely as its coordinates: it moves to
+        # the grid cell nearest the generalised point
+        t = grid.transform
+        rows = np.floor((out["y"].to_numpy() - t.f) / t.e)
+        cols = np.floor((out["x"].to_numpy() - t.c) / t.a)
+        out["row"] = np.clip(np.nan_to_num(rows), 0, grid.n_rows - 1).astype(np.int64)
+        out["col"] = np.clip(np.nan_to_num(cols), 0, grid.n_cols - 1).astype(np.int64)
 
     def _project(coords):
         px, py = grid.from_lonlat(coords[:, 0], coords[:, 1])
