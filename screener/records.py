@@ -30,6 +30,7 @@ __all__ = [
     "parse_records_text",
     "validate_records",
     "parse_coordinate",
+    "close_pairs",
     "thin_by_distance",
     "summarise_drops",
     "drop_summary_lines",
@@ -730,11 +731,97 @@ def _reason_digest(dropped, taxa) -> str:
     return f" Dropped rows of these taxa: {'; '.join(parts)}."
 
 
+#: mean Earth radius (IUGG), km; only used to find candidate pairs, which are then
+#: measured on the WGS84 ellipsoid
+_EARTH_RADIUS_KM = 6371.0088
+
+
+def close_pairs(lon, lat, min_km: float):
+    """Pairs of points closer than ``min_km`` on the WGS84 ellipsoid.
+
+    Candidates come from a ball tree with the haversine metric (scikit-learn) at a
+    radius 1 % above ``min_km`` (the sphere and the ellipsoid differ by at most about
+    0.6 %); each candidate is then measured geodesically (pyproj).
+
+    Parameters
+    ----------
+    lon, lat : ndarray of shape (n,)
+        Degrees.
+    min_km : float
+        Distance, km.
+
+    Returns
+    -------
+    i, j : ndarray of int
+        Each close pair once, ``i < j``.
+
+    Examples
+    --------
+    >>> i, j = close_pairs([0.0, 0.01, 1.0], [0.0, 0.0, 0.0], 5.0)
+    >>> list(zip(i.tolist(), j.tolist()))
+    [(0, 1)]
+    """
+    from sklearn.neighbors import BallTree
+
+    from screener.grid import geodesic_distance_km
+
+    lon = np.asarray(lon, float)
+    lat = np.asarray(lat, float)
+    if lon.size < 2:
+        return np.empty(0, np.int64), np.empty(0, np.int64)
+    tree = BallTree(np.radians(np.column_stack([lat, lon])), metric="haversine")
+    radius = 1.01 * min_km / _EARTH_RADIUS_KM
+    neighbours = tree.query_radius(np.radians(np.column_stack([lat, lon])), r=radius)
+    counts = np.fromiter((len(nb) for nb in neighbours), np.int64, lon.size)
+    i = np.repeat(np.arange(lon.size), counts)
+    j = np.concatenate(neighbours).astype(np.int64) if counts.sum() else i.copy()
+    keep = i < j
+    i, j = i[keep], j[keep]
+    d = geodesic_distance_km(lon[i], lat[i], lon[j], lat[j])
+    close = np.atleast_1d(d) < min_km
+    return i[close], j[close]
+
+
+def _greedy_keep(neighbours, nodes, rank):
+    """One greedy pass over a group: remove the most crowded node (ties to the lowest
+    ``rank``) until no two kept nodes are close.  ``neighbours[v]`` lists the close
+    nodes of ``v`` (group-local indices 0..len(nodes)-1).  Returns a keep mask."""
+    import heapq
+
+    degree = [len(nb) for nb in neighbours]
+    heap = [(-degree[v], rank[v], v) for v in range(len(nodes))]
+    heapq.heapify(heap)
+    alive = [True] * len(nodes)
+    pop, push = heapq.heappop, heapq.heappush
+    while heap:
+        negdeg, r, v = pop(heap)
+        if not alive[v] or -negdeg != degree[v]:
+            continue  # removed already, or a stale entry
+        if negdeg == 0:
+            break  # the most crowded node left has no close neighbour: done
+        alive[v] = False
+        for u in neighbours[v]:
+            if alive[u]:
+                degree[u] -= 1
+                push(heap, (-degree[u], rank[u], u))
+    return np.asarray(alive, dtype=bool)
+
+
+#: greedy passes are spread over a group so that a group of this many records still
+#: gets every pass; larger groups get proportionally fewer (at least one)
+_THIN_PASS_BUDGET = 40_000
+
+
 def thin_by_distance(lon, lat, min_km: float, *, n_repeats: int = 20, random_state=0):
     """Indices of a largest-found subset with no two points closer than ``min_km``.
 
-    Greedy removal repeated over random orders, keeping the largest set found
-    (Aiello-Lammens et al. 2015, Ecography 38:541).  Distances are geodesic (WGS84).
+    Greedy removal of the most crowded point, repeated over random orders for ties,
+    keeping the largest set found (Aiello-Lammens et al. 2015).  Distances are
+    geodesic (WGS84).  Close pairs are found with a spatial index
+    (:func:`close_pairs`), and the greedy passes run on each group of mutually
+    reachable close points separately, keeping each group's best pass: removals in
+    one group never change another, so the result is at least as large as the best
+    whole-set pass, and records with no close neighbour cost nothing.
 
     Parameters
     ----------
@@ -743,6 +830,9 @@ def thin_by_distance(lon, lat, min_km: float, *, n_repeats: int = 20, random_sta
     min_km : float
         Minimum distance between kept records, km.
     n_repeats : int, default 20
+        Greedy passes per group of close points.  A group of more than 2,000 points
+        gets proportionally fewer (at least one), which bounds the time on very
+        large record sets (about 1 s per pass over 1e5 points).
     random_state : int, default 0
 
     Returns
@@ -752,31 +842,47 @@ def thin_by_distance(lon, lat, min_km: float, *, n_repeats: int = 20, random_sta
 
     References
     ----------
-    .. [1] Aiello-Lammens, M. E. et al. (2015). spThin: an R package for spatial
-       thinning of species occurrence records. Ecography 38:541-545.
+    .. [1] Aiello-Lammens, M. E., Boria, R. A., Radosavljevic, A., Vilela, B. &
+       Anderson, R. P. (2015). Ecography 38:541-545.
+
+    Examples
+    --------
+    >>> thin_by_distance([0.0, 0.01, 0.02, 1.0], [0.0, 0.0, 0.0, 0.0], 1.5).tolist()
+    [0, 2, 3]
     """
-    from screener.grid import geodesic_distance_km
+    from scipy.sparse import coo_matrix
+    from scipy.sparse.csgraph import connected_components
 
     lon = np.asarray(lon, float)
     lat = np.asarray(lat, float)
     n = lon.size
     if n < 2:
         return np.arange(n)
-    d = geodesic_distance_km(lon[:, None], lat[:, None], lon[None, :], lat[None, :])
-    close = (d < min_km) & ~np.eye(n, dtype=bool)
+    i, j = close_pairs(lon, lat, min_km)
+    if i.size == 0:
+        return np.arange(n)
+    graph = coo_matrix(
+        (np.ones(2 * i.size, np.int8), (np.r_[i, j], np.r_[j, i])), shape=(n, n)
+    ).tocsr()
+    n_groups, group = connected_components(graph, directed=False)
     rng = np.random.default_rng(random_state)
-    best = None
-    for _ in range(n_repeats):
-        alive = np.ones(n, dtype=bool)
-        order = rng.permutation(n)
-        while True:
-            deg = (close & alive[:, None] & alive[None, :]).sum(axis=1) * alive
-            if deg.max() == 0:
-                break
-            top = deg == deg.max()
-            # among the most-crowded, remove the first in this repeat's random order
-            victim = order[np.isin(order, np.flatnonzero(top))][0]
-            alive[victim] = False
-        if best is None or alive.sum() > best.sum():
-            best = alive
-    return np.flatnonzero(best)
+    keep = np.ones(n, dtype=bool)
+    order = np.argsort(group, kind="stable")
+    bounds = np.searchsorted(group[order], np.arange(n_groups + 1))
+    ptr, nbrs = graph.indptr, graph.indices
+    local = np.empty(n, np.int64)
+    n_repeats = max(1, int(n_repeats))
+    for k in range(n_groups):
+        nodes = order[bounds[k]:bounds[k + 1]]
+        if nodes.size < 2:
+            continue
+        local[nodes] = np.arange(nodes.size)
+        neighbours = [local[nbrs[ptr[v]:ptr[v + 1]]].tolist() for v in nodes]
+        passes = min(n_repeats, max(1, _THIN_PASS_BUDGET // nodes.size))
+        best = None
+        for _ in range(passes):
+            kept = _greedy_keep(neighbours, nodes, rng.permutation(nodes.size).tolist())
+            if best is None or kept.sum() > best.sum():
+                best = kept
+        keep[nodes] = best
+    return np.flatnonzero(keep)

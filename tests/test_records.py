@@ -150,3 +150,59 @@ def test_thinning_keeps_no_close_pair():
     d[np.eye(kept.size, dtype=bool)] = np.inf
     assert d.min() >= 5.0
     assert kept.size >= 3
+
+
+def _brute_force_close(lon, lat, min_km):
+    # pyproj's Geod on every pair: the reference for the spatial-index search
+    from pyproj import Geod
+
+    n = lon.size
+    a, b = np.triu_indices(n, 1)
+    _, _, d = Geod(ellps="WGS84").inv(lon[a], lat[a], lon[b], lat[b])
+    close = d / 1000.0 < min_km
+    return set(zip(a[close].tolist(), b[close].tolist()))
+
+
+@pytest.mark.parametrize("seed, min_km", [(0, 5.0), (1, 20.0), (2, 1.0)])
+def test_close_pairs_equal_every_pair_measured_by_pyproj(seed, min_km):
+    from screener.records import close_pairs
+
+    rng = np.random.default_rng(seed)
+    # high latitudes and the antimeridian, where a planar search would go wrong
+    lon = np.r_[rng.uniform(179.5, 180, 80), rng.uniform(-180, -179.5, 80),
+                rng.uniform(10, 11, 80)]
+    lat = np.r_[rng.uniform(69, 70, 160), rng.uniform(-1, 0, 80)]
+    i, j = close_pairs(lon, lat, min_km)
+    assert set(zip(i.tolist(), j.tolist())) == _brute_force_close(lon, lat, min_km)
+
+
+def _whole_set_greedy(close, n, rng):
+    # the greedy removal over the whole set at once, as published: independent of
+    # the module's grouping and heap
+    alive = np.ones(n, bool)
+    order = rng.permutation(n)
+    while True:
+        deg = (close & alive[:, None] & alive[None, :]).sum(axis=1) * alive
+        if deg.max() == 0:
+            return alive
+        top = np.flatnonzero(deg == deg.max())
+        alive[order[np.isin(order, top)][0]] = False
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2, 3])
+def test_thinning_is_valid_maximal_and_no_smaller_than_whole_set_greedy(seed):
+    rng = np.random.default_rng(seed)
+    lon = np.r_[10 + rng.uniform(0, 0.2, 40), 12 + rng.uniform(0, 0.5, 40)]
+    lat = np.r_[-5 - rng.uniform(0, 0.2, 40), -5 - rng.uniform(0, 0.5, 40)]
+    pairs = _brute_force_close(lon, lat, 4.0)
+    n = lon.size
+    close = np.zeros((n, n), bool)
+    for a, b in pairs:
+        close[a, b] = close[b, a] = True
+    kept = thin_by_distance(lon, lat, 4.0, random_state=seed)
+    k = np.zeros(n, bool)
+    k[kept] = True
+    assert not (close & k[:, None] & k[None, :]).any()  # no close pair kept
+    assert close[~k][:, k].any(axis=1).all()  # every removed record had a kept neighbour
+    best = max(_whole_set_greedy(close, n, np.random.default_rng(s)).sum() for s in range(5))
+    assert kept.size >= best
