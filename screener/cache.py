@@ -1,7 +1,7 @@
 """A content-keyed cache of finished stages, in data formats only, safe to delete.
 
 Keys are SHA-256 digests of everything a stage's result depends on (input hashes,
-settings, seeds, the screener version).  An entry is one ``.npz`` file: the arrays,
+settings, seeds, the screener version and a fingerprint of its source code).  An entry is one ``.npz`` file: the arrays,
 plus a JSON manifest that describes how they fit together (dicts, lists, tables, the
 screener's own result dataclasses).  Entries are read with ``allow_pickle=False`` and
 the manifest can only name dataclasses of the screener and a short list of fitted
@@ -61,9 +61,36 @@ def _normalise(obj):
     return obj
 
 
+_CODE_FINGERPRINT: str | None = None
+
+
+def code_fingerprint() -> str:
+    """SHA-256 of the screener's own source files, computed once per process.
+
+    Part of every cache key, so results cached by one build of the screener are never
+    served by another, even where both carry the same version number (a development
+    install, or a patched copy).
+    """
+    global _CODE_FINGERPRINT
+    if _CODE_FINGERPRINT is None:
+        root = Path(__file__).resolve().parent
+        h = hashlib.sha256()
+        for path in sorted(root.rglob("*.py")):
+            h.update(path.relative_to(root).as_posix().encode())
+            h.update(b"\0")
+            h.update(path.read_bytes())
+            h.update(b"\0")
+        _CODE_FINGERPRINT = h.hexdigest()
+    return _CODE_FINGERPRINT
+
+
 def digest(*parts) -> str:
-    """Stable SHA-256 hex digest of JSON-able parts (arrays hashed by content)."""
-    text = json.dumps([__version__, _normalise(list(parts))], sort_keys=True, default=str)
+    """Stable SHA-256 hex digest of JSON-able parts (arrays hashed by content).
+
+    The key also holds the screener's version and :func:`code_fingerprint`.
+    """
+    text = json.dumps([__version__, code_fingerprint(), _normalise(list(parts))],
+                      sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()
 
 

@@ -94,3 +94,14 @@ def test_stages_do_not_share_keys(tmp_path, stage):
     other = "overlap" if stage == "taxon" else "taxon"
     assert cache.get(other, "same") is None
     assert cache.get(stage, "same") == stage
+
+
+def test_digest_depends_on_the_code_that_computed_the_stage(monkeypatch):
+    # A changed source file with an unchanged version number must not be served
+    # results cached by the old code.
+    import screener.cache as cache_mod
+
+    before = digest("x")
+    assert len(cache_mod.code_fingerprint()) == 64
+    monkeypatch.setattr(cache_mod, "_CODE_FINGERPRINT", "0" * 64)
+    assert digest("x") != before
