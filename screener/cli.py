@@ -13,7 +13,6 @@ from __future__ import annotations
 
 import errno
 import functools
-import json
 import logging
 import sys
 from pathlib import Path

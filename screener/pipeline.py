@@ -1545,10 +1545,12 @@ def run_analysis(
 def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     """Write every output of a run into ``folder`` (which must exist).
 
+    The file names come from :class:`screener.outputs.run_folder.RunFolder`.
     Returns the list of files written (relative to ``folder``).
     """
     from screener.outputs import gpx, report, sheets
     from screener.outputs.rasters import write_raster
+    from screener.outputs.run_folder import RunFolder
     from screener.outputs.tables import (
         CANDIDATE_COLUMNS,
         EVALUATION_COLUMNS,
@@ -1559,40 +1561,35 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     import pandas as pd
 
     progress = progress or Progress(None)
-    folder = Path(folder)
+    run = RunFolder.for_taxa(folder, result.taxa)
     grid = result.grid
     s = result.settings
     written = []
 
     def rel(p):
-        written.append(str(Path(p).relative_to(folder)))
+        written.append(run.relative(p))
 
-    from screener.outputs.names import taxon_file_stems
-
-    stems = taxon_file_stems(result.taxa)
-    for sub in ("suitability", "ranges", "novelty"):
-        (folder / sub).mkdir(exist_ok=True)
+    run.make_subfolders()
     progress.step("rasters")
     for name, t in result.taxa.items():
-        safe = stems[name]
-        rel(write_raster(folder / "suitability" / f"{safe}.tif", t.suitability, grid,
+        rel(write_raster(run.suitability(name), t.suitability, grid,
                          description=f"consensus suitability of {name}"))
         for fam, m in t.family_maps.items():
-            rel(write_raster(folder / "suitability" / f"{safe}.{fam}.tif", m, grid,
+            rel(write_raster(run.suitability(name, fam), m, grid,
                              description=f"{fam} suitability of {name}"))
         if t.agreement is not None:
-            rel(write_raster(folder / "suitability" / f"{safe}.agreement.tif", t.agreement,
+            rel(write_raster(run.agreement(name), t.agreement,
                              grid, description="share of families calling the cell suitable"))
         for key, th in t.thresholds.items():
             if key in ("mtp", "relaxed"):
                 binary = np.where(grid.mask, t.suitability >= th.value, False)
-                rel(write_raster(folder / "ranges" / f"{safe}.{key}.tif", binary, grid,
+                rel(write_raster(run.range_map(name, key), binary, grid,
                                  description=f"suitable at {key} = {th.value:.4f}"))
         if t.mess is not None:
-            rel(write_raster(folder / "novelty" / f"{safe}.mess.tif", t.mess, grid,
+            rel(write_raster(run.mess(name), t.mess, grid,
                              description="MESS; < 0 = novel environment"))
         if t.most_dissimilar is not None:
-            rel(write_raster(folder / "novelty" / f"{safe}.most_dissimilar.tif",
+            rel(write_raster(run.most_dissimilar(name),
                              t.most_dissimilar.astype(np.int32), grid,
                              description="index of the most dissimilar layer: "
                              + ", ".join(f"{i}={n}" for i, n in enumerate(result.layer_names))))
@@ -1602,25 +1599,25 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
         for p in write_slice_rasters(result, folder):
             rel(p)
     if result.barrier is not None:
-        rel(write_raster(folder / "barrier.tif", result.barrier, grid,
+        rel(write_raster(run.barrier_tif, result.barrier, grid,
                          description="depth of unsuitable gaps between sister ranges"))
     if result.access_hours is not None:
         ah = np.where(np.isfinite(result.access_hours), result.access_hours, np.nan)
-        rel(write_raster(folder / "access_hours.tif", ah, grid,
+        rel(write_raster(run.access_hours_tif, ah, grid,
                          description="walking hours from the nearest start point"))
     progress.step("tables")
     ev = pd.DataFrame([r for t in result.taxa.values() for r in t.evaluation])
-    rel(write_csv(folder / "evaluation.csv", ev, EVALUATION_COLUMNS))
-    rel(write_csv(folder / "overlap.csv", result.overlap, OVERLAP_COLUMNS))
+    rel(write_csv(run.evaluation_csv, ev, EVALUATION_COLUMNS))
+    rel(write_csv(run.overlap_csv, result.overlap, OVERLAP_COLUMNS))
     if len(result.taxa) > 2 and result.comparisons:
         from screener.overlap import pairwise_table
 
         pw = pairwise_table(result.comparisons)
         from screener.outputs.tables import neutralise_frame
 
-        neutralise_frame(pw).to_csv(folder / "overlap_pairwise.csv", float_format="%.10g",
+        neutralise_frame(pw).to_csv(run.overlap_pairwise_csv, float_format="%.10g",
                                     lineterminator="\n")
-        rel(folder / "overlap_pairwise.csv")
+        rel(run.overlap_pairwise_csv)
     from screener.outputs.privacy import shareable_result
 
     so = s.get("outputs", {})
@@ -1636,10 +1633,10 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
           "reason": d.reason} for d in shareable.dropped],
         columns=["line", "occurrence_id", "taxon", "reason"],
     )
-    rel(write_csv(folder / "dropped_records.csv", dropped))
+    rel(write_csv(run.dropped_records_csv, dropped))
     sites = shareable.sites
-    rel(write_csv(folder / "candidates.csv", sites, CANDIDATE_COLUMNS))
-    gpkg = folder / "candidates.gpkg"
+    rel(write_csv(run.candidates_csv, sites, CANDIDATE_COLUMNS))
+    gpkg = run.candidates_gpkg
     if len(sites):
         _casefold_unique_columns(sites).to_file(gpkg, layer="sites", driver="GPKG")
     else:
@@ -1655,30 +1652,30 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     # routes end at the exact site points: left out when sites are generalised
     exact_sites = not so.get("generalise_sites", False)
     rel(gpx.write_gpx(
-        folder / "sites.gpx", sites,
+        run.sites_gpx, sites,
         sheets.site_sampling_points(shareable, top_n=so.get("field_sheets", 10)),
         start_points=result.start_points,
         routes=result.routes if exact_sites else None,
     ))
     rel(sheets.write_field_sheets(
-        folder / "field_sheets.pdf", shareable, top_n=so.get("field_sheets", 10),
+        run.field_sheets_pdf, shareable, top_n=so.get("field_sheets", 10),
         page_size=so.get("page_size", "A4"),
     ))
     html = report.render_report(shareable)
-    (folder / "report.html").write_text(html, encoding="utf-8")
-    rel(folder / "report.html")
+    run.report_html.write_text(html, encoding="utf-8")
+    rel(run.report_html)
     from screener.outputs.mappage import render_map_page
 
     page = shareable if exact_sites else _without_routes(shareable)
-    (folder / "map.html").write_text(render_map_page(page), encoding="utf-8")
-    rel(folder / "map.html")
+    run.map_html.write_text(render_map_page(page), encoding="utf-8")
+    rel(run.map_html)
     prov = dict(result.provenance)
-    prov["taxa"] = stems
-    prov["outputs"] = sorted(written + ["run.json"])
+    prov["taxa"] = dict(run.stems)
+    prov["outputs"] = sorted(written + [run.relative(run.run_json)])
     prov.update(input_locations(prov, folder))
-    (folder / "run.json").write_text(json.dumps(_jsonable(prov), indent=2, sort_keys=True)
-                                     + "\n", encoding="utf-8")
-    return sorted(written + ["run.json"])
+    run.run_json.write_text(json.dumps(_jsonable(prov), indent=2, sort_keys=True)
+                            + "\n", encoding="utf-8")
+    return prov["outputs"]
 
 
 def _casefold_unique_columns(frame):

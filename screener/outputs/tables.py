@@ -7,6 +7,8 @@ from pathlib import Path
 
 import numpy as np
 
+from screener.overlap import OVERLAP_COLUMNS as _OVERLAP_STAGE_COLUMNS
+
 __all__ = ["write_csv", "neutralise_cell", "neutralise_frame", "EVALUATION_COLUMNS",
            "OVERLAP_COLUMNS", "CANDIDATE_COLUMNS"]
 
@@ -44,11 +46,9 @@ def neutralise_frame(df):
 
 #: Leading columns of evaluation.csv (output contract); more follow.
 EVALUATION_COLUMNS = ["taxon", "algorithm", "n_records", "auc", "threshold_mtp", "omission_mtp"]
-#: Leading columns of overlap.csv (output contract).
-OVERLAP_COLUMNS = [
-    "taxon_a", "taxon_b", "space", "D", "I", "equivalency_p", "similarity_p_ab",
-    "similarity_p_ba",
-]
+#: Columns of overlap.csv (output contract): the overlap stage's one list, so a run
+#: with one taxon (no pairs, no rows) writes the same header as a run with pairs.
+OVERLAP_COLUMNS = list(_OVERLAP_STAGE_COLUMNS)
 #: Leading columns of candidates.csv (output contract).
 CANDIDATE_COLUMNS = [
     "rank", "site_id", "kind", "longitude", "latitude", "x", "y", "area_km2",

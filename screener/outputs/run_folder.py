@@ -1,0 +1,199 @@
+"""The layout of a run's output folder: every path, and every file name made from a taxon.
+
+One object, :class:`RunFolder`, names the files a run writes and that ``debrief`` and
+``reproduce`` read back, so the layout is written down once.  A taxon's files are
+named by its *file stem* (:func:`screener.outputs.names.taxon_file_stems`: unique
+and length-limited); the stems a run used are recorded
+in ``run.json`` under ``taxa``, and a folder read back uses the recorded stems, so a
+later change of the naming rule does not break older run folders.
+
+Examples
+--------
+>>> folder = RunFolder.for_taxa("results", ["Nebrivex tarvelli"])
+>>> folder.suitability("Nebrivex tarvelli").as_posix()
+'results/suitability/Nebrivex_tarvelli.tif'
+>>> folder.range_map("Nebrivex tarvelli", "mtp").as_posix()
+'results/ranges/Nebrivex_tarvelli.mtp.tif'
+>>> folder.relative(folder.candidates_gpkg)
+'candidates.gpkg'
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from screener.errors import InputError
+from screener.outputs.names import taxon_file_stem, taxon_file_stems
+
+__all__ = ["RunFolder", "taxon_file_stem", "taxon_file_stems", "read_provenance", "SUBFOLDERS"]
+
+#: sub-folders of a run folder: consensus and family maps, binary ranges, MESS maps
+SUBFOLDERS = ("suitability", "ranges", "novelty")
+
+
+@dataclass(frozen=True)
+class RunFolder:
+    """Paths of one run's outputs under ``root``.
+
+    Parameters
+    ----------
+    root : Path
+        The run's output folder (or the staging folder standing in for it).
+    stems : dict of str to str
+        File stem of each taxon (taxon -> stem).
+    """
+
+    root: Path
+    stems: dict = field(default_factory=dict)
+
+    @classmethod
+    def for_taxa(cls, root, taxa) -> RunFolder:
+        """The folder a run over ``taxa`` writes (stems from :func:`taxon_file_stems`)."""
+        return cls(Path(root), taxon_file_stems(taxa))
+
+    @classmethod
+    def read(cls, root) -> tuple:
+        """A finished run folder and its provenance (the parsed ``run.json``).
+
+        Returns
+        -------
+        folder : RunFolder
+            With the taxon stems recorded in ``run.json``.
+        provenance : dict
+
+        Raises
+        ------
+        screener.errors.InputError
+            ``root`` holds no ``run.json`` or it lists no taxa.
+        """
+        root = Path(root)
+        provenance = read_provenance(root / "run.json", what=f"{root} holds no run.json; "
+                                     "give the output folder of a `screener run`.")
+        taxa = provenance.get("taxa") or {}
+        if not taxa:
+            raise InputError(
+                f"{root / 'run.json'} lists no taxa; was the run finished with this "
+                "version?"
+            )
+        return cls(root, dict(taxa)), provenance
+
+    # ------------------------------------------------------------- one file per run
+    @property
+    def run_json(self) -> Path:
+        """Provenance: settings, input hashes, seeds, versions, timings, outputs."""
+        return self.root / "run.json"
+
+    @property
+    def evaluation_csv(self) -> Path:
+        return self.root / "evaluation.csv"
+
+    @property
+    def overlap_csv(self) -> Path:
+        return self.root / "overlap.csv"
+
+    @property
+    def overlap_pairwise_csv(self) -> Path:
+        return self.root / "overlap_pairwise.csv"
+
+    @property
+    def dropped_records_csv(self) -> Path:
+        return self.root / "dropped_records.csv"
+
+    @property
+    def candidates_csv(self) -> Path:
+        return self.root / "candidates.csv"
+
+    @property
+    def candidates_gpkg(self) -> Path:
+        """Candidate sites (layer ``sites``) and least-cost paths."""
+        return self.root / "candidates.gpkg"
+
+    @property
+    def sites_gpx(self) -> Path:
+        return self.root / "sites.gpx"
+
+    @property
+    def field_sheets_pdf(self) -> Path:
+        return self.root / "field_sheets.pdf"
+
+    @property
+    def report_html(self) -> Path:
+        return self.root / "report.html"
+
+    @property
+    def map_html(self) -> Path:
+        """The offline interactive map page."""
+        return self.root / "map.html"
+
+    @property
+    def barrier_tif(self) -> Path:
+        return self.root / "barrier.tif"
+
+    @property
+    def access_hours_tif(self) -> Path:
+        return self.root / "access_hours.tif"
+
+    # ------------------------------------------------------------- files per taxon
+    def stem(self, taxon: str) -> str:
+        """File stem of ``taxon``.
+
+        Raises
+        ------
+        screener.errors.InputError
+            The run has no such taxon.
+        """
+        try:
+            return self.stems[taxon]
+        except KeyError:
+            raise InputError(
+                f"The run in {self.root} has no taxon {taxon!r}; it has "
+                f"{', '.join(self.stems) or 'none'}."
+            ) from None
+
+    def suitability(self, taxon: str, family: str | None = None) -> Path:
+        """Consensus suitability of ``taxon``, or one family's map when ``family`` is given."""
+        name = self.stem(taxon) + (f".{family}" if family else "")
+        return self.root / "suitability" / f"{name}.tif"
+
+    def agreement(self, taxon: str) -> Path:
+        """Share of families calling a cell suitable."""
+        return self.root / "suitability" / f"{self.stem(taxon)}.agreement.tif"
+
+    def range_map(self, taxon: str, threshold: str) -> Path:
+        """Binary range of ``taxon`` at the named threshold (e.g. "mtp")."""
+        return self.root / "ranges" / f"{self.stem(taxon)}.{threshold}.tif"
+
+    def mess(self, taxon: str) -> Path:
+        return self.root / "novelty" / f"{self.stem(taxon)}.mess.tif"
+
+    def most_dissimilar(self, taxon: str) -> Path:
+        return self.root / "novelty" / f"{self.stem(taxon)}.most_dissimilar.tif"
+
+    # ------------------------------------------------------------- helpers
+    def make_subfolders(self) -> None:
+        """Create the sub-folders (the root must exist)."""
+        for sub in SUBFOLDERS:
+            (self.root / sub).mkdir(exist_ok=True)
+
+    def relative(self, path) -> str:
+        """``path`` relative to the root, with forward slashes (as run.json lists it)."""
+        return Path(path).relative_to(self.root).as_posix()
+
+
+def read_provenance(path, *, what: str | None = None) -> dict:
+    """The parsed ``run.json`` at ``path``.
+
+    Raises
+    ------
+    screener.errors.InputError
+        The file is missing or is not JSON.
+    """
+    path = Path(path)
+    if not path.exists():
+        raise InputError(what or f"{path} does not exist; give the run.json of a run.")
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except ValueError as exc:
+        raise InputError(f"{path} is not a readable run.json ({exc}).") from None
