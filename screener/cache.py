@@ -340,5 +340,8 @@ class StageCache:
             tmp.write_bytes(buf.getvalue())
             os.replace(tmp, p)
         except OSError as exc:
-            tmp.unlink(missing_ok=True)
+            try:
+                tmp.unlink(missing_ok=True)
+            except OSError:  # e.g. the folder is a file: nothing was written
+                pass
             log.warning("could not write the cache (%s); continuing without it", exc)

@@ -64,17 +64,26 @@ def test_round_trip_counts_hits_and_misses(tmp_path):
     assert cache.misses == ["taxon"] and cache.hits == ["taxon"]
     # the write went through a temporary file that was renamed into place
     files = [p.name for p in (tmp_path / "c" / "taxon").iterdir()]
-    assert files == [f"{key}.pickle"]
+    assert files == [f"{key}.npz"]
 
 
-def test_damaged_entry_is_a_miss_not_a_crash(tmp_path, caplog):
+def test_damaged_entry_is_a_miss_not_a_crash(tmp_path):
     cache = StageCache(tmp_path)
     cache.put("overlap", "k", [1, 2, 3])
-    (tmp_path / "overlap" / "k.pickle").write_bytes(b"not a pickle")
-    with caplog.at_level(logging.WARNING, logger="screener.cache"):
-        assert cache.get("overlap", "k") is None
-    assert "unreadable" in caplog.text
-    assert cache.misses == ["overlap"]
+    assert StageCache(tmp_path).get("overlap", "k") == [1, 2, 3]
+    (tmp_path / "overlap" / "k.npz").write_bytes(b"not an archive")
+    assert cache.get("overlap", "k") is None
+    assert cache.misses == ["overlap"] and "unreadable" in cache.problems[0]
+
+
+def test_pickled_entries_are_never_loaded(tmp_path):
+    import pickle
+
+    (tmp_path / "taxon").mkdir()
+    (tmp_path / "taxon" / "k.pickle").write_bytes(pickle.dumps({"v": 1}))
+    cache = StageCache(tmp_path)
+    assert cache.get("taxon", "k") is None
+    assert "never loaded" in cache.problems[0]
 
 
 def test_unwritable_cache_only_logs(tmp_path, caplog):
