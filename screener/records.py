@@ -403,6 +403,24 @@ def _archive_records(path: Path, taxon_column: str) -> RawRecords:
     )
 
 
+
+def _longitudes_onto_grid(lon, lat, grid):
+    """Longitudes moved by whole turns (360 degrees) where that puts an off-grid point
+    on a geographic grid: records in -180..180 on a 0..360 grid and the other way round.
+    Points that are off the grid either way keep the longitude they were given."""
+    x, y = grid.from_lonlat(lon, lat)
+    _, _, inside = grid.rowcol(x, y)
+    west = grid.bounds[0]
+    wrapped = west + np.mod(lon - west, 360.0)
+    move = ~inside & (wrapped != lon)
+    if move.any():
+        wx, wy = grid.from_lonlat(wrapped[move], lat[move])
+        _, _, ok = grid.rowcol(wx, wy)
+        idx = np.flatnonzero(move)[ok]
+        lon = lon.copy()
+        lon[idx] = wrapped[move][ok]
+    return lon
+
 def validate_records(
     raw: RawRecords,
     grid: Grid,
@@ -461,6 +479,8 @@ def validate_records(
 
         screened = screen_records(raw, grid, darwin_core or DarwinCoreOptions())
         rows_a, rows_b = screened.lon, screened.lat
+    # longitudes are read in either common convention, -180..180 or 0..360
+    lon_max, lon_range = 360.0, "the range -180 to 360"
     for k, (t, a, b, line) in enumerate(zip(raw.taxon, rows_a, rows_b, raw.lines)):
         if screened is not None and not screened.keep[k] and t:
             dropped.append(RecordDrop(line, t, screened.reasons[k]))
@@ -493,8 +513,8 @@ def validate_records(
                     reason = f"latitude {vb:g} is beyond +/-90"
                 dropped.append(RecordDrop(line, t, reason))
                 continue
-            if abs(va) > 180:
-                dropped.append(RecordDrop(line, t, f"longitude {va:g} is beyond +/-180"))
+            if not -180 <= va <= lon_max:
+                dropped.append(RecordDrop(line, t, f"longitude {va:g} is beyond {lon_range}"))
                 continue
         keep_taxon.append(t)
         keep_a.append(va)
@@ -503,6 +523,11 @@ def validate_records(
 
     a = np.asarray(keep_a, dtype=float)
     b = np.asarray(keep_b, dtype=float)
+    if raw.coords == "lonlat" and a.size:
+        if grid.is_geographic:
+            a = _longitudes_onto_grid(a, b, grid)
+        else:
+            a = np.where(a > 180, a - 360.0, a)
     if raw.coords == "lonlat":
         lon, lat = a, b
         x, y = grid.from_lonlat(lon, lat) if a.size else (a, b)
@@ -655,7 +680,7 @@ _DROP_KINDS = [
     ("is empty", "with an empty coordinate", ""),
     ("not a number", "with a coordinate that is not a number", ""),
     ("not a finite number", "with a coordinate that is not a finite number", ""),
-    ("beyond", "with latitude beyond +/-90 or longitude beyond +/-180", ""),
+    ("beyond", "with latitude beyond +/-90 or longitude beyond -180 to 360", ""),
     ("duplicate", "exact duplicates", ""),
     ("same grid cell", "in a grid cell already taken (one record per cell is kept)", ""),
     ("thinned", "thinned", "lower [occurrences] thin_km"),

@@ -206,3 +206,31 @@ def test_thinning_is_valid_maximal_and_no_smaller_than_whole_set_greedy(seed):
     assert close[~k][:, k].any(axis=1).all()  # every removed record had a kept neighbour
     best = max(_whole_set_greedy(close, n, np.random.default_rng(s)).sum() for s in range(5))
     assert kept.size >= best
+
+
+@pytest.mark.parametrize("west, given", [(200.0, -160.0), (200.0, 200.0), (-160.0, 200.0)])
+def test_longitudes_are_read_on_either_side_of_the_antimeridian(west, given):
+    # A grid east of the antimeridian may be written with longitudes 0..360 or -180..180;
+    # records in the other convention name the same places (200 E = 160 W).
+    mask = np.ones((30, 40), bool)
+    g = Grid("EPSG:4326", Affine(0.01, 0, west, 0, -0.01, -5.0), (30, 40), mask)
+    text = "taxon,longitude,latitude\n" + "".join(
+        f"A,{given + dx:.3f},{-5.105 - dy:.3f}\n" for dx, dy in [(0.055, 0), (0.155, 0.1),
+                                                                 (0.255, 0.15)]
+    )
+    rs = run(text, g)
+    assert not rs.dropped
+    assert rs.taxa["A"].cols.tolist() == [5, 15, 25]
+
+
+@pytest.mark.parametrize("row, reason", [("A,200.1,-5.1", "outside the grid"),
+                                         ("A,360.5,-5.1", "beyond the range -180 to 360"),
+                                         ("A,180,-90", "outside the grid"),
+                                         ("A,-180,-90", "outside the grid")])
+def test_far_longitudes_get_no_swap_hint(grid, row, reason):
+    # valid WGS84 positions far from the grid are not a column mix-up
+    text = ("taxon,longitude,latitude\nA,10.055,-5.105\n" + row
+            + "\nA,10.155,-5.205\nA,10.255,-5.255\n")
+    rs = run(text, grid)
+    assert len(rs.dropped) == 1 and reason in rs.dropped[0].reason
+    assert "swapped" not in rs.dropped[0].reason
