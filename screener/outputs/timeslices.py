@@ -15,6 +15,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 
 from screener.outputs import maps
+from screener.outputs.names import taxon_file_stem
 from screener.slices import PRESENT, history_readings
 
 __all__ = ["plot_slices", "plot_stability", "report_section", "write_slice_rasters"]
@@ -28,8 +29,12 @@ _METHOD_WORDS = {
 }
 
 
-def _safe(name: str) -> str:
-    return re.sub(r"[^A-Za-z0-9._-]+", "_", name).strip("_") or "taxon"
+def _slice_stem(name: str) -> str:
+    """A slice's part of a file name: the name itself when it is a short plain word
+    (letters, digits, ``_`` and ``-``), else the same unique stem a taxon name gets."""
+    if re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_-]{0,39}", name):
+        return name
+    return taxon_file_stem(name)
 
 
 def write_slice_rasters(result, folder) -> list:
@@ -48,7 +53,7 @@ def write_slice_rasters(result, folder) -> list:
     for name in ss.names:
         grid = ss.grids[name]
         for taxon, p in ss.projections[name].items():
-            stem = f"{_safe(name)}.{_safe(taxon)}"
+            stem = f"{_slice_stem(name)}.{taxon_file_stem(taxon)}"
             out.append(write_raster(folder / "slices" / f"{stem}.tif", p.suitability, grid,
                                     description=f"suitability of {taxon} in {name} "
                                     "(present models, not refitted)"))
@@ -56,7 +61,7 @@ def write_slice_rasters(result, folder) -> list:
                                     description=f"MESS of {name} against the calibration "
                                     "data; < 0 = novel environment"))
     for taxon, arr in ss.stability.items():
-        out.append(write_raster(folder / "stability" / f"{_safe(taxon)}.tif", arr,
+        out.append(write_raster(folder / "stability" / f"{taxon_file_stem(taxon)}.tif", arr,
                                 result.grid, description=f"climatic stability of {taxon} "
                                 f"({ss.method} over present, {', '.join(ss.names)})"))
     out.append(write_raster(folder / "stability" / "clade.tif", ss.clade_stability,
