@@ -1380,14 +1380,18 @@ def _taxon_key(intake: Intake, taxon: str) -> str:
     rec = intake.records.taxa[taxon]
     layer_hashes = [intake.input_hashes.get(str(p)) for p in layer_paths(s)[0]]
     layer_settings = {k: v for k, v in s.layers.items() if k != "paths"}
-    slice_paths = [p for paths in s.slices.layers.values() for p in paths]
-    slices = {k: v for k, v in s.as_dict()["slices"].items() if k != "stability"}
+    # slice layers by content, not by path: a project folder that is copied or moved
+    # keeps its cache
+    slice_hashes = {name: [intake.input_hashes.get(str(p)) for p in paths]
+                    for name, paths in s.slices.layers.items()}
+    slices = {k: v for k, v in s.as_dict()["slices"].items()
+              if k not in ("stability", "layers")}
     return digest(
         "taxon-model",
         taxon,
         layer_hashes,
         layer_settings,
-        [intake.input_hashes.get(str(p)) for p in slice_paths],
+        slice_hashes,
         slices,
         intake.predictors,
         rec.rows,
