@@ -13,13 +13,14 @@ from dataclasses import dataclass
 import numpy as np
 
 from screener.grid import Grid, geodesic_distance_km
+from screener.project import default
 
 __all__ = ["Background", "accessible_area", "draw_background", "distance_to_points_km"]
 
 #: Default buffer radius (km) around records (a documented choice: about the distance
 #: a small, low-vagility montane animal's range edge may lie beyond its known
 #: localities; set it from the taxon's biology where known).
-DEFAULT_BUFFER_KM = 50.0
+DEFAULT_BUFFER_KM = default("background", "buffer_km")
 
 
 @dataclass(eq=False)
@@ -110,7 +111,11 @@ def accessible_area(grid: Grid, lon, lat, buffer_km: float = DEFAULT_BUFFER_KM) 
 
 
 def draw_background(
-    grid: Grid, accessible: np.ndarray, *, max_points: int = 10_000, random_state=0
+    grid: Grid,
+    accessible: np.ndarray,
+    *,
+    max_points: int = default("background", "max_points"),
+    random_state=0,
 ) -> Background:
     """Draw up to ``max_points`` background cells from the accessible area.
 

@@ -55,6 +55,7 @@ from screener.costdistance import CostGraph, least_cost_path, step_lengths_km
 from screener.errors import InputError, RecordsError
 from screener.gaps import separating_gaps
 from screener.grid import Grid
+from screener.project import default
 
 __all__ = [
     "CandidateSet",
@@ -73,14 +74,14 @@ log = logging.getLogger(__name__)
 
 #: Default minimum area of an unoccupied patch, km².  About what one survey day can
 #: cover on foot; smaller patches are mostly single-cell noise of the maps.
-MIN_PATCH_KM2 = 1.0
+MIN_PATCH_KM2 = default("isolation", "min_patch_km2")
 #: Default minimum gap (km of unsuitable ground on the least-cost path) for a patch to
 #: count as ``isolated`` rather than ``near-range`` (common practice for small
 #: terrestrial vertebrates and plants with limited dispersal; adjust per clade).
-MIN_GAP_KM = 5.0
+MIN_GAP_KM = default("isolation", "min_gap_km")
 #: Default distance from every record beyond which suitable cells inside a known
 #: range count as a ``within-range`` site, km.
-WITHIN_RANGE_MIN_KM = 10.0
+WITHIN_RANGE_MIN_KM = default("isolation", "within_range_min_km")
 #: Default slack of the least-cost corridor between two taxa's ranges (fraction of
 #: the least cost between them); see :func:`find_candidates`.
 CORRIDOR_SLACK = 0.05

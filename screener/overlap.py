@@ -63,6 +63,7 @@ from sklearn.preprocessing import StandardScaler
 
 from screener.errors import InputError
 from screener.parallel import Executor, make_executor, spawn_seeds
+from screener.project import default
 
 __all__ = [
     "schoener_d",
@@ -95,9 +96,9 @@ log = logging.getLogger(__name__)
 
 #: Replicates per test by default: the smallest attainable p, 1/1000, lies below the
 #: Holm threshold of a three-taxon run with tests in both spaces (0.05 / 18 = 0.0028).
-DEFAULT_REPLICATES = 999
+DEFAULT_REPLICATES = default("overlap", "n_replicates")
 #: Environmental grid cells along each principal axis by default.
-DEFAULT_GRID_CELLS = 64
+DEFAULT_GRID_CELLS = default("overlap", "grid_cells")
 
 
 def _p_columns(key: str) -> tuple:

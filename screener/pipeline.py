@@ -28,7 +28,7 @@ from screener import __version__
 from screener.background import accessible_area, draw_background
 from screener.errors import InputError, LayerError, ScreenerWarning, suggest
 from screener.layers import LayerStack, check_layers, hillshade, read_layers, slope_aspect
-from screener.project import Settings
+from screener.project import Settings, default
 from screener.darwincore import DarwinCoreOptions
 from screener.records import RecordSet, read_records, validate_records
 from screener.results import RunResult, TaxonResult
@@ -1625,12 +1625,12 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     from screener.outputs.privacy import shareable_result
 
     so = s.get("outputs", {})
-    if so.get("full_precision", False):
+    if _output_setting(so, "full_precision"):
         shareable = result  # asked for: every output is marked full precision
     else:
         shareable = shareable_result(
-            result, sites=so.get("generalise_sites", False),
-            grid_deg=so.get("generalise_deg", 0.1),
+            result, sites=_output_setting(so, "generalise_sites"),
+            grid_deg=_output_setting(so, "generalise_deg"),
         )
     dropped = pd.DataFrame(
         [{"line": d.line, "occurrence_id": d.occurrence_id, "taxon": d.taxon,
@@ -1654,16 +1654,16 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     rel(gpkg)
     progress.step("waypoints, field sheets and report")
     # routes end at the exact site points: left out when sites are generalised
-    exact_sites = not so.get("generalise_sites", False)
+    exact_sites = not _output_setting(so, "generalise_sites")
     rel(gpx.write_gpx(
         run.sites_gpx, sites,
-        sheets.site_sampling_points(shareable, top_n=so.get("field_sheets", 10)),
+        sheets.site_sampling_points(shareable, top_n=_output_setting(so, "field_sheets")),
         start_points=result.start_points,
         routes=result.routes if exact_sites else None,
     ))
     rel(sheets.write_field_sheets(
-        run.field_sheets_pdf, shareable, top_n=so.get("field_sheets", 10),
-        page_size=so.get("page_size", "A4"),
+        run.field_sheets_pdf, shareable, top_n=_output_setting(so, "field_sheets"),
+        page_size=_output_setting(so, "page_size"),
     ))
     html = report.render_report(shareable)
     run.report_html.write_text(html, encoding="utf-8")
@@ -1729,8 +1729,8 @@ def _add_sampling_points(result: RunResult) -> None:
     from screener.outputs.sheets import suggest_sampling_points
 
     so = result.settings.get("outputs", {})
-    n_pts = int(so.get("sampling_points", 5))
-    top = int(so.get("field_sheets", 10))
+    n_pts = int(_output_setting(so, "sampling_points"))
+    top = int(_output_setting(so, "field_sheets"))
     cand = result.candidates
     if cand is None or not len(result.sites) or n_pts <= 0:
         return
@@ -1800,3 +1800,8 @@ def run_project(
         write_outputs(result, stage, progress=progress)
     progress.done()
     return result
+
+
+def _output_setting(outputs: dict, key: str):
+    """``[outputs] key`` of a run's settings, or its default when the run has none."""
+    return outputs.get(key, default("outputs", key))

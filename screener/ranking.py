@@ -53,6 +53,7 @@ from scipy.sparse.csgraph import connected_components
 
 from screener.errors import InputError
 from screener.grid import geodesic_distance_km
+from screener.project import default
 
 __all__ = [
     "DEFAULT_WEIGHTS",
@@ -172,8 +173,8 @@ def rank_sites(
     sites: pd.DataFrame,
     weights: dict | None = None,
     *,
-    top_k: int = 10,
-    n_draws: int = 1000,
+    top_k: int = default("ranking", "top_k"),
+    n_draws: int = default("ranking", "n_draws"),
     concentration: float = CONCENTRATION,
     random_state=0,
     surveys=None,

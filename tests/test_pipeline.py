@@ -1,5 +1,6 @@
 """The whole pipeline on the (small) invented demo: contract, isolated massif, debrief."""
 
+import dataclasses
 import json
 
 import geopandas as gpd
@@ -267,8 +268,8 @@ def test_auto_scheduler_uses_processes_only_for_heavy_work(tmp_path):
     s = load_project(project)
     intake = load_inputs(s)
     assert resolve_scheduler("auto", intake) == "serial"
-    s.models["families"] = ["ellipsoid", "ppm"]
-    assert resolve_scheduler("auto", intake) == "processes"
+    heavy = dataclasses.replace(intake, settings=s.replace("models", families=["ellipsoid", "ppm"]))
+    assert resolve_scheduler("auto", heavy) == "processes"
     assert resolve_scheduler("tcp://127.0.0.1:8786", intake) == "tcp://127.0.0.1:8786"
 
 

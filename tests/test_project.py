@@ -3,7 +3,14 @@
 import pytest
 
 from screener.errors import ProjectError
-from screener.project import SCHEMA, load_project, settings_from_dict, settings_table_markdown
+from screener.project import (
+    SCHEMA,
+    SECTION_TYPES,
+    load_project,
+    setting,
+    settings_from_dict,
+    settings_table_markdown,
+)
 
 MINIMAL = """
 [occurrences]
@@ -29,9 +36,9 @@ def test_minimal_project_file_as_written_in_the_design(project_dir):
     assert s.occurrences.path == project_dir / "occurrences.csv"
     # every other setting has its documented default
     for section, spec in SCHEMA.items():
-        for key, (_, default, _) in spec.items():
+        for key in spec:
             if key not in ("path", "paths"):
-                assert s.sections[section][key] == default
+                assert s.sections[section][key] == setting(section, key).default
 
 
 @pytest.mark.parametrize(
@@ -43,7 +50,9 @@ def test_minimal_project_file_as_written_in_the_design(project_dir):
         ("[overlap]\nsimilarity_hypothesis = 'conservd'\n", "Did you mean 'conserved'"),
         ("[overlap]\nalternative = 'greatr'\n", "'greater', 'lower'"),
         ("[models]\nfamilies = ['elipsoid']\n", "Did you mean 'ellipsoid'"),
-        ("[thresholds]\nrelax = 1.5\n", "relax must be in"),
+        ("[thresholds]\nrelax = 1.5\n", r"relax must be at least 0 and below 1; got 1\.5"),
+        ("[ranking]\nn_draws = -5\n", r"n_draws must be at least 0 \(0 = no rank robustness\); got -5"),
+        ("[overlap]\nalpha = 0\n", r"alpha must be above 0 and below 1; got 0\.0"),
     ],
 )
 def test_typos_and_bad_values(project_dir, extra, match):
@@ -90,3 +99,32 @@ def test_renamed_overlap_settings_still_work_for_one_release(project_dir):
     p.write_text(MINIMAL + "[overlap]\nresolution = 40\ngrid_cells = 30\n")
     with pytest.raises(ProjectError, match="keep only 'grid_cells'"):
         load_project(p)
+
+
+def test_sections_are_frozen_dataclasses_with_their_rules(project_dir):
+    import dataclasses
+
+    p = project_dir / "project.toml"
+    p.write_text(MINIMAL)
+    s = load_project(p)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        s.overlap.n_replicates = 5
+    for section, cls in SECTION_TYPES.items():
+        assert isinstance(s.sections[section], cls)
+        for f in dataclasses.fields(cls):
+            assert f.metadata["setting"] == setting(section, f.name)
+    changed = s.replace("overlap", n_replicates=9)
+    assert changed.overlap.n_replicates == 9 and s.overlap.n_replicates == 999
+    with pytest.raises(ProjectError, match="alpha must be above 0 and below 1"):
+        s.replace("overlap", alpha=1.5)
+    with pytest.raises(ProjectError, match="Did you mean 'n_replicates'"):
+        s.replace("overlap", n_replicate=9)
+
+
+def test_every_number_setting_has_a_range_and_every_word_choice_is_checked():
+    # the check refuses what a run would refuse: a count or distance with no lower
+    # bound could be negative in a project file
+    unbounded = [(sec, key) for sec, spec in SCHEMA.items() for key in spec
+                 if setting(sec, key).type in (int, float) and not setting(sec, key).allowed()
+                 and key != "random_state"]
+    assert unbounded == []

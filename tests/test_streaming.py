@@ -62,8 +62,8 @@ def test_model_maps_identical_when_streamed(tmp_path):
     project.write_text(project.read_text() + "\n[evaluation]\nn_null = 0\n")
     s = load_project(project)
     eager = load_inputs(s)
-    s.compute["memory_mb"] = 0.05  # far below the stack's size: stream it
-    streamed = load_inputs(s)
+    # far below the stack's size: stream it
+    streamed = load_inputs(s.replace("compute", memory_mb=0.05))
     assert streamed.stack.streamed and not eager.stack.streamed
     taxon = next(iter(eager.records.taxa))
     a, b = model_taxon(eager, taxon), model_taxon(streamed, taxon)
