@@ -219,6 +219,13 @@ class LayerStack:
             rows -= rows % 256  # whole rows of 256-row tiles: no tile is decoded twice
         return rows
 
+    def row_bands(self, max_cells: int) -> list:
+        """``(first, stop)`` rows of bands of about ``max_cells`` cells, whole tile
+        rows each: the tasks of window-by-window work on an executor."""
+        step = self._rows_per_block(max_cells)
+        n = self.grid.n_rows
+        return [(r0, min(n, r0 + step)) for r0 in range(0, n, step)]
+
     def layer(self, name: str) -> np.ndarray:
         """One layer by name, shape (n_rows, n_cols), float32."""
         i = self._index(name)

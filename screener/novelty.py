@@ -7,12 +7,14 @@ such cells with extra caution before sending a team there.
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 
 from screener.errors import InputError
 from screener.models.base import check_predictors
 
-__all__ = ["mess", "similarity"]
+__all__ = ["mess", "mess_map", "similarity"]
 
 
 def similarity(reference, X) -> np.ndarray:
@@ -124,3 +126,52 @@ def mess(reference, X) -> tuple[np.ndarray, np.ndarray]:
     out[bad] = np.nan
     idx[bad] = -1
     return out, idx
+
+
+def _mess_rows(stack, reference: np.ndarray, rows: tuple, max_cells: int):
+    """MESS and most dissimilar layer at the valid cells of a band of rows (a task)."""
+    parts = [mess(reference, X) for _, X, _ in
+             stack.iter_blocks(max_cells, rows=slice(*rows)) if X.shape[0]]
+    if not parts:
+        return np.empty(0, np.float32), np.empty(0, np.int16)
+    return (np.concatenate([m for m, _ in parts]).astype(np.float32),
+            np.concatenate([i for _, i in parts]))
+
+
+def mess_map(stack, reference: np.ndarray, max_cells: int = 1 << 20,
+              map_fn=None):
+    """MESS map and most-dissimilar-layer map over a layer stack, band by band.
+
+    Streamed stacks run the bands on ``map_fn`` (each worker reads its own windows),
+    as :func:`screener.models.mapping.predict_map` does; in-memory stacks run in this
+    process.
+
+    Parameters
+    ----------
+    stack : screener.layers.LayerStack
+        Predictors, in the order of the columns of ``reference``.
+    reference : ndarray of shape (n, p)
+        Calibration values (e.g. the background of a taxon).
+    max_cells : int, default 1048576
+        Cells per band.
+    map_fn : callable, optional
+        ``map``-like callable of a parallel executor.
+
+    Returns
+    -------
+    mess : ndarray of float32, shape (n_rows, n_cols)
+        NaN off the valid mask.
+    most_dissimilar : ndarray of int16, shape (n_rows, n_cols)
+        Column index of the most dissimilar predictor; -1 off the mask.
+    """
+    grid = stack.grid
+    out = np.full(grid.shape, np.nan, dtype=np.float32)
+    most = np.full(grid.shape, -1, dtype=np.int16)
+    run = map_fn if map_fn is not None and stack.streamed else map
+    bands = stack.row_bands(max_cells)
+    task = functools.partial(_mess_rows, stack, np.asarray(reference), max_cells=max_cells)
+    for (r0, r1), (m, idx) in zip(bands, run(task, bands)):
+        valid = grid.mask[r0:r1]
+        out[r0:r1][valid] = m
+        most[r0:r1][valid] = idx
+    return out, most

@@ -9,29 +9,76 @@ without redoing finished stages.
 
 from __future__ import annotations
 
+import atexit
 import dataclasses
 import hashlib
-import io
+import importlib.metadata as md
+import itertools
 import json
 import logging
 import os
 import platform
+import shutil
+import tempfile
 import time
 import warnings
 import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import geopandas as gpd
 import numpy as np
+import pandas as pd
+import rasterio
 
 from screener import __version__
+from screener.access import walking_surface
+from screener.alignment import align_layers
 from screener.background import accessible_area, draw_background
-from screener.errors import InputError, LayerError, ScreenerWarning, suggest
-from screener.layers import LayerStack, check_layers, hillshade, read_layers, slope_aspect
-from screener.project import Settings, default
+from screener.cache import StageCache, digest
 from screener.darwincore import DarwinCoreOptions
-from screener.records import RecordSet, read_records, validate_records
+from screener.errors import InputError, LayerError, ScreenerWarning, suggest
+from screener.evaluation import CONSENSUS, evaluate_family
+from screener.evaluation import auc as auc_fn
+from screener.isolation import (
+    clade_suitability,
+    find_candidates,
+    paths_geodataframe,
+    sites_geodataframe,
+)
+from screener.layers import LayerStack, check_layers, hillshade, read_layers, slope_aspect
+from screener.models import accepts_random_state
+from screener.models.base import ClampedModel, training_presence_scores
+from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
+from screener.models.inspect import permutation_importance, response_curves
+from screener.models.mapping import GeographicRefit, outside_map, predict_map
+from screener.novelty import mess_map
+from screener.outputs.sheets import suggest_sampling_points
+from screener.outputs.staging import (
+    check_output_folder,
+    enclosing_run_folder,
+    new_run_id,
+    staged_output,
+)
+from screener.outputs.tables import OVERLAP_COLUMNS
+from screener.outputs.writer import write_outputs
+from screener.overlap import compare_pair, correct_for_multiplicity
+from screener.parallel import make_executor
+from screener.project import Settings, default, settings_from_dict
+from screener.ranking import group_sites, rank_sites, site_ids, site_keys
+from screener.records import (
+    RecordSet,
+    drop_summary_lines,
+    read_points_csv,
+    read_records,
+    summarise_drops,
+    validate_records,
+)
 from screener.results import RunResult, TaxonResult
+from screener.robustness import RefitPlan, record_resampling
+from screener.routes import walking_routes
+from screener.slices import TimeSlice, analyse_slices, slice_stack
+from screener.thresholds import compute_thresholds
 
 __all__ = [
     "Intake",
@@ -46,7 +93,6 @@ __all__ = [
     "file_sha256",
     "input_paths",
     "layer_paths",
-    "input_locations",
     "locate_run_inputs",
     "relocate",
     "repoint_run_json",
@@ -98,39 +144,6 @@ def file_sha256(path) -> str:
         for chunk in iter(lambda: f.read(1 << 20), b""):
             h.update(chunk)
     return h.hexdigest()
-
-
-def input_locations(provenance: dict, results_folder) -> dict:
-    """Where a run's inputs lie relative to its project file, and the project file
-    relative to the results folder (so a moved pair of folders still reproduces).
-
-    Parameters
-    ----------
-    provenance : dict
-        With ``project_file`` and ``input_hashes`` (absolute paths).
-    results_folder : path-like
-        The folder run.json is written into (or a sibling staging folder of it).
-
-    Returns
-    -------
-    dict
-        ``project_file_from_results`` (str or None) and ``inputs_from_project``
-        (absolute path -> path relative to the project file's folder).
-    """
-    import os
-
-    project = provenance.get("project_file")
-    if not project:
-        return {"project_file_from_results": None, "inputs_from_project": {}}
-    project = Path(project).resolve()
-    here = Path(results_folder).resolve()
-    return {
-        "project_file_from_results": Path(os.path.relpath(project, here)).as_posix(),
-        "inputs_from_project": {
-            str(p): Path(os.path.relpath(Path(p).resolve(), project.parent)).as_posix()
-            for p in provenance.get("input_hashes", {})
-        },
-    }
 
 
 def locate_run_inputs(run_json) -> tuple:
@@ -282,42 +295,6 @@ class Intake:
         return out
 
 
-def _read_points_csv(path, what: str, need=("longitude", "latitude")):
-    """Read a small CSV of points (start points, surveyed places) with checks."""
-    import pandas as pd
-
-    from screener.records import _decode
-
-    text = _decode(Path(path).read_bytes(), str(path), None)
-    try:
-        df = pd.read_csv(io.StringIO(text))
-    except Exception as exc:  # pandas raises several parser errors
-        raise InputError(f"{path} ({what}) is not a readable CSV file: {exc}") from None
-    df.columns = [str(c).strip().lower() for c in df.columns]
-    for c in need:
-        if c not in df.columns:
-            raise InputError(
-                f"{path} ({what}) needs a {c!r} column; it has {', '.join(df.columns)}."
-                + suggest(c, df.columns)
-            )
-    for c in need:
-        vals = pd.to_numeric(df[c], errors="coerce")
-        bad = np.flatnonzero(vals.isna().to_numpy())
-        if bad.size:
-            raise InputError(
-                f"{path} ({what}) line {int(bad[0]) + 2}: {c} {df[c].iloc[bad[0]]!r} is not "
-                "a number (decimal degrees, WGS84)."
-            )
-        df[c] = vals
-    if (df["latitude"].abs() > 90).any() or (df["longitude"].abs() > 180).any():
-        i = int(np.flatnonzero((df["latitude"].abs() > 90) | (df["longitude"].abs() > 180))[0])
-        raise InputError(
-            f"{path} ({what}) line {i + 2}: coordinates out of range (longitude and "
-            "latitude swapped?)."
-        )
-    return df
-
-
 def layer_paths(settings: Settings) -> tuple:
     """The layer files a run reads, and the run folders skipped.
 
@@ -331,7 +308,6 @@ def layer_paths(settings: Settings) -> tuple:
     skipped : dict of Path to list of Path
         Run folder -> the files skipped in it.
     """
-    from screener.outputs.staging import enclosing_run_folder
 
     paths, skipped = [], {}
     for p in settings.layers.paths:
@@ -365,10 +341,6 @@ def _aligned_dir(cache_dir) -> Path:
             return folder  # created only when a layer needs aligning
         log.warning("cannot write aligned layers to %s; using a temporary folder", folder)
     if not _TEMP_ALIGNED:
-        import atexit
-        import shutil
-        import tempfile
-
         folder = tempfile.mkdtemp(prefix="screener-aligned-")
         atexit.register(shutil.rmtree, folder, ignore_errors=True)
         _TEMP_ALIGNED.append(Path(folder))
@@ -395,7 +367,6 @@ def reproduction_settings(run_json, *, allow_changed_inputs: bool = False):
         run.json is unreadable or has no hashes; an input is missing, changed or was
         not recorded (the last two pass with ``allow_changed_inputs``).
     """
-    from screener.project import settings_from_dict
 
     where = str(run_json)
     prov, moved = locate_run_inputs(run_json)
@@ -473,8 +444,6 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
             )
         origins, derived = [], []
         if s.layers.alignment == "warp":
-            from screener.alignment import align_layers
-
             aligned = align_layers(
                 paths,
                 cache_dir=_aligned_dir(cache_dir),
@@ -557,9 +526,9 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
         raise InputError("No taxon has usable records.")
     start_points = surveyed = None
     if s.access.start_points is not None:
-        start_points = _read_points_csv(s.access.start_points, "start points")
+        start_points = read_points_csv(s.access.start_points, "start points")
     if s.survey.surveyed is not None:
-        surveyed = _read_points_csv(s.survey.surveyed, "surveyed places")
+        surveyed = read_points_csv(s.survey.surveyed, "surveyed places")
     hashes = {str(p): file_sha256(p) for p in input_paths(s)}
     return Intake(
         settings=s,
@@ -580,7 +549,6 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
 def _read_slices(s: Settings, present: LayerStack) -> list:
     """Each time slice's predictors (:class:`screener.slices.TimeSlice`), in project
     order, each on its own valid mask."""
-    from screener.slices import TimeSlice, slice_stack
 
     out = []
     for name, paths in s.slices.layers.items():
@@ -611,80 +579,6 @@ def check_project(settings: Settings) -> list:
 
 
 # --------------------------------------------------------------------------- models
-#: blocks at least this valid are predicted whole and masked afterwards (for families
-#: that accept invalid rows): cheaper than gathering the valid cells of a block
-_PREDICT_WHOLE_BLOCK = 0.5
-
-
-def _blocks_for(model, stack: LayerStack, max_cells: int, rows=None):
-    """Blocks of ``stack`` with each block's predictions, float32 of the block's shape
-    (NaN where invalid)."""
-    whole = getattr(model, "accepts_invalid_rows", False)
-    for sl, X, valid in stack.iter_blocks(max_cells, rows=rows, gather=not whole):
-        if whole:
-            if valid.mean() >= _PREDICT_WHOLE_BLOCK:
-                pred = model.predict(X, check_input=False, dtype=np.float32)
-                pred = pred.reshape(valid.shape)
-                pred[~valid] = np.nan
-                yield sl, pred
-                continue
-            X = np.take(X, np.flatnonzero(valid.ravel()), axis=0)
-        block = np.full(valid.shape, np.nan, dtype=np.float32)
-        if X.shape[0]:
-            block[valid] = model.predict(X, dtype=np.float32)
-        yield sl, block
-
-
-def _row_bands(stack: LayerStack, max_cells: int) -> list:
-    """(first, stop) rows of bands of about ``max_cells`` cells, whole tile rows each:
-    the tasks of window-by-window work on an executor."""
-    step = stack._rows_per_block(max_cells)
-    n = stack.grid.n_rows
-    return [(r0, min(n, r0 + step)) for r0 in range(0, n, step)]
-
-
-def _predict_rows(model, stack: LayerStack, rows: tuple, max_cells: int):
-    """Predictions for the valid cells of a band of rows (a task for an executor)."""
-    r0, r1 = rows
-    sub = stack.grid.mask[r0:r1]
-    out = [block[stack.grid.mask[sl]]
-           for sl, block in _blocks_for(model, stack, max_cells, rows=slice(r0, r1))]
-    return np.concatenate(out) if out else np.empty(int(sub.sum()), np.float32)
-
-
-def predict_map(model, stack: LayerStack, *, max_cells: int = 1 << 20,
-                map_fn=None) -> np.ndarray:
-    """Predict a fitted model over the grid block by block (float32, NaN off-mask).
-
-    Parameters
-    ----------
-    model : NicheModel
-        Fitted.
-    stack : LayerStack
-        Predictors in the order the model was fitted with.
-    max_cells : int, default 1048576
-        Cells per block (memory per block is about ``max_cells * n_layers * 4`` bytes).
-    map_fn : callable, optional
-        ``map``-like callable of a parallel executor.  Used for stacks streamed from
-        disk, where each worker reads its own windows; in-memory stacks are predicted
-        in this process (sending their blocks to workers would cost more than it saves).
-    """
-    import functools
-
-    grid = stack.grid
-    out = np.full(grid.shape, np.nan, dtype=np.float32)
-    if map_fn is not None and stack.streamed:
-        bands = _row_bands(stack, max_cells)
-        task = functools.partial(_predict_rows, model, stack, max_cells=max_cells)
-        for (r0, r1), values in zip(bands, map_fn(task, bands)):
-            block = out[r0:r1]
-            block[grid.mask[r0:r1]] = values
-        return out
-    for sl, block in _blocks_for(model, stack, max_cells):
-        out[sl] = block
-    return out
-
-
 def _family_params(settings: Settings, family: str) -> dict:
     params = dict(settings.models.get(family, {}) or {})
     return params
@@ -712,10 +606,6 @@ def model_taxon(
     -------
     TaxonResult
     """
-    from screener.evaluation import evaluate_family
-    from screener.models.base import ClampedModel, training_presence_scores
-    from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
-    from screener.thresholds import compute_thresholds
 
     progress = progress or Progress(None)
     s = intake.settings
@@ -731,8 +621,6 @@ def model_taxon(
     bg_xy = np.column_stack(grid.lonlat(bg.rows, bg.cols))
     rec_xy = np.column_stack([rec.lon, rec.lat])
     areas = np.asarray(grid.cell_area_km2, float)
-
-    from screener.models.inspect import permutation_importance, response_curves
 
     family_maps, evaluations, thresholds_by_family, rec_scores = {}, {}, {}, {}
     bg_scores, curves, importance, baselines, slice_maps = {}, {}, {}, {}, {}
@@ -799,8 +687,8 @@ def model_taxon(
     agreement = agreement_map(
         family_maps, {f: thresholds_by_family[f]["mtp"].value for f in family_maps}
     )
-    novelty, most = _mess_map(stack, B, map_fn=map_fn)
-    clamped = _outside_map(stack, ClampedModel.from_rows(None, P, B), map_fn=map_fn)
+    novelty, most = mess_map(stack, B, map_fn=map_fn)
+    clamped = outside_map(stack, ClampedModel.from_rows(None, P, B), map_fn=map_fn)
 
     rows = []
     for family, ev in evaluations.items():
@@ -812,8 +700,6 @@ def model_taxon(
         row.update(_threshold_columns(th))
         row["ensemble_weight"] = weights[family]
         rows.append(row)
-    from screener.evaluation import CONSENSUS
-    from screener.evaluation import auc as auc_fn
 
     # the consensus map is evaluated like a family: same jackknife or spatial blocks,
     # same pattern-keeping null model, the families refitted with the weights fixed
@@ -860,7 +746,6 @@ def model_taxon(
 
 
 def _takes_seed(family: str) -> bool:
-    from screener.models import accepts_random_state
 
     return accepts_random_state(family)
 
@@ -876,92 +761,7 @@ def _threshold_columns(th: dict) -> dict:
     return out
 
 
-def _outside_rows(stack: LayerStack, clamp, rows: tuple, max_cells: int):
-    """1.0 where any predictor lies outside ``clamp``'s range, at the valid cells of a
-    band of rows (a task)."""
-    parts = [clamp.outside(X) for _, X, _ in
-             stack.iter_blocks(max_cells, rows=slice(*rows)) if X.shape[0]]
-    return (np.concatenate(parts) if parts else np.empty(0, bool)).astype(np.float32)
-
-
-def _outside_map(stack: LayerStack, clamp, max_cells: int = 1 << 20, map_fn=None):
-    """Map (float32, NaN off-mask) of cells beyond a model's calibration range: 1 where
-    the mapped prediction was clamped (or extrapolated, with clamping off), else 0."""
-    import functools
-
-    grid = stack.grid
-    out = np.full(grid.shape, np.nan, dtype=np.float32)
-    run = map_fn if map_fn is not None and stack.streamed else map
-    bands = _row_bands(stack, max_cells)
-    task = functools.partial(_outside_rows, stack, clamp, max_cells=max_cells)
-    for (r0, r1), values in zip(bands, run(task, bands)):
-        out[r0:r1][grid.mask[r0:r1]] = values
-    return out
-
-
-def _mess_rows(stack: LayerStack, reference: np.ndarray, rows: tuple, max_cells: int):
-    """MESS and most dissimilar layer at the valid cells of a band of rows (a task)."""
-    from screener.novelty import mess
-
-    parts = [mess(reference, X) for _, X, _ in
-             stack.iter_blocks(max_cells, rows=slice(*rows)) if X.shape[0]]
-    if not parts:
-        return np.empty(0, np.float32), np.empty(0, np.int16)
-    return (np.concatenate([m for m, _ in parts]).astype(np.float32),
-            np.concatenate([i for _, i in parts]))
-
-
-def _mess_map(stack: LayerStack, reference: np.ndarray, max_cells: int = 1 << 20,
-              map_fn=None):
-    """MESS map and most-dissimilar-layer map, band by band; streamed stacks run the
-    bands on ``map_fn`` (each worker reads its own windows), as :func:`predict_map`
-    does, in-memory stacks in this process."""
-    import functools
-
-    grid = stack.grid
-    out = np.full(grid.shape, np.nan, dtype=np.float32)
-    most = np.full(grid.shape, -1, dtype=np.int16)
-    run = map_fn if map_fn is not None and stack.streamed else map
-    bands = _row_bands(stack, max_cells)
-    task = functools.partial(_mess_rows, stack, np.asarray(reference), max_cells=max_cells)
-    for (r0, r1), (m, idx) in zip(bands, run(task, bands)):
-        valid = grid.mask[r0:r1]
-        out[r0:r1][valid] = m
-        most[r0:r1][valid] = idx
-    return out, most
-
-
 # --------------------------------------------------------------------------- overlap
-class GeographicRefit:
-    """Refit a model family to a set of record cells and map it (picklable).
-
-    Used by the geographic-space tests: ``self(cells)`` fits the family to the
-    predictor values at the flat cell indices ``cells`` against the pooled background
-    of the pair and returns the suitability map (float32, NaN off the mask).
-    """
-
-    def __init__(self, family, params, background, stack_values, mask):
-        self.family = family
-        self.params = params
-        self.background = background
-        self.stack_values = stack_values
-        self.mask = mask
-        pos = np.full(mask.size, -1, dtype=np.int64)
-        pos[np.flatnonzero(mask.ravel())] = np.arange(int(mask.sum()))
-        self.pos = pos
-
-    def __call__(self, cells):
-        from screener.models import make_model
-
-        rows = self.pos[np.asarray(cells, dtype=np.int64)]
-        model = make_model(self.family, **self.params).fit(
-            self.stack_values[rows].astype(np.float64), self.background
-        )
-        out = np.full(self.mask.shape, np.nan, dtype=np.float32)
-        out[self.mask] = model.predict(self.stack_values).astype(np.float32)
-        return out
-
-
 def compare_taxa(intake: Intake, taxa: dict, *, executor=None, progress=None):
     """Niche overlap and its tests for every pair of taxa.
 
@@ -974,11 +774,7 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor=None, progress=None):
     comparisons : list
         The :class:`screener.overlap.PairComparison` objects (for figures).
     """
-    import itertools
 
-    import pandas as pd
-
-    from screener.overlap import compare_pair, correct_for_multiplicity
 
     progress = progress or Progress(None)
     s = intake.settings
@@ -1027,7 +823,6 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor=None, progress=None):
     for cmp in comparisons:
         rows.extend(cmp.rows())
     readings = [cmp.plain_reading() for cmp in comparisons]
-    from screener.outputs.tables import OVERLAP_COLUMNS
 
     df = pd.DataFrame(rows) if rows else pd.DataFrame(columns=OVERLAP_COLUMNS)
     return df, readings, comparisons
@@ -1092,7 +887,7 @@ def _geographic_refit(intake, ta, tb, progress):
 def _clade_mess(intake: Intake, taxa: dict, map_fn=None):
     """MESS of every cell against the pooled calibration background of the clade."""
     ref = np.vstack([t.background_env for t in taxa.values()])
-    return _mess_map(intake.predictor_stack(), ref, map_fn=map_fn)
+    return mess_map(intake.predictor_stack(), ref, map_fn=map_fn)
 
 
 def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dict:
@@ -1108,8 +903,6 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
         ``access_hours``, ``candidates`` (the :class:`screener.isolation.CandidateSet`),
         ``clade_mess``.
     """
-    from screener.isolation import find_candidates, paths_geodataframe, sites_geodataframe
-    from screener.ranking import group_sites, rank_sites
 
     progress = progress or Progress(None)
     s = intake.settings
@@ -1156,8 +949,6 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
     sites = cand.sites.copy()
     slices = None
     if intake.slices:
-        from screener.slices import analyse_slices
-
         progress.step(f"time slices: {', '.join(sl.name for sl in intake.slices)} "
                       "(projection, stability, isolation per slice)")
         slices = analyse_slices(
@@ -1179,9 +970,6 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
     access_hours = None
     routes, starts = {}, None
     if intake.start_points is not None and intake.elevation is not None:
-        from screener.access import walking_surface
-        from screener.routes import walking_routes
-
         progress.step("walking time from start points (Tobler's hiking function)")
         sp = intake.start_points
         x, y = grid.from_lonlat(sp["longitude"].to_numpy(), sp["latitude"].to_numpy())
@@ -1223,12 +1011,10 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
     gdf = sites_geodataframe(grid, cand)
     gdf = gdf[["site_id", "geometry"]].merge(ranked, on="site_id", how="right")
     gdf = gdf.sort_values("rank", kind="stable").reset_index(drop=True)
-    import geopandas as gpd
 
     gdf = gpd.GeoDataFrame(gdf, geometry="geometry", crs=grid.pyproj_crs)
     paths = paths_geodataframe(grid, cand)
     # one identifier per site, by rank (S01 = rank 1), and a key from its location
-    from screener.ranking import site_ids, site_keys
 
     found = gdf["site_id"].astype(int).tolist()
     ids = dict(zip(found, site_ids(gdf["rank"]), strict=True))
@@ -1262,7 +1048,6 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
 
 def _record_resampling(intake, taxa, cand, n_sites, progress, map_fn, use, other):
     """Shares of bootstrap refits keeping each plan site suitable, isolated, top k."""
-    from screener.robustness import RefitPlan, record_resampling
 
     s = intake.settings
     n = s.ranking.n_refits
@@ -1323,7 +1108,6 @@ def _surveyed_points(intake: Intake, taxa: dict):
 
 # --------------------------------------------------------------------------- run
 def _versions() -> dict:
-    import importlib.metadata as md
 
     out = {"screener": __version__, "python": platform.python_version()}
     for pkg in ["numpy", "scipy", "scikit-learn", "scikit-image", "geopandas", "rasterio",
@@ -1333,8 +1117,6 @@ def _versions() -> dict:
         except md.PackageNotFoundError:
             out[pkg] = None
     try:
-        import rasterio
-
         out["gdal"] = rasterio.__gdal_version__
     except Exception:  # pragma: no cover
         out["gdal"] = None
@@ -1363,7 +1145,6 @@ def resolve_scheduler(scheduler: str, intake: Intake) -> str:
 
 def make_run_executor(scheduler: str, n_workers: int = 0):
     """Executor for a run: "serial", "processes", "dask" (local) or a Dask address."""
-    from screener.parallel import make_executor
 
     n = n_workers or None
     if scheduler in ("serial", "processes"):
@@ -1374,7 +1155,6 @@ def make_run_executor(scheduler: str, n_workers: int = 0):
 
 
 def _taxon_key(intake: Intake, taxon: str) -> str:
-    from screener.cache import digest
 
     s = intake.settings
     rec = intake.records.taxa[taxon]
@@ -1428,7 +1208,6 @@ def run_analysis(
     intake : Intake, optional
         Already loaded inputs.
     """
-    from screener.cache import StageCache, digest
 
     s = settings
     progress = Progress(echo, n_stages=5)
@@ -1467,10 +1246,6 @@ def run_analysis(
                 progress.step("reused cached overlap tests")
             overlap, readings, comparisons = got
         else:
-            import pandas as pd
-
-            from screener.outputs.tables import OVERLAP_COLUMNS
-
             overlap, readings, comparisons = pd.DataFrame(columns=OVERLAP_COLUMNS), [], []
             progress.step("one taxon only: no overlap to measure")
         progress.stage("Candidate sites, barriers and the ranked plan")
@@ -1512,8 +1287,6 @@ def run_analysis(
     }
     dropped = intake.records.dropped
     if dropped:
-        from screener.records import drop_summary_lines, summarise_drops
-
         lines = drop_summary_lines(dropped)
         warns.append(lines[0] + " " + "; ".join(ln.strip() for ln in lines[1:]) + ".")
         provenance["dropped_rows"] = {"total": len(dropped),
@@ -1546,196 +1319,22 @@ def run_analysis(
     )
 
 
-def write_outputs(result: RunResult, folder, *, progress=None) -> list:
-    """Write every output of a run into ``folder`` (which must exist).
+def sampling_points(result: RunResult):
+    """Suggested sampling points for the top sites (for sheets and GPX), or None.
 
-    The file names come from :class:`screener.outputs.run_folder.RunFolder`.
-    Returns the list of files written (relative to ``folder``).
+    Returns
+    -------
+    pandas.DataFrame or None
+        ``site_id, point_id, longitude, latitude, x, y, suitability`` for up to
+        ``[outputs] sampling_points`` points in each of the ``[outputs] field_sheets``
+        best sites.
     """
-    from screener.outputs import gpx, report, sheets
-    from screener.outputs.rasters import write_raster
-    from screener.outputs.run_folder import RunFolder
-    from screener.outputs.tables import (
-        CANDIDATE_COLUMNS,
-        EVALUATION_COLUMNS,
-        OVERLAP_COLUMNS,
-        write_csv,
-    )
-
-    import pandas as pd
-
-    progress = progress or Progress(None)
-    run = RunFolder.for_taxa(folder, result.taxa)
-    grid = result.grid
-    s = result.settings
-    written = []
-
-    def rel(p):
-        written.append(run.relative(p))
-
-    run.make_subfolders()
-    progress.step("rasters")
-    for name, t in result.taxa.items():
-        rel(write_raster(run.suitability(name), t.suitability, grid,
-                         description=f"consensus suitability of {name}"))
-        for fam, m in t.family_maps.items():
-            rel(write_raster(run.suitability(name, fam), m, grid,
-                             description=f"{fam} suitability of {name}"))
-        if t.agreement is not None:
-            rel(write_raster(run.agreement(name), t.agreement,
-                             grid, description="share of families calling the cell suitable"))
-        for key, th in t.thresholds.items():
-            if key in ("mtp", "relaxed"):
-                binary = np.where(grid.mask, t.suitability >= th.value, False)
-                rel(write_raster(run.range_map(name, key), binary, grid,
-                                 description=f"suitable at {key} = {th.value:.4f}"))
-        if t.mess is not None:
-            rel(write_raster(run.mess(name), t.mess, grid,
-                             description="MESS; < 0 = novel environment"))
-        if t.most_dissimilar is not None:
-            rel(write_raster(run.most_dissimilar(name),
-                             t.most_dissimilar.astype(np.int32), grid,
-                             description="index of the most dissimilar layer: "
-                             + ", ".join(f"{i}={n}" for i, n in enumerate(result.layer_names))))
-    if result.slices is not None:
-        from screener.outputs.timeslices import write_slice_rasters
-
-        for p in write_slice_rasters(result, folder):
-            rel(p)
-    if result.barrier is not None:
-        rel(write_raster(run.barrier_tif, result.barrier, grid,
-                         description="depth of unsuitable gaps between sister ranges"))
-    if result.access_hours is not None:
-        ah = np.where(np.isfinite(result.access_hours), result.access_hours, np.nan)
-        rel(write_raster(run.access_hours_tif, ah, grid,
-                         description="walking hours from the nearest start point"))
-    progress.step("tables")
-    ev = pd.DataFrame([r for t in result.taxa.values() for r in t.evaluation])
-    rel(write_csv(run.evaluation_csv, ev, EVALUATION_COLUMNS))
-    rel(write_csv(run.overlap_csv, result.overlap, OVERLAP_COLUMNS))
-    if len(result.taxa) > 2 and result.comparisons:
-        from screener.overlap import pairwise_table
-
-        pw = pairwise_table(result.comparisons)
-        from screener.outputs.tables import neutralise_frame
-
-        neutralise_frame(pw).to_csv(run.overlap_pairwise_csv, float_format="%.10g",
-                                    lineterminator="\n")
-        rel(run.overlap_pairwise_csv)
-    from screener.outputs.privacy import shareable_result
-
-    so = s.get("outputs", {})
-    if _output_setting(so, "full_precision"):
-        shareable = result  # asked for: every output is marked full precision
-    else:
-        shareable = shareable_result(
-            result, sites=_output_setting(so, "generalise_sites"),
-            grid_deg=_output_setting(so, "generalise_deg"),
-        )
-    dropped = pd.DataFrame(
-        [{"line": d.line, "occurrence_id": d.occurrence_id, "taxon": d.taxon,
-          "reason": d.reason} for d in shareable.dropped],
-        columns=["line", "occurrence_id", "taxon", "reason"],
-    )
-    rel(write_csv(run.dropped_records_csv, dropped))
-    sites = shareable.sites
-    rel(write_csv(run.candidates_csv, sites, CANDIDATE_COLUMNS))
-    gpkg = run.candidates_gpkg
-    if len(sites):
-        _casefold_unique_columns(sites).to_file(gpkg, layer="sites", driver="GPKG")
-    else:
-        import geopandas as gpd
-
-        gpd.GeoDataFrame({"site_id": []}, geometry=[], crs=grid.pyproj_crs).to_file(
-            gpkg, layer="sites", driver="GPKG"
-        )
-    if result.paths is not None and len(result.paths):
-        result.paths.to_file(gpkg, layer="least_cost_paths", driver="GPKG")
-    rel(gpkg)
-    progress.step("waypoints, field sheets and report")
-    # routes end at the exact site points: left out when sites are generalised
-    exact_sites = not _output_setting(so, "generalise_sites")
-    rel(gpx.write_gpx(
-        run.sites_gpx, sites,
-        sheets.site_sampling_points(shareable, top_n=_output_setting(so, "field_sheets")),
-        start_points=result.start_points,
-        routes=result.routes if exact_sites else None,
-    ))
-    rel(sheets.write_field_sheets(
-        run.field_sheets_pdf, shareable, top_n=_output_setting(so, "field_sheets"),
-        page_size=_output_setting(so, "page_size"),
-    ))
-    html = report.render_report(shareable)
-    run.report_html.write_text(html, encoding="utf-8")
-    rel(run.report_html)
-    from screener.outputs.mappage import render_map_page
-
-    page = shareable if exact_sites else _without_routes(shareable)
-    run.map_html.write_text(render_map_page(page), encoding="utf-8")
-    rel(run.map_html)
-    prov = dict(result.provenance)
-    prov["taxa"] = dict(run.stems)
-    prov["outputs"] = sorted(written + [run.relative(run.run_json)])
-    prov.update(input_locations(prov, folder))
-    run.run_json.write_text(json.dumps(_jsonable(prov), indent=2, sort_keys=True)
-                            + "\n", encoding="utf-8")
-    return prov["outputs"]
-
-
-def _casefold_unique_columns(frame):
-    """Columns renamed so no two differ only by case (GeoPackage, like SQLite, ignores
-    case in field names): the second of a clash gets ``_2``, the third ``_3``."""
-    seen, names = set(), []
-    for c in frame.columns:
-        name, k = str(c), 1
-        while name.casefold() in seen:
-            k += 1
-            name = f"{c}_{k}"
-        seen.add(name.casefold())
-        names.append(name if name != str(c) else c)
-    out = frame.copy()
-    out.columns = names
-    return out
-
-
-def _without_routes(result: RunResult) -> RunResult:
-    """A copy without walking routes (they end at exact site points)."""
-    import copy
-
-    out = copy.copy(result)
-    out.routes = {}
-    return out
-
-
-def _jsonable(obj):
-    if isinstance(obj, dict):
-        return {str(k): _jsonable(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_jsonable(v) for v in obj]
-    if isinstance(obj, (np.integer,)):
-        return int(obj)
-    if isinstance(obj, (np.floating, float)):
-        v = float(obj)
-        return v if np.isfinite(v) else None
-    if isinstance(obj, Path):
-        return str(obj)
-    return obj
-
-
-def _add_sampling_points(result: RunResult) -> None:
-    """Suggested sampling points for the top sites (for sheets and GPX)."""
-    import pandas as pd
-
-    from screener.outputs.sheets import suggest_sampling_points
-
     so = result.settings.get("outputs", {})
-    n_pts = int(_output_setting(so, "sampling_points"))
-    top = int(_output_setting(so, "field_sheets"))
+    n_pts = int(so.get("sampling_points", default("outputs", "sampling_points")))
+    top = int(so.get("field_sheets", default("outputs", "field_sheets")))
     cand = result.candidates
     if cand is None or not len(result.sites) or n_pts <= 0:
-        return
-    from screener.isolation import clade_suitability
-
+        return None
     clade = clade_suitability({n: t.suitability for n, t in result.taxa.items()})
     frames = []
     for _, site in result.sites.head(top).iterrows():
@@ -1745,8 +1344,7 @@ def _add_sampling_points(result: RunResult) -> None:
         pts = suggest_sampling_points(result.grid, site_mask, clade, n=n_pts)
         pts["site_id"] = site["site_id"]
         frames.append(pts)
-    if frames:
-        result.sampling_points = pd.concat(frames, ignore_index=True)
+    return pd.concat(frames, ignore_index=True) if frames else None
 
 
 def run_project(
@@ -1781,7 +1379,6 @@ def run_project(
     -------
     RunResult
     """
-    from screener.outputs.staging import check_output_folder, new_run_id, staged_output
 
     inputs = input_paths(settings)
     out = check_output_folder(out_dir, overwrite=overwrite, inputs=inputs)
@@ -1790,18 +1387,13 @@ def run_project(
     if cache_dir is not None:
         log.info("stage cache: %s (safe to delete)", cache_dir)
     result = run_analysis(settings, echo=echo, scheduler=scheduler, cache_dir=cache_dir)
-    _add_sampling_points(result)
+    run_id = new_run_id()
+    result = dataclasses.replace(result, sampling_points=sampling_points(result),
+                                 provenance={**result.provenance, "run_id": run_id})
     progress = Progress(echo, n_stages=5)
     progress.i = 4
     progress.stage(f"Writing outputs to {out}")
-    run_id = new_run_id()
-    result.provenance["run_id"] = run_id
     with staged_output(out, overwrite=overwrite, inputs=inputs, run_id=run_id) as stage:
         write_outputs(result, stage, progress=progress)
     progress.done()
     return result
-
-
-def _output_setting(outputs: dict, key: str):
-    """``[outputs] key`` of a run's settings, or its default when the run has none."""
-    return outputs.get(key, default("outputs", key))

@@ -18,8 +18,9 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 
-from screener.errors import RecordsError
+from screener.errors import InputError, RecordsError, suggest
 from screener.grid import Grid
 from screener.results import RecordDrop, TaxonRecords
 
@@ -34,6 +35,7 @@ __all__ = [
     "thin_by_distance",
     "summarise_drops",
     "drop_summary_lines",
+    "read_points_csv",
 ]
 
 log = logging.getLogger(__name__)
@@ -631,8 +633,6 @@ def validate_records(
             f"{raw.path} has no rows with a taxon name: fill in the taxon column."
         )
     if sensitive is not True and sensitive:
-        from screener.errors import suggest
-
         unknown = [t for t in sensitive if t not in in_file]
         if unknown:
             raise RecordsError(
@@ -641,8 +641,6 @@ def validate_records(
                 + suggest(unknown[0], in_file) + f" Taxa in the file: {', '.join(in_file)}."
             )
     if wanted is not None:
-        from screener.errors import suggest
-
         absent = [t for t in (taxa or ()) if t not in in_file]
         if absent:
             raise RecordsError(
@@ -911,3 +909,55 @@ def thin_by_distance(lon, lat, min_km: float, *, n_repeats: int = 20, random_sta
                 best = kept
         keep[nodes] = best
     return np.flatnonzero(keep)
+
+
+def read_points_csv(path, what: str, need=("longitude", "latitude")):
+    """Read a small CSV of points (start points, surveyed places) with checks.
+
+    Parameters
+    ----------
+    path : path-like
+    what : str
+        What the points are, for messages ("start points").
+    need : tuple of str
+        Columns that must be there and hold numbers (decimal degrees, WGS84).
+
+    Returns
+    -------
+    pandas.DataFrame
+        Column names stripped and lower-cased; ``need`` columns as floats.
+
+    Raises
+    ------
+    screener.errors.InputError
+        The file cannot be parsed, a column is missing, a value is not a number, or
+        coordinates are out of range; the message names the file and line.
+    """
+    text = _decode(Path(path).read_bytes(), str(path), None)
+    try:
+        df = pd.read_csv(io.StringIO(text))
+    except Exception as exc:  # pandas raises several parser errors
+        raise InputError(f"{path} ({what}) is not a readable CSV file: {exc}") from None
+    df.columns = [str(c).strip().lower() for c in df.columns]
+    for c in need:
+        if c not in df.columns:
+            raise InputError(
+                f"{path} ({what}) needs a {c!r} column; it has {', '.join(df.columns)}."
+                + suggest(c, df.columns)
+            )
+    for c in need:
+        vals = pd.to_numeric(df[c], errors="coerce")
+        bad = np.flatnonzero(vals.isna().to_numpy())
+        if bad.size:
+            raise InputError(
+                f"{path} ({what}) line {int(bad[0]) + 2}: {c} {df[c].iloc[bad[0]]!r} is not "
+                "a number (decimal degrees, WGS84)."
+            )
+        df[c] = vals
+    if (df["latitude"].abs() > 90).any() or (df["longitude"].abs() > 180).any():
+        i = int(np.flatnonzero((df["latitude"].abs() > 90) | (df["longitude"].abs() > 180))[0])
+        raise InputError(
+            f"{path} ({what}) line {i + 2}: coordinates out of range (longitude and "
+            "latitude swapped?)."
+        )
+    return df

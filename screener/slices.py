@@ -51,6 +51,8 @@ import pandas as pd
 from screener.errors import InputError, LayerError, suggest
 from screener.grid import Grid
 from screener.layers import LayerStack
+from screener.models.mapping import predict_map
+from screener.novelty import mess_map
 
 __all__ = [
     "PRESENT",
@@ -254,8 +256,6 @@ def map_models(models: dict, stack: LayerStack, *, map_fn=None) -> dict:
     -------
     dict of str to ndarray of float32 (NaN off the slice's mask)
     """
-    from screener.pipeline import predict_map
-
     return {f: predict_map(m, stack, map_fn=map_fn) for f, m in models.items()}
 
 
@@ -278,12 +278,11 @@ def project_taxon(family_maps: dict, weights: dict, stack: LayerStack,
         An executor's ``map`` (used for stacks streamed from disk).
     """
     from screener.models.ensemble import weighted_mean_map
-    from screener.pipeline import _mess_map
 
     if not family_maps:
         raise InputError("No family maps to combine on the time slice.")
     consensus = weighted_mean_map(family_maps, {f: weights[f] for f in family_maps})
-    mess, _ = _mess_map(stack, reference, map_fn=map_fn)
+    mess, _ = mess_map(stack, reference, map_fn=map_fn)
     return SliceProjection(consensus.astype(np.float32), dict(family_maps), mess,
                            outside_range_share(stack, reference))
 
@@ -607,8 +606,6 @@ def analyse_slices(present_grid: Grid, slices, taxa: dict, present, thresholds: 
         find_candidates,
         suitable_cells,
     )
-    from screener.pipeline import _mess_map
-
     isolation = dict(isolation or {})
     names = [s.name for s in slices]
     bad = [n for n in names if n == PRESENT or not n]
@@ -641,7 +638,7 @@ def analyse_slices(present_grid: Grid, slices, taxa: dict, present, thresholds: 
                 log.info("%s in %s: %.1f%% of cells outside the calibration range",
                          n, sl.name, 100 * proj[n].outside_range_share)
         projections[sl.name] = proj
-        clade_mess[sl.name], _ = _mess_map(sl.stack, pooled, map_fn=map_fn)
+        clade_mess[sl.name], _ = mess_map(sl.stack, pooled, map_fn=map_fn)
         suit = {n: p.suitability for n, p in proj.items()}
         clade_maps.append(clade_suitability(suit))
         suitable[sl.name] = suitable_cells(sl.grid, suit, thresholds)

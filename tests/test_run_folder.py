@@ -54,7 +54,7 @@ def test_unreadable_run_json_is_an_input_error(tmp_path):
 @pytest.mark.slow
 def test_written_outputs_are_where_the_folder_says(tmp_path):
     from screener.overlap import OVERLAP_COLUMNS
-    from screener.pipeline import write_outputs
+    from screener.outputs.writer import write_outputs
 
     result = make_run()
     # a one-taxon run has no pairs: its overlap table is empty

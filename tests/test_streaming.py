@@ -77,7 +77,7 @@ def test_parallel_prediction_over_windows_matches_serial(small_layers):
     # Each worker reads its own windows of a streamed stack; the map is identical.
     from screener.models import make_model
     from screener.parallel import make_executor
-    from screener.pipeline import predict_map
+    from screener.models.mapping import predict_map
 
     streamed = read_layers(small_layers, memory_mb=0.004)
     rng = np.random.default_rng(0)
@@ -90,11 +90,11 @@ def test_parallel_prediction_over_windows_matches_serial(small_layers):
     eager = predict_map(model, read_layers(small_layers), max_cells=200)
     assert_array_equal(serial, eager)
     # MESS over windows on workers equals MESS of the in-memory stack
-    from screener.pipeline import _mess_map
+    from screener.novelty import mess_map
 
     with make_executor("processes", n_workers=2) as ex:
-        m_par, i_par = _mess_map(streamed, B, max_cells=200, map_fn=ex.map)
-    m_mem, i_mem = _mess_map(read_layers(small_layers), B, max_cells=200)
+        m_par, i_par = mess_map(streamed, B, max_cells=200, map_fn=ex.map)
+    m_mem, i_mem = mess_map(read_layers(small_layers), B, max_cells=200)
     assert_array_equal(m_par, m_mem)
     assert_array_equal(i_par, i_mem)
 
@@ -104,7 +104,7 @@ def test_whole_block_prediction_equals_prediction_of_valid_cells(small_layers, f
     # Mostly valid blocks are predicted whole and masked; the map must equal the
     # model's own predictions at the valid cells, whichever path a block took.
     from screener.models import make_model
-    from screener.pipeline import predict_map
+    from screener.models.mapping import predict_map
 
     stack = read_layers(small_layers)
     valid = stack.grid.mask

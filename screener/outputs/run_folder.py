@@ -21,13 +21,21 @@ Examples
 from __future__ import annotations
 
 import json
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from screener.errors import InputError
 from screener.outputs.names import taxon_file_stem, taxon_file_stems
 
-__all__ = ["RunFolder", "taxon_file_stem", "taxon_file_stems", "read_provenance", "SUBFOLDERS"]
+__all__ = [
+    "RunFolder",
+    "taxon_file_stem",
+    "taxon_file_stems",
+    "read_provenance",
+    "input_locations",
+    "SUBFOLDERS",
+]
 
 #: sub-folders of a run folder: consensus and family maps, binary ranges, MESS maps
 SUBFOLDERS = ("suitability", "ranges", "novelty")
@@ -197,3 +205,34 @@ def read_provenance(path, *, what: str | None = None) -> dict:
         return json.loads(path.read_text(encoding="utf-8"))
     except ValueError as exc:
         raise InputError(f"{path} is not a readable run.json ({exc}).") from None
+
+
+def input_locations(provenance: dict, results_folder) -> dict:
+    """Where a run's inputs lie relative to its project file, and the project file
+    relative to the results folder (so a moved pair of folders still reproduces).
+
+    Parameters
+    ----------
+    provenance : dict
+        With ``project_file`` and ``input_hashes`` (absolute paths).
+    results_folder : path-like
+        The folder run.json is written into (or a sibling staging folder of it).
+
+    Returns
+    -------
+    dict
+        ``project_file_from_results`` (str or None) and ``inputs_from_project``
+        (absolute path -> path relative to the project file's folder).
+    """
+    project = provenance.get("project_file")
+    if not project:
+        return {"project_file_from_results": None, "inputs_from_project": {}}
+    project = Path(project).resolve()
+    here = Path(results_folder).resolve()
+    return {
+        "project_file_from_results": Path(os.path.relpath(project, here)).as_posix(),
+        "inputs_from_project": {
+            str(p): Path(os.path.relpath(Path(p).resolve(), project.parent)).as_posix()
+            for p in provenance.get("input_hashes", {})
+        },
+    }

@@ -28,7 +28,8 @@ def main():
     from screener.demo import write_demo_scenario
     from screener.isolation import clade_suitability, resistance_from_suitability
     from screener.models import make_model
-    from screener.pipeline import load_inputs, predict_map, run_project
+    from screener.models.mapping import predict_map
+    from screener.pipeline import load_inputs, run_project
     from screener.project import load_project
 
     stage_times: dict = {}

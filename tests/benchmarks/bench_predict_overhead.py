@@ -40,7 +40,7 @@ FAMILIES = [
 def main():
     from screener.layers import read_layers
     from screener.models import make_model
-    from screener.pipeline import predict_map
+    from screener.models.mapping import predict_map
     from screener.system import avoid_hugepage_stalls
 
     avoid_hugepage_stalls()

@@ -146,7 +146,7 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
     elif stage.startswith("predict") or stage == "novelty":
         from screener.models import make_model
         from screener.novelty import mess
-        from screener.pipeline import predict_map
+        from screener.models.mapping import predict_map
 
         family, params = {
             "predict_ppm": ("ppm", {"terms": "linear"}),
@@ -262,7 +262,7 @@ def chain_run(folder: Path) -> dict:
     from screener.models import make_model
     from screener.novelty import mess
     from screener.outputs.rasters import write_raster
-    from screener.pipeline import predict_map
+    from screener.models.mapping import predict_map
     from screener.thresholds import compute_thresholds
 
     t0 = time.perf_counter()

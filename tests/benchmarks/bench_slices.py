@@ -30,7 +30,8 @@ from screener.isolation import find_candidates
 from screener.layers import LayerStack
 from screener.models import make_model
 from screener.models.ensemble import weighted_mean_map
-from screener.pipeline import _mess_map, predict_map
+from screener.models.mapping import predict_map
+from screener.novelty import mess_map
 from screener.results import TaxonRecords, TaxonResult
 from screener.slices import TimeSlice, analyse_slices, map_models
 from screener.system import avoid_hugepage_stalls
@@ -86,7 +87,7 @@ def prediction_pass(present, taxa):
     for name, (t, models) in taxa.items():
         fam = {f: predict_map(m, present) for f, m in models.items()}
         maps[name] = weighted_mean_map(fam, t.ensemble_weights).astype(np.float32)
-        _mess_map(present, t.background_env)
+        mess_map(present, t.background_env)
     return maps
 
 

@@ -1,0 +1,132 @@
+"""Fitted models over the grid: block-by-block prediction and refit-and-map tasks.
+
+:func:`predict_map` turns a fitted :class:`~screener.models.base.NicheModel` into a
+suitability map (float32, NaN off the valid mask), block by block, in this process or
+window by window on an executor's workers for stacks streamed from disk;
+:func:`outside_map` marks the cells beyond a model's calibration range the same way.
+:class:`GeographicRefit` refits a family to other record cells and maps it (the task
+of the geographic-space overlap tests).
+"""
+
+from __future__ import annotations
+
+import functools
+
+import numpy as np
+
+from screener.layers import LayerStack
+from screener.models import make_model
+
+__all__ = ["predict_map", "outside_map", "GeographicRefit"]
+
+#: blocks at least this valid are predicted whole and masked afterwards (for families
+#: that accept invalid rows): cheaper than gathering the valid cells of a block
+_PREDICT_WHOLE_BLOCK = 0.5
+
+
+def _blocks_for(model, stack: LayerStack, max_cells: int, rows=None):
+    """Blocks of ``stack`` with each block's predictions, float32 of the block's shape
+    (NaN where invalid)."""
+    whole = getattr(model, "accepts_invalid_rows", False)
+    for sl, X, valid in stack.iter_blocks(max_cells, rows=rows, gather=not whole):
+        if whole:
+            if valid.mean() >= _PREDICT_WHOLE_BLOCK:
+                pred = model.predict(X, check_input=False, dtype=np.float32)
+                pred = pred.reshape(valid.shape)
+                pred[~valid] = np.nan
+                yield sl, pred
+                continue
+            X = np.take(X, np.flatnonzero(valid.ravel()), axis=0)
+        block = np.full(valid.shape, np.nan, dtype=np.float32)
+        if X.shape[0]:
+            block[valid] = model.predict(X, dtype=np.float32)
+        yield sl, block
+
+
+def _predict_rows(model, stack: LayerStack, rows: tuple, max_cells: int):
+    """Predictions for the valid cells of a band of rows (a task for an executor)."""
+    r0, r1 = rows
+    sub = stack.grid.mask[r0:r1]
+    out = [block[stack.grid.mask[sl]]
+           for sl, block in _blocks_for(model, stack, max_cells, rows=slice(r0, r1))]
+    return np.concatenate(out) if out else np.empty(int(sub.sum()), np.float32)
+
+
+def predict_map(model, stack: LayerStack, *, max_cells: int = 1 << 20,
+                map_fn=None) -> np.ndarray:
+    """Predict a fitted model over the grid block by block (float32, NaN off-mask).
+
+    Parameters
+    ----------
+    model : NicheModel
+        Fitted.
+    stack : LayerStack
+        Predictors in the order the model was fitted with.
+    max_cells : int, default 1048576
+        Cells per block (memory per block is about ``max_cells * n_layers * 4`` bytes).
+    map_fn : callable, optional
+        ``map``-like callable of a parallel executor.  Used for stacks streamed from
+        disk, where each worker reads its own windows; in-memory stacks are predicted
+        in this process (sending their blocks to workers would cost more than it saves).
+    """
+    grid = stack.grid
+    out = np.full(grid.shape, np.nan, dtype=np.float32)
+    if map_fn is not None and stack.streamed:
+        bands = stack.row_bands(max_cells)
+        task = functools.partial(_predict_rows, model, stack, max_cells=max_cells)
+        for (r0, r1), values in zip(bands, map_fn(task, bands)):
+            block = out[r0:r1]
+            block[grid.mask[r0:r1]] = values
+        return out
+    for sl, block in _blocks_for(model, stack, max_cells):
+        out[sl] = block
+    return out
+
+
+def _outside_rows(stack: LayerStack, clamp, rows: tuple, max_cells: int):
+    """1.0 where any predictor lies outside ``clamp``'s range, at the valid cells of a
+    band of rows (a task)."""
+    parts = [clamp.outside(X) for _, X, _ in
+             stack.iter_blocks(max_cells, rows=slice(*rows)) if X.shape[0]]
+    return (np.concatenate(parts) if parts else np.empty(0, bool)).astype(np.float32)
+
+
+def outside_map(stack: LayerStack, clamp, max_cells: int = 1 << 20, map_fn=None):
+    """Map (float32, NaN off-mask) of cells beyond a model's calibration range: 1 where
+    the mapped prediction was clamped (or extrapolated, with clamping off), else 0."""
+    grid = stack.grid
+    out = np.full(grid.shape, np.nan, dtype=np.float32)
+    run = map_fn if map_fn is not None and stack.streamed else map
+    bands = stack.row_bands(max_cells)
+    task = functools.partial(_outside_rows, stack, clamp, max_cells=max_cells)
+    for (r0, r1), values in zip(bands, run(task, bands)):
+        out[r0:r1][grid.mask[r0:r1]] = values
+    return out
+
+
+class GeographicRefit:
+    """Refit a model family to a set of record cells and map it (picklable).
+
+    Used by the geographic-space tests: ``self(cells)`` fits the family to the
+    predictor values at the flat cell indices ``cells`` against the pooled background
+    of the pair and returns the suitability map (float32, NaN off the mask).
+    """
+
+    def __init__(self, family, params, background, stack_values, mask):
+        self.family = family
+        self.params = params
+        self.background = background
+        self.stack_values = stack_values
+        self.mask = mask
+        pos = np.full(mask.size, -1, dtype=np.int64)
+        pos[np.flatnonzero(mask.ravel())] = np.arange(int(mask.sum()))
+        self.pos = pos
+
+    def __call__(self, cells):
+        rows = self.pos[np.asarray(cells, dtype=np.int64)]
+        model = make_model(self.family, **self.params).fit(
+            self.stack_values[rows].astype(np.float64), self.background
+        )
+        out = np.full(self.mask.shape, np.nan, dtype=np.float32)
+        out[self.mask] = model.predict(self.stack_values).astype(np.float32)
+        return out
