@@ -245,3 +245,24 @@ def ensure_debian_tool(binary: str, package: str) -> str | None:
         print(f"could not install {package}: {exc}")
         return None
     return shutil.which(binary)
+
+
+def figure_points(fig) -> np.ndarray:
+    """Every point an artist of a figure draws, in data coordinates: the offsets of
+    marker collections (scatter), the vertices of lines, patches and paths, and the
+    anchors of texts."""
+    import matplotlib.text as mtext
+
+    pts = [np.empty((0, 2))]
+    for art in fig.findobj():
+        if hasattr(art, "get_offsets"):
+            pts.append(np.asarray(art.get_offsets(), float).reshape(-1, 2))
+        if hasattr(art, "get_xydata"):
+            pts.append(np.asarray(art.get_xydata(), float).reshape(-1, 2))
+        if hasattr(art, "get_paths"):
+            pts += [np.asarray(p.vertices, float).reshape(-1, 2) for p in art.get_paths()]
+        elif hasattr(art, "get_path") and not isinstance(art, mtext.Text):
+            pts.append(np.asarray(art.get_path().vertices, float).reshape(-1, 2))
+        if isinstance(art, mtext.Text):
+            pts.append(np.asarray([art.get_position()], float))
+    return np.concatenate(pts)

@@ -790,18 +790,67 @@ def test_a_bug_is_reported_as_one_and_leaves_nothing(warm, tmp_path, monkeypatch
 _TOKEN = re.compile(rb"-?\d+\.\d+")
 
 
-def _file_texts(path: Path) -> list:
-    """The bytes of a file, plus the inflated streams of a PDF."""
+def _png_text_chunks(data: bytes) -> list:
+    """The text chunks (tEXt, zTXt, iTXt) of a PNG, as the PNG specification lays
+    them out: length, type, data, CRC."""
+    import struct
     import zlib
 
+    out, i = [], 8
+    while i + 8 <= len(data):
+        (n,), kind = struct.unpack(">I", data[i:i + 4]), data[i + 4:i + 8]
+        body = data[i + 8:i + 8 + n]
+        if kind == b"tEXt":
+            out.append(body)
+        elif kind == b"zTXt":
+            key, _, rest = body.partition(b"\0")
+            out.append(key + b" " + zlib.decompress(rest[1:]))
+        elif kind == b"iTXt":
+            key, _, rest = body.partition(b"\0")
+            flag, text = rest[0], rest[2:].split(b"\0", 2)[-1]
+            out.append(key + b" " + (zlib.decompress(text) if flag else text))
+        i += 12 + n
+    return out
+
+
+def _embedded_texts(data: bytes) -> list:
+    """Texts inside an image or a page: PNG text chunks, SVG markup, and the images
+    embedded in HTML or SVG as base64 data URIs (each looked into in turn)."""
+    import base64
+
+    if data.startswith(b"\x89PNG\r\n\x1a\n"):
+        return _png_text_chunks(data)
+    out = []
+    for m in re.finditer(rb"data:([\w/+.-]+);base64,([A-Za-z0-9+/=\s]+)", data):
+        inner = base64.b64decode(m.group(2))
+        out.append(inner)
+        out += _embedded_texts(inner)
+    return out
+
+
+def _file_texts(path: Path) -> list:
+    """The bytes of a file, plus the inflated streams and the text of a PDF (as
+    poppler's pdftotext extracts it) and the texts embedded in images and pages."""
+    import subprocess
+    import zlib
+
+    from _synthetic_run import ensure_debian_tool
+
     raw = path.read_bytes()
-    texts = [raw]
+    texts = [raw] + _embedded_texts(raw)
     if path.suffix == ".pdf":
         for m in re.finditer(rb"stream\r?\n(.*?)\r?\nendstream", raw, re.S):
             try:
                 texts.append(zlib.decompress(m.group(1)))
             except zlib.error:
                 pass
+        exe = ensure_debian_tool("pdftotext", "poppler-utils")
+        if exe:
+            texts.append(subprocess.run([exe, "-layout", str(path), "-"], check=True,
+                                        capture_output=True).stdout)
+            meta = subprocess.run([exe.replace("pdftotext", "pdfinfo"), str(path)],
+                                  capture_output=True)
+            texts.append(meta.stdout)
     return texts
 
 
@@ -827,10 +876,24 @@ def _full_precision_leaks(folder: Path, coords) -> list:
     return leaks
 
 
+def _drawn_records(figures, coords) -> list:
+    """(figure number, lon, lat) where a figure draws a record at full precision."""
+    return [(k, lon, lat) for k, pts in enumerate(figures) for lon, lat in coords
+            if np.any(np.all(np.abs(pts - (lon, lat)) < 1e-7, axis=1))]
+
+
 @pytest.mark.slow
-def test_sensitive_localities_never_leave_at_full_precision(warm, tmp_path):
+def test_sensitive_localities_never_leave_at_full_precision(warm, tmp_path, monkeypatch):
+    import matplotlib.figure
+    import matplotlib.text
+    from _synthetic_run import figure_points
+
+    from screener.outputs.privacy import generalise_coordinates
+
     scen = tmp_path / "scen"
-    shutil.copytree(warm, scen)  # with its cache: the kept records are unchanged
+    # with the cache of a run without `sensitive`: the cached model stage must not
+    # bring back records flagged as not sensitive
+    shutil.copytree(warm, scen)
     set_in_section(scen, "occurrences", "sensitive = true")
     rows = read_rows(scen)
     # rows dropped for reasons that quote coordinates
@@ -838,21 +901,42 @@ def test_sensitive_localities_never_leave_at_full_precision(warm, tmp_path):
     rows.append(["Nebrivex quennomae", "84.91234", "123.45678", "MVNC 9002"])
     write_rows(scen, rows)
     coords = [(float(r[1]), float(r[2])) for r in rows[1:]]
+    # every figure the run saves (report PNGs, field-sheet PDF pages) is looked into
+    # at the moment it is saved
+    figures, drawn_text = [], tmp_path / "figure-texts"
+    drawn_text.mkdir()
+    real_savefig = matplotlib.figure.Figure.savefig
+
+    def spy(fig, *a, **k):
+        figures.append(figure_points(fig))
+        texts = [t.get_text() for t in fig.findobj(matplotlib.text.Text)]
+        (drawn_text / f"{len(figures)}.txt").write_text("\n".join(texts), "utf-8")
+        return real_savefig(fig, *a, **k)
+
+    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", spy)
     out = tmp_path / "out"
     result = invoke("run", scen / "project.toml", "--out", out)
     assert result.exit_code == 0, result.output
     written = {p.suffix for p in out.rglob("*") if p.is_file()}
     assert {".csv", ".html", ".json", ".gpkg", ".gpx", ".pdf", ".tif"} <= written
     assert _full_precision_leaks(out, coords) == []
+    assert len(figures) > 10
+    assert _drawn_records(figures, coords) == []
+    assert _full_precision_leaks(drawn_text, coords) == []  # nor written on them
+    # the figures draw the records at their generalised coordinates instead
+    glon, glat = generalise_coordinates(*np.transpose(coords[:5]))
+    assert len(_drawn_records(figures, zip(glon, glat))) > 0
     dropped = (out / "dropped_records.csv").read_text(encoding="utf-8")
     assert "(about 120.150, -14.650, generalised to 0.1 degrees) is outside the grid" in dropped
     assert "latitude [withheld] is beyond" in dropped
     # the scan finds what it looks for: asked for full precision, the outputs hold it
     add_settings(scen, "[outputs]\nfull_precision = true")
     full = tmp_path / "full"
+    figures.clear()
     assert invoke("run", scen / "project.toml", "--out", full).exit_code == 0
     leaked = {name for name, *_ in _full_precision_leaks(full, coords)}
     assert {"dropped_records.csv", "report.html"} <= leaked
+    assert len(_drawn_records(figures, coords)) > 0
 
 
 def test_unknown_sensitive_taxon_is_an_error(scen):

@@ -113,3 +113,45 @@ def test_generalised_sites_carry_no_exact_grid_cell():
     assert ((out.sites["row"] >= 0) & (out.sites["row"] < run.grid.n_rows)).all()
     assert ((out.sites["col"] >= 0) & (out.sites["col"] < run.grid.n_cols)).all()
     assert run.sites["row"].tolist() == rows.tolist()  # the input is left unchanged
+
+
+def test_every_figure_draws_sensitive_records_only_generalised(tmp_path, monkeypatch):
+    # A taxon named sensitive in the settings but whose records are not flagged (as
+    # when they come from a stage cached by a run without the setting).
+    import matplotlib.figure
+    from _synthetic_run import figure_points
+
+    from screener.outputs import maps, report, sheets
+
+    run = make_run(sensitive=False)
+    run.settings = {"occurrences": {"sensitive": [TAXA[1]]}}
+    shared = shareable_result(run)
+    figures = []
+    real_savefig = matplotlib.figure.Figure.savefig
+
+    def spy(fig, *a, **k):  # every figure at the moment it is saved
+        figures.append(figure_points(fig))
+        return real_savefig(fig, *a, **k)
+
+    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", spy)
+    report.render_report(shared)
+    sheets.write_field_sheets(tmp_path / "sheets.pdf", shared, top_n=2)
+    for name in TAXA:
+        for make in (maps.plot_suitability, maps.plot_ranges):
+            maps.figure_to_png_bytes(make(shared, name).figure)
+    assert len(figures) > 5
+    points = np.concatenate(figures)
+
+    def drawn(rec):
+        return [np.any(np.all(np.abs(points - xy) < 1e-6, axis=1)) for xy in zip(rec.x, rec.y)]
+
+    full, general = run.taxa[TAXA[1]].records, shared.taxa[TAXA[1]].records
+    assert not np.allclose(full.x, general.x)
+    # a record in the cell that is also a site's best cell is drawn as that site
+    site_xy = set(zip(run.sites.x, run.sites.y))
+    is_site = [xy in site_xy for xy in zip(full.x, full.y)]
+    assert sum(is_site) < full.n
+    # the sensitive taxon: never at full precision
+    assert not any(d and not s for d, s in zip(drawn(full), is_site, strict=True))
+    assert all(drawn(general))  # but at its generalised points
+    assert all(drawn(run.taxa[TAXA[0]].records))  # the other taxon as recorded

@@ -237,7 +237,8 @@ def generalised_result(
         result.dropped or [])
     for name, tr in result.taxa.items():
         tr2 = copy.copy(tr)
-        if all_taxa or tr.records.sensitive:
+        # named in the settings or flagged on the records (either is enough)
+        if all_taxa or sensitive is True or name in sensitive or tr.records.sensitive:
             tr2.records = _generalise_records(tr.records, grid, g)
             done.append(name)
         out.taxa[name] = tr2
