@@ -74,7 +74,7 @@ from screener.records import (
     summarise_drops,
     validate_records,
 )
-from screener.results import RunResult, TaxonResult
+from screener.results import OverlapResult, PlanResult, RunResult, TaxonResult
 from screener.robustness import RefitPlan, record_resampling
 from screener.routes import walking_routes
 from screener.slices import TimeSlice, analyse_slices, slice_stack
@@ -762,19 +762,16 @@ def _threshold_columns(th: dict) -> dict:
 
 
 # --------------------------------------------------------------------------- overlap
-def compare_taxa(intake: Intake, taxa: dict, *, executor=None, progress=None):
+def compare_taxa(intake: Intake, taxa: dict, *, executor=None,
+                 progress=None) -> OverlapResult:
     """Niche overlap and its tests for every pair of taxa.
 
     Returns
     -------
-    overlap : pandas.DataFrame
-        Rows of overlap.csv.
-    readings : list of str
-        Plain-words reading per pair.
-    comparisons : list
-        The :class:`screener.overlap.PairComparison` objects (for figures).
+    OverlapResult
+        Rows of overlap.csv, a plain-words reading and the
+        :class:`screener.overlap.PairComparison` of every pair.
     """
-
 
     progress = progress or Progress(None)
     s = intake.settings
@@ -825,7 +822,7 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor=None, progress=None):
     readings = [cmp.plain_reading() for cmp in comparisons]
 
     df = pd.DataFrame(rows) if rows else pd.DataFrame(columns=OVERLAP_COLUMNS)
-    return df, readings, comparisons
+    return OverlapResult(df, readings, comparisons)
 
 
 def _shared_available(intake: Intake, ta, tb, seed: int) -> np.ndarray:
@@ -890,7 +887,7 @@ def _clade_mess(intake: Intake, taxa: dict, map_fn=None):
     return mess_map(intake.predictor_stack(), ref, map_fn=map_fn)
 
 
-def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dict:
+def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> PlanResult:
     """Candidate sites, least-cost paths, barriers, access and the ranked plan.
 
     ``map_fn`` (an executor's ``map``) runs the clade MESS window by window on the
@@ -898,10 +895,10 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
 
     Returns
     -------
-    dict
-        ``sites`` (GeoDataFrame, best first), ``paths`` (GeoDataFrame), ``barrier``,
-        ``access_hours``, ``candidates`` (the :class:`screener.isolation.CandidateSet`),
-        ``clade_mess``.
+    PlanResult
+        Sites (best first), least-cost paths, barrier and walking-time maps, the
+        :class:`screener.isolation.CandidateSet`, the clade MESS, walking routes and
+        the time slices.
     """
 
     progress = progress or Progress(None)
@@ -1032,18 +1029,13 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> dic
         hist = slices.history[slices.history["site_id"].isin(found)].copy()
         hist["site_id"] = hist["site_id"].map(ids).astype(object)
         slices = dataclasses.replace(slices, history=hist)
-    return {
-        "sites": gdf,
-        "paths": paths,
-        "barrier": cand.barrier,
-        "access_hours": access_hours,
-        "candidates": cand,
-        "clade_mess": clade_mess,
-        "routes": {ids[int(k)]: dataclasses.replace(v, site_id=ids[int(k)])
-                   for k, v in routes.items() if int(k) in ids},
-        "start_points": starts,
-        "slices": slices,
-    }
+    return PlanResult(
+        sites=gdf, paths=paths, barrier=cand.barrier, access_hours=access_hours,
+        candidates=cand, clade_mess=clade_mess,
+        routes={ids[int(k)]: dataclasses.replace(v, site_id=ids[int(k)])
+                for k, v in routes.items() if int(k) in ids},
+        start_points=starts, slices=slices,
+    )
 
 
 def _record_resampling(intake, taxa, cand, n_sites, progress, map_fn, use, other):
@@ -1239,34 +1231,34 @@ def run_analysis(
             taxa[name] = res
         progress.stage("Niche overlap between sister taxa")
         if len(taxa) >= 2:
-            okey = digest("overlap", [_taxon_key(intake, n) for n in taxa], dict(s.overlap),
+            okey = digest("overlap", OverlapResult.__name__,
+                          [_taxon_key(intake, n) for n in taxa], dict(s.overlap),
                           dict(s.models), s.project.random_state)
-            got = cache.get("overlap", okey)
-            if got is None:
-                got = compare_taxa(intake, taxa, executor=executor, progress=progress)
-                cache.put("overlap", okey, got)
+            overlap = cache.get("overlap", okey)
+            if overlap is None:
+                overlap = compare_taxa(intake, taxa, executor=executor, progress=progress)
+                cache.put("overlap", okey, overlap)
             else:
                 progress.step("reused cached overlap tests")
-            overlap, readings, comparisons = got
         else:
-            overlap, readings, comparisons = pd.DataFrame(columns=OVERLAP_COLUMNS), [], []
+            overlap = OverlapResult(pd.DataFrame(columns=OVERLAP_COLUMNS))
             progress.step("one taxon only: no overlap to measure")
         progress.stage("Candidate sites, barriers and the ranked plan")
         plan = plan_sites(intake, taxa, progress=progress, map_fn=executor.map)
     progress.done()
     shade = hillshade(intake.grid, intake.elevation) if intake.elevation is not None else None
     warns = list(intake.warnings) + list(cache.problems)
-    if not len(plan["sites"]):
+    if not len(plan.sites):
         warns.append(
             "No candidate sites: no suitable patch outside the known ranges passed the "
             "isolation settings ([isolation] min_patch_km2, min_gap_km) at these "
             "thresholds. The plan is empty; the models, maps and overlap results are "
             "complete and written."
         )
-    warns.extend(plan["candidates"].warnings)
-    novel = plan["sites"]["novel_share"].fillna(0) > 0 if len(plan["sites"]) else []
-    if len(plan["sites"]) and np.any(novel):
-        ids = plan["sites"].loc[novel, "site_id"].tolist()
+    warns.extend(plan.candidates.warnings)
+    novel = plan.sites["novel_share"].fillna(0) > 0 if len(plan.sites) else []
+    if len(plan.sites) and np.any(novel):
+        ids = plan.sites.loc[novel, "site_id"].tolist()
         warns.append(
             f"{len(ids)} sites include novel environments (MESS < 0): predictions there "
             "extrapolate beyond the calibration data; treat them with extra caution."
@@ -1299,26 +1291,26 @@ def run_analysis(
         grid=intake.grid,
         layer_names=intake.predictors,
         taxa=taxa,
-        sites=plan["sites"],
+        sites=plan.sites,
         dropped=intake.records.dropped,
-        overlap=overlap,
-        overlap_readings=readings,
-        paths=plan["paths"],
-        barrier=plan["barrier"],
+        overlap=overlap.table,
+        overlap_readings=overlap.readings,
+        paths=plan.paths,
+        barrier=plan.barrier,
         elevation=intake.elevation,
         hillshade=shade,
-        access_hours=plan["access_hours"],
+        access_hours=plan.access_hours,
         sampling_points=None,
         settings=s.as_dict(),
         provenance=provenance,
         warnings=warns,
         intake_summary=intake.summary_lines(),
-        comparisons=comparisons,
-        candidates=plan["candidates"],
-        clade_mess=plan["clade_mess"],
-        routes=plan["routes"],
-        start_points=plan["start_points"],
-        slices=plan["slices"],
+        comparisons=overlap.comparisons,
+        candidates=plan.candidates,
+        clade_mess=plan.clade_mess,
+        routes=plan.routes,
+        start_points=plan.start_points,
+        slices=plan.slices,
     )
 
 

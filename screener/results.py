@@ -11,7 +11,15 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["RecordDrop", "TaxonRecords", "Threshold", "TaxonResult", "RunResult"]
+__all__ = [
+    "RecordDrop",
+    "TaxonRecords",
+    "Threshold",
+    "TaxonResult",
+    "OverlapResult",
+    "PlanResult",
+    "RunResult",
+]
 
 
 @dataclass(frozen=True)
@@ -154,9 +162,68 @@ class TaxonResult:
     slice_maps: dict = field(default_factory=dict)
 
 
-@dataclass(eq=False)
+@dataclass(frozen=True, eq=False)
+class OverlapResult:
+    """What the overlap stage produced for every pair of taxa.
+
+    Attributes
+    ----------
+    table : pandas.DataFrame
+        Rows of overlap.csv (no rows with fewer than two taxa).
+    readings : list of str
+        Plain-words reading per pair.
+    comparisons : list
+        :class:`screener.overlap.PairComparison` per pair (null distributions etc.).
+    """
+
+    table: object
+    readings: list = field(default_factory=list)
+    comparisons: list = field(default_factory=list)
+
+
+@dataclass(frozen=True, eq=False)
+class PlanResult:
+    """What the site stage produced: ranked sites and the rasters behind them.
+
+    Attributes
+    ----------
+    sites : geopandas.GeoDataFrame
+        Candidate sites, best first, with the columns of candidates.csv.
+    paths : geopandas.GeoDataFrame or None
+        Least-cost paths (LineStrings).
+    barrier : ndarray or None
+        Barrier map (float32), NaN where no barrier.
+    access_hours : ndarray or None
+        Walking hours from the nearest start point.
+    candidates : screener.isolation.CandidateSet
+        Patch labels and cost surfaces behind the sites.
+    clade_mess : ndarray or None
+        MESS against the pooled calibration background of all taxa.
+    routes : dict
+        Walking route to each reachable site (site_id -> route), when start points are
+        given.
+    start_points : pandas.DataFrame or None
+        The start points the routes begin at.
+    slices : screener.slices.SliceSet or None
+        Time slices: projections, climatic stability and the sites' history.
+    """
+
+    sites: object
+    paths: object
+    barrier: np.ndarray | None
+    access_hours: np.ndarray | None
+    candidates: object
+    clade_mess: np.ndarray | None
+    routes: dict = field(default_factory=dict)
+    start_points: object = None
+    slices: object = None
+
+
+@dataclass(frozen=True, eq=False)
 class RunResult:
     """Everything one run produced, for writers, the report and notebooks.
+
+    Frozen: a changed copy is made with :func:`dataclasses.replace`.
 
     Attributes
     ----------

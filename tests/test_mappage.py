@@ -2,7 +2,7 @@
 Chromium: fits 1400 px, no errors, every raster loads, a click shows the site's card,
 toggles hide layers and the zoom buttons zoom."""
 
-import copy
+import dataclasses
 import html
 import re
 from html.parser import HTMLParser
@@ -27,9 +27,9 @@ def run():
     sites = r.sites.copy()
     sites["row"], sites["col"], _ = r.grid.rowcol(sites["x"].to_numpy(),
                                                   sites["y"].to_numpy())
-    r.routes = walking_routes(r.grid, r.elevation, surf, starts, sites)
-    r.start_points = starts
-    return r
+    return dataclasses.replace(
+        r, routes=walking_routes(r.grid, r.elevation, surf, starts, sites),
+        start_points=starts)
 
 
 @pytest.fixture(scope="module")
@@ -65,8 +65,7 @@ def test_page_is_self_contained_with_a_toggle_per_layer(page, run):
 
 
 def test_routes_left_out_when_empty(run):
-    r = copy.copy(run)
-    r.routes = {}
+    r = dataclasses.replace(run, routes={})
     assert 'data-layer="lyr-routes"' not in render_map_page(r)
 
 

@@ -1,5 +1,6 @@
 """Generalising sensitive coordinates (Chapman 2020, GBIF Secretariat)."""
 
+import dataclasses
 from decimal import ROUND_FLOOR, Decimal
 
 import numpy as np
@@ -104,7 +105,7 @@ def test_generalised_sites_carry_no_exact_grid_cell():
     assert inside.all()
     sites = run.sites.copy()
     sites["row"], sites["col"] = rows, cols
-    run.sites = sites
+    run = dataclasses.replace(run, sites=sites)
     out = generalised_result(run, sites=True)
     g_rows, g_cols, g_inside = run.grid.rowcol(out.sites.x.to_numpy(), out.sites.y.to_numpy())
     on = g_inside

@@ -101,10 +101,10 @@ def test_report_reads_plan_first_and_provenance_last(report, run):
 
 
 def test_report_title_holds_the_project_name(run):
-    import copy
+    import dataclasses
 
-    r = copy.copy(run)
-    r.settings = {**run.settings, "project": {"name": "Ridge <frogs> 2027"}}
+    r = dataclasses.replace(
+        run, settings={**run.settings, "project": {"name": "Ridge <frogs> 2027"}})
     out = render_report(r)
     assert "<title>Ridge &lt;frogs&gt; 2027: survey screening report</title>" in out
     assert "<h1>Ridge &lt;frogs&gt; 2027: survey screening report</h1>" in out

@@ -49,3 +49,25 @@ def test_results_survive_the_stage_cache_round_trip():
     np.testing.assert_array_equal(back.suitability, t.suitability)
     np.testing.assert_array_equal(back.records.cols, t.records.cols)
     assert back.thresholds == t.thresholds
+
+
+def test_a_run_result_is_changed_only_by_copying():
+    r = RunResult(grid=None, layer_names=["a"], taxa={}, sites=None)
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        r.sampling_points = "points"
+    r2 = dataclasses.replace(r, sampling_points="points")
+    assert r.sampling_points is None and r2.sampling_points == "points"
+    assert r2.layer_names is r.layer_names  # a shallow copy: maps are not duplicated
+
+
+def test_stage_results_survive_the_stage_cache_round_trip():
+    import pandas as pd
+
+    from screener.cache import decode, encode
+    from screener.results import OverlapResult
+
+    o = OverlapResult(pd.DataFrame({"D": [0.25]}), ["alike"], [])
+    arrays = {}
+    back = decode(encode(o, arrays), arrays)
+    assert isinstance(back, OverlapResult)
+    assert back.readings == ["alike"] and back.table["D"].tolist() == [0.25]

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
 
 import pandas as pd
@@ -56,9 +57,8 @@ def test_written_outputs_are_where_the_folder_says(tmp_path):
     from screener.overlap import OVERLAP_COLUMNS
     from screener.outputs.writer import write_outputs
 
-    result = make_run()
     # a one-taxon run has no pairs: its overlap table is empty
-    result.overlap = pd.DataFrame(columns=list(OVERLAP_COLUMNS))
+    result = dataclasses.replace(make_run(), overlap=pd.DataFrame(columns=list(OVERLAP_COLUMNS)))
     (tmp_path / "out").mkdir()
     written = write_outputs(result, tmp_path / "out")
     folder, prov = RunFolder.read(tmp_path / "out")

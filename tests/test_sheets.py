@@ -155,10 +155,10 @@ def test_field_sheets_in_poppler_text(tmp_path, run):
     exe = ensure_debian_tool("pdftotext", "poppler-utils")
     if exe is None:
         pytest.skip("pdftotext (poppler-utils) is absent and could not be installed")
-    import copy
+    import dataclasses
 
-    run = copy.copy(run)
-    run.settings = {**run.settings, "project": {"name": "Test <ridge> survey"}}
+    run = dataclasses.replace(
+        run, settings={**run.settings, "project": {"name": "Test <ridge> survey"}})
     path = write_field_sheets(tmp_path / "sheets.pdf", run, top_n=3)
     out = subprocess.run([exe, str(path), "-"], capture_output=True, check=True,
                          timeout=60).stdout.decode("utf-8", "replace")

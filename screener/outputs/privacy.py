@@ -229,11 +229,9 @@ def generalised_result(
     """
     g = _check_grid_deg(grid_deg)
     grid = result.grid
-    out = copy.copy(result)
-    out.taxa = {}
-    done = []
+    taxa, done = {}, []
     sensitive = True if all_taxa else sensitive_taxa(result)
-    out.dropped = _withhold_dropped(result.dropped, sensitive, g) if sensitive else list(
+    dropped = _withhold_dropped(result.dropped, sensitive, g) if sensitive else list(
         result.dropped or [])
     for name, tr in result.taxa.items():
         tr2 = copy.copy(tr)
@@ -241,19 +239,20 @@ def generalised_result(
         if all_taxa or sensitive is True or name in sensitive or tr.records.sensitive:
             tr2.records = _generalise_records(tr.records, grid, g)
             done.append(name)
-        out.taxa[name] = tr2
+        taxa[name] = tr2
+    changes = {}
     if sites:
-        out.sites = _generalise_sites(result.sites, grid, g)
-        out.paths = None
-        out.sampling_points = _generalise_points(result.sampling_points, grid, g)
-    out.provenance = dict(result.provenance or {})
-    out.provenance["generalised"] = {
+        changes = {"sites": _generalise_sites(result.sites, grid, g), "paths": None,
+                   "sampling_points": _generalise_points(result.sampling_points, grid, g)}
+    provenance = dict(result.provenance or {})
+    provenance["generalised"] = {
         "grid_deg": g,
         "taxa": done,
         "sites": bool(sites),
         "reference": "Chapman 2020, GBIF Secretariat",
     }
-    out.figures = {}
+    out = replace(result, taxa=taxa, dropped=dropped, provenance=provenance, figures={},
+                  **changes)
     log.info("generalised records of %d taxa to %.3g degree", len(done), g)
     return out
 
