@@ -124,8 +124,8 @@ def test_every_figure_draws_sensitive_records_only_generalised(tmp_path, monkeyp
 
     from screener.outputs import maps, report, sheets
 
-    run = make_run(sensitive=False)
-    run.settings = {"occurrences": {"sensitive": [TAXA[1]]}}
+    run = dataclasses.replace(make_run(sensitive=False),
+                              settings={"occurrences": {"sensitive": [TAXA[1]]}})
     shared = shareable_result(run)
     figures = []
     real_savefig = matplotlib.figure.Figure.savefig
