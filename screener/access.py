@@ -55,9 +55,6 @@ def tobler_speed_kmh(
     off_track : bool, default False
         Multiply by ``off_track_factor``.
     off_track_factor : float, default 0.6
-    memory_mb : float, optional
-        Working memory for the cost-distance solver (MB); see
-        :class:`~screener.costdistance.CostGraph`.
 
     Returns
     -------

@@ -41,6 +41,9 @@ from screener.errors import InputError, LayerError, ScreenerWarning, suggest
 from screener.evaluation import CONSENSUS, evaluate_family
 from screener.evaluation import auc as auc_fn
 from screener.isolation import (
+    Clade,
+    IsolationParameters,
+    SiteLayers,
     clade_suitability,
     find_candidates,
     paths_geodataframe,
@@ -926,23 +929,11 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> Pla
         if getattr(t, "clamped", None) is not None:
             clamped = t.clamped.copy() if clamped is None else np.fmax(clamped, t.clamped)
     progress.step("patches, known ranges and cost distance")
-    cand = find_candidates(
-        grid,
-        suit,
-        th_main,
-        records,
-        relaxed_thresholds=th_relaxed,
-        threshold_names=(use, other),
-        min_gap_km=s.isolation.min_gap_km,
-        min_patch_km2=s.isolation.min_patch_km2,
-        within_range_min_km=s.isolation.within_range_min_km,
-        resistance=s.isolation.resistance,
-        agreement=agreement,
-        novelty=clade_mess,
-        clamped=clamped,
-        elevation=intake.elevation,
-        memory_mb=s.compute.memory_mb or None,
-    )
+    clade = Clade(grid, suit, records, layers=SiteLayers(
+        agreement=agreement, novelty=clade_mess, elevation=intake.elevation,
+        clamped=clamped))
+    cand = find_candidates(clade, th_main, th_relaxed, IsolationParameters.from_settings(
+        s, threshold_names=(use, other)))
     sites = cand.sites.copy()
     slices = None
     if intake.slices:
@@ -951,13 +942,7 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> Pla
         slices = analyse_slices(
             grid, intake.slices, taxa, cand, th_main,
             method=s.slices.stability,
-            isolation={
-                "min_gap_km": s.isolation.min_gap_km,
-                "min_patch_km2": s.isolation.min_patch_km2,
-                "within_range_min_km": s.isolation.within_range_min_km,
-                "resistance": s.isolation.resistance,
-                "memory_mb": s.compute.memory_mb or None,
-            },
+            isolation=IsolationParameters.from_settings(s),
             map_fn=map_fn,
         )
         sites = sites.merge(slices.history, on="site_id", how="left")
@@ -1047,7 +1032,6 @@ def _record_resampling(intake, taxa, cand, n_sites, progress, map_fn, use, other
         return np.full((3, n_sites), np.nan)
     family = s.models.families[0]
     progress.step(f"record resampling: {n} bootstrap refits of {family} per taxon")
-    iso = s.isolation
     plan = RefitPlan(
         grid=intake.grid,
         values=intake.predictor_stack().valid_matrix(),
@@ -1057,11 +1041,7 @@ def _record_resampling(intake, taxa, cand, n_sites, progress, map_fn, use, other
         background={k: t.background_env for k, t in taxa.items()},
         relax=s.thresholds.relax,
         use=use,
-        isolation=dict(
-            min_gap_km=iso.min_gap_km, min_patch_km2=iso.min_patch_km2,
-            within_range_min_km=iso.within_range_min_km, resistance=iso.resistance,
-            threshold_names=(use, other), memory_mb=s.compute.memory_mb or None,
-        ),
+        isolation=IsolationParameters.from_settings(s, threshold_names=(use, other)),
         site_labels=cand.patch_labels,
         n_sites=n_sites,
         top_k=s.ranking.top_k,

@@ -34,6 +34,7 @@ from functools import partial
 import numpy as np
 
 from screener.grid import Grid
+from screener.isolation import IsolationParameters
 
 __all__ = ["RefitPlan", "record_resampling", "refit_replicate"]
 
@@ -62,8 +63,8 @@ class RefitPlan:
         Relaxed threshold = MTP x (1 - relax).
     use : {"mtp", "relaxed"}
         Threshold that defines suitable cells.
-    isolation : dict
-        Keyword arguments of :func:`screener.isolation.find_candidates`.
+    isolation : screener.isolation.IsolationParameters
+        Parameters of the isolation stage.
     site_labels : ndarray of int, shape (n_rows, n_cols)
         The plan's sites by rank (1..n_sites) on their cells, <= 0 elsewhere.
     n_sites : int
@@ -82,7 +83,7 @@ class RefitPlan:
     background: dict
     relax: float
     use: str
-    isolation: dict
+    isolation: IsolationParameters
     site_labels: np.ndarray
     n_sites: int
     top_k: int
@@ -98,7 +99,7 @@ def refit_replicate(plan: RefitPlan, seed: int) -> np.ndarray:
     ndarray of bool, shape (3, n_sites)
         Per plan site (by rank): stays suitable, stays isolated, stays in the top k.
     """
-    from screener.isolation import find_candidates, suitable_cells
+    from screener.isolation import Clade, find_candidates, suitable_cells
     from screener.models import make_model
     from screener.ranking import rank_sites
 
@@ -126,7 +127,7 @@ def refit_replicate(plan: RefitPlan, seed: int) -> np.ndarray:
         maps[taxon] = m
         thresholds[taxon] = mtp * (1.0 - plan.relax) if plan.use == "relaxed" else mtp
         recs[taxon] = (r[ok], c[ok])
-    cs = find_candidates(grid, maps, thresholds, recs, **plan.isolation)
+    cs = find_candidates(Clade(grid, maps, recs), thresholds, parameters=plan.isolation)
     out = np.zeros((3, plan.n_sites), dtype=bool)
     lab = np.asarray(plan.site_labels)
     here = lab > 0

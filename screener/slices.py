@@ -44,6 +44,7 @@ from __future__ import annotations
 
 import logging
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
@@ -53,6 +54,9 @@ from screener.grid import Grid
 from screener.layers import LayerStack
 from screener.models.mapping import predict_map
 from screener.novelty import mess_map
+
+if TYPE_CHECKING:
+    from screener.isolation import IsolationParameters
 
 __all__ = [
     "PRESENT",
@@ -570,7 +574,7 @@ HISTORY_COLUMNS = ["n_slices", "n_slices_isolated", "ever_connected", "connected
 
 
 def analyse_slices(present_grid: Grid, slices, taxa: dict, present, thresholds: dict,
-                   *, method: str = "geometric_mean", isolation: dict | None = None,
+                   *, method: str = "geometric_mean", isolation: IsolationParameters | None = None,
                    map_fn=None) -> SliceSet:
     """Project every taxon onto every slice, combine stability and follow the sites.
 
@@ -589,10 +593,9 @@ def analyse_slices(present_grid: Grid, slices, taxa: dict, present, thresholds: 
         The per-taxon thresholds that define suitable cells (as in the present).
     method : str, default "geometric_mean"
         See :func:`climatic_stability`.
-    isolation : dict, optional
-        Keyword arguments of :func:`screener.isolation.find_candidates` (min_gap_km,
-        min_patch_km2, within_range_min_km, resistance, memory_mb).  Each slice costs
-        one run at one threshold set.
+    isolation : screener.isolation.IsolationParameters, optional
+        Parameters of :func:`screener.isolation.find_candidates` (default: the
+        project file's defaults).  Each slice costs one run at one threshold set.
     map_fn : callable, optional
         An executor's ``map``.
 
@@ -601,12 +604,14 @@ def analyse_slices(present_grid: Grid, slices, taxa: dict, present, thresholds: 
     SliceSet
     """
     from screener.isolation import (
-        MIN_GAP_KM,
+        Clade,
+        IsolationParameters,
         clade_suitability,
         find_candidates,
         suitable_cells,
     )
-    isolation = dict(isolation or {})
+
+    isolation = IsolationParameters() if isolation is None else isolation
     names = [s.name for s in slices]
     bad = [n for n in names if n == PRESENT or not n]
     if bad or len(set(names)) != len(names):
@@ -642,9 +647,9 @@ def analyse_slices(present_grid: Grid, slices, taxa: dict, present, thresholds: 
         suit = {n: p.suitability for n, p in proj.items()}
         clade_maps.append(clade_suitability(suit))
         suitable[sl.name] = suitable_cells(sl.grid, suit, thresholds)
-        moved = shifted_records(sl.grid, records, suitable[sl.name],
-                                isolation.get("min_gap_km", MIN_GAP_KM))
-        cands[sl.name] = find_candidates(sl.grid, suit, thresholds, moved, **isolation)
+        moved = shifted_records(sl.grid, records, suitable[sl.name], isolation.min_gap_km)
+        cands[sl.name] = find_candidates(Clade(sl.grid, suit, moved), thresholds,
+                                         parameters=isolation)
         hist_in[sl.name] = (sl.grid, cands[sl.name], suitable[sl.name])
     mask = present_grid.mask
     stability = {n: climatic_stability(m, method, mask) for n, m in per_taxon.items()}
@@ -652,7 +657,7 @@ def analyse_slices(present_grid: Grid, slices, taxa: dict, present, thresholds: 
     present_suitable = suitable_cells(
         present_grid, {n: t.suitability for n, t in taxa.items()}, thresholds)
     history = site_history(present_grid, present, hist_in, present_suitable,
-                           min_gap_km=isolation.get("min_gap_km", MIN_GAP_KM))
+                           min_gap_km=isolation.min_gap_km)
     return SliceSet(tuple(names), grids, projections, clade_mess, method, stability,
                     clade_stab, cands, suitable, history)
 

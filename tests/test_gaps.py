@@ -11,7 +11,7 @@ from scipy import ndimage as ndi
 
 from screener.gaps import separating_gaps
 from screener.grid import Grid
-from screener.isolation import find_candidates, path_profile
+from screener.isolation import Clade, IsolationParameters, find_candidates, path_profile
 
 EIGHT = np.ones((3, 3), bool)
 
@@ -103,8 +103,9 @@ def test_stepping_stones_minimax_differs_from_least_cost_path():
 
     # the least-cost path over 1 - s crosses the shallow band: one 15 km run
     cs = find_candidates(
-        grid, {"A": s}, {"A": 0.5}, {"A": ([0], [0])}, min_gap_km=5.0,
-        min_patch_km2=0.5, within_range_min_km=100.0,
+        Clade(grid, {"A": s}, {"A": ([0], [0])}), {"A": 0.5},
+        parameters=IsolationParameters(min_gap_km=5.0, min_patch_km2=0.5,
+                                       within_range_min_km=100.0),
     )
     t_site = cs.sites[cs.sites["col"] >= 18].iloc[0]
     path = cs.paths[int(t_site["site_id"])]
@@ -222,8 +223,9 @@ def test_real_terrain_gap_with_a_stepping_stone():
     rr, cc = np.nonzero(lab == ridge)
     best = np.argsort(z[rr, cc])[::-1][:3]
     cs = find_candidates(
-        grid, {"A": s}, {"A": thr}, {"A": (rr[best], cc[best])},
-        min_patch_km2=1.0, within_range_min_km=1e3, min_gap_km=1.0,
+        Clade(grid, {"A": s}, {"A": (rr[best], cc[best])}), {"A": thr},
+        parameters=IsolationParameters(min_patch_km2=1.0, within_range_min_km=1e3,
+                                       min_gap_km=1.0),
     )
     sites = cs.sites
     site = sites[[lab[r, c] == plateau for r, c in zip(sites["row"], sites["col"], strict=True)]]
@@ -236,7 +238,7 @@ def test_real_terrain_gap_with_a_stepping_stone():
 def test_min_gap_below_two_cells_warns():
     s = stepping_stone_scene()
     grid = projected_grid(s.shape)  # 1 km cells: two cells = 2 km
-    args = (grid, {"A": s}, {"A": 0.5}, {"A": ([0], [0])})
-    short = find_candidates(*args, min_gap_km=1.5)
+    args = (Clade(grid, {"A": s}, {"A": ([0], [0])}), {"A": 0.5})
+    short = find_candidates(*args, parameters=IsolationParameters(min_gap_km=1.5))
     assert len(short.warnings) == 1 and "two cells" in short.warnings[0]
-    assert find_candidates(*args, min_gap_km=2.0).warnings == ()
+    assert find_candidates(*args, parameters=IsolationParameters(min_gap_km=2.0)).warnings == ()

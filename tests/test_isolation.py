@@ -12,6 +12,9 @@ from scipy import ndimage as ndi
 from screener.errors import InputError, RecordsError
 from screener.grid import Grid
 from screener.isolation import (
+    Clade,
+    IsolationParameters,
+    SiteLayers,
     find_candidates,
     path_profile,
     paths_geodataframe,
@@ -45,13 +48,10 @@ def test_gap_depth_and_cost_on_hand_drawn_strip():
     """
     grid, s = strip_scene()
     cs = find_candidates(
-        grid,
-        {"A": s},
+        Clade(grid, {"A": s}, {"A": ([2], [0])}),
         {"A": 0.5},
-        {"A": ([2], [0])},
-        min_gap_km=3.0,
-        min_patch_km2=1.0,
-        within_range_min_km=50.0,
+        parameters=IsolationParameters(min_gap_km=3.0, min_patch_km2=1.0,
+                                       within_range_min_km=50.0),
     )
     sites = cs.sites
     p1 = sites[sites["col"].between(5, 6)].iloc[0]
@@ -93,13 +93,10 @@ def test_within_range_and_relaxed_only_sites():
     grid, s = strip_scene()
     s[:, 11:14] = 0.45
     cs = find_candidates(
-        grid,
-        {"A": s},
+        Clade(grid, {"A": s}, {"A": ([2], [0])}),
         {"A": 0.5},
-        {"A": ([2], [0])},
         relaxed_thresholds={"A": 0.4},
-        min_patch_km2=1.0,
-        within_range_min_km=1.5,
+        parameters=IsolationParameters(min_patch_km2=1.0, within_range_min_km=1.5),
     )
     by_kind = cs.sites.set_index("kind")
     w = by_kind.loc["within-range"]
@@ -117,9 +114,10 @@ def test_threshold_sets_named_whichever_is_primary():
     grid, s = strip_scene()
     s[:, 11:14] = 0.45
     cs = find_candidates(
-        grid, {"A": s}, {"A": 0.4}, {"A": ([2], [0])},
-        relaxed_thresholds={"A": 0.5}, threshold_names=("relaxed", "mtp"),
-        min_patch_km2=1.0, within_range_min_km=50.0,
+        Clade(grid, {"A": s}, {"A": ([2], [0])}), {"A": 0.4},
+        relaxed_thresholds={"A": 0.5},
+        parameters=IsolationParameters(threshold_names=("relaxed", "mtp"),
+                                       min_patch_km2=1.0, within_range_min_km=50.0),
     )
     by_col = cs.sites.set_index("col")
     assert set(cs.sites["threshold_set"]) == {"relaxed"}
@@ -140,8 +138,9 @@ def test_whose_niche_a_site_fits():
     b[:, 5:7] = 0.5  # a patch only B's niche fits
     grid = projected_grid(a.shape)
     cs = find_candidates(
-        grid, {"A": a, "B": b}, {"A": 0.06, "B": 0.30},
-        {"A": ([2], [0]), "B": ([2], [19])}, min_patch_km2=1.0, within_range_min_km=50.0,
+        Clade(grid, {"A": a, "B": b}, {"A": ([2], [0]), "B": ([2], [19])}),
+        {"A": 0.06, "B": 0.30},
+        parameters=IsolationParameters(min_patch_km2=1.0, within_range_min_km=50.0),
     )
     by_col = cs.sites.set_index("col")
     mid, west = by_col.loc[9], by_col.loc[5]
@@ -163,11 +162,9 @@ def test_between_ranges_and_barrier():
     s[7:9, 6:9] = 0.9  # off the corridor
     grid = projected_grid(s.shape)
     cs = find_candidates(
-        grid,
-        {"A": s, "B": s},
+        Clade(grid, {"A": s, "B": s}, {"A": ([1], [1]), "B": ([1], [13])}),
         {"A": 0.5, "B": 0.5},
-        {"A": ([1], [1]), "B": ([1], [13])},
-        min_patch_km2=1.0,
+        parameters=IsolationParameters(min_patch_km2=1.0),
     )
     sites = cs.sites.set_index("row")
     assert bool(sites.loc[0, "between_ranges"]) or bool(sites.loc[1, "between_ranges"])
@@ -184,11 +181,11 @@ def test_between_ranges_and_barrier():
 def test_input_errors():
     grid, s = strip_scene()
     with pytest.raises(InputError, match="no threshold"):
-        find_candidates(grid, {"A": s}, {"B": 0.5}, {"A": ([2], [0])})
+        find_candidates(Clade(grid, {"A": s}, {"A": ([2], [0])}), {"B": 0.5})
     with pytest.raises(RecordsError, match="outside the grid"):
-        find_candidates(grid, {"A": s}, {"A": 0.5}, {"A": ([9], [0])})
+        Clade(grid, {"A": s}, {"A": ([9], [0])})
     with pytest.raises(InputError, match="shape"):
-        find_candidates(grid, {"A": s[:, :5]}, {"A": 0.5}, {"A": ([2], [0])})
+        Clade(grid, {"A": s[:, :5]}, {"A": ([2], [0])})
 
 
 # --- a virtual scenario on real topography ----------------------------------------------
@@ -239,13 +236,10 @@ def test_salish_scenario_island_is_top_isolated(salish):
     grid, z, lab, island, recs = salish
     s = suit(z)
     cs = find_candidates(
-        grid,
-        {"A": s, "B": s},
+        Clade(grid, {"A": s, "B": s}, recs, layers=SiteLayers(elevation=z)),
         {"A": THR, "B": THR},
-        recs,
         relaxed_thresholds={"A": 0.8 * THR, "B": 0.8 * THR},
-        min_patch_km2=20.0,
-        elevation=z,
+        parameters=IsolationParameters(min_patch_km2=20.0),
     )
     ranked = rank_sites(cs.sites, top_k=3, n_draws=200)
     iso = ranked[ranked["kind"] == "isolated"]
@@ -298,7 +292,8 @@ def test_salish_scenario_island_is_top_isolated(salish):
         assert inside.all()
         urecs[t] = (r2, c2)
     ucs = find_candidates(
-        ugrid, {"A": su, "B": su}, {"A": THR, "B": THR}, urecs, min_patch_km2=20.0
+        Clade(ugrid, {"A": su, "B": su}, urecs), {"A": THR, "B": THR},
+        parameters=IsolationParameters(min_patch_km2=20.0),
     )
     uiso = rank_sites(ucs.sites, n_draws=0)
     utop = uiso[uiso["kind"] == "isolated"].iloc[0]
@@ -317,12 +312,12 @@ def test_banded_site_reductions_change_nothing(salish, monkeypatch):
 
     grid, z, lab, island, recs = salish
     s = suit(z)
-    args = (grid, {"A": s, "B": s}, {"A": THR, "B": THR}, recs)
-    kw = dict(relaxed_thresholds={"A": 0.8 * THR, "B": 0.8 * THR}, min_patch_km2=20.0,
-              within_range_min_km=5.0)
-    whole = find_candidates(*args, **kw).sites
+    args = (Clade(grid, {"A": s, "B": s}, recs), {"A": THR, "B": THR},
+            {"A": 0.8 * THR, "B": 0.8 * THR},
+            IsolationParameters(min_patch_km2=20.0, within_range_min_km=5.0))
+    whole = find_candidates(*args).sites
     monkeypatch.setattr(iso, "_BAND_CELLS", 97)
-    chunked = find_candidates(*args, **kw).sites
+    chunked = find_candidates(*args).sites
     assert len(whole) == len(chunked) > 0
     summed = ["area_km2", "mean_suitability", "margin_A", "margin_B", "niche_fit"]
     assert whole.drop(columns=summed).equals(chunked.drop(columns=summed))
@@ -337,12 +332,12 @@ def test_tiled_cost_distance_gives_the_same_sites(salish, monkeypatch):
 
     grid, z, lab, island, recs = salish
     s = suit(z)
-    args = (grid, {"A": s, "B": s}, {"A": THR, "B": THR}, recs)
-    kw = dict(relaxed_thresholds={"A": 0.8 * THR, "B": 0.8 * THR}, min_patch_km2=20.0)
-    whole = find_candidates(*args, **kw)
+    args = (Clade(grid, {"A": s, "B": s}, recs), {"A": THR, "B": THR},
+            {"A": 0.8 * THR, "B": 0.8 * THR})
+    whole = find_candidates(*args, IsolationParameters(min_patch_km2=20.0))
     monkeypatch.setattr(cd, "_MIN_TILE_CELLS", 400)
     monkeypatch.setattr(cd, "_TILE_MARGIN", 4)
-    tiled = find_candidates(*args, memory_mb=1e-3, **kw)
+    tiled = find_candidates(*args, IsolationParameters(min_patch_km2=20.0, memory_mb=1e-3))
     assert grid.n_cells > 20 * 400
     assert len(whole.sites) and whole.sites.equals(tiled.sites)
     assert whole.paths.keys() == tiled.paths.keys()

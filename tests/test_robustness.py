@@ -5,6 +5,7 @@ import pytest
 from affine import Affine
 
 from screener.grid import Grid
+from screener.isolation import IsolationParameters
 from screener.robustness import RefitPlan, record_resampling
 
 
@@ -38,7 +39,8 @@ def test_sites_resting_on_one_record_are_found_less_often():
         grid=grid, values=values, family="ellipsoid", params={},
         records={"A": (rows, cols)}, background={"A": values.astype(np.float64)},
         relax=0.1, use="mtp",
-        isolation=dict(min_gap_km=5.0, min_patch_km2=1.0, within_range_min_km=100.0),
+        isolation=IsolationParameters(min_gap_km=5.0, min_patch_km2=1.0,
+                                      within_range_min_km=100.0),
         site_labels=labels, n_sites=2, top_k=1,
     )
     shares = record_resampling(plan, 40, random_state=3)

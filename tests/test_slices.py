@@ -11,7 +11,7 @@ from scipy.stats import gmean
 
 from screener.errors import InputError, LayerError
 from screener.grid import Grid
-from screener.isolation import find_candidates
+from screener.isolation import Clade, IsolationParameters, find_candidates
 from screener.layers import LayerStack
 from screener.models import make_model
 from screener.models.base import NicheModel
@@ -213,8 +213,9 @@ def test_real_terrain_block_joined_in_the_cold_slice_and_block_isolated_througho
     rows, cols = np.array([top[0]]), np.array([top[1]])
     suit = model.predict(present.valid_matrix()).reshape(z.shape).astype(np.float32)
     th = {"taxon": 0.5}
-    iso = {"min_gap_km": 1.0, "min_patch_km2": 0.05, "within_range_min_km": 50.0}
-    cand = find_candidates(g, {"taxon": suit}, th, {"taxon": (rows, cols)}, **iso)
+    iso = IsolationParameters(min_gap_km=1.0, min_patch_km2=0.05, within_range_min_km=50.0)
+    cand = find_candidates(Clade(g, {"taxon": suit}, {"taxon": (rows, cols)}), th,
+                           parameters=iso)
     rec = TaxonRecords("taxon", *g.lonlat(rows, cols), *g.xy(rows, cols), rows, cols,
                        np.array([2]))
     X = present.valid_matrix().astype(np.float64)

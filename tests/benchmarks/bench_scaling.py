@@ -220,7 +220,7 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
         from scipy import ndimage
         from skimage.graph import MCP_Geometric
 
-        from screener.isolation import find_candidates
+        from screener.isolation import Clade, IsolationParameters, find_candidates
 
         s = np.where(grid.mask, stack.layer(stack.names[0]), np.nan)
         s = ((s - np.nanmin(s)) / (np.nanmax(s) - np.nanmin(s))).astype(np.float32)
@@ -230,8 +230,8 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
         rec = np.unravel_index(pick, grid.shape)
 
         def ours():
-            find_candidates(grid, {"a": s}, {"a": thr}, {"a": rec},
-                            relaxed_thresholds={"a": relaxed}, memory_mb=MEMORY_MB)
+            find_candidates(Clade(grid, {"a": s}, {"a": rec}), {"a": thr}, {"a": relaxed},
+                            IsolationParameters(memory_mb=MEMORY_MB))
 
         def ref():  # the kernels the stage cannot avoid: label and MCP per threshold set
             costs = np.where(grid.mask, 1.0 - s, np.inf)
@@ -257,7 +257,7 @@ def stage_run(stage: str, folder: Path, repeats: int) -> dict:
 
 def chain_run(folder: Path) -> dict:
     """The per-cell chain end to end, for the peak memory of a whole run."""
-    from screener.isolation import find_candidates
+    from screener.isolation import Clade, IsolationParameters, find_candidates
     from screener.layers import check_layers, read_layers
     from screener.models import make_model
     from screener.novelty import mess
@@ -281,8 +281,8 @@ def chain_run(folder: Path) -> dict:
     th = compute_thresholds(model.predict(P), m, np.asarray(grid.cell_area_km2, float))
     write_raster(folder / "chain.tif", m, grid)
     rec = np.unravel_index(idx[:5], grid.shape)
-    find_candidates(grid, {"a": m}, {"a": th["mtp"].value}, {"a": rec},
-                    relaxed_thresholds={"a": th["p10"].value}, memory_mb=MEMORY_MB)
+    find_candidates(Clade(grid, {"a": m}, {"a": rec}), {"a": th["mtp"].value},
+                    {"a": th["p10"].value}, IsolationParameters(memory_mb=MEMORY_MB))
     return {"cells": grid.n_cells, "seconds": time.perf_counter() - t0,
             "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024,
             "mtp": th["mtp"].value}

@@ -26,7 +26,7 @@ from affine import Affine
 from scipy import ndimage as ndi
 
 from screener.grid import Grid
-from screener.isolation import find_candidates
+from screener.isolation import Clade, find_candidates
 from screener.layers import LayerStack
 from screener.models import make_model
 from screener.models.ensemble import weighted_mean_map
@@ -110,8 +110,8 @@ def main():
                for (name, m), (t, _) in zip(pred[2].items(), taxa.values())}
         relaxed = {k: 0.9 * v for k, v in mtp.items()}
         records = {name: (t.records.rows, t.records.cols) for name, (t, _) in taxa.items()}
-        iso = timed(lambda: find_candidates(grid, pred[2], mtp, records,
-                                            relaxed_thresholds=relaxed), a.repeats)
+        iso = timed(lambda: find_candidates(Clade(grid, pred[2], records), mtp, relaxed),
+                    a.repeats)
         cand = iso[2]
         results = {name: t for name, (t, _) in taxa.items()}
 
