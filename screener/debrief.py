@@ -141,23 +141,6 @@ def _check_field_taxa(fr, run_taxa, path) -> None:
         )
 
 
-def _read_record_table(path, provenance):
-    """The run's record file as a table of text, read as `run` reads it: the same
-    encoding setting, byte-order mark handling and delimiter detection."""
-    import pandas as pd
-
-    from screener.records import _decode, detect_delimiter
-
-    occ = (provenance.get("settings") or {}).get("occurrences") or {}
-    text = _decode(Path(path).read_bytes(), str(path), occ.get("encoding") or None)
-    try:
-        return pd.read_csv(io.StringIO(text), sep=detect_delimiter(text), dtype=str,
-                           keep_default_na=False)
-    except (pd.errors.ParserError, ValueError) as exc:
-        raise InputError(f"{path} (the run's record file) is not a readable CSV file "
-                         f"({exc}).") from None
-
-
 def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> list:
     """Score a run against field results and write the debrief into ``out_dir``.
 
@@ -208,17 +191,13 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
             "record file needs it."
         )
     occ = settings.get("occurrences", {})
+    # the record file read as `run` reads it: encoding, delimiter, decimal mark
     raw = read_records(rec_path, encoding=occ.get("encoding") or None,
-                       taxon_column=occ.get("taxon_column", "taxon"))
+                       taxon_column=occ.get("taxon_column") or "taxon",
+                       decimal=occ.get("decimal") or None)
     modelled = list(run["provenance"].get("taxa") or {})
     min_records = int(occ.get("min_records") or 1)
-    if raw.darwin_core:
-        updated, taxon_of = _updated_darwin_core(raw, fr, grid, modelled, min_records)
-    else:
-        original = _read_record_table(rec_path, run["provenance"])
-        updated = updated_records(original, fr, grid=grid, modelled_taxa=modelled,
-                                  min_records=min_records)
-        taxon_of = updated["taxon"]
+    updated, taxon_of = _updated_record_table(raw, fr, grid, modelled, min_records)
     taxon_of = taxon_of.astype(str)
     left_out = sorted(set(taxon_of[(updated["note"] != "").to_numpy()]))
     next_taxa = [t for t in dict.fromkeys(taxon_of) if t not in left_out]
@@ -237,8 +216,9 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
             json.dumps(summary, indent=2, sort_keys=True, default=str) + "\n", encoding="utf-8")
         neutralise_frame(score.per_site).to_csv(stage / "site_outcomes.csv", index=False,
                                                 lineterminator="\n")
+        # in the record file's own dialect: its delimiter and decimal mark
         neutralise_frame(updated).to_csv(stage / "records_updated.csv", index=False,
-                                         lineterminator="\n")
+                                         sep=raw.delimiter, lineterminator="\n")
         (stage / "project_next.toml").write_text(
             next_project_text(settings, "records_updated.csv", next_taxa), encoding="utf-8")
     lines = [
@@ -259,34 +239,45 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
     return lines
 
 
-def _updated_darwin_core(raw, field_results, grid, modelled_taxa, min_records):
-    """Updated records for a Darwin Core record file: every original column (with its
-    occurrenceID) kept as read, finds added with Darwin Core terms filled in; and the
-    taxon of each row."""
+def _updated_record_table(raw, field_results, grid, modelled_taxa, min_records):
+    """The updated record file as a table of text and the taxon of each row.
+
+    Every original column is kept under its own name with its cells as read; the finds
+    are added below with their coordinates written in the file's decimal mark (and, in
+    a Darwin Core file, the Darwin Core terms filled in).
+    """
     import pandas as pd
 
     from screener.darwincore import find_term
     from screener.survey import updated_records
 
     cols = list(raw.columns)
-    by_name = {"taxon": raw.taxon, "longitude": raw.a, "latitude": raw.b}
-    table = pd.DataFrame({**by_name, **raw.extra})
+    a, b = ("longitude", "latitude") if raw.coords == "lonlat" else ("x", "y")
+    table = pd.DataFrame({"taxon": raw.taxon, a: raw.a, b: raw.b, **raw.extra})
     updated = updated_records(table, field_results, grid=grid,
                               modelled_taxa=modelled_taxa, min_records=min_records)
     new = updated.index >= len(table)
-    out = pd.DataFrame(index=updated.index)
-    for c in cols:
+    if raw.decimal_comma:
+        for c in (a, b, "effort_hours"):
+            if c in updated:
+                updated.loc[new, c] = [
+                    v if not isinstance(v, float) else repr(v).replace(".", ",")
+                    for v in updated.loc[new, c]]
+
+    def role(c):
+        if raw.darwin_core and find_term([c], "decimalLongitude") is not None:
+            return a
+        if raw.darwin_core and find_term([c], "decimalLatitude") is not None:
+            return b
         if c in raw.extra:
-            out[c] = updated[c]
-        elif find_term([c], "decimalLongitude") is not None:
-            out[c] = updated["longitude"]
-        elif find_term([c], "decimalLatitude") is not None:
-            out[c] = updated["latitude"]
-        else:  # the taxon column (scientificName or the chosen rank)
-            out[c] = updated["taxon"]
-    if find_term(cols, "geodeticDatum") is not None:
+            return c
+        low = c.strip().lower()
+        return low if low in (a, b) else "taxon"  # the taxon column (any name)
+
+    out = pd.DataFrame({c: updated[role(c)] for c in cols}, index=updated.index)
+    if raw.darwin_core and find_term(cols, "geodeticDatum") is not None:
         out.loc[new, cols[find_term(cols, "geodeticDatum")]] = "WGS84"
-    if find_term(cols, "basisOfRecord") is not None:
+    if raw.darwin_core and find_term(cols, "basisOfRecord") is not None:
         out.loc[new, cols[find_term(cols, "basisOfRecord")]] = "HumanObservation"
     out["source"] = updated["source"]
     out["note"] = updated["note"]

@@ -1207,7 +1207,7 @@ def run_analysis(
                 progress.step(f"{name}: reused cached models")
                 # the records as read now: the cached stage may come from a run with
                 # other settings that do not change the models ([occurrences] sensitive)
-                res.records = intake.records.taxa[name]
+                res = dataclasses.replace(res, records=intake.records.taxa[name])
             taxa[name] = res
         progress.stage("Niche overlap between sister taxa")
         if len(taxa) >= 2:

@@ -62,6 +62,11 @@ class RawRecords:
         ``"lonlat"`` (WGS84 longitude/latitude) or ``"xy"`` (grid CRS).
     extra : dict of str to list
         Other columns, kept for the updated record file after a survey.
+    delimiter : str
+        The file's delimiter (comma, semicolon or tab).
+    split_numbers : dict of int to str
+        Line -> cell counts of a row whose coordinates look split in two at a decimal
+        comma (a comma-separated file with unquoted ``84,8``); such rows are dropped.
     """
 
     path: str
@@ -74,6 +79,8 @@ class RawRecords:
     decimal_comma: bool = False
     extra: dict = field(default_factory=dict)
     darwin_core: bool = False
+    delimiter: str = ","
+    split_numbers: dict = field(default_factory=dict)
 
     def occurrence_ids(self) -> dict:
         """Line number -> Darwin Core occurrenceID (empty when the file has none)."""
@@ -222,6 +229,26 @@ def _decode(data: bytes, path: str, encoding: str | None) -> str:
         ) from None
 
 
+_INTEGER = re.compile(r"\s*[-+]?\d+\s*")
+_DIGITS = re.compile(r"\d+\s*")
+
+
+def unneutralise_cell(value: str) -> str:
+    """A cell as it was before :func:`screener.outputs.tables.neutralise_cell`: the
+    leading ``'`` that keeps a spreadsheet from running ``=...``, ``+...``, ``-...`` or
+    ``@...`` as a formula is removed, so a file the screener wrote (the updated record
+    file of a debrief) reads back with the names and coordinates it was given.
+
+    >>> unneutralise_cell("'=cmd"), unneutralise_cell("'-14,5"), unneutralise_cell("O'Neill")
+    ('=cmd', '-14,5', "O'Neill")
+    """
+    from screener.outputs.tables import FORMULA_STARTS
+
+    if value.startswith("'") and value[1:2] and value[1] in FORMULA_STARTS:
+        return value[1:]
+    return value
+
+
 def detect_delimiter(text: str) -> str:
     """The delimiter of a record file: the most frequent of comma, semicolon and tab
     on the first non-blank line (comma when none occurs)."""
@@ -261,6 +288,7 @@ def parse_records_text(
             last = reader.line_num  # counts the newlines inside quoted fields too
     except csv.Error as exc:
         raise RecordsError(f"{path} is not a readable CSV file ({exc}).") from None
+    rows = [(ln, [unneutralise_cell(c) for c in row]) for ln, row in rows]
     header = None
     body = []
     for line_no, row in rows:
@@ -326,6 +354,15 @@ def parse_records_text(
         for i, h in enumerate(header)
         if i not in (it, ia, ib)
     }
+    split = {}
+    if delim == ",":
+        # "84,82912" unquoted in a comma file: the row gains a cell and the coordinate
+        # columns hold "84" and "82912"; reading them would place the record elsewhere
+        for ln, r in body:
+            if any(c.strip() for c in r[len(header):]) and any(
+                    i + 1 < len(r) and _INTEGER.fullmatch(r[i]) and _DIGITS.fullmatch(r[i + 1])
+                    for i in (ia, ib)):
+                split[ln] = f"{len(r)} cells, the header {len(header)}"
     return RawRecords(
         path=str(path),
         columns=header,
@@ -337,6 +374,8 @@ def parse_records_text(
         decimal_comma=decimal_comma,
         extra=extra,
         darwin_core=dwc,
+        delimiter=delim,
+        split_numbers=split,
     )
 
 
@@ -489,6 +528,12 @@ def validate_records(
             continue
         if not t:
             dropped.append(RecordDrop(line, "", "the taxon cell is empty"))
+            continue
+        if line in raw.split_numbers:
+            dropped.append(RecordDrop(line, t, (
+                f"the row has more cells than the header ({raw.split_numbers[line]}): "
+                "numbers written with a decimal comma in a comma-separated file split in "
+                "two")))
             continue
         if wanted is not None and t not in wanted:
             dropped.append(RecordDrop(line, t, "taxon not in [project] taxa"))
@@ -670,6 +715,9 @@ _DROP_KINDS = [
      "and latitude swapped", "check which column holds which coordinate"),
     ("look swapped", "with longitude and latitude apparently swapped",
      "check which column holds which coordinate"),
+    ("split in two", "with numbers split in two at a decimal comma",
+     "save the file with semicolons between the columns, or with decimal points, or "
+     "quote the numbers"),
     ("decimal comma", "written with a decimal comma", 'set decimal = "," under [occurrences]'),
     ("outside the grid", "outside the grid",
      "check the coordinates (longitude/latitude are WGS84 degrees, x/y are in the "

@@ -35,6 +35,7 @@ import html
 import logging
 import math
 import os
+import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -83,14 +84,19 @@ def read_field_results(path) -> pd.DataFrame:
         The file cannot be read, a column is missing, or rows are invalid; the
         message lists every bad row (up to 20) with its line number.
     """
+    import io
+
+    from screener.records import detect_delimiter
+
     path = Path(os.fspath(path))
     try:
-        fh = path.open(newline="", encoding="utf-8-sig")
+        data = path.read_bytes()
     except OSError as exc:
         raise InputError(f"cannot open field results {path}: {exc}") from exc
     try:
-        with fh:
-            return _read_field_rows(fh, path)
+        text = data.decode("utf-8-sig")
+        delimiter = detect_delimiter(text)
+        return _read_field_rows(io.StringIO(text, newline=""), path, delimiter)
     except (UnicodeDecodeError, csv.Error) as exc:
         raise InputError(
             f"{path} is not a readable CSV file of field results ({exc}); save it as "
@@ -99,9 +105,9 @@ def read_field_results(path) -> pd.DataFrame:
         ) from None
 
 
-def _read_field_rows(fh, path) -> pd.DataFrame:
+def _read_field_rows(fh, path, delimiter: str = ",") -> pd.DataFrame:
     """The rows of an open field-results file, checked (see read_field_results)."""
-    reader = csv.DictReader(fh)
+    reader = csv.DictReader(fh, delimiter=delimiter)
     header = [h.strip().lower() for h in (reader.fieldnames or [])]
     reader.fieldnames = header
     required = ["date", "taxon", "outcome"]
@@ -119,7 +125,17 @@ def _read_field_rows(fh, path) -> pd.DataFrame:
     rows, problems = [], []
     for raw in reader:
         line = reader.line_num  # last physical line of this record
-        rec, errs = _parse_row(raw, line)
+        extra = [c for c in raw.pop(None, None) or [] if c.strip()]
+        if extra:
+            problems.append(
+                f"line {line}: {len(header) + len(extra)} cells but the header has "
+                f"{len(header)} columns: in a comma-separated file a decimal comma (3,5) or a "
+                "comma in unquoted text splits a cell in two. Save the file with "
+                "semicolons between the columns, or write decimal points and quote text "
+                "holding commas"
+            )
+            continue
+        rec, errs = _parse_row(raw, line, decimal_comma=delimiter != ",")
         problems += errs
         if not errs:
             rows.append(rec)
@@ -145,10 +161,22 @@ def _read_field_rows(fh, path) -> pd.DataFrame:
     return pd.DataFrame(rows, columns=cols)
 
 
-def _float(raw, key):
+_DECIMAL_COMMA = re.compile(r"[-+]?\d*,\d+")
+
+
+def _float(raw, key, decimal_comma: bool = False):
+    """A number cell: decimal commas are read in semicolon- or tab-separated files
+    and, quoted, in comma-separated ones; where a comma-separated file's comma could
+    also group thousands (``"1,500"`` hours) the cell is refused, not guessed."""
     v = (raw.get(key) or "").strip()
     if v == "":
         return math.nan, None
+    if _DECIMAL_COMMA.fullmatch(v):
+        degrees = key in ("longitude", "latitude")  # degrees have no thousands
+        if not (decimal_comma or degrees) and len(v.split(",")[1]) == 3:
+            return math.nan, (f"{key} {v!r} could be {v.replace(',', '.')} or "
+                              f"{v.replace(',', '')}: write it with a decimal point")
+        v = v.replace(",", ".")
     try:
         f = float(v)
     except ValueError:
@@ -158,12 +186,12 @@ def _float(raw, key):
     return f, None
 
 
-def _parse_row(raw, line):
+def _parse_row(raw, line, decimal_comma: bool = False):
     errs = []
     where = f"line {line}"
     site_id = (raw.get("site_id") or "").strip()
-    lon, e1 = _float(raw, "longitude")
-    lat, e2 = _float(raw, "latitude")
+    lon, e1 = _float(raw, "longitude", decimal_comma)
+    lat, e2 = _float(raw, "latitude", decimal_comma)
     errs += [f"{where}: {e}" for e in (e1, e2) if e]
     if not e1 and not e2:
         if math.isnan(lon) != math.isnan(lat):
@@ -190,7 +218,7 @@ def _parse_row(raw, line):
             f"{where}: outcome {raw.get('outcome')!r} is not one of "
             f"{', '.join(OUTCOMES)}"
         )
-    effort, e3 = _float(raw, "effort_hours")
+    effort, e3 = _float(raw, "effort_hours", decimal_comma)
     if e3:
         errs.append(f"{where}: {e3}")
     elif effort < 0:

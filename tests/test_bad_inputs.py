@@ -159,6 +159,15 @@ def _decimal_comma_xy_file(s):
                                for r in rows[1:]], quoting=csv.QUOTE_ALL)
 
 
+def _decimal_comma_unquoted(s):
+    # a comma file with unquoted "84,82912": each coordinate splits into two cells
+    rows = read_rows(s)
+    text = "\n".join([",".join(rows[0])] + [",".join([r[0], r[1].replace(".", ","),
+                                                      r[2].replace(".", ","), r[3]])
+                                            for r in rows[1:]]) + "\n"
+    (s / "occurrences.csv").write_text(text, encoding="utf-8")
+
+
 def _swapped(s):
     # the header still says longitude, latitude, but the values are swapped
     rows = read_rows(s)
@@ -348,6 +357,8 @@ CASES = [
     (_no_coordinate_columns, r"needs columns longitude and latitude .* or x and y"),
     (_latin1_bytes, r"not valid UTF-8 \(byte 0xd1 on line 3\).*encoding = \"latin-1\""),
     (_decimal_comma_xy_file, r"written with a decimal comma .*set decimal = \",\""),
+    (_decimal_comma_unquoted, r"35 with numbers split in two at a decimal comma \(lines 2, 3,"
+                              r".*save the file with semicolons between the columns"),
     (_swapped, r"with longitude and latitude swapped.*check which column holds"),
     (_taxon_all_dropped, r"Nebrivex quennomae: 0 kept\).*9 outside the grid \(lines 4, 17,"),
     (_single_record, r"Nebrivex quennomae: 1 kept\); at least 3 per taxon.*min_records"),
@@ -1055,6 +1066,8 @@ def _no_candidates(run_dir):
     (run_dir / "candidates.gpkg").unlink()
 
 
+_FIELD_HEADER = b"site_id,date,taxon,outcome,effort_hours,longitude,latitude\n"
+
 DEBRIEF_CASES = [
     (_truncated_run_json, None, r"run\.json is not a readable run\.json"),
     (_no_candidates, None, r"candidates\.gpkg is missing from the run folder"),
@@ -1062,12 +1075,20 @@ DEBRIEF_CASES = [
     (None, "Nebrivex tarveli", r"line 2: taxon 'Nebrivex tarveli' is not a taxon of the run "
                                r".*Did you mean 'Nebrivex tarvelli'\?.*set its outcome to "
                                r"new-lineage"),
+    # decimal commas in a comma-separated field file: unquoted they split the cells
+    (None, _FIELD_HEADER + b"S01,2026-10-02,Nebrivex tarvelli,found,3,85,0725,-14,6075\n",
+     r"(?s)field\.csv: 1 problem.*line 2: 9 cells but the header has 7 columns: in a "
+     r"comma-separated file a decimal comma.*Save the file with semicolons"),
+    # quoted, a comma that could group thousands is not guessed at
+    (None, _FIELD_HEADER + b'S01,2026-10-02,Nebrivex tarvelli,found,"1,500",85.07,-14.61\n',
+     r"line 2: effort_hours '1,500' could be 1\.500 or 1500: write it with a decimal point"),
 ]
 
 
 @pytest.mark.parametrize("damage, field, pattern", DEBRIEF_CASES,
                          ids=["truncated run.json", "no candidates.gpkg", "binary field file",
-                              "unknown field taxon"])
+                              "unknown field taxon", "unquoted decimal commas",
+                              "ambiguous thousands"])
 def test_debrief_refuses_damaged_input(warm, tmp_path, damage, field, pattern):
     run_dir = _run_copy(warm, tmp_path)
     if damage is not None:
@@ -1101,6 +1122,44 @@ def test_debrief_with_taxa_named_1_and_na_and_a_new_lineage(warm, tmp_path):
     assert result.exit_code == 0, result.output
     outcomes = (out / "site_outcomes.csv").read_text(encoding="utf-8")
     assert "S01" in outcomes and (out / "records_updated.csv").exists()
+
+
+@pytest.mark.slow
+def test_debrief_keeps_a_decimal_comma_record_file_in_its_own_dialect(warm, tmp_path):
+    # a record file from a spreadsheet where the comma is the decimal mark: semicolons
+    # between the columns, "84,82912" coordinates, and headers in other letter case
+    scen = tmp_path / "scen"
+    shutil.copytree(warm, scen)  # its cache: the records are the same places
+    rows = read_rows(scen)
+    rows[0] = ["Taxon", "Longitude", "Latitude", rows[0][3]]
+    write_rows(scen, [rows[0]] + [[r[0], r[1].replace(".", ","), r[2].replace(".", ","),
+                                   "=" + r[3]] for r in rows[1:]], delimiter=";")
+    original = (scen / "occurrences.csv").read_text(encoding="utf-8").splitlines()
+    run_dir = tmp_path / "run"
+    assert invoke("run", scen / "project.toml", "--out", run_dir).exit_code == 0
+    field = tmp_path / "field.csv"  # the field team's file, written the same way
+    field.write_text("site_id;date;taxon;outcome;effort_hours;longitude;latitude\n"
+                     "S01;2026-10-02;Nebrivex tarvelli;found;3,5;85,0725;-14,6075\n"
+                     'S02;2026-10-03;Nebrivex tarvelli;not-found;"2,25";;\n', encoding="utf-8")
+    out = tmp_path / "debrief"
+    result = invoke("debrief", field, "--run", run_dir, "--out", out)
+    assert result.exit_code == 0, result.output
+    updated = (out / "records_updated.csv").read_text(encoding="utf-8").splitlines()
+    assert updated[0] == original[0] + ";source;note"
+    # every original row as it was (the catalogue cells neutralised with a leading ')
+    assert [ln.rsplit(";", 2)[0].replace(";'=", ";=") for ln in updated[1:len(original)]] \
+        == original[1:]
+    assert updated[len(original)] == ("Nebrivex tarvelli;85,0725;-14,6075;;"
+                                      "field survey 2026-10-02 (found);")
+    assert len(updated) == len(original) + 1
+    # the next run reads it as the first run read the original
+    from screener.records import read_records
+
+    back = read_records(out / "records_updated.csv")
+    assert back.delimiter == ";" and back.decimal_comma
+    assert back.a[-1] == "85,0725" and back.extra["catalogue"][0].startswith("=MVNC")
+    sites = (out / "site_outcomes.csv").read_text(encoding="utf-8")
+    assert re.search(r"^S02,2,.*,True,False,2\.25$", sites, re.M), sites
 
 
 # ------------------------------------------------------------------ names that break files

@@ -3,6 +3,8 @@
 import numpy as np
 import pytest
 from affine import Affine
+from hypothesis import given
+from hypothesis import strategies as st
 
 from screener.errors import RecordsError
 from screener.grid import Grid
@@ -234,3 +236,31 @@ def test_far_longitudes_get_no_swap_hint(grid, row, reason):
     rs = run(text, grid)
     assert len(rs.dropped) == 1 and reason in rs.dropped[0].reason
     assert "swapped" not in rs.dropped[0].reason
+
+
+def test_unquoted_decimal_commas_in_a_comma_file_are_dropped_not_misread(grid):
+    # "10,055" unquoted: the row gains cells and the columns would read 10 and 055
+    text = ("taxon,longitude,latitude,note\nA,10.055,-5.105,x\nA,10,155,-5,205,y\n"
+            "A,10.255,-5.255,z\nA,10.155,-5.155,extra,cells\nA,10.3,-5.25,\n")
+    rs = run(text, grid)
+    assert [d.line for d in rs.dropped] == [3]
+    assert "more cells than the header (6 cells, the header 4)" in rs.dropped[0].reason
+    assert "split in two" in rs.dropped[0].reason
+    assert rs.taxa["A"].n == 4  # a stray extra cell beside intact coordinates is kept
+
+
+@given(st.text())
+def test_a_neutralised_cell_reads_back_as_written(text):
+    # what the CSV writers protect against formulas, the record reader reads back
+    from screener.outputs.tables import neutralise_cell
+    from screener.records import unneutralise_cell
+
+    if text.startswith("'"):
+        return  # a cell that began with a quote is not told apart from a protected one
+    assert unneutralise_cell(neutralise_cell(text)) == text
+
+
+def test_a_debriefs_protected_cells_read_back():
+    raw = parse_records_text("taxon,longitude,latitude,note\n'=A,'-5°06'18\"E,-5.1,'@x\n",
+                             "rec.csv")
+    assert raw.taxon == ["=A"] and raw.a == ["-5°06'18\"E"] and raw.extra["note"] == ["@x"]

@@ -14,7 +14,9 @@ __all__ = ["write_csv", "neutralise_cell", "neutralise_frame", "EVALUATION_COLUM
 
 #: first characters that make a spreadsheet read a cell as a formula
 FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
-_PLAIN_NUMBER = re.compile(r"[-+]?(\d+\.?\d*|\.\d+)([eE][-+]?\d+)?")
+# a number with a decimal point or a decimal comma (as written where the comma is the
+# decimal mark): no formula can hide in it
+_PLAIN_NUMBER = re.compile(r"[-+]?(\d+[.,]?\d*|[.,]\d+)([eE][-+]?\d+)?")
 
 
 def neutralise_cell(value):
@@ -22,7 +24,8 @@ def neutralise_cell(value):
 
     Text starting with ``=``, ``+``, ``-``, ``@``, a tab or a carriage return gets a
     leading single quote (the usual guidance against CSV formula injection); plain
-    numbers such as ``-14.5`` and every non-text value are returned unchanged.
+    numbers such as ``-14.5`` or ``-14,5`` and every non-text value are returned
+    unchanged.
     """
     if isinstance(value, str) and value.startswith(FORMULA_STARTS) and not \
             _PLAIN_NUMBER.fullmatch(value):
