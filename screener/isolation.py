@@ -242,7 +242,7 @@ class SiteLayers:
     ----------
     agreement : ndarray or None
         Model agreement in [0, 1]; the mean over a site's cells is reported.
-    novelty : ndarray or None
+    mess : ndarray or None
         MESS; the share of a site's cells below 0 is ``novel_share``.
     elevation : ndarray or None
         Metres; the minimum and maximum over a site's cells are reported.
@@ -252,7 +252,7 @@ class SiteLayers:
     """
 
     agreement: np.ndarray | None = None
-    novelty: np.ndarray | None = None
+    mess: np.ndarray | None = None
     elevation: np.ndarray | None = None
     clamped: np.ndarray | None = None
 
@@ -720,9 +720,9 @@ class _Extreme:
 
 
 def _site_stats(grid, sc: _SiteCells, clade, layers: SiteLayers):
-    """Area, suitability, agreement, novelty, clamping and elevation per site, in one
+    """Area, suitability, agreement, MESS, clamping and elevation per site, in one
     banded pass."""
-    agreement, novelty = layers.agreement, layers.novelty
+    agreement, mess = layers.agreement, layers.mess
     elevation, clamped = layers.elevation, layers.clamped
     n = sc.n
     area = grid.cell_area_km2
@@ -753,8 +753,8 @@ def _site_stats(grid, sc: _SiteCells, clade, layers: SiteLayers):
             ok = np.isfinite(x)
             ag[0] += bc(k, np.where(ok, x, 0.0))
             ag[1] += bc(k, ok.astype(np.float64))
-        if novelty is not None:
-            x = sc.take(novelty, r0, r1, at).astype(np.float64)
+        if mess is not None:
+            x = sc.take(mess, r0, r1, at).astype(np.float64)
             ok = np.isfinite(x)
             nov[0] += bc(k, (ok & (x < 0)).astype(np.float64))
             nov[1] += bc(k, ok.astype(np.float64))
@@ -784,7 +784,7 @@ def _site_stats(grid, sc: _SiteCells, clade, layers: SiteLayers):
         "mean_suitability": mean_s,
         "max_suitability": s_max,
         "agreement": share(ag, agreement),
-        "novel_share": share(nov, novelty),
+        "novel_share": share(nov, mess),
         "clamped_share": share(clm, clamped),
         "elevation_min": np.where(np.isfinite(e_min), e_min, np.nan),
         "elevation_max": np.where(np.isfinite(e_max), e_max, np.nan),

@@ -930,7 +930,7 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> Pla
             clamped = t.clamped.copy() if clamped is None else np.fmax(clamped, t.clamped)
     progress.step("patches, known ranges and cost distance")
     clade = Clade(grid, suit, records, layers=SiteLayers(
-        agreement=agreement, novelty=clade_mess, elevation=intake.elevation,
+        agreement=agreement, mess=clade_mess, elevation=intake.elevation,
         clamped=clamped))
     cand = find_candidates(clade, th_main, th_relaxed, IsolationParameters.from_settings(
         s, threshold_names=(use, other)))
