@@ -144,6 +144,24 @@ def separating_gaps(
     labels = np.asarray(labels)
     ok = grid.mask if passable is None else (np.asarray(passable, bool) & grid.mask)
     suitable = (labels > 0) & ok
+    d, lab = _distance_to_patches(grid, labels, n_patches, suitable, ok,
+                                  backend=backend, memory_mb=memory_mb)
+    # patch -> node: the known ranges are merged into root node 0
+    range_ids = np.asarray(range_ids, dtype=np.int64)
+    node = np.arange(n_patches + 1, dtype=np.int64)
+    node[range_ids] = 0
+    key, w = _shortest_crossings(grid, d, lab, suitable, node)
+    del lab
+    gap, total, stones = _bottleneck_to_root(key, w, n_patches, range_ids)
+    return SeparatingGaps(gap, total, stones, d.astype(np.float32, copy=False))
+
+
+def _distance_to_patches(grid, labels, n_patches, suitable, ok, *, backend, memory_mb):
+    """Unsuitable ground (km) from each cell to the nearest patch, and that patch.
+
+    One multi-source cost run from every suitable cell over resistance 1 on
+    unsuitable and 0 on suitable cells; the patch is where the traceback ends.
+    """
     res = np.where(ok, (~suitable).astype(np.float64), np.inf)
     graph = CostGraph(grid, res, backend=backend, copy=False, memory_mb=memory_mb)
     del res
@@ -161,16 +179,25 @@ def separating_gaps(
         sources = suitable
     surf = graph.run(sources)
     del graph
-    d = surf.cost
     lab = nearest_source_label(surf.predecessor.ravel(), labels).reshape(grid.shape)
-    del surf
+    return surf.cost, lab
 
-    # patch -> node: the known ranges are merged into root node 0
-    node = np.arange(n_patches + 1, dtype=np.int64)
-    range_ids = np.asarray(range_ids, dtype=np.int64)
-    node[range_ids] = 0
-    n_nodes = n_patches + 1
 
+def _shortest_crossings(grid, d, lab, suitable, node):
+    """Shortest crossing between every pair of nodes whose cells neighbour.
+
+    Every pair of neighbouring cells ``a``, ``b`` with different nearest patches gives
+    a crossing ``d(a) + step(a, b) + d(b)`` (the step counted on unsuitable cells
+    only, as in the cost graph); the shortest per pair of nodes is kept.
+
+    Returns
+    -------
+    key : ndarray of int64
+        ``lo * n_nodes + hi`` per pair of nodes ``lo < hi``, ascending.
+    w : ndarray of float64
+        The shortest crossing of each pair, km.
+    """
+    n_nodes = node.size
     u = (~suitable).astype(np.float64)
     ew = np.asarray(grid.ew_step_km, float)
     ns = np.asarray(grid.ns_step_km, float)
@@ -199,51 +226,66 @@ def separating_gaps(
         add((slice(0, -1), slice(None)), (slice(1, None), slice(None)), ns[:, None])
         add((slice(0, -1), slice(0, -1)), (slice(1, None), slice(1, None)), dg[:, None])
         add((slice(0, -1), slice(1, None)), (slice(1, None), slice(0, -1)), dg[:, None])
-    del u, lab
+    if not keys:
+        return np.zeros(0, np.int64), np.zeros(0)
+    key = np.concatenate(keys)
+    w = np.concatenate(weights)
+    order = np.lexsort((w, key))
+    key, w = key[order], w[order]
+    first = np.r_[True, key[1:] != key[:-1]]
+    return key[first], w[first]
 
+
+def _bottleneck_to_root(key, w, n_patches, range_ids):
+    """Gap, route total and stepping stones of every patch from the tree of crossings.
+
+    The minimum spanning tree of the crossings (root node 0: every known range); the
+    gap of a patch is the longest edge on its tree path to the root [1]_ [2]_.
+
+    References
+    ----------
+    .. [1] Mehlhorn, K. (1988). Information Processing Letters 27:125-128.
+    .. [2] Hu, T. C. (1961). Operations Research 9:898-900.
+    """
+    n_nodes = n_patches + 1
     gap = np.full(n_patches + 1, np.inf)
     total = np.full(n_patches + 1, np.inf)
     stones = np.full(n_patches + 1, -1, dtype=np.int64)
     gap[range_ids] = 0.0
     total[range_ids] = 0.0
     stones[range_ids] = 0
-    if keys and range_ids.size:
-        key = np.concatenate(keys)
-        w = np.concatenate(weights)
-        order = np.lexsort((w, key))
-        key, w = key[order], w[order]
-        first = np.r_[True, key[1:] != key[:-1]]
-        key, w = key[first], w[first]
-        i, j = np.divmod(key, n_nodes)
-        # only nodes that appear in an edge, renumbered densely (patch graphs are small)
-        used, inv = np.unique(np.r_[0, i, j], return_inverse=True)
-        ii, jj = inv[1 : 1 + i.size], inv[1 + i.size :]
-        m = used.size
-        tree = minimum_spanning_tree(sp.coo_matrix((w, (ii, jj)), shape=(m, m)).tocsr())
-        tree = tree.tocoo()
-        order, parent = breadth_first_order(
-            tree + tree.T, 0, directed=False, return_predecessors=True
-        )
-        # weight of the tree edge above each node
-        up = np.zeros(m)
-        child = np.where(parent[tree.row] == tree.col, tree.row, tree.col)
-        up[child] = tree.data
-        g_node = np.zeros(m)
-        t_node = np.zeros(m)
-        depth = np.zeros(m, dtype=np.int64)
-        par = parent.tolist()
-        upl = up.tolist()
-        for c in order[1:].tolist():
-            p = par[c]
-            g_node[c] = max(g_node[p], upl[c])
-            t_node[c] = t_node[p] + upl[c]
-            depth[c] = depth[p] + 1
-        reached = np.zeros(m, dtype=bool)
-        reached[order] = True
-        # back to patch labels (node 0 = every range; other nodes are single patches)
-        pid = used[1:]
-        r = reached[1:]
-        gap[pid[r]] = g_node[1:][r]
-        total[pid[r]] = t_node[1:][r]
-        stones[pid[r]] = depth[1:][r] - 1
-    return SeparatingGaps(gap, total, stones, d.astype(np.float32, copy=False))
+    if not key.size or not range_ids.size:
+        return gap, total, stones
+    i, j = np.divmod(key, n_nodes)
+    # only nodes that appear in an edge, renumbered densely (patch graphs are small)
+    used, inv = np.unique(np.r_[0, i, j], return_inverse=True)
+    ii, jj = inv[1 : 1 + i.size], inv[1 + i.size :]
+    m = used.size
+    tree = minimum_spanning_tree(sp.coo_matrix((w, (ii, jj)), shape=(m, m)).tocsr())
+    tree = tree.tocoo()
+    order, parent = breadth_first_order(
+        tree + tree.T, 0, directed=False, return_predecessors=True
+    )
+    # weight of the tree edge above each node
+    up = np.zeros(m)
+    child = np.where(parent[tree.row] == tree.col, tree.row, tree.col)
+    up[child] = tree.data
+    g_node = np.zeros(m)
+    t_node = np.zeros(m)
+    depth = np.zeros(m, dtype=np.int64)
+    par = parent.tolist()
+    upl = up.tolist()
+    for c in order[1:].tolist():
+        p = par[c]
+        g_node[c] = max(g_node[p], upl[c])
+        t_node[c] = t_node[p] + upl[c]
+        depth[c] = depth[p] + 1
+    reached = np.zeros(m, dtype=bool)
+    reached[order] = True
+    # back to patch labels (node 0 = every range; other nodes are single patches)
+    pid = used[1:]
+    r = reached[1:]
+    gap[pid[r]] = g_node[1:][r]
+    total[pid[r]] = t_node[1:][r]
+    stones[pid[r]] = depth[1:][r] - 1
+    return gap, total, stones
