@@ -291,3 +291,18 @@ def test_no_candidate_sites_gives_a_finished_plan(tmp_path):
     assert len(cand) == 0 and list(cand.columns[: len(CANDIDATE_COLUMNS)]) == CANDIDATE_COLUMNS
     for name in ("report.html", "sites.gpx", "field_sheets.pdf", "barrier.tif"):
         assert (out / name).exists(), name
+
+
+@pytest.mark.slow
+def test_every_written_column_is_registered(demo_run):
+    from screener.columns import CANDIDATES, EVALUATION, OVERLAP, find_column
+
+    _, out, _ = demo_run
+    for name, registry in [("candidates.csv", CANDIDATES), ("evaluation.csv", EVALUATION),
+                           ("overlap.csv", OVERLAP)]:
+        columns = pd.read_csv(out / name, nrows=0).columns
+        missing = [c for c in columns if find_column(registry, c) is None]
+        assert missing == [], f"{name}: register {missing} in screener/columns.py"
+    sites = gpd.read_file(out / "candidates.gpkg", layer="sites")
+    assert all(find_column(CANDIDATES, c) is not None for c in sites.columns
+               if c != "geometry")

@@ -7,7 +7,7 @@ from pathlib import Path
 
 import numpy as np
 
-from screener.overlap import OVERLAP_COLUMNS as _OVERLAP_STAGE_COLUMNS
+from screener.columns import CANDIDATES, EVALUATION, OVERLAP, contract
 
 __all__ = ["write_csv", "neutralise_cell", "neutralise_frame", "EVALUATION_COLUMNS",
            "OVERLAP_COLUMNS", "CANDIDATE_COLUMNS"]
@@ -47,16 +47,14 @@ def neutralise_frame(df):
     out.index = out.index.map(neutralise_cell)
     return out
 
-#: Leading columns of evaluation.csv (output contract); more follow.
-EVALUATION_COLUMNS = ["taxon", "algorithm", "n_records", "auc", "threshold_mtp", "omission_mtp"]
-#: Columns of overlap.csv (output contract): the overlap stage's one list, so a run
-#: with one taxon (no pairs, no rows) writes the same header as a run with pairs.
-OVERLAP_COLUMNS = list(_OVERLAP_STAGE_COLUMNS)
-#: Leading columns of candidates.csv (output contract).
-CANDIDATE_COLUMNS = [
-    "rank", "site_id", "kind", "longitude", "latitude", "x", "y", "area_km2",
-    "mean_suitability", "nearest_taxon", "cost_distance", "gap_km", "score",
-]
+#: Leading columns of evaluation.csv (output contract, from the column registry
+#: :data:`screener.columns.EVALUATION`); more follow.
+EVALUATION_COLUMNS = contract(EVALUATION)
+#: Columns of overlap.csv (output contract, :data:`screener.columns.OVERLAP`): the same
+#: header whether or not the run has pairs.
+OVERLAP_COLUMNS = contract(OVERLAP)
+#: Leading columns of candidates.csv (output contract, :data:`screener.columns.CANDIDATES`).
+CANDIDATE_COLUMNS = contract(CANDIDATES)
 
 
 def write_csv(path, frame, leading=()) -> Path:

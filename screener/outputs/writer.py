@@ -15,6 +15,7 @@ import geopandas as gpd
 import numpy as np
 import pandas as pd
 
+from screener.columns import CANDIDATES, empty_frame
 from screener.outputs import gpx, report, sheets
 from screener.outputs.mappage import render_map_page
 from screener.outputs.privacy import shareable_result
@@ -124,9 +125,9 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     if len(sites):
         _casefold_unique_columns(sites).to_file(gpkg, layer="sites", driver="GPKG")
     else:
-        gpd.GeoDataFrame({"site_id": []}, geometry=[], crs=grid.pyproj_crs).to_file(
-            gpkg, layer="sites", driver="GPKG"
-        )
+        # no site: the layer still has the contract columns with their types
+        gpd.GeoDataFrame(empty_frame(CANDIDATES), geometry=[],
+                         crs=grid.pyproj_crs).to_file(gpkg, layer="sites", driver="GPKG")
     if result.paths is not None and len(result.paths):
         result.paths.to_file(gpkg, layer="least_cost_paths", driver="GPKG")
     rel(gpkg)
