@@ -240,8 +240,9 @@ def check(project, debug):
 def demo(ctx, out, overwrite, size, scheduler, debug):
     """Write the invented demo scenario into --out/scenario and run it into --out/results."""
     from screener.demo import write_demo_scenario
+    from screener.outputs.run_folder import RunFolder, repoint_run_json
     from screener.outputs.staging import check_output_folder, staged_output
-    from screener.pipeline import repoint_run_json, run_project
+    from screener.pipeline import run_project
     from screener.project import load_project
 
     out = check_output_folder(out, overwrite=overwrite)
@@ -256,7 +257,7 @@ def demo(ctx, out, overwrite, size, scheduler, debug):
         settings = load_project(project)
         result = run_project(settings, stage / "results", echo=echo, scheduler=scheduler,
                              cache_dir=None)
-        repoint_run_json(stage / "results" / "run.json", stage, out)
+        repoint_run_json(RunFolder(stage / "results").run_json, stage, out)
     _print_summary(result, out / "results")
 
 

@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from screener.errors import InputError
+from screener.outputs.run_folder import RunFolder, locate_run_inputs, relocate
 
 __all__ = ["load_run_outputs", "debrief_run"]
 
@@ -35,22 +36,14 @@ def load_run_outputs(run_dir):
 
     from screener.grid import Grid
 
-    run_dir = Path(run_dir)
-    from screener.pipeline import locate_run_inputs
-
-    pj = run_dir / "run.json"
-    if not pj.exists():
-        raise InputError(
-            f"{run_dir} holds no run.json; give the output folder of a `screener run`."
-        )
-    prov, moved = locate_run_inputs(pj)
-    taxa = (prov.get("taxa") or {}) if isinstance(prov, dict) else {}
-    if not taxa:
-        raise InputError(f"{pj} lists no taxa; was the run finished with this version?")
+    run, _ = RunFolder.read(run_dir)
+    run_dir = run.root
+    prov, moved = locate_run_inputs(run.run_json)
+    taxa = run.stems
     suit, predicted, grid = {}, None, None
-    for name, safe in taxa.items():
-        p = run_dir / "suitability" / f"{safe}.tif"
-        r = run_dir / "ranges" / f"{safe}.mtp.tif"
+    for name in taxa:
+        p = run.suitability(name)
+        r = run.range_map(name, "mtp")
         if not p.exists() or not r.exists():
             raise InputError(f"{p} or {r} is missing from the run folder {run_dir}.")
         try:
@@ -68,7 +61,7 @@ def load_run_outputs(run_dir):
         predicted = rng if predicted is None else (predicted | rng)
     import pandas as pd
 
-    gpkg, ev_csv = run_dir / "candidates.gpkg", run_dir / "evaluation.csv"
+    gpkg, ev_csv = run.candidates_gpkg, run.evaluation_csv
     for f in (gpkg, ev_csv):
         if not f.exists():
             raise InputError(f"{f} is missing from the run folder {run_dir}; it is not a "
@@ -181,8 +174,6 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
     relative = {n: m / run["mtp"][n] for n, m in run["suitability"].items()}
     score = score_survey(fr, run["sites"], grid, relative, threshold=1.0, area_share=share,
                          random_state=run["provenance"].get("seeds", {}).get("random_state", 0))
-    from screener.pipeline import relocate
-
     settings = relocate(run["provenance"].get("settings", {}), run["moved"])
     rec_path = settings.get("occurrences", {}).get("path")
     if not rec_path or not Path(rec_path).exists():

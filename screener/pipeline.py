@@ -14,7 +14,6 @@ import dataclasses
 import hashlib
 import importlib.metadata as md
 import itertools
-import json
 import logging
 import os
 import platform
@@ -57,6 +56,7 @@ from screener.models.inspect import permutation_importance, response_curves
 from screener.models.mapping import GeographicRefit, outside_map, predict_map
 from screener.novelty import mess_map
 from screener.outputs.sheets import suggest_sampling_points
+from screener.outputs.run_folder import locate_run_inputs, relocate
 from screener.outputs.staging import (
     check_output_folder,
     enclosing_run_folder,
@@ -98,7 +98,6 @@ __all__ = [
     "layer_paths",
     "locate_run_inputs",
     "relocate",
-    "repoint_run_json",
 ]
 
 log = logging.getLogger(__name__)
@@ -147,79 +146,6 @@ def file_sha256(path) -> str:
         for chunk in iter(lambda: f.read(1 << 20), b""):
             h.update(chunk)
     return h.hexdigest()
-
-
-def locate_run_inputs(run_json) -> tuple:
-    """Find the inputs of a recorded run, also after its folders were moved.
-
-    Each input is looked for at its recorded absolute path and, failing that, at its
-    path relative to the project file, whose own place is taken relative to the
-    folder that holds ``run_json``.
-
-    Returns
-    -------
-    provenance : dict
-        run.json as read.
-    moved : dict of str to str
-        Recorded absolute path -> path where the file is now (the recorded one when
-        it cannot be found; callers report it as missing).
-    """
-    run_json = Path(run_json)
-    try:
-        prov = json.loads(run_json.read_text(encoding="utf-8"))
-    except (OSError, ValueError) as exc:
-        raise InputError(f"{run_json} is not a readable run.json: {exc}") from None
-    here = run_json.resolve().parent
-    recorded = prov.get("project_file")
-    rel_project = prov.get("project_file_from_results")
-    project_now = None
-    if recorded and Path(recorded).exists():
-        project_now = Path(recorded)
-    elif rel_project and (here / rel_project).exists():
-        project_now = (here / rel_project).resolve()
-    moved = {}
-    if recorded:
-        moved[str(recorded)] = str(project_now or recorded)
-    rel_inputs = prov.get("inputs_from_project") or {}
-    for old in prov.get("input_hashes", {}):
-        now = old
-        rel = rel_inputs.get(old)
-        if not Path(old).exists() and project_now is not None and rel:
-            cand = (project_now.parent / rel).resolve()
-            if cand.exists():
-                now = str(cand)
-        moved[str(old)] = str(now)
-    return prov, moved
-
-
-def relocate(value, moved: dict):
-    """``value`` (settings: nested dicts, lists, strings) with moved paths replaced."""
-    if isinstance(value, dict):
-        return {k: relocate(v, moved) for k, v in value.items()}
-    if isinstance(value, list):
-        return [relocate(v, moved) for v in value]
-    if isinstance(value, str):
-        return moved.get(value, value)
-    return value
-
-
-def repoint_run_json(run_json, old_root, new_root) -> None:
-    """Rewrite the paths in a run.json that lie under ``old_root`` to lie under
-    ``new_root`` (for outputs built in a staging folder that is then renamed)."""
-    old_root, new_root = str(Path(old_root)), str(Path(new_root))
-
-    def move(v):
-        if isinstance(v, dict):
-            return {move(k) if isinstance(k, str) else k: move(x) for k, x in v.items()}
-        if isinstance(v, list):
-            return [move(x) for x in v]
-        if isinstance(v, str) and (v == old_root or v.startswith(old_root + "/")):
-            return new_root + v[len(old_root):]
-        return v
-
-    path = Path(run_json)
-    prov = json.loads(path.read_text(encoding="utf-8"))
-    path.write_text(json.dumps(move(prov), indent=2, sort_keys=True) + "\n", encoding="utf-8")
 
 
 def taxon_seed(random_state: int, taxon: str) -> int:

@@ -74,3 +74,20 @@ def test_written_outputs_are_where_the_folder_says(tmp_path):
     # the same overlap.csv header with or without pairs (it was 8 columns without)
     header = folder.overlap_csv.read_text("utf-8").splitlines()[0].split(",")
     assert header == list(OVERLAP_COLUMNS)
+
+
+def test_time_slice_files_follow_the_run_folders_stems():
+    # case twins get distinct stems; the slice and stability maps use the same ones as
+    # the present-day maps, so no two taxa share a file
+    folder = RunFolder.for_taxa("r", ["Nebrivex alba", "Nebrivex Alba"])
+    a, b = (folder.stem(t) for t in ("Nebrivex alba", "Nebrivex Alba"))
+    assert a.casefold() != b.casefold()
+    for taxon, stem in (("Nebrivex alba", a), ("Nebrivex Alba", b)):
+        assert folder.slice_suitability("cold_stage", taxon).as_posix() == \
+            f"r/slices/cold_stage.{stem}.tif"
+        assert folder.slice_mess("cold_stage", taxon).name == f"cold_stage.{stem}.mess.tif"
+        assert folder.stability(taxon).as_posix() == f"r/stability/{stem}.tif"
+    assert folder.stability().as_posix() == "r/stability/clade.tif"
+    # a slice name that is not a plain word gets a unique stem, never a path separator
+    odd = folder.slice_suitability("last glacial / max", "Nebrivex alba")
+    assert odd.parent.as_posix() == "r/slices" and "/" not in odd.name

@@ -1,7 +1,8 @@
 """File names made from taxon names: readable, unique, stable and length-limited.
 
 Every file a run writes for one taxon (its suitability maps, ranges and novelty
-maps) is named by the taxon's *file stem*.  The stems come from here only, and
+maps) is named by the taxon's *file stem*; a time slice's maps carry the slice's stem
+too (:func:`slice_file_stem`).  The stems come from here only, and
 ``run.json`` maps each taxon to its stem under ``taxa``, so ``debrief`` finds a
 taxon's maps without guessing.
 """
@@ -12,7 +13,7 @@ import hashlib
 import re
 import unicodedata
 
-__all__ = ["STEM_MAX", "taxon_file_stem", "taxon_file_stems"]
+__all__ = ["STEM_MAX", "slice_file_stem", "taxon_file_stem", "taxon_file_stems"]
 
 #: longest readable part of a file stem (characters); file names stay far below the
 #: 255-byte limit of common file systems
@@ -58,3 +59,15 @@ def taxon_file_stem(taxon: str) -> str:
 def taxon_file_stems(taxa) -> dict:
     """File stem of every taxon, as a dict taxon -> stem (in the given order)."""
     return {name: taxon_file_stem(name) for name in taxa}
+
+
+def slice_file_stem(name: str) -> str:
+    """A time slice's part of a file name: the name itself when it is a short plain word
+    (letters, digits, ``_`` and ``-``), else the same unique stem a taxon name gets.
+
+    >>> slice_file_stem("cold_stage")
+    'cold_stage'
+    """
+    if re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_-]{0,39}", name):
+        return name
+    return taxon_file_stem(name)

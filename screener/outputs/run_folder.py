@@ -26,7 +26,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from screener.errors import InputError
-from screener.outputs.names import taxon_file_stem, taxon_file_stems
+from screener.outputs.names import slice_file_stem, taxon_file_stem, taxon_file_stems
 
 __all__ = [
     "RunFolder",
@@ -34,11 +34,17 @@ __all__ = [
     "taxon_file_stems",
     "read_provenance",
     "input_locations",
+    "locate_run_inputs",
+    "relocate",
+    "repoint_run_json",
     "SUBFOLDERS",
+    "SLICE_SUBFOLDERS",
 ]
 
 #: sub-folders of a run folder: consensus and family maps, binary ranges, MESS maps
 SUBFOLDERS = ("suitability", "ranges", "novelty")
+#: sub-folders of a run with time slices: maps on each slice, climatic stability
+SLICE_SUBFOLDERS = ("slices", "stability")
 
 
 @dataclass(frozen=True)
@@ -179,10 +185,26 @@ class RunFolder:
     def most_dissimilar(self, taxon: str) -> Path:
         return self.root / "novelty" / f"{self.stem(taxon)}.most_dissimilar.tif"
 
+    # ------------------------------------------------------------- time slices
+    def slice_suitability(self, slice_name: str, taxon: str) -> Path:
+        """Suitability of ``taxon`` on the time slice ``slice_name`` (present models)."""
+        return self.root / "slices" / f"{slice_file_stem(slice_name)}.{self.stem(taxon)}.tif"
+
+    def slice_mess(self, slice_name: str, taxon: str) -> Path:
+        """MESS of the time slice ``slice_name`` against ``taxon``'s calibration data."""
+        return (self.root / "slices"
+                / f"{slice_file_stem(slice_name)}.{self.stem(taxon)}.mess.tif")
+
+    def stability(self, taxon: str | None = None) -> Path:
+        """Climatic stability of ``taxon``, or of the clade when ``taxon`` is None."""
+        name = self.stem(taxon) if taxon is not None else "clade"
+        return self.root / "stability" / f"{name}.tif"
+
     # ------------------------------------------------------------- helpers
-    def make_subfolders(self) -> None:
-        """Create the sub-folders (the root must exist)."""
-        for sub in SUBFOLDERS:
+    def make_subfolders(self, *, slices: bool = False) -> None:
+        """Create the sub-folders (the root must exist); ``slices`` adds those of a run
+        with time slices."""
+        for sub in SUBFOLDERS + (SLICE_SUBFOLDERS if slices else ()):
             (self.root / sub).mkdir(exist_ok=True)
 
     def relative(self, path) -> str:
@@ -202,9 +224,12 @@ def read_provenance(path, *, what: str | None = None) -> dict:
     if not path.exists():
         raise InputError(what or f"{path} does not exist; give the run.json of a run.")
     try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except ValueError as exc:
+        provenance = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError) as exc:
         raise InputError(f"{path} is not a readable run.json ({exc}).") from None
+    if not isinstance(provenance, dict):
+        raise InputError(f"{path} is not a readable run.json (not a JSON object).")
+    return provenance
 
 
 def input_locations(provenance: dict, results_folder) -> dict:
@@ -236,3 +261,73 @@ def input_locations(provenance: dict, results_folder) -> dict:
             for p in provenance.get("input_hashes", {})
         },
     }
+
+
+def locate_run_inputs(run_json) -> tuple:
+    """Find the inputs of a recorded run, also after its folders were moved.
+
+    Each input is looked for at its recorded absolute path and, failing that, at its
+    path relative to the project file, whose own place is taken relative to the
+    folder that holds ``run_json``.
+
+    Returns
+    -------
+    provenance : dict
+        run.json as read.
+    moved : dict of str to str
+        Recorded absolute path -> path where the file is now (the recorded one when
+        it cannot be found; callers report it as missing).
+    """
+    run_json = Path(run_json)
+    prov = read_provenance(run_json)
+    here = run_json.resolve().parent
+    recorded = prov.get("project_file")
+    rel_project = prov.get("project_file_from_results")
+    project_now = None
+    if recorded and Path(recorded).exists():
+        project_now = Path(recorded)
+    elif rel_project and (here / rel_project).exists():
+        project_now = (here / rel_project).resolve()
+    moved = {}
+    if recorded:
+        moved[str(recorded)] = str(project_now or recorded)
+    rel_inputs = prov.get("inputs_from_project") or {}
+    for old in prov.get("input_hashes", {}):
+        now = old
+        rel = rel_inputs.get(old)
+        if not Path(old).exists() and project_now is not None and rel:
+            cand = (project_now.parent / rel).resolve()
+            if cand.exists():
+                now = str(cand)
+        moved[str(old)] = str(now)
+    return prov, moved
+
+
+def relocate(value, moved: dict):
+    """``value`` (settings: nested dicts, lists, strings) with moved paths replaced."""
+    if isinstance(value, dict):
+        return {k: relocate(v, moved) for k, v in value.items()}
+    if isinstance(value, list):
+        return [relocate(v, moved) for v in value]
+    if isinstance(value, str):
+        return moved.get(value, value)
+    return value
+
+
+def repoint_run_json(run_json, old_root, new_root) -> None:
+    """Rewrite the paths in a run.json that lie under ``old_root`` to lie under
+    ``new_root`` (for outputs built in a staging folder that is then renamed)."""
+    old_root, new_root = str(Path(old_root)), str(Path(new_root))
+
+    def move(v):
+        if isinstance(v, dict):
+            return {move(k) if isinstance(k, str) else k: move(x) for k, x in v.items()}
+        if isinstance(v, list):
+            return [move(x) for x in v]
+        if isinstance(v, str) and (v == old_root or v.startswith(old_root + "/")):
+            return new_root + v[len(old_root):]
+        return v
+
+    path = Path(run_json)
+    prov = json.loads(path.read_text(encoding="utf-8"))
+    path.write_text(json.dumps(move(prov), indent=2, sort_keys=True) + "\n", encoding="utf-8")

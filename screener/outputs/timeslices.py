@@ -1,13 +1,13 @@
 """Outputs of the time slices: rasters, the stability map, small multiples, report section.
 
 Rasters go to ``slices/`` (suitability and MESS of each taxon in each slice) and
-``stability/`` (climatic stability per taxon and of the clade).
+``stability/`` (climatic stability per taxon and of the clade), at the paths
+:class:`screener.outputs.run_folder.RunFolder` names.
 """
 
 from __future__ import annotations
 
 import logging
-import re
 
 import numpy as np
 from matplotlib.figure import Figure
@@ -15,7 +15,6 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 
 from screener.outputs import maps
-from screener.outputs.names import taxon_file_stem
 from screener.slices import PRESENT, history_readings
 
 __all__ = ["plot_slices", "plot_stability", "report_section", "write_slice_rasters"]
@@ -29,16 +28,9 @@ _METHOD_WORDS = {
 }
 
 
-def _slice_stem(name: str) -> str:
-    """A slice's part of a file name: the name itself when it is a short plain word
-    (letters, digits, ``_`` and ``-``), else the same unique stem a taxon name gets."""
-    if re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_-]{0,39}", name):
-        return name
-    return taxon_file_stem(name)
-
-
-def write_slice_rasters(result, folder) -> list:
-    """Write the slice and stability GeoTIFFs of ``result`` into ``folder``.
+def write_slice_rasters(result, run) -> list:
+    """Write the slice and stability GeoTIFFs of ``result`` where the run folder ``run``
+    (:class:`screener.outputs.run_folder.RunFolder`) names them.
 
     Returns the paths written.
     """
@@ -48,23 +40,21 @@ def write_slice_rasters(result, folder) -> list:
     if ss is None:
         return []
     out = []
-    (folder / "slices").mkdir(exist_ok=True)
-    (folder / "stability").mkdir(exist_ok=True)
+    run.make_subfolders(slices=True)
     for name in ss.names:
         grid = ss.grids[name]
         for taxon, p in ss.projections[name].items():
-            stem = f"{_slice_stem(name)}.{taxon_file_stem(taxon)}"
-            out.append(write_raster(folder / "slices" / f"{stem}.tif", p.suitability, grid,
+            out.append(write_raster(run.slice_suitability(name, taxon), p.suitability, grid,
                                     description=f"suitability of {taxon} in {name} "
                                     "(present models, not refitted)"))
-            out.append(write_raster(folder / "slices" / f"{stem}.mess.tif", p.mess, grid,
+            out.append(write_raster(run.slice_mess(name, taxon), p.mess, grid,
                                     description=f"MESS of {name} against the calibration "
                                     "data; < 0 = novel environment"))
     for taxon, arr in ss.stability.items():
-        out.append(write_raster(folder / "stability" / f"{taxon_file_stem(taxon)}.tif", arr,
+        out.append(write_raster(run.stability(taxon), arr,
                                 result.grid, description=f"climatic stability of {taxon} "
                                 f"({ss.method} over present, {', '.join(ss.names)})"))
-    out.append(write_raster(folder / "stability" / "clade.tif", ss.clade_stability,
+    out.append(write_raster(run.stability(), ss.clade_stability,
                             result.grid, description=f"climatic stability of the clade "
                             f"({ss.method} over present, {', '.join(ss.names)})"))
     return out

@@ -87,7 +87,7 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
                              description="index of the most dissimilar layer: "
                              + ", ".join(f"{i}={n}" for i, n in enumerate(result.layer_names))))
     if result.slices is not None:
-        for p in write_slice_rasters(result, folder):
+        for p in write_slice_rasters(result, run):
             rel(p)
     if result.barrier is not None:
         rel(write_raster(run.barrier_tif, result.barrier, grid,
