@@ -279,8 +279,8 @@ class Clade:
     Raises
     ------
     InputError, RecordsError
-        On no maps, maps of another shape than the grid, or records missing, of
-        unequal lengths or off the grid.
+        On no maps, maps of another shape than the grid, or records missing, not
+        whole numbers, of unequal lengths or off the grid.
     """
 
     grid: Grid
@@ -308,8 +308,21 @@ class Clade:
             )
         checked = {}
         for t in self.suitability:
-            rows, cols = (np.atleast_1d(np.asarray(v)).astype(np.int64)
-                          for v in self.records[t])
+            given = [np.atleast_1d(np.asarray(v)) for v in self.records[t]]
+            if len(given) != 2:
+                raise RecordsError(
+                    f"Records of {t!r} must be a pair of arrays (rows, cols); got "
+                    f"{len(given)} arrays."
+                )
+            for v in given:
+                if v.size and not (np.issubdtype(v.dtype, np.number)
+                                   and np.all(np.isfinite(v)) and np.all(v == np.round(v))):
+                    raise RecordsError(
+                        f"Records of {t!r} must be whole row and column numbers of the "
+                        f"grid; got {v[:3].tolist()}...  Convert coordinates with "
+                        "Grid.rowcol first."
+                    )
+            rows, cols = (v.astype(np.int64) for v in given)
             if rows.shape != cols.shape or rows.size == 0:
                 raise RecordsError(
                     f"Records of {t!r} must be two equal-length, non-empty arrays "
@@ -340,7 +353,7 @@ class Clade:
         Raises
         ------
         InputError
-            When a taxon has no threshold.
+            When a taxon has no threshold or one that is not a finite number.
         """
         missing = [t for t in self.taxa if t not in thresholds]
         if missing:
@@ -348,6 +361,16 @@ class Clade:
                 f"`{name}` has no threshold for {missing}; give one per taxon "
                 f"(keys: {sorted(thresholds)})."
             )
+        for t in self.taxa:
+            try:
+                ok = bool(np.isfinite(float(thresholds[t])))
+            except (TypeError, ValueError):
+                ok = False
+            if not ok:
+                raise InputError(
+                    f"`{name}` of {t!r} must be a finite number; got {thresholds[t]!r} "
+                    "(a threshold from records that all fall on nodata cells?)."
+                )
         return {t: thresholds[t] for t in self.taxa}
 
     def masked_suitability(self) -> np.ndarray:

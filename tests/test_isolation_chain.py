@@ -265,6 +265,15 @@ def test_empty_and_mismatched_inputs():
         Clade(grid, {"A": np.ones((3, 3))}, {"A": ([], [])})
     with pytest.raises(RecordsError, match="No records"):
         Clade(grid, {"A": np.ones((3, 3))}, {"B": ([0], [0])})
+    with pytest.raises(RecordsError, match="whole row and column numbers"):
+        Clade(grid, {"A": np.ones((3, 3))}, {"A": ([1.5], [0])})  # not truncated
+    with pytest.raises(RecordsError, match="pair of arrays"):
+        Clade(grid, {"A": np.ones((3, 3))}, {"A": ([1], [0], [2])})
+    clade = Clade(grid, {"A": np.ones((3, 3))}, {"A": ([1.0], [0])})  # whole floats
+    assert clade.records["A"][0].dtype == np.int64
+    for bad in (np.nan, np.inf, None, "high"):
+        with pytest.raises(InputError, match="finite number"):
+            find_candidates(clade, {"A": bad})
 
 
 def test_one_cell_grid():
