@@ -226,10 +226,10 @@ def _shortest_crossings(grid, d, lab, suitable, node):
         add((slice(0, -1), slice(None)), (slice(1, None), slice(None)), ns[:, None])
         add((slice(0, -1), slice(0, -1)), (slice(1, None), slice(1, None)), dg[:, None])
         add((slice(0, -1), slice(1, None)), (slice(1, None), slice(0, -1)), dg[:, None])
-    if not keys:
-        return np.zeros(0, np.int64), np.zeros(0)
-    key = np.concatenate(keys)
-    w = np.concatenate(weights)
+    key = np.concatenate(keys) if keys else np.zeros(0, np.int64)
+    w = np.concatenate(weights) if keys else np.zeros(0)
+    if not key.size:  # e.g. every crossing joins two known ranges (one node)
+        return key, w
     order = np.lexsort((w, key))
     key, w = key[order], w[order]
     first = np.r_[True, key[1:] != key[:-1]]

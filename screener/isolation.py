@@ -60,6 +60,7 @@ from pyproj import Transformer
 from scipy import ndimage as ndi
 from scipy.spatial import cKDTree
 
+from screener.columns import CANDIDATES, find_column
 from screener.costdistance import CostGraph, least_cost_path, step_lengths_km
 from screener.errors import InputError, RecordsError
 from screener.gaps import separating_gaps
@@ -76,6 +77,7 @@ __all__ = [
     "RangeCosts",
     "SiteLayers",
     "SiteLayout",
+    "STAGE_COLUMNS",
     "SitePaths",
     "ThresholdSetSites",
     "barrier_raster",
@@ -1728,33 +1730,56 @@ def _select(columns: dict, at: np.ndarray) -> dict:
     return {c: np.asarray(v)[at] for c, v in columns.items()}
 
 
+#: The columns the stage makes, in the order it makes them (the order of the
+#: GeoPackage ``sites`` layer).  Names, types, units and meanings are in the one
+#: registry, :data:`screener.columns.CANDIDATES`; ``<taxon>`` stands for one column
+#: per taxon.
+STAGE_COLUMNS = (
+    "site_id", "kind", "threshold_set", "row", "col", "x", "y", "longitude", "latitude",
+    "area_km2", "n_cells", "mean_suitability", "max_suitability", "agreement",
+    "novel_share", "clamped_share", "elevation_min", "elevation_max", "cost_distance",
+    "cost_to_<taxon>", "nearest_taxon", "suitable_for", "niche_fit", "margin_<taxon>",
+    "gap_km", "unsuitable_km", "stepping_stones", "barrier_depth", "path_km",
+    "nearest_record_km", "between_ranges", "stability", "relaxed_block",
+)
+
+
 def site_columns(taxa) -> list:
-    """Columns of :attr:`CandidateSet.sites`, in order, for these taxa."""
-    return (
-        ["site_id", "kind", "threshold_set", "row", "col", "x", "y", "longitude",
-         "latitude", "area_km2", "n_cells", "mean_suitability", "max_suitability",
-         "agreement", "novel_share", "clamped_share", "elevation_min", "elevation_max",
-         "cost_distance"]
-        + [f"cost_to_{t}" for t in taxa]
-        + ["nearest_taxon", "suitable_for", "niche_fit"]
-        + [f"margin_{t}" for t in taxa]
-        + ["gap_km", "unsuitable_km", "stepping_stones", "barrier_depth", "path_km",
-           "nearest_record_km", "between_ranges", "stability", "relaxed_block"]
-    )
+    """Columns of :attr:`CandidateSet.sites`, in order, for these taxa.
+
+    Examples
+    --------
+    >>> [c for c in site_columns(["A", "B"]) if c.startswith("margin_")]
+    ['margin_A', 'margin_B']
+    """
+    out = []
+    for name in STAGE_COLUMNS:
+        if "<taxon>" in name:
+            out.extend(name.replace("<taxon>", str(t)) for t in taxa)
+        else:
+            out.append(name)
+    return out
+
+
+_PANDAS_DTYPE = {"int": "int64", "float": "float64", "str": "object", "bool": "bool"}
 
 
 def _site_table(grid: Grid, cols: dict, taxa) -> pd.DataFrame:
-    """The sites as a table in :func:`site_columns` order, with coordinates."""
+    """The sites as a table in :func:`site_columns` order, with coordinates; an empty
+    table has the registry's types (:data:`screener.columns.CANDIDATES`)."""
     names = site_columns(taxa)
     r_, c_ = cols["row"], cols["col"]
-    if r_.size:
-        x, y = grid.xy(r_, c_)
-        lon, lat = grid.lonlat(r_, c_)
-        cols["x"], cols["y"] = np.atleast_1d(x), np.atleast_1d(y)
-        cols["longitude"], cols["latitude"] = np.atleast_1d(lon), np.atleast_1d(lat)
-    else:
-        for c in ("x", "y", "longitude", "latitude"):
-            cols[c] = np.zeros(0)
+    if not r_.size:
+        # site_id is a number until the plan names the sites (S01, ...)
+        return pd.DataFrame({
+            c: pd.Series(dtype="int64" if c == "site_id"
+                         else _PANDAS_DTYPE[find_column(CANDIDATES, c).dtype])
+            for c in names
+        })
+    x, y = grid.xy(r_, c_)
+    lon, lat = grid.lonlat(r_, c_)
+    cols["x"], cols["y"] = np.atleast_1d(x), np.atleast_1d(y)
+    cols["longitude"], cols["latitude"] = np.atleast_1d(lon), np.atleast_1d(lat)
     sites = pd.DataFrame({c: cols[c] for c in names})
     for c in ("nearest_taxon", "suitable_for"):
         sites[c] = sites[c].astype(object)

@@ -17,6 +17,7 @@ from pyproj import Geod
 from scipy import ndimage as ndi
 from skimage.measure import label as sk_label
 
+from screener.columns import CANDIDATES, find_column
 from screener.errors import InputError, RecordsError
 from screener.gaps import separating_gaps
 from screener.grid import Grid
@@ -317,3 +318,26 @@ def test_records_only_on_unsuitable_cells():
     assert cs.sites["kind"].tolist() == ["isolated"]
     assert np.isinf(cs.sites["gap_km"].iloc[0])
     assert np.isfinite(cs.sites["cost_distance"].iloc[0])  # reached from the record
+
+
+def test_site_columns_follow_the_registry():
+    """Every column the stage makes is in screener.columns.CANDIDATES with its type;
+    an empty table has the same columns and types."""
+    kinds = {"int": "iu", "float": "f", "str": "OT", "bool": "b"}
+    grid, clade, *_ = chain(3)
+    _, maps, recs, th = scene(3)
+    full = find_candidates(clade, th, {t: 0.9 * v for t, v in th.items()},
+                           IsolationParameters(min_patch_km2=0.0, within_range_min_km=3.0))
+    empty = find_candidates(clade, {t: 1.01 for t in th})  # no cell reaches it
+    assert len(full.sites) > 3 and len(empty.sites) == 0
+    for table in (full.sites, empty.sites):
+        assert list(table.columns) == site_columns(["A", "B"])
+        # site numbers until the plan names them (S01, ...: CandidateSet.with_site_ids)
+        assert table["site_id"].dtype == np.int64
+        for name in table.columns.drop("site_id"):
+            col = find_column(CANDIDATES, name)
+            assert col is not None, f"{name} is not registered"
+            kind = table[name].dtype.kind
+            if kind == "O" and len(table) and col.dtype != "str":
+                pytest.fail(f"{name} holds objects, registered as {col.dtype}")
+            assert kind in kinds[col.dtype], (name, table[name].dtype, col.dtype)
