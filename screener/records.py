@@ -462,6 +462,19 @@ def _longitudes_onto_grid(lon, lat, grid):
         lon[idx] = wrapped[move][ok]
     return lon
 
+def _on_grid(lon, lat, grid) -> np.ndarray:
+    """True where a longitude/latitude falls on a valid cell of the grid (longitudes
+    in either convention, -180..180 or 0..360)."""
+    lon, lat = np.asarray(lon, float), np.asarray(lat, float)
+    if grid.is_geographic:
+        lon = _longitudes_onto_grid(lon, lat, grid)
+    x, y = grid.from_lonlat(lon, lat)
+    r, c, inside = grid.rowcol(np.atleast_1d(x), np.atleast_1d(y))
+    on = inside.copy()
+    on[inside] = grid.mask[r[inside], c[inside]]
+    return on
+
+
 def validate_records(
     raw: RawRecords,
     grid: Grid,
@@ -551,10 +564,10 @@ def validate_records(
             continue
         if raw.coords == "lonlat":
             if abs(vb) > 90:
-                if abs(va) <= 90 and abs(vb) <= 180:
+                if abs(va) <= 90 and abs(vb) <= 360 and _on_grid([vb], [va], grid)[0]:
                     reason = (
-                        f"latitude {vb:g} is beyond +/-90 and longitude {va:g} would be a "
-                        "valid latitude: longitude and latitude look swapped"
+                        f"latitude {vb:g} is beyond +/-90; with longitude and latitude "
+                        "swapped it would fall on the grid: the columns look swapped"
                     )
                 else:
                     reason = f"latitude {vb:g} is beyond +/-90"
@@ -590,10 +603,7 @@ def validate_records(
     if raw.coords == "lonlat" and a.size and (~inside).any():
         out = ~inside & (np.abs(lon) <= 90)
         if out.any():
-            sx, sy = grid.from_lonlat(lat[out], lon[out])
-            sr, sc, sin = grid.rowcol(sx, sy)
-            ok = sin & grid.mask[sr, sc]
-            swapped_on_grid[np.flatnonzero(out)[ok]] = True
+            swapped_on_grid[np.flatnonzero(out)] = _on_grid(lat[out], lon[out], grid)
 
     per_taxon: dict = {}
     seen_exact: dict = {}
@@ -710,11 +720,11 @@ def validate_records(
 
 #: (substring of a drop reason, short description of the kind, advice shown once)
 _DROP_KINDS = [
+    ("columns look swapped", "with a latitude beyond +/-90 that would be on the grid with "
+     "longitude and latitude swapped", "check which column holds which coordinate"),
     ("taxon cell is empty", "with an empty taxon cell", "fill in the taxon column"),
     ("would fall on the grid", "outside the grid that would be on it with longitude "
      "and latitude swapped", "check which column holds which coordinate"),
-    ("look swapped", "with longitude and latitude apparently swapped",
-     "check which column holds which coordinate"),
     ("split in two", "with numbers split in two at a decimal comma",
      "save the file with semicolons between the columns, or with decimal points, or "
      "quote the numbers"),

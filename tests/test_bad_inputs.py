@@ -409,6 +409,28 @@ def test_missing_project_file(tmp_path):
     assert "does not exist" in result.output and "Traceback" not in result.output
 
 
+def test_swap_hint_only_where_swapping_puts_the_record_on_the_grid(scen):
+    # valid positions far from the grid (lon 180 / lat -90 and the like) and an
+    # impossible latitude whose swap is still off the grid get no swap hint; a row
+    # whose swapped coordinates fall on the grid does
+    rows = read_rows(scen)
+    lon, lat = rows[1][1], rows[1][2]
+    extra = [["Nebrivex tarvelli", "180", "-90", "X1"], ["Nebrivex tarvelli", "-180", "-90", "X2"],
+             ["Nebrivex tarvelli", "-14.8", "95.5", "X3"], ["Nebrivex tarvelli", "0", "0", "X4"],
+             ["Nebrivex tarvelli", lat, lon, "X5"]]
+    write_rows(scen, rows + extra)
+    n = len(rows)
+    text = _check_lines(scen)
+    for k, reason in enumerate(["(180.00000, -90.00000) is outside the grid",
+                                "(-180.00000, -90.00000) is outside the grid",
+                                "latitude 95.5 is beyond +/-90", "(0.00000, 0.00000) is outside "
+                                "the grid", "is outside the grid; with longitude and latitude "
+                                "swapped it would fall on the grid: check the column order"]):
+        line = re.search(rf"^  line {n + 1 + k} \(Nebrivex tarvelli\): (.*)$", text, re.M)
+        assert line and reason in line.group(1), (k, text)
+    assert text.count("swapped") == 1
+
+
 def test_check_lists_every_dropped_row_before_refusing(scen):
     _taxon_all_dropped(scen)
     result = invoke("check", scen / "project.toml")

@@ -68,10 +68,23 @@ def test_each_rejection_is_reported_with_line_and_reason(grid, row, reason):
 def test_swapped_coordinates_are_named(grid):
     text = "taxon,longitude,latitude\nA,-5.105,10.055\nA,10.1,-5.1\nA,10.2,-5.2\nA,10.3,-5.25\n"
     rs = run(text, grid)
-    assert "swapped" in rs.dropped[0].reason
+    assert "swapped it would fall on the grid" in rs.dropped[0].reason
+    # latitude 100 is impossible, but swapped the point is still far from this grid
     text = "taxon,longitude,latitude\nA,-5.1,100\nA,10.1,-5.1\nA,10.2,-5.2\nA,10.3,-5.25\n"
     rs = run(text, grid)
-    assert "look swapped" in rs.dropped[0].reason
+    assert rs.dropped[0].reason == "latitude 100 is beyond +/-90"
+
+
+def test_swapped_latitude_beyond_90_is_named_when_it_lands_on_the_grid():
+    # a grid at 100 E: a record written (latitude, longitude) has latitude 100.055
+    g = Grid("EPSG:4326", Affine(0.01, 0, 100.0, 0, -0.01, -5.0), (30, 40),
+             np.ones((30, 40), bool))
+    text = ("taxon,longitude,latitude\nA,-5.105,100.055\nA,100.1,-5.1\nA,100.2,-5.2\n"
+            "A,100.3,-5.25\n")
+    rs = run(text, g)
+    assert rs.dropped[0].reason == ("latitude 100.055 is beyond +/-90; with longitude and "
+                                    "latitude swapped it would fall on the grid: the columns "
+                                    "look swapped")
 
 
 def test_too_few_records_stops_with_reasons(grid):
