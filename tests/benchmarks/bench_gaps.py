@@ -10,8 +10,6 @@ on the same projected grid (the pass the least-cost stage makes per taxon); "our
 """
 
 import argparse
-import statistics
-import time
 
 import numpy as np
 from affine import Affine
@@ -20,6 +18,7 @@ from skimage.graph import MCP_Geometric
 
 from screener.gaps import separating_gaps
 from screener.grid import Grid
+from _timing import timed  # noqa: E402 (tests/benchmarks/_timing.py)
 
 
 def scene(n, seed=0):
@@ -31,15 +30,6 @@ def scene(n, seed=0):
     sizes = np.bincount(labels.ravel())
     sizes[0] = 0
     return s, labels, k, [int(np.argmax(sizes))]
-
-
-def timed(fn, repeats):
-    out = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        out.append(time.perf_counter() - t0)
-    return min(out), statistics.median(out)
 
 
 def main():

@@ -6,7 +6,6 @@ into docs/benchmarks/isolation.md.  Invented smooth random resistance.
 """
 
 import argparse
-import statistics
 import time
 
 import numpy as np
@@ -16,21 +15,13 @@ from skimage.graph import MCP_Geometric
 
 from screener.costdistance import CostGraph, least_cost_path
 from screener.grid import Grid
+from _timing import timed  # noqa: E402 (tests/benchmarks/_timing.py)
 
 
 def surface(n, seed=0):
     rng = np.random.default_rng(seed)
     r = ndi.gaussian_filter(rng.random((n, n)), 8)
     return (r - r.min()) / (r.max() - r.min()) + 0.01
-
-
-def timed(fn, repeats):
-    out = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        out.append(time.perf_counter() - t0)
-    return min(out), statistics.median(out)
 
 
 def main():

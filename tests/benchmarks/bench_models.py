@@ -13,24 +13,14 @@ from __future__ import annotations
 
 import argparse
 import platform
-import statistics
-import time
 from pathlib import Path
 
 import numpy as np
 
 from screener.models import make_model
+from _timing import timed  # noqa: E402 (tests/benchmarks/_timing.py)
 
 FAMILIES = {"ellipsoid": {}, "envelope": {}, "ppm": {}, "forest": {}}
-
-
-def _times(fn, repeats):
-    out = []
-    for _ in range(repeats):
-        t = time.perf_counter()
-        fn()
-        out.append(time.perf_counter() - t)
-    return min(out), statistics.median(out)
 
 
 def main(quick: bool = False) -> str:
@@ -62,7 +52,7 @@ def main(quick: bool = False) -> str:
         note = ""
         for n in (10, 100):
             pres = centre + rng.normal(scale=0.5, size=(n, p))
-            lo, med = _times(
+            lo, med, _ = timed(
                 lambda f=family, kw=params, x=pres: make_model(f, **kw).fit(
                     x, background
                 ),
@@ -80,7 +70,7 @@ def main(quick: bool = False) -> str:
         lines.append(f"| {family} | {cells[0]} | {cells[1]} | {note} |")
 
     w = rng.normal(size=p).astype(np.float32)
-    lo_ref, med_ref = _times(lambda: stack @ w, pred_repeats)
+    lo_ref, med_ref, _ = timed(lambda: stack @ w, pred_repeats)
     lines += [
         "",
         f"## Prediction throughput ({n_cells:,} float32 cells x {p} predictors, "
@@ -93,7 +83,7 @@ def main(quick: bool = False) -> str:
     ]
     for family, model in fitted.items():
         X = stack if family != "forest" else stack[: n_cells // 10]
-        lo, med = _times(lambda model=model, X=X: model.predict(X), pred_repeats)
+        lo, med, _ = timed(lambda model=model, X=X: model.predict(X), pred_repeats)
         rate_lo, rate_med = len(X) / lo, len(X) / med
         ratio = (n_cells / lo_ref) / rate_lo
         lines.append(
@@ -104,14 +94,14 @@ def main(quick: bool = False) -> str:
     for fc in ("linear", "linear+quadratic", "linear+quadratic+hinge",
                "linear+quadratic+interaction+hinge+step"):
         mod = make_model("ppm", terms=fc, l1_penalty=0.05).fit(pres, background)
-        lo, med = _times(lambda mod=mod: mod.predict(stack), pred_repeats)
+        lo, med, _ = timed(lambda mod=mod: mod.predict(stack), pred_repeats)
         ratios[fc] = lo / lo_ref
         lines.append(
             f"| ppm {fc} (k = {mod.n_coefficients_}) predict | "
             f"{n_cells / lo:.3g} | {n_cells / med:.3g} | {ratios[fc]:.1f} |"
         )
     ppm = fitted["ppm"]
-    lo, _ = _times(lambda: ppm.predict(stack), pred_repeats)
+    lo, _, _ = timed(lambda: ppm.predict(stack), pred_repeats)
     ratio = lo / lo_ref
     lines += [
         "",

@@ -26,7 +26,6 @@ import math
 import multiprocessing
 import os
 import platform
-import statistics
 import sys
 import time
 import uuid
@@ -38,6 +37,7 @@ sys.path.insert(0, os.path.abspath(os.path.join(os.path.dirname(__file__), "..",
 
 from screener import overlap as ov  # noqa: E402
 from screener.parallel import make_executor  # noqa: E402
+from _timing import timed  # noqa: E402 (tests/benchmarks/_timing.py)
 
 
 def _data(rng, shift=0.0, n=50, n_bg=2000, n_vars=4, spread=0.5):
@@ -47,15 +47,6 @@ def _data(rng, shift=0.0, n=50, n_bg=2000, n_vars=4, spread=0.5):
     rb = rng.normal(0.0, spread, size=(n, n_vars))
     rb[:, 0] += shift
     return ra, rb, bg_a, bg_b
-
-
-def _times(fn, repeats):
-    out = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        out.append(time.perf_counter() - t0)
-    return min(out), statistics.median(out)
 
 
 def _fresh(space):
@@ -79,7 +70,7 @@ def main(argv=None):
         lines.append(text)
 
     # 1. equivalency, serial, first call (kernel set-up included)
-    eq = _times(lambda: ov.equivalency_test(_fresh(space), n_replicates=1000), repeats)
+    eq = timed(lambda: ov.equivalency_test(_fresh(space), n_replicates=1000), repeats)
     # 2. bare densities
     rec = space.scores_records_a
 
@@ -87,7 +78,7 @@ def main(argv=None):
         for _ in range(1000):
             gaussian_kde(rec.T)(nodes.T)
 
-    kde = _times(bare, max(1, repeats // 2))
+    kde = timed(bare, max(1, repeats // 2))
     report("| measurement | min (s) | median (s) |")
     report("| --- | --- | --- |")
     report(
@@ -102,7 +93,7 @@ def main(argv=None):
         f"| ratio equivalency / bare densities (goal <= 2) "
         f"| {eq[0] / kde[0]:.2f} | {eq[1] / kde[1]:.2f} |"
     )
-    sim = _times(lambda: ov.similarity_test(space, n_replicates=1000), repeats)
+    sim = timed(lambda: ov.similarity_test(space, n_replicates=1000), repeats)
     report(
         f"| E-space similarity, 1000 replicates, serial | {sim[0]:.2f} | {sim[1]:.2f} |"
     )
@@ -114,13 +105,13 @@ def main(argv=None):
         with make_executor("processes", n_workers=n_workers) as ex:
             ex.map(abs, range(8))  # start the workers
             ov.equivalency_test(space, n_replicates=8, executor=ex)  # warm caches
-            warm = _times(
+            warm = timed(
                 lambda ex=ex: ov.equivalency_test(
                     space, n_replicates=n_rep, executor=ex
                 ),
                 repeats,
             )
-            cold = _times(
+            cold = timed(
                 lambda ex=ex: ov.equivalency_test(
                     _fresh(space), n_replicates=n_rep, executor=ex
                 ),
@@ -155,7 +146,7 @@ def main(argv=None):
             with make_executor("processes", n_workers=2, start_method=method) as ex:
                 ex.map(math.sqrt, range(4))
 
-        st = _times(start, max(1, repeats // 2))
+        st = timed(start, max(1, repeats // 2))
         report(
             f"| process pool start + first map, 2 workers, {method} "
             f"| {st[0]:.2f} | {st[1]:.2f} |"

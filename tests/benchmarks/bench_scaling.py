@@ -49,6 +49,7 @@ from pathlib import Path
 os.environ.setdefault("GDAL_CACHEMAX", "64")
 
 import numpy as np  # noqa: E402
+from _timing import timed  # noqa: E402 (tests/benchmarks/_timing.py)
 
 ROOT = Path(__file__).resolve().parents[2]
 N_LAYERS = 20
@@ -82,15 +83,6 @@ def make_grid(folder: Path, side: int, seed: int = 0):
             dst.write(arr, 1)
         paths.append(p)
     return paths
-
-
-def timed(fn, repeats):
-    out = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        out.append(time.perf_counter() - t0)
-    return min(out), statistics.median(out)
 
 
 def stage_run(stage: str, folder: Path, repeats: int) -> dict:
@@ -311,11 +303,11 @@ def replicate_speedup(repeats: int) -> dict:
             ex.map(abs, [1, 2])  # start the workers before timing
             out[f"equivalency-1000, {kind}-{n}"] = timed(
                 lambda ex=ex: equivalency_test(space, n_replicates=1000, random_state=0,
-                                               executor=ex), repeats)
+                                               executor=ex), repeats)[:2]
             out[f"null-model ppm-99, {kind}-{n}"] = timed(
                 lambda ex=ex: null_model_test("ppm", {"terms": "linear+quadratic"}, pres, bg,
                                               None, observed_auc=0.9, n_null=99,
-                                              random_state=0, map_fn=ex.map), repeats)
+                                              random_state=0, map_fn=ex.map), repeats)[:2]
     return out
 
 

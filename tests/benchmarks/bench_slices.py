@@ -18,8 +18,6 @@ Target: one slice costs at most one prediction pass plus one isolation pass.
 """
 
 import argparse
-import statistics
-import time
 
 import numpy as np
 from affine import Affine
@@ -35,6 +33,7 @@ from screener.novelty import mess_map
 from screener.results import TaxonRecords, TaxonResult
 from screener.slices import TimeSlice, analyse_slices, map_models
 from screener.system import avoid_hugepage_stalls
+from _timing import timed  # noqa: E402 (tests/benchmarks/_timing.py)
 
 FAMILIES = ("ellipsoid", "envelope")
 
@@ -71,15 +70,6 @@ def scenario(n, seed=0):
         taxa[rec.taxon] = (TaxonResult(rec.taxon, rec, None, presence_env=P, background_env=B,
                                        ensemble_weights={f: 1.0 for f in FAMILIES}), models)
     return grid, present, past, taxa
-
-
-def timed(fn, repeats):
-    out, value = [], None
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        value = fn()
-        out.append(time.perf_counter() - t0)
-    return min(out), statistics.median(out), value
 
 
 def prediction_pass(present, taxa):

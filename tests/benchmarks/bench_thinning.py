@@ -9,21 +9,11 @@ Target: 100,000 records in under 10 s.
 """
 
 import argparse
-import statistics
-import time
 
 import numpy as np
 
 from screener.records import close_pairs, thin_by_distance
-
-
-def timed(fn, repeats):
-    out, value = [], None
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        value = fn()
-        out.append(time.perf_counter() - t0)
-    return min(out), statistics.median(out), value
+from _timing import timed  # noqa: E402 (tests/benchmarks/_timing.py)
 
 
 def main():
