@@ -15,12 +15,19 @@ import errno
 import functools
 import logging
 import sys
+import warnings
 from pathlib import Path
 
 import click
 
 from screener import __version__
-from screener.errors import InputError, OutputError, RecordsError, ScreenerError
+from screener.errors import (
+    InputError,
+    OutputError,
+    RecordsError,
+    ScreenerDeprecationWarning,
+    ScreenerError,
+)
 
 log = logging.getLogger("screener")
 
@@ -89,7 +96,11 @@ def handle_errors(fn):
         debug = kwargs.get("debug", False)
         cached = fn.__name__ == "run" and not kwargs.get("no_cache", False)
         try:
-            return fn(*args, **kwargs)
+            with warnings.catch_warnings():
+                # renamed settings are listed with the run's own warnings ("Warning:
+                # ..." on the console, run.json, the report), not as Python warnings
+                warnings.simplefilter("ignore", ScreenerDeprecationWarning)
+                return fn(*args, **kwargs)
         except KeyboardInterrupt:
             if debug:
                 raise

@@ -59,6 +59,12 @@ class ScreenerWarning(UserWarning):
     """Suspicious but legal input or results."""
 
 
+class ScreenerDeprecationWarning(ScreenerWarning, FutureWarning):
+    """A renamed or retired setting or argument: still read in this release, refused in
+    the next.  A FutureWarning, so Python shows it to users by default; a
+    ScreenerWarning, so a run lists it among its warnings (console, run.json, report)."""
+
+
 class CollinearityWarning(ScreenerWarning):
     """Two predictors are strongly correlated over the background."""
 

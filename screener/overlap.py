@@ -61,7 +61,7 @@ import numpy as np
 from sklearn.decomposition import PCA
 from sklearn.preprocessing import StandardScaler
 
-from screener.errors import InputError
+from screener.errors import InputError, ScreenerDeprecationWarning
 from screener.parallel import Executor, make_executor, spawn_seeds
 from screener.project import default
 
@@ -557,7 +557,7 @@ def _grid_cells_argument(grid_cells, resolution) -> int:
         warnings.warn(
             "`resolution` is renamed `grid_cells` (cells along each principal axis); "
             "the old name stops working in the next release.",
-            FutureWarning,
+            ScreenerDeprecationWarning,
             stacklevel=3,
         )
         grid_cells = resolution
@@ -946,7 +946,7 @@ def _check_hypothesis(hypothesis: str | None, alternative: str | None = None) ->
         warnings.warn(
             "`alternative` is renamed `hypothesis` ('greater' -> 'conserved', 'lower' "
             "-> 'diverged'); the old name stops working in the next release.",
-            FutureWarning,
+            ScreenerDeprecationWarning,
             stacklevel=3,
         )
         return _OLD_ALTERNATIVES[alternative]

@@ -356,7 +356,7 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
     """
     progress = progress or Progress(None)
     s = settings
-    caught: list = []
+    caught: list = list(s.deprecations)  # renamed settings the project file used
     with warnings.catch_warnings(record=True) as wlist:
         warnings.simplefilter("always", ScreenerWarning)
         paths, skipped = layer_paths(s)

@@ -19,7 +19,7 @@ from pathlib import Path
 
 import numpy as np
 
-from screener.errors import ProjectError, suggest
+from screener.errors import ProjectError, ScreenerDeprecationWarning, suggest
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -366,11 +366,16 @@ class Settings:
         The project file.
     base_dir : Path
         Folder that relative paths are resolved against.
+    deprecations : tuple of str
+        One message per renamed or retired setting the project file used (each also
+        warned as :class:`~screener.errors.ScreenerDeprecationWarning` when read); a
+        run lists them among its warnings.
     """
 
     sections: dict
     path: Path | None
     base_dir: Path
+    deprecations: tuple = ()
 
     def __getattr__(self, name):
         sections = self.__dict__.get("sections", {})
@@ -460,7 +465,13 @@ def _check_value(section, key, value, spec, base_dir, where):
     return spec.check(value, where)
 
 
-def _apply_renames(data: dict, where: str) -> dict:
+def _deprecated(message: str, notes: list) -> None:
+    """Warn of a renamed or retired setting and keep the message for the run."""
+    notes.append(message)
+    warnings.warn(message, ScreenerDeprecationWarning, stacklevel=4)
+
+
+def _apply_renames(data: dict, where: str, notes: list) -> dict:
     """Translate renamed settings (:data:`RENAMED`), warning once for each."""
     out = dict(data)
     for (section, old), (new, values) in RENAMED.items():
@@ -484,13 +495,10 @@ def _apply_renames(data: dict, where: str) -> dict:
             value = values[value]
         body[new] = value
         out[section] = body
-        warnings.warn(
+        _deprecated(
             f"{where}: [{section}] {old} is renamed {new}"
             + (f" (now {value!r})" if values else "")
-            + "; the old name stops working in the next release.",
-            FutureWarning,
-            stacklevel=3,
-        )
+            + "; the old name stops working in the next release.", notes)
     return out
 
 
@@ -506,7 +514,8 @@ def settings_from_dict(data: dict, *, base_dir=".", where="project file") -> Set
     base_dir = Path(base_dir)
     if not isinstance(data, dict):
         raise ProjectError(f"{where}: expected a TOML table at the top level.")
-    data = _apply_renames(data, where)
+    notes: list = []
+    data = _apply_renames(data, where, notes)
     for section, body in data.items():
         if section not in SCHEMA:
             raise ProjectError(
@@ -534,8 +543,8 @@ def settings_from_dict(data: dict, *, base_dir=".", where="project file") -> Set
         if section == "slices" and "layers" in values:
             values["layers"] = _slice_paths(values["layers"], base_dir, where)
         sections[section] = SECTION_TYPES[section](**values)
-    _check_across(sections, where)
-    return Settings(sections, None, base_dir)
+    _check_across(sections, where, notes)
+    return Settings(sections, None, base_dir, tuple(notes))
 
 
 def _slice_paths(body: dict, base_dir, where) -> dict:
@@ -558,7 +567,7 @@ def _slice_paths(body: dict, base_dir, where) -> dict:
     return out
 
 
-def _check_across(s, where):
+def _check_across(s, where, notes):
     """Rules that tie settings together or depend on the model registry."""
     fams = s["models"]["families"]
     if not fams:
@@ -576,7 +585,7 @@ def _check_across(s, where):
             f"{where}: [layers] derive needs [layers] elevation to name the elevation layer."
         )
     _check_weights(s, where)
-    _check_model_parameters(s, where)
+    _check_model_parameters(s, where, notes)
 
 
 def _check_weights(s, where):
@@ -596,8 +605,9 @@ def _check_weights(s, where):
             )
 
 
-def _check_model_parameters(s, where):
-    """Parameter names of each family's table must be the estimator's own."""
+def _check_model_parameters(s, where, notes):
+    """Parameter names of each family's table must be the estimator's own; retired
+    ones (the family's ``deprecated_params``) are noted."""
     import inspect
 
     from screener.models import FAMILIES
@@ -611,6 +621,11 @@ def _check_model_parameters(s, where):
                     f"{where}: [models.{family}]: unknown parameter {k!r}."
                     + suggest(k, params) + f" Parameters: {', '.join(params) or 'none'}."
                 )
+            new = getattr(cls, "deprecated_params", {}).get(k)
+            if new is not None:
+                _deprecated(f"{where}: [models.{family}] {k} is retired in favour of "
+                            f"{new}; the old name stops working in the next release.",
+                            notes)
 
 
 def load_project(path) -> Settings:

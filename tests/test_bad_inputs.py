@@ -609,6 +609,35 @@ def test_layers_in_an_earlier_runs_folder_are_skipped(scen, baseline):
     assert text.count("Skipped 2 layer file(s)") == 1 and predictors in text
 
 
+def test_renamed_settings_are_listed_with_the_runs_warnings(scen):
+    # the console shows them as the run's own warnings, once, without Python's
+    # file-and-line warning format
+    set_in_section(scen, "overlap", 'alternative = "greater"\nresolution = 64')
+    add_settings(scen, "[models.ppm]\nfeature_classes = \"lq\"")
+    text = _check_lines(scen)
+    for old, new in (("[overlap] alternative", "is renamed similarity_hypothesis "
+                      "(now 'conserved')"), ("[overlap] resolution", "is renamed grid_cells"),
+                     ("[models.ppm] feature_classes", "is retired in favour of terms")):
+        assert text.count(f"Warning: {scen / 'project.toml'}: {old} {new}; the old name "
+                          "stops working in the next release.") == 1, text
+    assert "FutureWarning" not in text and "warnings.warn" not in text
+
+
+@pytest.mark.slow
+def test_renamed_settings_are_in_run_json(warm, tmp_path):
+    scen = tmp_path / "scen"
+    shutil.copytree(warm, scen)  # the same values under the old names: from the cache
+    set_in_section(scen, "overlap", 'alternative = "greater"\nresolution = 64')
+    out = tmp_path / "out"
+    result = invoke("run", scen / "project.toml", "--out", out)
+    assert result.exit_code == 0, result.output
+    warned = json.loads((out / "run.json").read_text(encoding="utf-8"))["warnings"]
+    renamed = [w for w in warned if "is renamed" in w]
+    assert len(renamed) == 2 and "similarity_hypothesis" in renamed[0]
+    assert all(result.output.count(f"Warning: {w}") == 1 for w in renamed)
+    assert "is renamed" in (out / "report.html").read_text(encoding="utf-8")
+
+
 # ------------------------------------------------------------------ output folder
 @pytest.fixture(scope="module")
 def warm(demo_base, tmp_path_factory):

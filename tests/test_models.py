@@ -11,7 +11,7 @@ from sklearn.exceptions import NotFittedError
 from sklearn.linear_model import PoissonRegressor
 from threadpoolctl import threadpool_limits
 
-from screener.errors import InputError, ScreenerWarning
+from screener.errors import InputError, ScreenerDeprecationWarning
 from screener.models import (
     FAMILIES,
     DownsampledForest,
@@ -123,8 +123,8 @@ def test_envelope_percentile_rule():
 
 def test_ppm_deprecated_names_warn_and_map_to_new_ones(data):
     pres, bg = data
-    with pytest.warns(ScreenerWarning, match="feature_classes .* deprecated"):
-        with pytest.warns(ScreenerWarning, match="regularization .* deprecated"):
+    with pytest.warns(ScreenerDeprecationWarning, match="feature_classes .* deprecated"):
+        with pytest.warns(ScreenerDeprecationWarning, match="regularization .* deprecated"):
             old = make_model("ppm", feature_classes="lq", regularization=1.0)
             old.fit(pres, bg)
     new = make_model(

@@ -27,7 +27,7 @@ from scipy.stats import gaussian_kde
 from sklearn.neighbors import KernelDensity
 
 from screener import overlap as ov
-from screener.errors import InputError
+from screener.errors import InputError, ScreenerDeprecationWarning
 from screener.grid import Grid
 
 # --------------------------------------------------------------------------------------
@@ -333,10 +333,10 @@ def test_environmental_space_input_errors():
 def test_old_option_names_still_work_with_a_warning():
     rng = np.random.default_rng(1)
     ra, rb, ba, bb = _pair(rng, n=8)
-    with pytest.warns(FutureWarning, match="grid_cells"):
+    with pytest.warns(ScreenerDeprecationWarning, match="grid_cells"):
         old = ov.environmental_space(ra, rb, ba, bb, resolution=20)
     assert old.grid_cells == 20
-    with pytest.warns(FutureWarning, match="hypothesis"):
+    with pytest.warns(ScreenerDeprecationWarning, match="hypothesis"):
         t = ov.similarity_test(old, alternative="lower", n_replicates=9)["D"]
     assert t.hypothesis == "diverged" and t.tail == "lower"
 

@@ -90,10 +90,21 @@ def test_settings_table_lists_every_key():
 
 def test_renamed_overlap_settings_still_work_for_one_release(project_dir):
     p = project_dir / "project.toml"
-    p.write_text(MINIMAL + "[overlap]\nalternative = 'lower'\nresolution = 40\n")
-    with pytest.warns(FutureWarning, match="renamed") as caught:
+    from screener.errors import ScreenerDeprecationWarning, ScreenerWarning
+
+    # one warning class for every renamed setting: a FutureWarning (shown to users by
+    # default) that is also a ScreenerWarning (listed with a run's warnings)
+    assert issubclass(ScreenerDeprecationWarning, FutureWarning)
+    assert issubclass(ScreenerDeprecationWarning, ScreenerWarning)
+    p.write_text(MINIMAL + "[overlap]\nalternative = 'lower'\nresolution = 40\n"
+                 "[models.ppm]\nfeature_classes = 'lq'\n")
+    with pytest.warns(ScreenerDeprecationWarning) as caught:
         s = load_project(p)
-    assert len(caught) == 2
+    assert [str(w.message) for w in caught] == list(s.deprecations)
+    assert len(s.deprecations) == 3
+    assert "[overlap] alternative is renamed similarity_hypothesis (now 'diverged')" \
+        in s.deprecations[0]
+    assert "[models.ppm] feature_classes is retired in favour of terms" in s.deprecations[2]
     assert s.overlap.similarity_hypothesis == "diverged"
     assert s.overlap.grid_cells == 40
     p.write_text(MINIMAL + "[overlap]\nresolution = 40\ngrid_cells = 30\n")

@@ -21,7 +21,7 @@ from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import GroupKFold
 from sklearn.utils.validation import check_is_fitted
 
-from screener.errors import InputError, ScreenerWarning, suggest
+from screener.errors import InputError, ScreenerDeprecationWarning, suggest
 from screener.models.base import NicheModel, check_predictors
 
 __all__ = ["PointProcessNiche", "TERM_SETS", "DEFAULT_TERMS", "normalise_terms"]
@@ -174,7 +174,8 @@ class PointProcessNiche(NicheModel):
     random_state : int, default 0
         Seed of the solver's coordinate order and of the block assignment.
     feature_classes, regularization : deprecated
-        Old names, accepted for one release with a :class:`ScreenerWarning`: a letter
+        Old names, accepted for one release with a
+        :class:`~screener.errors.ScreenerDeprecationWarning`: a letter
         code maps to ``terms`` (L linear, Q quadratic, P interaction, H hinge, T step;
         "auto" to the default terms); a multiplier ``m`` (or several) maps to
         ``l1_penalty = 0.5 m / sqrt(n)`` for ``n`` records.
@@ -291,7 +292,7 @@ class PointProcessNiche(NicheModel):
                 f"{list(terms)!r} instead (letters: L linear, Q quadratic, "
                 "P interaction, H hinge, T step; 'auto' is the default terms, whose "
                 "complexity is now chosen along the L1 penalty path).",
-                ScreenerWarning,
+                ScreenerDeprecationWarning,
                 stacklevel=3,
             )
         penalty = self.l1_penalty
@@ -313,7 +314,7 @@ class PointProcessNiche(NicheModel):
                 f"for these {n} records (a multiplier m is "
                 "0.5 m / sqrt(n)), or leave it out to choose the penalty by held-out "
                 "likelihood.",
-                ScreenerWarning,
+                ScreenerDeprecationWarning,
                 stacklevel=3,
             )
         if penalty is not None and not np.isscalar(penalty):
