@@ -33,12 +33,10 @@ import rasterio
 from screener import __version__
 from screener.access import walking_surface
 from screener.alignment import align_layers
-from screener.background import accessible_area, draw_background
+from screener.background import draw_background
 from screener.cache import StageCache, digest
 from screener.darwincore import DarwinCoreOptions
 from screener.errors import InputError, LayerError, ScreenerWarning, suggest
-from screener.evaluation import CONSENSUS, evaluate_family
-from screener.evaluation import auc as auc_fn
 from screener.isolation import (
     Clade,
     IsolationParameters,
@@ -50,10 +48,8 @@ from screener.isolation import (
 )
 from screener.layers import LayerStack, check_layers, hillshade, read_layers, slope_aspect
 from screener.models import accepts_random_state
-from screener.models.base import ClampedModel, training_presence_scores
-from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
-from screener.models.inspect import permutation_importance, response_curves
-from screener.models.mapping import GeographicRefit, outside_map, predict_map
+from screener.models.mapping import GeographicRefit
+from screener.models.taxon import family_params, fit_taxon, taxon_seed
 from screener.novelty import mess_map
 from screener.outputs.sheets import suggest_sampling_points
 from screener.outputs.run_folder import locate_run_inputs, relocate
@@ -81,7 +77,6 @@ from screener.results import OverlapResult, PlanResult, RunResult, TaxonResult
 from screener.robustness import RefitPlan, record_resampling
 from screener.routes import walking_routes
 from screener.slices import TimeSlice, analyse_slices, slice_stack
-from screener.thresholds import compute_thresholds
 
 __all__ = [
     "Intake",
@@ -146,12 +141,6 @@ def file_sha256(path) -> str:
         for chunk in iter(lambda: f.read(1 << 20), b""):
             h.update(chunk)
     return h.hexdigest()
-
-
-def taxon_seed(random_state: int, taxon: str) -> int:
-    """Seed of one taxon's random draws: adding a taxon does not change the others'."""
-    ss = np.random.SeedSequence([int(random_state) & 0xFFFFFFFF, zlib.crc32(taxon.encode())])
-    return int(ss.generate_state(1)[0])
 
 
 @dataclass(eq=False)
@@ -508,11 +497,6 @@ def check_project(settings: Settings) -> list:
 
 
 # --------------------------------------------------------------------------- models
-def _family_params(settings: Settings, family: str) -> dict:
-    params = dict(settings.models.get(family, {}) or {})
-    return params
-
-
 def model_taxon(
     intake: Intake,
     taxon: str,
@@ -520,7 +504,8 @@ def model_taxon(
     progress: Progress | None = None,
     map_fn=map,
 ) -> TaxonResult:
-    """Fit, evaluate, threshold and map every model family for one taxon.
+    """Fit, evaluate, threshold and map every model family for one taxon
+    (:func:`screener.models.taxon.fit_taxon` on the intake's values).
 
     Parameters
     ----------
@@ -535,159 +520,16 @@ def model_taxon(
     -------
     TaxonResult
     """
-
     progress = progress or Progress(None)
     s = intake.settings
-    grid = intake.grid
-    rec = intake.records.taxa[taxon]
-    seed = taxon_seed(s.project.random_state, taxon)
-    stack = intake.predictor_stack()
-    acc = accessible_area(grid, rec.lon, rec.lat, s.background.buffer_km)
-    acc[rec.rows, rec.cols] = True
-    bg = draw_background(grid, acc, max_points=s.background.max_points, random_state=seed)
-    P = stack.values_at(rec.rows, rec.cols)
-    B = stack.values_at(bg.rows, bg.cols)
-    bg_xy = np.column_stack(grid.lonlat(bg.rows, bg.cols))
-    rec_xy = np.column_stack([rec.lon, rec.lat])
-    areas = np.asarray(grid.cell_area_km2, float)
-
-    family_maps, evaluations, thresholds_by_family, rec_scores = {}, {}, {}, {}
-    bg_scores, curves, importance, baselines, slice_maps = {}, {}, {}, {}, {}
-    for family in s.models.families:
-        params = _family_params(s, family)
-        progress.step(f"{taxon}: {family} model ({rec.n} records, {bg.n} background)")
-        ev = evaluate_family(
-            family,
-            params,
-            P,
-            B,
-            presence_xy=rec_xy,
-            background_xy=bg_xy,
-            study_area=B,
-            study_area_xy=bg_xy,
-            jackknife_below=s.evaluation.jackknife_below,
-            n_null=s.evaluation.n_null,
-            random_state=seed,
-            map_fn=map_fn,
-        )
-        model = ev.extra["model"]  # the evaluated model is the one mapped (fitted once)
-        if rec.n >= s.evaluation.jackknife_below:
-            # the spatial quadrants above are the main estimate; alternating squares and
-            # random folds (the non-spatial baseline) show how much spatial structure matters
-            for part in ("squares", "random"):
-                other = evaluate_family(
-                    family, params, P, B, presence_xy=rec_xy, background_xy=bg_xy,
-                    study_area=B, jackknife_below=s.evaluation.jackknife_below,
-                    partition=part, n_null=0, random_state=seed, map_fn=map_fn,
-                )
-                baselines.setdefault(family, {}).update({
-                    f"auc_{part}": other.auc,
-                    f"omission_mtp_{part}": other.omission_mtp,
-                })
-        mapped = ClampedModel.from_rows(model, P, B) if s.models.clamp else model
-        m = predict_map(mapped, stack, map_fn=map_fn)
-        scores = training_presence_scores(model, P)
-        b_scores = model.predict(B)
-        th = compute_thresholds(
-            scores, m, areas, relax=s.thresholds.relax, background_scores=b_scores
-        )
-        family_maps[family] = m
-        for sl in intake.slices:  # the same fitted model on each time slice
-            slice_maps.setdefault(sl.name, {})[family] = predict_map(
-                mapped, sl.stack, map_fn=map_fn)  # clamped like the main map
-        evaluations[family] = ev
-        # held at the records' medians, so each curve crosses the niche
-        curves[family] = response_curves(model, B, names=stack.names,
-                                         at=np.median(P, axis=0))
-        importance[family] = permutation_importance(
-            model, P, B, random_state=seed, names=stack.names
-        )
-        thresholds_by_family[family] = th
-        rec_scores[family] = scores
-        bg_scores[family] = b_scores
-
-    weights = ensemble_weights({f: ev.auc for f, ev in evaluations.items()})
-    consensus = weighted_mean_map(family_maps, weights)
-    c_rec = sum(weights[f] * rec_scores[f] for f in family_maps)
-    c_bg = sum(weights[f] * bg_scores[f] for f in family_maps)
-    c_th = compute_thresholds(
-        c_rec, consensus, areas, relax=s.thresholds.relax, background_scores=c_bg
-    )
-    agreement = agreement_map(
-        family_maps, {f: thresholds_by_family[f]["mtp"].value for f in family_maps}
-    )
-    novelty, most = mess_map(stack, B, map_fn=map_fn)
-    clamped = outside_map(stack, ClampedModel.from_rows(None, P, B), map_fn=map_fn)
-
-    rows = []
-    for family, ev in evaluations.items():
-        row = {"taxon": taxon, "algorithm": family}
-        row.update({k: v for k, v in ev.as_row().items() if k not in ("family", "taxon")})
-        row.setdefault("n_records", rec.n)
-        row.update(baselines.get(family, {}))
-        th = thresholds_by_family[family]
-        row.update(_threshold_columns(th))
-        row["ensemble_weight"] = weights[family]
-        rows.append(row)
-
-    # the consensus map is evaluated like a family: same jackknife or spatial blocks,
-    # same pattern-keeping null model, the families refitted with the weights fixed
-    ens = {"taxon": taxon, "algorithm": "ensemble", "n_records": rec.n}
-    if len(family_maps) > 1:
-        ev_c = evaluate_family(
-            CONSENSUS,
-            {"families": {f: _family_params(s, f) for f in family_maps},
-             "weights": weights},
-            P, B, presence_xy=rec_xy, background_xy=bg_xy, study_area=B,
-            study_area_xy=bg_xy, jackknife_below=s.evaluation.jackknife_below,
-            n_null=s.evaluation.n_null, random_state=seed, map_fn=map_fn,
-        )
-        ens.update({k: v for k, v in ev_c.as_row().items()
-                    if k not in ("algorithm", "n_records")})
-    else:
-        ens.update({k: v for k, v in evaluations[next(iter(evaluations))].as_row().items()
-                    if k not in ("algorithm", "n_records")})
-    # the training AUC and thresholds of the mapped consensus (weights of the maps)
-    ens["auc_train"] = auc_fn(c_rec, c_bg)
-    ens.update(_threshold_columns(c_th))
-    ens["ensemble_weight"] = 1.0
-    rows.append(ens)
-    return TaxonResult(
-        taxon=taxon,
-        records=rec,
-        suitability=consensus.astype(np.float32),
-        family_maps=family_maps,
-        agreement=agreement,
-        mess=novelty,
-        clamped=clamped,
-        most_dissimilar=most,
-        thresholds=c_th,
-        accessible=acc,
-        evaluation=rows,
-        figures={"response_curves": curves, "importance": importance},
-        presence_env=P,
-        background_env=B,
-        background_cells=(bg.rows, bg.cols),
-        seed=seed,
-        slice_maps=slice_maps,
-        ensemble_weights=dict(weights),
-    )
+    return fit_taxon(intake.records.taxa[taxon], intake.predictor_stack(), s,
+                     seed=taxon_seed(s.project.random_state, taxon), slices=intake.slices,
+                     map_fn=map_fn, step=progress.step)
 
 
 def _takes_seed(family: str) -> bool:
 
     return accepts_random_state(family)
-
-
-def _threshold_columns(th: dict) -> dict:
-    out = {}
-    for name, t in th.items():
-        out[f"threshold_{name}"] = t.value
-        out[f"area_km2_{name}"] = t.area_km2
-        out[f"training_omission_{name}"] = t.training_omission
-    if "mtp" in th:
-        out["omission_mtp_train"] = th["mtp"].training_omission
-    return out
 
 
 # --------------------------------------------------------------------------- overlap
@@ -780,7 +622,7 @@ def _geographic_refit(intake, ta, tb, progress):
     if mode == "off" or s.overlap.n_replicates <= 0:
         return None
     family = s.models.families[0]
-    params = _family_params(s, family)
+    params = family_params(s, family)
     if _takes_seed(family):
         params = {**params, "random_state": ta.seed}
     stack = intake.predictor_stack()
@@ -962,7 +804,7 @@ def _record_resampling(intake, taxa, cand, n_sites, progress, map_fn, use, other
         grid=intake.grid,
         values=intake.predictor_stack().valid_matrix(),
         family=family,
-        params=_family_params(s, family),
+        params=family_params(s, family),
         records={k: (t.records.rows, t.records.cols) for k, t in taxa.items()},
         background={k: t.background_env for k, t in taxa.items()},
         relax=s.thresholds.relax,
