@@ -885,15 +885,97 @@ def slope_aspect(grid: Grid, elevation: np.ndarray):
     return slope.astype(np.float32), aspect.astype(np.float32)
 
 
-def hillshade(grid: Grid, elevation: np.ndarray, *, azimuth=315.0, altitude=45.0):
-    """Hillshade in [0, 1] with true metre spacing (for maps).
+def hillshade(
+    grid: Grid,
+    elevation,
+    *,
+    azimuth: float = 315.0,
+    altitude: float = 45.0,
+    vert_exag: float = 1.0,
+) -> np.ndarray:
+    """Hillshade of an elevation map with true ground spacing, in [0, 1] (for maps).
 
-    Uses :class:`matplotlib.colors.LightSource` on metre gradients.
+    The one hillshade of the screener: the pipeline, the figures and the map page all
+    use it.
+
+    Parameters
+    ----------
+    grid : screener.grid.Grid
+        On longitude/latitude grids each row uses its own east-west cell width and
+        the north-south steps between rows, in metres; on projected grids the
+        constant cell size.
+    elevation : ndarray of shape (n_rows, n_cols)
+        Elevation in metres; NaN outside the valid area.
+    azimuth, altitude : float, default 315, 45
+        Light azimuth (degrees clockwise from north) and altitude (degrees).
+    vert_exag : float, default 1.0
+        Vertical exaggeration.
+
+    Returns
+    -------
+    ndarray of float, shape (n_rows, n_cols)
+        Illumination in [0, 1] (as :meth:`matplotlib.colors.LightSource.hillshade`),
+        NaN where the elevation is NaN.
+
+    Notes
+    -----
+    Lambertian shading of the surface: the illumination of a cell is the cosine of
+    the angle between its surface normal and the direction of the light [1]_.  The
+    normals come from central-difference gradients in metres (``numpy.gradient``)
+    as in :meth:`matplotlib.colors.LightSource.hillshade` [2]_, but with each row's
+    own east-west width, so a slope on a geographic grid is not exaggerated towards
+    the poles; :meth:`matplotlib.colors.LightSource.shade_normals` then shades them
+    (and stretches the result to [0, 1]).  On a projected grid the result equals
+    ``LightSource.hillshade`` with ``dx``, ``dy`` the cell size in metres.  Nodata
+    cells are filled with the nearest valid elevation for the gradients and are NaN
+    in the result.
+
+    References
+    ----------
+    .. [1] Horn, B. K. P. (1981). Hill shading and the reflectance map. Proceedings
+       of the IEEE 69(1), 14-47.
+    .. [2] matplotlib.colors.LightSource, matplotlib documentation (hillshade and
+       shade_normals).
     """
     from matplotlib.colors import LightSource
+    from scipy import ndimage
 
+    z = np.asarray(elevation, dtype=float)
+    if z.shape != tuple(grid.shape):
+        raise ValueError(f"elevation has shape {z.shape}, expected {grid.shape}")
+    nan = ~np.isfinite(z)
+    if nan.all():
+        return np.full(z.shape, np.nan)
+    if nan.any():
+        # Fill gaps with the nearest valid value so gradients at the edge stay finite.
+        idx = ndimage.distance_transform_edt(
+            nan, return_distances=False, return_indices=True
+        )
+        z = z[tuple(idx)]
+    z = vert_exag * z
+    dx_m = np.asarray(grid.ew_step_km, float) * 1000.0
+    if z.shape[0] > 1:
+        northing = -np.concatenate([[0.0], np.cumsum(grid.ns_step_km)]) * 1000.0
+        if grid.constant_steps:
+            e_dy = np.gradient(z, -float(grid.ns_step_km[0]) * 1000.0, axis=0)
+        else:
+            e_dy = np.gradient(z, northing, axis=0)
+    else:
+        e_dy = np.zeros_like(z)
+    if z.shape[1] > 1:
+        if grid.constant_steps:
+            e_dx = np.gradient(z, float(dx_m[0]), axis=1)
+        else:
+            e_dx = np.gradient(z, axis=1) / dx_m[:, None]
+    else:
+        e_dx = np.zeros_like(z)
+    normal = np.empty(z.shape + (3,))
+    normal[..., 0] = -e_dx
+    normal[..., 1] = -e_dy
+    normal[..., 2] = 1.0
+    normal /= np.sqrt(np.sum(normal**2, axis=-1))[..., None]
     ls = LightSource(azdeg=azimuth, altdeg=altitude)
-    dx = float(np.nanmean(grid.ew_step_km)) * 1000.0
-    dy = float(np.nanmean(grid.ns_step_km)) * 1000.0 if grid.n_rows > 1 else dx
-    z = np.where(np.isfinite(elevation), elevation, np.nanmin(elevation))
-    return ls.hillshade(z, vert_exag=1.0, dx=dx, dy=dy)
+    out = ls.shade_normals(normal, fraction=1.0)
+    out = np.asarray(out, float)
+    out[nan] = np.nan
+    return out

@@ -9,6 +9,7 @@ from matplotlib.colors import LightSource
 from pyproj import Geod, Proj, Transformer
 
 from screener.grid import Grid
+from screener.layers import hillshade
 from screener.outputs import maps
 
 
@@ -31,7 +32,7 @@ def test_hillshade_equals_lightsource_on_projected_grid():
     z = 500 + 300 * np.sin(rr / 6) * np.cos(cc / 7)
     # Reference: matplotlib.colors.LightSource.hillshade with dx, dy in metres.
     ref = LightSource(azdeg=315, altdeg=45).hillshade(z, dx=1000.0, dy=1000.0)
-    np.testing.assert_allclose(maps.hillshade(z, grid), ref, atol=1e-12)
+    np.testing.assert_allclose(hillshade(grid, z), ref, atol=1e-12)
 
 
 def test_hillshade_uses_true_width_per_row(jacksboro):
@@ -40,7 +41,7 @@ def test_hillshade_uses_true_width_per_row(jacksboro):
     # A surface rising 5 m per cell eastwards in every row: on the ground the slope is
     # 5 m over each row's own cell width, which shrinks northwards.
     z = 5.0 * np.tile(np.arange(float(grid.n_cols)), (grid.n_rows, 1))
-    shade = maps.hillshade(z, grid, azdeg=315, altdeg=45)
+    shade = hillshade(grid, z, azimuth=315, altitude=45)
     # Reference per row: LightSource.hillshade of a strip with that row's width in
     # metres (a constant slope, so matplotlib applies no contrast stretch) ...
     dx_m = grid.ew_step_km * 1000
@@ -59,7 +60,7 @@ def test_hillshade_of_real_dem(jacksboro):
     grid, z = jacksboro
     z = z.copy()
     z[:5, :5] = np.nan
-    shade = maps.hillshade(z, grid)
+    shade = hillshade(grid, z)
     assert np.isnan(shade[:5, :5]).all()
     ok = shade[np.isfinite(shade)]
     assert ok.min() >= 0 and ok.max() <= 1 and ok.std() > 0.05

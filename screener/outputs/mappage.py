@@ -252,7 +252,7 @@ def render_map_page(result, *, title: str | None = None) -> str:
         least-cost paths, walking routes, start points), pan and zoom, and a card
         per site shown on click.  No external request is made.
     """
-    from screener.outputs.maps import hillshade as shade_fn
+    from screener.layers import hillshade as shade_fn
 
     grid = result.grid
     project = str((result.settings.get("project") or {}).get("name") or "").strip()
@@ -270,7 +270,7 @@ def render_map_page(result, *, title: str | None = None) -> str:
 
     shade = result.hillshade
     if shade is None and result.elevation is not None:
-        shade = shade_fn(result.elevation, grid)
+        shade = shade_fn(grid, result.elevation)
     if shade is not None:
         layers.append(("lyr-hillshade", "hillshade", True,
                        image(_raster(shade, "gray", 0.0, 1.0))))

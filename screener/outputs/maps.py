@@ -31,13 +31,13 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch, Rectangle
 
 from screener.grid import geodesic_distance_km
+from screener.layers import hillshade
 from screener.outputs._figure import literal_text
 
 __all__ = [
     "OKABE_ITO",
     "KIND_STYLE",
     "new_map",
-    "hillshade",
     "north_angle_deg",
     "add_scale_bar",
     "add_north_arrow",
@@ -125,85 +125,6 @@ def _taxon_style(i: int) -> dict:
 
 
 # --- terrain -----------------------------------------------------------------------
-def hillshade(
-    elevation,
-    grid,
-    *,
-    azdeg: float = 315.0,
-    altdeg: float = 45.0,
-    vert_exag: float = 1.0,
-) -> np.ndarray:
-    """Hillshade of an elevation map with true ground spacing, in [0, 1].
-
-    Parameters
-    ----------
-    elevation : ndarray of shape (n_rows, n_cols)
-        Elevation in metres; NaN outside the valid area.
-    grid : screener.grid.Grid
-        On longitude/latitude grids each row uses its own east-west cell width and
-        the north-south steps between rows, in metres; on projected grids the
-        constant cell size.
-    azdeg, altdeg : float, default 315, 45
-        Light azimuth (degrees clockwise from north) and altitude (degrees).
-    vert_exag : float, default 1.0
-        Vertical exaggeration.
-
-    Returns
-    -------
-    ndarray of float, shape (n_rows, n_cols)
-        Illumination in [0, 1] (as :meth:`matplotlib.colors.LightSource.hillshade`),
-        NaN where the elevation is NaN.
-
-    Notes
-    -----
-    Surface normals follow ``LightSource.hillshade`` (gradients by ``numpy.gradient``)
-    but with row-dependent widths, then ``LightSource.shade_normals`` does the
-    shading.  On a projected grid the result equals ``LightSource.hillshade`` with
-    ``dx``, ``dy`` the cell size in metres.
-    """
-    z = np.asarray(elevation, dtype=float)
-    if z.shape != tuple(grid.shape):
-        raise ValueError(f"elevation has shape {z.shape}, expected {grid.shape}")
-    nan = ~np.isfinite(z)
-    if nan.all():
-        return np.full(z.shape, np.nan)
-    if nan.any():
-        from scipy import ndimage
-
-        # Fill gaps with the nearest valid value so gradients at the edge stay finite.
-        idx = ndimage.distance_transform_edt(
-            nan, return_distances=False, return_indices=True
-        )
-        z = z[tuple(idx)]
-    z = vert_exag * z
-    dx_m = np.asarray(grid.ew_step_km, float) * 1000.0
-    if z.shape[0] > 1:
-        northing = -np.concatenate([[0.0], np.cumsum(grid.ns_step_km)]) * 1000.0
-        if grid.constant_steps:
-            e_dy = np.gradient(z, -float(grid.ns_step_km[0]) * 1000.0, axis=0)
-        else:
-            e_dy = np.gradient(z, northing, axis=0)
-    else:
-        e_dy = np.zeros_like(z)
-    if z.shape[1] > 1:
-        if grid.constant_steps:
-            e_dx = np.gradient(z, float(dx_m[0]), axis=1)
-        else:
-            e_dx = np.gradient(z, axis=1) / dx_m[:, None]
-    else:
-        e_dx = np.zeros_like(z)
-    normal = np.empty(z.shape + (3,))
-    normal[..., 0] = -e_dx
-    normal[..., 1] = -e_dy
-    normal[..., 2] = 1.0
-    normal /= np.sqrt(np.sum(normal**2, axis=-1))[..., None]
-    ls = mcolors.LightSource(azdeg=azdeg, altdeg=altdeg)
-    out = ls.shade_normals(normal, fraction=1.0)
-    out = np.asarray(out, float)
-    out[nan] = np.nan
-    return out
-
-
 # --- map furniture -----------------------------------------------------------------
 def _nice_length(km: float) -> float:
     """Largest 1, 2 or 5 x 10^k not above ``km``."""
@@ -679,7 +600,7 @@ def _background(ax, result, window=None):
     grid = result.grid
     shade = result.hillshade
     if shade is None and result.elevation is not None:
-        shade = hillshade(result.elevation, grid)
+        shade = hillshade(grid, result.elevation)
     if shade is not None:
         ax.imshow(
             shade,
