@@ -62,7 +62,7 @@ from screener.outputs.staging import (
 from screener.outputs.tables import OVERLAP_COLUMNS
 from screener.outputs.writer import write_outputs
 from screener.overlap import compare_pair, correct_for_multiplicity
-from screener.parallel import make_executor
+from screener.parallel import Executor, make_executor
 from screener.project import Settings, default, settings_from_dict
 from screener.ranking import group_sites, rank_sites, site_ids, site_keys
 from screener.records import (
@@ -501,8 +501,8 @@ def model_taxon(
     intake: Intake,
     taxon: str,
     *,
+    executor: Executor | None = None,
     progress: Progress | None = None,
-    map_fn=map,
 ) -> TaxonResult:
     """Fit, evaluate, threshold and map every model family for one taxon
     (:func:`screener.models.taxon.fit_taxon` on the intake's values).
@@ -511,10 +511,10 @@ def model_taxon(
     ----------
     intake : Intake
     taxon : str
+    executor : screener.parallel.Executor, optional
+        Runs independent evaluation tasks (and streamed stacks window by window) on
+        its workers; None runs everything in this process.
     progress : Progress, optional
-    map_fn : callable, default builtin map
-        ``map``-like callable for independent evaluation tasks (a parallel
-        executor's ``map``).
 
     Returns
     -------
@@ -524,7 +524,8 @@ def model_taxon(
     s = intake.settings
     return fit_taxon(intake.records.taxa[taxon], intake.predictor_stack(), s,
                      seed=taxon_seed(s.project.random_state, taxon), slices=intake.slices,
-                     map_fn=map_fn, step=progress.step)
+                     map_fn=executor.map if executor is not None else map,
+                     step=progress.step)
 
 
 def _takes_seed(family: str) -> bool:
@@ -533,7 +534,7 @@ def _takes_seed(family: str) -> bool:
 
 
 # --------------------------------------------------------------------------- overlap
-def compare_taxa(intake: Intake, taxa: dict, *, executor=None,
+def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None,
                  progress=None) -> OverlapResult:
     """Niche overlap and its tests for every pair of taxa.
 
@@ -658,11 +659,13 @@ def _clade_mess(intake: Intake, taxa: dict, map_fn=None):
     return mess_map(intake.predictor_stack(), ref, map_fn=map_fn)
 
 
-def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> PlanResult:
+def plan_sites(intake: Intake, taxa: dict, *, executor: Executor | None = None,
+               progress=None) -> PlanResult:
     """Candidate sites, least-cost paths, barriers, access and the ranked plan.
 
-    ``map_fn`` (an executor's ``map``) runs the clade MESS window by window on the
-    workers when the layers are streamed; otherwise it runs in this process.
+    ``executor`` runs the clade MESS and the time slices window by window on its
+    workers when the layers are streamed, and the bootstrap refits of the records;
+    None runs everything in this process.
 
     Returns
     -------
@@ -673,6 +676,7 @@ def plan_sites(intake: Intake, taxa: dict, *, progress=None, map_fn=None) -> Pla
     """
 
     progress = progress or Progress(None)
+    map_fn = executor.map if executor is not None else None
     s = intake.settings
     grid = intake.grid
     use = s.thresholds.use
@@ -969,7 +973,7 @@ def run_analysis(
             key = _taxon_key(intake, name)
             res = cache.get("taxon", key)
             if res is None:
-                res = model_taxon(intake, name, progress=progress, map_fn=executor.map)
+                res = model_taxon(intake, name, executor=executor, progress=progress)
                 cache.put("taxon", key, res)
             else:
                 progress.step(f"{name}: reused cached models")
@@ -992,7 +996,7 @@ def run_analysis(
             overlap = OverlapResult(pd.DataFrame(columns=OVERLAP_COLUMNS))
             progress.step("one taxon only: no overlap to measure")
         progress.stage("Candidate sites, barriers and the ranked plan")
-        plan = plan_sites(intake, taxa, progress=progress, map_fn=executor.map)
+        plan = plan_sites(intake, taxa, executor=executor, progress=progress)
     progress.done()
     shade = hillshade(intake.grid, intake.elevation) if intake.elevation is not None else None
     warns = list(intake.warnings) + list(cache.problems)
