@@ -15,9 +15,12 @@ larger than memory are warped a band of rows at a time and streamed from disk.
 
 from __future__ import annotations
 
+import atexit
 import hashlib
 import logging
 import os
+import shutil
+import tempfile
 import uuid
 from dataclasses import dataclass
 from pathlib import Path
@@ -27,7 +30,14 @@ import numpy as np
 from screener.errors import LayerError
 from screener.layers import BandRef, _base, _open_raster, list_bands
 
-__all__ = ["ReferenceGrid", "LayerOrigin", "AlignedLayers", "reference_grid", "align_layers"]
+__all__ = [
+    "ReferenceGrid",
+    "LayerOrigin",
+    "AlignedLayers",
+    "reference_grid",
+    "align_layers",
+    "aligned_layer_folder",
+]
 
 log = logging.getLogger(__name__)
 
@@ -596,3 +606,22 @@ def _combine_aspect(sin_path: Path, cos_path: Path, out: Path, block_cells: int)
 def describe_origins(origins) -> list:
     """One plain-words line per layer: original grid and resampling method."""
     return [o.line() for o in origins]
+
+
+_TEMP_ALIGNED: list = []
+
+
+def aligned_layer_folder(cache_dir) -> Path:
+    """Folder for aligned layers: ``aligned`` in the stage cache when it is writable,
+    else one temporary folder for this process (removed when it exits)."""
+    if cache_dir is not None:
+        folder = Path(cache_dir) / "aligned"
+        existing = next(p for p in (folder, *folder.parents) if p.exists())
+        if os.access(existing, os.W_OK):
+            return folder  # created only when a layer needs aligning
+        log.warning("cannot write aligned layers to %s; using a temporary folder", folder)
+    if not _TEMP_ALIGNED:
+        folder = tempfile.mkdtemp(prefix="screener-aligned-")
+        atexit.register(shutil.rmtree, folder, ignore_errors=True)
+        _TEMP_ALIGNED.append(Path(folder))
+    return _TEMP_ALIGNED[0]

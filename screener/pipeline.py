@@ -9,16 +9,12 @@ without redoing finished stages.
 
 from __future__ import annotations
 
-import atexit
 import dataclasses
 import hashlib
 import importlib.metadata as md
 import itertools
 import logging
-import os
 import platform
-import shutil
-import tempfile
 import time
 import warnings
 import zlib
@@ -32,7 +28,7 @@ import rasterio
 
 from screener import __version__
 from screener.access import walking_surface
-from screener.alignment import align_layers
+from screener.alignment import align_layers, aligned_layer_folder
 from screener.background import draw_background
 from screener.cache import StageCache, digest
 from screener.darwincore import DarwinCoreOptions
@@ -41,7 +37,6 @@ from screener.isolation import (
     Clade,
     IsolationParameters,
     SiteLayers,
-    clade_suitability,
     find_candidates,
     paths_geodataframe,
     sites_geodataframe,
@@ -51,7 +46,7 @@ from screener.models import accepts_random_state
 from screener.models.mapping import GeographicRefit
 from screener.models.taxon import family_params, fit_taxon, taxon_seed
 from screener.novelty import mess_map
-from screener.outputs.sheets import suggest_sampling_points
+from screener.outputs.sheets import plan_sampling_points
 from screener.outputs.run_folder import locate_run_inputs, relocate
 from screener.outputs.staging import (
     check_output_folder,
@@ -63,7 +58,7 @@ from screener.outputs.tables import OVERLAP_COLUMNS
 from screener.outputs.writer import write_outputs
 from screener.overlap import compare_pair, correct_for_multiplicity
 from screener.parallel import Executor, make_executor
-from screener.project import Settings, default, settings_from_dict
+from screener.project import Settings, settings_from_dict
 from screener.ranking import group_sites, rank_sites, site_ids, site_keys
 from screener.records import (
     RecordSet,
@@ -247,24 +242,6 @@ def input_paths(settings: Settings) -> list:
     return list(dict.fromkeys(Path(p) for p in named if p is not None))
 
 
-_TEMP_ALIGNED: list = []
-
-
-def _aligned_dir(cache_dir) -> Path:
-    """Folder for aligned layers: in the stage cache, else a folder for this process."""
-    if cache_dir is not None:
-        folder = Path(cache_dir) / "aligned"
-        existing = next(p for p in (folder, *folder.parents) if p.exists())
-        if os.access(existing, os.W_OK):
-            return folder  # created only when a layer needs aligning
-        log.warning("cannot write aligned layers to %s; using a temporary folder", folder)
-    if not _TEMP_ALIGNED:
-        folder = tempfile.mkdtemp(prefix="screener-aligned-")
-        atexit.register(shutil.rmtree, folder, ignore_errors=True)
-        _TEMP_ALIGNED.append(Path(folder))
-    return _TEMP_ALIGNED[0]
-
-
 def reproduction_settings(run_json, *, allow_changed_inputs: bool = False):
     """Settings of a finished run from its run.json, after checking its inputs.
 
@@ -364,7 +341,7 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
         if s.layers.alignment == "warp":
             aligned = align_layers(
                 paths,
-                cache_dir=_aligned_dir(cache_dir),
+                cache_dir=aligned_layer_folder(cache_dir),
                 reference=s.layers.reference,
                 crs=s.layers.crs,
                 resolution=s.layers.resolution or None,
@@ -1066,34 +1043,6 @@ def run_analysis(
     )
 
 
-def sampling_points(result: RunResult):
-    """Suggested sampling points for the top sites (for sheets and GPX), or None.
-
-    Returns
-    -------
-    pandas.DataFrame or None
-        ``site_id, point_id, longitude, latitude, x, y, suitability`` for up to
-        ``[outputs] sampling_points`` points in each of the ``[outputs] field_sheets``
-        best sites.
-    """
-    so = result.settings.get("outputs", {})
-    n_pts = int(so.get("sampling_points", default("outputs", "sampling_points")))
-    top = int(so.get("field_sheets", default("outputs", "field_sheets")))
-    cand = result.candidates
-    if cand is None or not len(result.sites) or n_pts <= 0:
-        return None
-    clade = clade_suitability({n: t.suitability for n, t in result.taxa.items()})
-    frames = []
-    for _, site in result.sites.head(top).iterrows():
-        site_mask = cand.patch_labels == int(site["rank"])
-        if not site_mask.any():
-            continue
-        pts = suggest_sampling_points(result.grid, site_mask, clade, n=n_pts)
-        pts["site_id"] = site["site_id"]
-        frames.append(pts)
-    return pd.concat(frames, ignore_index=True) if frames else None
-
-
 def run_project(
     settings: Settings,
     out_dir,
@@ -1135,7 +1084,7 @@ def run_project(
         log.info("stage cache: %s (safe to delete)", cache_dir)
     result = run_analysis(settings, echo=echo, scheduler=scheduler, cache_dir=cache_dir)
     run_id = new_run_id()
-    result = dataclasses.replace(result, sampling_points=sampling_points(result),
+    result = dataclasses.replace(result, sampling_points=plan_sampling_points(result),
                                  provenance={**result.provenance, "run_id": run_id})
     progress = Progress(echo, n_stages=5)
     progress.i = 4

@@ -31,6 +31,7 @@ from pyproj import Transformer
 
 from screener.errors import InputError, OutputError
 from screener.grid import geodesic_distance_km
+from screener.project import default
 from screener.outputs import maps
 from screener import __version__
 from screener.outputs.cautions import CAUTIONS
@@ -48,6 +49,7 @@ __all__ = [
     "suggest_sampling_points",
     "site_cell_mask",
     "site_sampling_points",
+    "plan_sampling_points",
     "write_field_sheets",
 ]
 
@@ -340,6 +342,34 @@ def _clade_suitability(result) -> np.ndarray:
     if not result.taxa:
         return np.full(result.grid.shape, np.nan)
     return clade_suitability({n: t.suitability for n, t in result.taxa.items()})
+
+
+def plan_sampling_points(result):
+    """Suggested sampling points for the top sites (for sheets and GPX), or None.
+
+    Returns
+    -------
+    pandas.DataFrame or None
+        ``site_id, point_id, longitude, latitude, x, y, suitability`` for up to
+        ``[outputs] sampling_points`` points in each of the ``[outputs] field_sheets``
+        best sites.
+    """
+    so = result.settings.get("outputs", {})
+    n_pts = int(so.get("sampling_points", default("outputs", "sampling_points")))
+    top = int(so.get("field_sheets", default("outputs", "field_sheets")))
+    cand = result.candidates
+    if cand is None or not len(result.sites) or n_pts <= 0:
+        return None
+    clade = _clade_suitability(result)
+    frames = []
+    for _, site in result.sites.head(top).iterrows():
+        site_mask = cand.patch_labels == int(site["rank"])
+        if not site_mask.any():
+            continue
+        pts = suggest_sampling_points(result.grid, site_mask, clade, n=n_pts)
+        pts["site_id"] = site["site_id"]
+        frames.append(pts)
+    return pd.concat(frames, ignore_index=True) if frames else None
 
 
 def site_sampling_points(
