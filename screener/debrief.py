@@ -72,9 +72,14 @@ def load_run_outputs(run_dir):
         raise InputError(f"{gpkg} cannot be read ({type(exc).__name__}: {exc}); the run "
                          "folder is damaged: run again.") from None
     # taxon names stay text: a taxon named "1" or "NA" is not a number or missing
-    ev = pd.read_csv(ev_csv, dtype={"taxon": str, "algorithm": str}, keep_default_na=False,
-                     na_values={"threshold_mtp": [""]})
-    ens = ev[ev["algorithm"] == "ensemble"].set_index("taxon")["threshold_mtp"]
+    try:
+        ev = pd.read_csv(ev_csv, dtype={"taxon": str, "algorithm": str},
+                         keep_default_na=False, na_values={"threshold_mtp": [""]})
+        ens = ev[ev["algorithm"] == "ensemble"].set_index("taxon")["threshold_mtp"]
+        ens = pd.to_numeric(ens)
+    except (UnicodeDecodeError, pd.errors.ParserError, KeyError, ValueError) as exc:
+        raise InputError(f"{ev_csv} cannot be read ({type(exc).__name__}: {exc}); the run "
+                         "folder is damaged: run again.") from None
     missing = [name for name in taxa if name not in ens.index]
     if missing:
         raise InputError(f"{ev_csv} has no ensemble row for {missing[0]!r}; the run folder "

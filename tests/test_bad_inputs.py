@@ -1117,6 +1117,17 @@ def _no_candidates(run_dir):
     (run_dir / "candidates.gpkg").unlink()
 
 
+def _garbled_evaluation(run_dir):
+    (run_dir / "evaluation.csv").write_bytes(b"\x00\xff not a table\n")
+
+
+def _stem_out_of_the_folder(run_dir):
+    prov = json.loads((run_dir / "run.json").read_text(encoding="utf-8"))
+    name = next(iter(prov["taxa"]))
+    prov["taxa"][name] = "../../elsewhere/" + prov["taxa"][name]
+    (run_dir / "run.json").write_text(json.dumps(prov), encoding="utf-8")
+
+
 _FIELD_HEADER = b"site_id,date,taxon,outcome,effort_hours,longitude,latitude\n"
 
 DEBRIEF_CASES = [
@@ -1133,13 +1144,18 @@ DEBRIEF_CASES = [
     # quoted, a comma that could group thousands is not guessed at
     (None, _FIELD_HEADER + b'S01,2026-10-02,Nebrivex tarvelli,found,"1,500",85.07,-14.61\n',
      r"line 2: effort_hours '1,500' could be 1\.500 or 1500: write it with a decimal point"),
+    (_garbled_evaluation, None, r"evaluation\.csv cannot be read \(UnicodeDecodeError.*the "
+                                r"run folder is damaged: run again"),
+    (_stem_out_of_the_folder, None, r"run\.json: taxa maps 'Nebrivex \w+' to '\.\./\.\./"
+                                    r"elsewhere/.*not a file name of a run folder"),
 ]
 
 
 @pytest.mark.parametrize("damage, field, pattern", DEBRIEF_CASES,
                          ids=["truncated run.json", "no candidates.gpkg", "binary field file",
                               "unknown field taxon", "unquoted decimal commas",
-                              "ambiguous thousands"])
+                              "ambiguous thousands", "garbled evaluation.csv",
+                              "taxon file outside the run folder"])
 def test_debrief_refuses_damaged_input(warm, tmp_path, damage, field, pattern):
     run_dir = _run_copy(warm, tmp_path)
     if damage is not None:

@@ -86,11 +86,21 @@ class RunFolder:
         provenance = read_provenance(root / "run.json", what=f"{root} holds no run.json; "
                                      "give the output folder of a `screener run`.")
         taxa = provenance.get("taxa") or {}
-        if not taxa:
+        if not taxa or not isinstance(taxa, dict):
             raise InputError(
                 f"{root / 'run.json'} lists no taxa; was the run finished with this "
                 "version?"
             )
+        for name, stem in taxa.items():
+            # a run.json can come from elsewhere: a stem names a file in this folder,
+            # never a path out of it
+            if not isinstance(stem, str) or not stem.strip(". ") or Path(stem).name != stem \
+                    or "\\" in stem:
+                raise InputError(
+                    f"{root / 'run.json'}: taxa maps {name!r} to {stem!r}, which is not a "
+                    "file name of a run folder; the run.json was edited or damaged: run "
+                    "again."
+                )
         return cls(root, dict(taxa)), provenance
 
     # ------------------------------------------------------------- one file per run
