@@ -124,6 +124,24 @@ def next_project_text(settings: dict, records_file: str, taxa) -> str:
     return "\n".join(lines)
 
 
+def _check_field_sites(fr, site_ids, path) -> None:
+    """A row given by site only must name a site of the run (a typo such as S1 for
+    S01 would otherwise drop the visit from the hit rate without a word)."""
+    from screener.errors import suggest
+
+    for _, row in fr.iterrows():
+        sid = row["site_id"]
+        no_xy = not (np.isfinite(row["longitude"]) and np.isfinite(row["latitude"]))
+        if sid and no_xy and sid not in site_ids:
+            raise InputError(
+                f"{path} line {int(row['line'])}: site_id {sid!r} is not a site of the run "
+                + (f"({', '.join(site_ids[:10])}{' ...' if len(site_ids) > 10 else ''})."
+                   if site_ids else "(it ranked no sites).")
+                + suggest(sid, site_ids)
+                + " Correct it, or give the longitude and latitude of the visit."
+            )
+
+
 def _check_field_taxa(fr, run_taxa, path) -> None:
     """Every field taxon is a run taxon, or its row says it is a new lineage."""
     from screener.errors import suggest
@@ -171,6 +189,7 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
     grid = run["grid"]
     fr = read_field_results(field_results)
     _check_field_taxa(fr, list(run["suitability"]), field_results)
+    _check_field_sites(fr, run["sites"]["site_id"].astype(str).tolist(), field_results)
     areas = np.asarray(grid.cell_area_km2, float)
     valid = grid.mask
     share = float(areas[run["predicted"] & valid].sum() / areas[valid].sum())

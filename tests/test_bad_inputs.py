@@ -963,6 +963,9 @@ def test_sensitive_localities_never_leave_at_full_precision(warm, tmp_path, monk
     rows.append(["Nebrivex quennomae", "84.91234", "123.45678", "MVNC 9002"])
     write_rows(scen, rows)
     coords = [(float(r[1]), float(r[2])) for r in rows[1:]]
+    # and a row whose degrees-minutes-seconds could not be read (quoted as written)
+    with (scen / "occurrences.csv").open("a", encoding="utf-8") as f:
+        f.write("Nebrivex tarvelli,84 49 44 X,14 47 09 Q,MVNC 9003\n")
     # every figure the run saves (report PNGs, field-sheet PDF pages) is looked into
     # at the moment it is saved
     figures, drawn_text = [], tmp_path / "figure-texts"
@@ -991,6 +994,7 @@ def test_sensitive_localities_never_leave_at_full_precision(warm, tmp_path, monk
     dropped = (out / "dropped_records.csv").read_text(encoding="utf-8")
     assert "(about 120.150, -14.650, generalised to 0.1 degrees) is outside the grid" in dropped
     assert "latitude [withheld] is beyond" in dropped
+    assert "longitude [withheld] is not a number" in dropped and "49 44" not in dropped
     # the scan finds what it looks for: asked for full precision, the outputs hold it
     add_settings(scen, "[outputs]\nfull_precision = true")
     full = tmp_path / "full"
@@ -1144,6 +1148,10 @@ DEBRIEF_CASES = [
     # quoted, a comma that could group thousands is not guessed at
     (None, _FIELD_HEADER + b'S01,2026-10-02,Nebrivex tarvelli,found,"1,500",85.07,-14.61\n',
      r"line 2: effort_hours '1,500' could be 1\.500 or 1500: write it with a decimal point"),
+    # a site typed wrong would drop the visit from the hit rate without a word
+    (None, b"site_id,date,taxon,outcome,effort_hours\nS1,2026-10-02,Nebrivex tarvelli,found,3\n",
+     r"field\.csv line 2: site_id 'S1' is not a site of the run \(S01, .*\)\. Did you mean "
+     r"'S01'\? Correct it, or give the longitude and latitude of the visit"),
     (_garbled_evaluation, None, r"evaluation\.csv cannot be read \(UnicodeDecodeError.*the "
                                 r"run folder is damaged: run again"),
     (_stem_out_of_the_folder, None, r"run\.json: taxa maps 'Nebrivex \w+' to '\.\./\.\./"
@@ -1154,7 +1162,7 @@ DEBRIEF_CASES = [
 @pytest.mark.parametrize("damage, field, pattern", DEBRIEF_CASES,
                          ids=["truncated run.json", "no candidates.gpkg", "binary field file",
                               "unknown field taxon", "unquoted decimal commas",
-                              "ambiguous thousands", "garbled evaluation.csv",
+                              "ambiguous thousands", "unknown site", "garbled evaluation.csv",
                               "taxon file outside the run folder"])
 def test_debrief_refuses_damaged_input(warm, tmp_path, damage, field, pattern):
     run_dir = _run_copy(warm, tmp_path)

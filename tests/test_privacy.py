@@ -156,3 +156,18 @@ def test_every_figure_draws_sensitive_records_only_generalised(tmp_path, monkeyp
     assert not any(d and not s for d, s in zip(drawn(full), is_site, strict=True))
     assert all(drawn(general))  # but at its generalised points
     assert all(drawn(run.taxa[TAXA[0]].records))  # the other taxon as recorded
+
+
+@pytest.mark.parametrize("cell", ["84 49 44 X", "84°49'44\"Q", "-14 47 09 S W", "84,82912"])
+def test_a_coordinate_quoted_as_written_is_withheld(cell):
+    # a value that could not be read is quoted in the reason: degrees-minutes-seconds
+    # to the second locate a record to about 30 m
+    from screener.outputs.privacy import withhold_coordinates
+    from screener.records import parse_coordinate
+
+    value, why = parse_coordinate(cell)
+    assert value is None
+    reason = f"longitude {why}; latitude {why}"
+    assert cell in reason or repr(cell) in reason
+    shared = withhold_coordinates(reason)
+    assert shared.count("[withheld]") == 2 and not any(ch.isdigit() for ch in shared)

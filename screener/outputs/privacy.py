@@ -137,14 +137,17 @@ _PAIR = re.compile(r"\((-?\d+(?:\.\d+)?), (-?\d+(?:\.\d+)?)\)")
 _NUMBER = re.compile(r"-?\d+[.,]\d+(?:[eE][-+]?\d+)?(?![\d.])(?! ?km)")
 #: a grid cell named in a reason
 _CELL = re.compile(r" ?\(row \d+, col \d+\)")
+#: a coordinate cell quoted as written (one that could not be read, e.g. a
+#: degrees-minutes-seconds value with a typo): "longitude '84 49 44 X'"
+_QUOTED = re.compile(r"\b(longitude|latitude|x|y) ('(?:[^'\\]|\\.)*'|\"(?:[^\"\\]|\\.)*\")")
 
 
 def withhold_coordinates(reason: str, grid_deg: float = DEFAULT_GRID_DEG) -> str:
     """A dropped-row reason with its coordinates generalised or withheld.
 
-    A longitude/latitude pair becomes the centre of its generalisation cell; any other
-    number with a fractional part (a single coordinate, a raw cell value) and a named
-    grid cell are withheld.
+    A longitude/latitude pair becomes the centre of its generalisation cell; a
+    coordinate cell quoted as written, any other number with a fractional part (a
+    single coordinate, a raw cell value) and a named grid cell are withheld.
     """
     g = _check_grid_deg(grid_deg)
 
@@ -155,7 +158,7 @@ def withhold_coordinates(reason: str, grid_deg: float = DEFAULT_GRID_DEG) -> str
         glon, glat = generalise_coordinates(lon, lat, g)
         return f"(about {float(glon):.3f}, {float(glat):.3f}, generalised to {g:g} degrees)"
 
-    text = _PAIR.sub(pair, reason)
+    text = _PAIR.sub(pair, _QUOTED.sub(r"\1 [withheld]", reason))
     parts = re.split(r"(\(about [^)]*\))", text)
     parts = [p if p.startswith("(about ") else _CELL.sub("", _NUMBER.sub("[withheld]", p))
              for p in parts]
