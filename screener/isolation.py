@@ -1826,7 +1826,7 @@ def find_candidates(clade: Clade, thresholds: dict, relaxed_thresholds: dict | N
     Raises
     ------
     InputError
-        On a missing threshold.
+        On a missing threshold or one that is not a finite number.
 
     References
     ----------

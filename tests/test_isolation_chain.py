@@ -165,6 +165,16 @@ def test_known_ranges_unoccupied_and_within_range_parts_by_definition():
     parts = within_range_parts(grid, patches, ranges, clade.records, min_km=3.0,
                                min_patch_km2=0.0)
     assert parts.n == n_parts > 0 and np.array_equal(parts.labels, parts_ref)
+    # with a minimum area: parts smaller than it (pyproj areas) are dropped, the rest
+    # renumbered in order
+    areas = [sum(cell_area_km2(r, c) for r, c in np.argwhere(parts_ref == k))
+             for k in range(1, n_parts + 1)]
+    limit = float(np.median(areas))
+    kept = [k + 1 for k, a in enumerate(areas) if a >= limit * (1 + 1e-9)]
+    big = within_range_parts(grid, patches, ranges, clade.records, min_km=3.0,
+                             min_patch_km2=limit * (1 + 1e-9))
+    assert big.n == len(kept) < n_parts
+    assert np.array_equal(big.labels > 0, np.isin(parts_ref, kept))
     # the layout numbers unoccupied patches first, then the parts
     assert layout.n_sites == len(others) + n_parts
     assert np.array_equal(layout.cells > layout.n_unoccupied, parts_ref > 0)
