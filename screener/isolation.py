@@ -63,7 +63,7 @@ from scipy.spatial import cKDTree
 from screener.columns import CANDIDATES, find_column
 from screener.costdistance import CostGraph, least_cost_path, step_lengths_km
 from screener.errors import InputError, RecordsError
-from screener.gaps import separating_gaps
+from screener.gaps import SeparatingGaps, separating_gaps
 from screener.grid import Grid
 from screener.project import default, setting
 
@@ -1349,8 +1349,8 @@ def straight_line_to_ranges(grid: Grid, ranges: KnownRanges, layout: SiteLayout,
     return out
 
 
-def classify_sites(grid: Grid, ranges: KnownRanges, layout: SiteLayout, gaps,
-                   paths: SitePaths, min_gap_km: float) -> dict:
+def classify_sites(grid: Grid, ranges: KnownRanges, layout: SiteLayout,
+                   gaps: SeparatingGaps, paths: SitePaths, min_gap_km: float) -> dict:
     """Kind of every site, and the columns that say why.
 
     ``within-range`` for the within-range parts; ``near-range`` for an unoccupied
@@ -1364,8 +1364,8 @@ def classify_sites(grid: Grid, ranges: KnownRanges, layout: SiteLayout, gaps,
     grid : Grid
     ranges : KnownRanges
     layout : SiteLayout
-    gaps : screener.gaps.SeparatingGaps
-        Separating gap of every patch.
+    gaps : SeparatingGaps
+        Separating gap of every patch (:func:`screener.gaps.separating_gaps`).
     paths : SitePaths
     min_gap_km : float
 
