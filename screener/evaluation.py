@@ -26,6 +26,7 @@ from screener.models import (
     training_presence_scores,
 )
 from screener.models.base import check_predictors
+from screener.project import default
 from screener.thresholds import percentile_training_presence
 
 __all__ = [
@@ -627,7 +628,7 @@ def null_model_test(
     study_area=None,
     *,
     observed_auc: float | None = None,
-    n_null: int = 99,
+    n_null: int = default("evaluation", "n_null"),
     random_state=0,
     map_fn: Callable = map,
     presence_xy=None,
@@ -798,11 +799,11 @@ def evaluate_family(
     background_xy=None,
     study_area=None,
     study_area_weights=None,
-    jackknife_below: int = 25,
+    jackknife_below: int = default("evaluation", "jackknife_below"),
     partition: str = "quadrants",
     k_folds: int = 5,
     checkerboard_size: float | None = None,
-    n_null: int = 99,
+    n_null: int = default("evaluation", "n_null"),
     random_state=0,
     map_fn: Callable = map,
     study_area_xy=None,

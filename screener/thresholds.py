@@ -12,6 +12,7 @@ import math
 import numpy as np
 
 from screener.errors import InputError
+from screener.project import default
 from screener.results import Threshold
 
 __all__ = [
@@ -104,7 +105,7 @@ def compute_thresholds(
     map_values,
     cell_area_km2,
     *,
-    relax: float = 0.1,
+    relax: float = default("thresholds", "relax"),
     background_scores=None,
 ) -> dict[str, Threshold]:
     """The standard thresholds of one suitability map.

@@ -24,6 +24,7 @@ import math
 import numpy as np
 
 from screener import __version__
+from screener.project import default
 
 __all__ = ["render_map_page"]
 
@@ -112,7 +113,7 @@ def _site_cards(result) -> dict:
     from screener.outputs.sheets import coordinate_precision
 
     decimals, _ = coordinate_precision(result.grid)
-    day = float((result.settings.get("access") or {}).get("walking_day_hours", 7.0))
+    day = float((result.settings.get("access") or {}).get("walking_day_hours", default("access", "walking_day_hours")))
     routes = getattr(result, "routes", None) or {}
     models = site_taxa(result)
     cards = {}

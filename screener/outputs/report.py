@@ -25,6 +25,7 @@ from screener import __version__
 from screener.outputs import maps
 from screener.outputs.cautions import cautions_html
 from screener.outputs.privacy import FULL_PRECISION_MARKER, has_full_precision_sensitive
+from screener.project import default
 
 __all__ = ["render_report", "html_table"]
 
@@ -134,11 +135,11 @@ def _fmt(v, spec=".2f", missing="n/a") -> str:
 
 
 def _day_hours(result) -> float:
-    return float((result.settings.get("access") or {}).get("walking_day_hours", 7.0))
+    return float((result.settings.get("access") or {}).get("walking_day_hours", default("access", "walking_day_hours")))
 
 
 def _threshold_name(result) -> str:
-    return str((result.settings.get("thresholds") or {}).get("use", "mtp"))
+    return str((result.settings.get("thresholds") or {}).get("use", default("thresholds", "use")))
 
 
 def _taxon_card(result, name, tr) -> str:

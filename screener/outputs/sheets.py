@@ -211,7 +211,7 @@ def site_model(result, site) -> tuple:
     if not result.taxa:
         return "", None, ""
     taxon = site_taxon(result, site)
-    use = str((result.settings.get("thresholds") or {}).get("use", "mtp"))
+    use = str((result.settings.get("thresholds") or {}).get("use", default("thresholds", "use")))
     return taxon, (result.taxa[taxon].thresholds or {}).get(use), use
 
 
@@ -448,7 +448,7 @@ def _num(v, spec=".2f", missing="not estimated"):
 
 def _walk_lines(result, site) -> list[str]:
     route = (getattr(result, "routes", None) or {}).get(str(site["site_id"]))
-    day = float((result.settings.get("access") or {}).get("walking_day_hours", 7.0))
+    day = float((result.settings.get("access") or {}).get("walking_day_hours", default("access", "walking_day_hours")))
     if route is None:
         walk = site.get("walk_hours")
         if _num(walk) == "not estimated":
@@ -506,7 +506,7 @@ def _write_no_sites_sheet(path: Path, result, page_size: str) -> Path:
     """One page saying the run found no candidate site (a finished plan, not an error)."""
     project = str((result.settings.get("project") or {}).get("name") or "unnamed project")
     iso = result.settings.get("isolation") or {}
-    use = (result.settings.get("thresholds") or {}).get("use", "mtp")
+    use = (result.settings.get("thresholds") or {}).get("use", default("thresholds", "use"))
     text = (
         f"Field sheets: {project}\n\n"
         f"This run found no candidate site at the {use} thresholds (smallest patch "

@@ -15,6 +15,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 
 from screener.outputs import maps
+from screener.project import default
 from screener.slices import PRESENT, history_readings
 
 __all__ = ["plot_slices", "plot_stability", "report_section", "write_slice_rasters"]
@@ -130,7 +131,7 @@ def plot_slices(result, *, top_n: int = 10):
         short = replace(result, sites=sites)
     from screener.isolation import suitable_cells
 
-    use = (result.settings.get("thresholds", {}) or {}).get("use", "mtp")
+    use = (result.settings.get("thresholds", {}) or {}).get("use", default("thresholds", "use"))
     th = {t: r.thresholds[use].value for t, r in result.taxa.items()}
     present_suitable = suitable_cells(result.grid, {t: r.suitability
                                                     for t, r in result.taxa.items()}, th)
