@@ -966,6 +966,12 @@ def test_sensitive_localities_never_leave_at_full_precision(warm, tmp_path, monk
     # and a row whose degrees-minutes-seconds could not be read (quoted as written)
     with (scen / "occurrences.csv").open("a", encoding="utf-8") as f:
         f.write("Nebrivex tarvelli,84 49 44 X,14 47 09 Q,MVNC 9003\n")
+    # the sites too: their least-cost paths and walking routes end at the exact cells
+    add_settings(scen, "[outputs]\ngeneralise_sites = true")
+    first = list(csv.DictReader(io.StringIO(
+        (warm.parent / "first" / "candidates.csv").read_text(encoding="utf-8"))))
+    exact_sites = [(float(r["longitude"]), float(r["latitude"])) for r in first]
+    assert exact_sites
     # every figure the run saves (report PNGs, field-sheet PDF pages) is looked into
     # at the moment it is saved
     figures, drawn_text = [], tmp_path / "figure-texts"
@@ -988,6 +994,8 @@ def test_sensitive_localities_never_leave_at_full_precision(warm, tmp_path, monk
     assert len(figures) > 10
     assert _drawn_records(figures, coords) == []
     assert _full_precision_leaks(drawn_text, coords) == []  # nor written on them
+    assert _drawn_records(figures, exact_sites) == []
+    assert _full_precision_leaks(out, exact_sites) == []
     # the figures draw the records at their generalised coordinates instead
     glon, glat = generalise_coordinates(*np.transpose(coords[:5]))
     assert len(_drawn_records(figures, zip(glon, glat))) > 0
@@ -996,7 +1004,7 @@ def test_sensitive_localities_never_leave_at_full_precision(warm, tmp_path, monk
     assert "latitude [withheld] is beyond" in dropped
     assert "longitude [withheld] is not a number" in dropped and "49 44" not in dropped
     # the scan finds what it looks for: asked for full precision, the outputs hold it
-    add_settings(scen, "[outputs]\nfull_precision = true")
+    set_in_section(scen, "outputs", "full_precision = true")
     full = tmp_path / "full"
     figures.clear()
     assert invoke("run", scen / "project.toml", "--out", full).exit_code == 0

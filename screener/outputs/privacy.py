@@ -212,8 +212,8 @@ def generalised_result(
     sites : bool, default False
         Also generalise the candidate sites: their representative coordinates are
         snapped, polygons are replaced by the generalisation cell that holds the
-        representative point, least-cost paths are dropped and sampling points are
-        snapped (duplicates within a site removed).
+        representative point, least-cost paths and walking routes are dropped and
+        sampling points are snapped (duplicates within a site removed).
     all_taxa : bool, default False
         Generalise the records of every taxon, not only those flagged sensitive.
     grid_deg : float, default 0.1
@@ -245,7 +245,9 @@ def generalised_result(
         taxa[name] = tr2
     changes = {}
     if sites:
+        # least-cost paths and walking routes end at the exact site cells
         changes = {"sites": _generalise_sites(result.sites, grid, g), "paths": None,
+                   "routes": {},
                    "sampling_points": _generalise_points(result.sampling_points, grid, g)}
     provenance = dict(result.provenance or {})
     provenance["generalised"] = {

@@ -128,8 +128,8 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
         # no site: the layer still has the contract columns with their types
         gpd.GeoDataFrame(empty_frame(CANDIDATES), geometry=[],
                          crs=grid.pyproj_crs).to_file(gpkg, layer="sites", driver="GPKG")
-    if result.paths is not None and len(result.paths):
-        result.paths.to_file(gpkg, layer="least_cost_paths", driver="GPKG")
+    if shareable.paths is not None and len(shareable.paths):  # none for generalised sites
+        shareable.paths.to_file(gpkg, layer="least_cost_paths", driver="GPKG")
     rel(gpkg)
     step("waypoints, field sheets and report")
     # routes end at the exact site points: left out when sites are generalised
