@@ -27,6 +27,7 @@ from screener.models import (
 )
 from screener.models.base import check_predictors
 from screener.project import default
+from screener.randomisation import _xy, pattern_draws, spatial_clusters
 from screener.thresholds import percentile_training_presence
 
 __all__ = [
@@ -223,16 +224,6 @@ def tss_max(presence_scores, background_scores) -> float:
 
 
 # --- partitions ---------------------------------------------------------------------
-def _xy(values, name):
-    arr = np.asarray(values, dtype=float)
-    if arr.ndim != 2 or arr.shape[1] != 2 or not np.all(np.isfinite(arr)):
-        raise InputError(
-            f"`{name}` must be finite coordinates of shape (n, 2) as (x, y) or "
-            f"(longitude, latitude); got shape {arr.shape}."
-        )
-    return arr
-
-
 def block_partition(presence_xy, background_xy) -> tuple[np.ndarray, np.ndarray]:
     """Four spatial blocks split at the records' median longitude and latitude.
 
@@ -381,22 +372,27 @@ class JackknifeResult:
     Attributes
     ----------
     successes : int
-        Left-out records scoring at or above their model's lowest training presence.
+        Models whose held-out records score at or above the model's lowest training
+        presence (the median of them, when a model holds out a spatial cluster).
     n : int
-        Number of records (= models).
+        Number of models (= records in the plain leave-one-out; = spatial clusters
+        in the buffered one).
     p_value : float
         ``P(X >= successes)``, X Poisson-binomial with the ``share_present`` values.
     share_present : ndarray of shape (n,)
         (Area-weighted) share of the study area each model predicts present.
-    thresholds : ndarray of shape (n,)
-        Each model's lowest training presence.
-    p10_thresholds : ndarray of shape (n,)
-        Each model's 10th-percentile training presence.
-    left_out_scores : ndarray of shape (n,)
-        Score of each left-out record under the model fitted without it.
-    fold_auc : ndarray of shape (n,)
-        Per model, the AUC of its left-out record against the background (the share of
-        background scoring below it, ties one half).
+    thresholds : ndarray of shape (k,)
+        Per held-out record (``k`` of them), its model's lowest training presence.
+    p10_thresholds : ndarray of shape (k,)
+        Per held-out record, its model's 10th-percentile training presence.
+    left_out_scores : ndarray of shape (k,)
+        Score of each held-out record under the model fitted without it.
+    fold_auc : ndarray of shape (k,)
+        Per held-out record, its AUC against the background under its model (the
+        share of background scoring below it, ties one half).
+    buffer_km : float
+        Records chained to the held-out one by gaps of at most this were held out
+        with it (0 = plain leave-one-out).
     """
 
     successes: int
@@ -407,6 +403,7 @@ class JackknifeResult:
     p10_thresholds: np.ndarray
     left_out_scores: np.ndarray
     fold_auc: np.ndarray
+    buffer_km: float = 0.0
 
 
 def _seeds(rng, size):
@@ -423,6 +420,9 @@ def jackknife(
     random_state=0,
     *,
     map_fn: Callable = map,
+    presence_xy=None,
+    buffer_km: float = 0.0,
+    lonlat: bool = True,
 ) -> JackknifeResult:
     """Leave-one-out jackknife test for small samples.
 
@@ -431,6 +431,15 @@ def jackknife(
     scores at or above that threshold.  The p-value is ``P(X >= successes)`` with X
     Poisson-binomial, trial ``i`` succeeding with the share of the study area model
     ``i`` predicts present (area-weighted when weights are given).
+
+    With ``presence_xy`` and ``buffer_km > 0`` the jackknife is spatially buffered:
+    model ``i`` is also fitted without the records of record ``i``'s spatial cluster
+    (records within ``buffer_km`` of it, of those, and so on:
+    :func:`screener.randomisation.spatial_clusters`), so a held-out record is not
+    predicted by its own neighbours (records of one cluster share their environment,
+    and predicting one from the others says little about the niche).  A record
+    leaving fewer than 2 records for training gets no model and does not count
+    (``n`` is the number of models).
 
     Parameters
     ----------
@@ -449,6 +458,12 @@ def jackknife(
         Seed for the per-model seeds, drawn up front.
     map_fn : callable, default builtin ``map``
         ``map``-like callable used to run the n fits (e.g. an executor's ``map``).
+    presence_xy : array_like of shape (n, 2), optional
+        Record coordinates (longitude, latitude when ``lonlat``, else km).
+    buffer_km : float, default 0
+        Records chained to the held-out one by gaps of at most this (km) are left out
+        of its training set too; 0 = the published leave-one-out.
+    lonlat : bool, default True
 
     Returns
     -------
@@ -459,6 +474,9 @@ def jackknife(
     .. [1] Pearson, R. G., Raxworthy, C. J., Nakamura, M. & Peterson, A. T. (2007).
        Predicting species distributions from small numbers of occurrence records: a
        test case using cryptic geckos in Madagascar. J. Biogeography 34:102-117.
+    .. [2] Roberts, D. R. et al. (2017). Cross-validation strategies for data with
+       temporal, spatial, hierarchical, or phylogenetic structure. Ecography 40:913-929
+       (buffered leave-one-out; from memory).
     """
     presence = check_predictors(presence, "presence", min_rows=3)
     background = check_predictors(
@@ -467,44 +485,76 @@ def jackknife(
     study_area, weights = _study_area(study_area, study_area_weights, background)
     n = presence.shape[0]
     seeds = _seeds(np.random.default_rng(random_state), n)
-    tasks = []
-    for i in range(n):
-        keep = np.arange(n) != i
+    groups = _jackknife_groups(presence_xy, n, buffer_km, lonlat)
+    tasks, held = [], []
+    for g in groups:
+        keep = np.ones(n, bool)
+        keep[g] = False
+        if keep.sum() < 2:
+            continue
+        held.append(g)
         tasks.append(
             _FitTask(
                 family,
                 params or {},
-                seeds[i],
+                seeds[g[0]],
                 presence[keep],
                 background,
-                test=presence[i : i + 1],
+                test=presence[g],
                 test_background=background,
                 study_area=study_area,
                 study_area_weights=weights,
             )
         )
+    n_skipped = sum(len(g) for g in groups) - sum(len(g) for g in held)
+    if n_skipped:
+        log.info(
+            "buffered jackknife: %d of %d records leave fewer than 2 records for "
+            "training and get no model", n_skipped, n)
+    if not held:
+        empty = np.zeros(0)
+        return JackknifeResult(0, 0, float("nan"), empty, empty, empty, empty, empty,
+                               buffer_km=float(buffer_km))
     results = list(map_fn(_run_fold, tasks))
-    thresholds = np.array([r["mtp"] for r in results])
-    p10 = np.array([r["p10"] for r in results])
-    left = np.array([float(r["test_scores"][0]) for r in results])
+    sizes = [len(g) for g in held]
+    thresholds = np.repeat([r["mtp"] for r in results], sizes)
+    p10 = np.repeat([r["p10"] for r in results], sizes)
+    left = np.concatenate([np.asarray(r["test_scores"], float) for r in results])
     share = np.array([r["share_present"] for r in results])
-    fold_auc = np.array(
-        [
-            auc(left[i : i + 1], r["test_background_scores"])
-            for i, r in enumerate(results)
-        ]
-    )
-    successes = int(np.sum(left >= thresholds))
+    fold_auc = np.concatenate([
+        [auc(np.array([v]), r["test_background_scores"]) for v in r["test_scores"]]
+        for r in results
+    ])
+    # one trial per model: its held-out records (one, or one spatial cluster) succeed
+    # when their median scores at or above the model's lowest training presence
+    successes = int(sum(
+        float(np.median(r["test_scores"])) >= r["mtp"] for r in results
+    ))
     return JackknifeResult(
         successes=successes,
-        n=n,
+        n=len(held),
         p_value=poisson_binomial_sf(successes, share),
         share_present=share,
         thresholds=thresholds,
         p10_thresholds=p10,
         left_out_scores=left,
         fold_auc=fold_auc,
+        buffer_km=float(buffer_km) if any(len(g) > 1 for g in groups) else 0.0,
     )
+
+
+def _jackknife_groups(presence_xy, n, buffer_km, lonlat) -> list[np.ndarray]:
+    """Records held out together: each record alone, or each spatial cluster."""
+    if presence_xy is None or not buffer_km > 0:
+        return [np.array([i]) for i in range(n)]
+    xy = _xy(presence_xy, "presence_xy")
+    if len(xy) != n:
+        raise InputError(
+            f"`presence_xy` has {len(xy)} rows for {n} records; give one per record."
+        )
+    labels = spatial_clusters(xy, buffer_km, lonlat=lonlat)
+    _, first = np.unique(labels, return_index=True)
+    return [np.flatnonzero(labels == labels[i]) for i in np.sort(first)]
 
 
 def _study_area(study_area, weights, background):
@@ -545,81 +595,6 @@ class NullModelResult:
     structured: bool = False
 
 
-def _local_xy(xy, lat0_deg: float | None) -> np.ndarray:
-    """Longitude/latitude to a local equirectangular plane (degrees of latitude)."""
-    xy = np.asarray(xy, float)
-    if lat0_deg is None:
-        return xy
-    return np.column_stack([xy[:, 0] * math.cos(math.radians(lat0_deg)), xy[:, 1]])
-
-
-def pattern_draws(presence_xy, pool_xy, n_draws: int, random_state=0, *,
-                  lonlat: bool = True, max_tries: int = 200) -> list[np.ndarray]:
-    """Rows of ``pool_xy`` that carry the records' spatial pattern to random places.
-
-    Each draw rotates the whole record pattern by a random angle about its centroid,
-    moves the centroid onto a random pool point, and takes for every moved record the
-    nearest pool point (cell).  Distances between records and their clustering are
-    kept; only where the pattern lies changes.  A placement is accepted when every
-    moved record lands within twice the pool's typical point spacing of a pool point
-    (inside the study area); after ``max_tries`` failures a draw falls back to
-    records drawn at random (logged).
-
-    Parameters
-    ----------
-    presence_xy : array_like of shape (n, 2)
-        Record coordinates (longitude, latitude when ``lonlat``).
-    pool_xy : array_like of shape (m, 2)
-        Coordinates of the cells records may be moved to (the study area).
-    n_draws : int
-    random_state : int or Generator, default 0
-    lonlat : bool, default True
-        Coordinates are degrees; rotation is done on a local equirectangular plane
-        (longitude scaled by the cosine of the mean latitude).
-
-    Returns
-    -------
-    list of ndarray of int
-        ``n_draws`` index arrays into ``pool_xy``, ``n`` each.
-
-    References
-    ----------
-    .. [1] Fortin, M.-J. & Dale, M. R. T. (2005). Spatial Analysis: A Guide for
-       Ecologists. Cambridge University Press (restricted randomisation that keeps a
-       pattern's spatial structure; from memory).
-    """
-    from scipy.spatial import cKDTree
-
-    pxy = _xy(presence_xy, "presence_xy")
-    qxy = _xy(pool_xy, "pool_xy")
-    lat0 = float(np.mean(qxy[:, 1])) if lonlat else None
-    p = _local_xy(pxy, lat0)
-    q = _local_xy(qxy, lat0)
-    tree = cKDTree(q)
-    spacing = np.median(tree.query(q[: min(len(q), 2000)], k=2)[0][:, 1])
-    tol = 2.0 * max(float(spacing), 1e-12)
-    rel = p - p.mean(axis=0)
-    rng = np.random.default_rng(random_state)
-    out, fallbacks = [], 0
-    for _ in range(int(n_draws)):
-        for _try in range(max_tries):
-            theta = rng.uniform(0.0, 2.0 * math.pi)
-            c, s_ = math.cos(theta), math.sin(theta)
-            moved = rel @ np.array([[c, s_], [-s_, c]]) + q[rng.integers(len(q))]
-            dist, idx = tree.query(moved)
-            if np.all(dist <= tol):
-                out.append(idx)
-                break
-        else:
-            fallbacks += 1
-            out.append(rng.choice(len(q), size=len(p), replace=len(q) < len(p)))
-    if fallbacks:
-        log.warning(
-            "%d of %d null draws could not place the record pattern inside the study "
-            "area and used random records instead", fallbacks, n_draws)
-    return out
-
-
 def null_model_test(
     family: str,
     params: dict | None,
@@ -634,6 +609,7 @@ def null_model_test(
     presence_xy=None,
     study_area_xy=None,
     lonlat: bool = True,
+    cluster_km: float | None = None,
 ) -> NullModelResult:
     """Null-model test of the training AUC (Raes & ter Steege 2007).
 
@@ -662,6 +638,13 @@ def null_model_test(
         ``study_area`` is omitted).
     lonlat : bool, default True
         The coordinates are longitude/latitude degrees.
+    cluster_km : float, optional
+        With coordinates: records chained by gaps of at most this (km) form one
+        spatial cluster, and each cluster is moved on its own
+        (:func:`screener.randomisation.spatial_clusters`); when omitted the whole
+        record pattern moves as one.  Moving clusters separately keeps the
+        clustering without asking a pattern that spans the whole study area to fit
+        in it elsewhere.
 
     Returns
     -------
@@ -692,8 +675,12 @@ def null_model_test(
         observed_auc = _training_auc(model, presence, background)
     structured = presence_xy is not None and study_area_xy is not None
     if structured:
+        clusters = (
+            None if cluster_km is None
+            else spatial_clusters(presence_xy, cluster_km, lonlat=lonlat)
+        )
         draws = pattern_draws(presence_xy, study_area_xy, len(seeds), pattern_seed,
-                              lonlat=lonlat)
+                              lonlat=lonlat, clusters=clusters)
     else:
         draws = [np.random.default_rng(s).choice(pool.shape[0], size=n, replace=False)
                  for s in seeds]
@@ -808,6 +795,7 @@ def evaluate_family(
     map_fn: Callable = map,
     study_area_xy=None,
     lonlat: bool = True,
+    cluster_km: float | None = None,
 ) -> FamilyEvaluation:
     """Evaluate one family: jackknife below ``jackknife_below`` records, else folds.
 
@@ -844,6 +832,11 @@ def evaluate_family(
     study_area_xy : array_like of shape (c, 2), optional
     lonlat : bool, default True
         Coordinates are longitude/latitude degrees.
+    cluster_km : float, optional
+        With ``presence_xy``: records chained by gaps of at most this (km) form one
+        spatial cluster; the jackknife holds out whole clusters (its ``buffer_km``)
+        and the null model moves each cluster on its own (:func:`null_model_test`).
+        None: plain leave-one-out, and the null model moves the whole pattern.
 
     Returns
     -------
@@ -888,13 +881,16 @@ def evaluate_family(
             study_area_weights,
             random_state=jk_seed,
             map_fn=map_fn,
+            presence_xy=presence_xy,
+            buffer_km=cluster_km or 0.0,
+            lonlat=lonlat,
         )
-        ev.auc = float(np.mean(jk.fold_auc))
-        ev.omission_mtp = float(np.mean(jk.left_out_scores < jk.thresholds))
-        ev.omission_p10 = float(np.mean(jk.left_out_scores < jk.p10_thresholds))
+        ev.auc = _nanmean(jk.fold_auc)
+        ev.omission_mtp = _nanmean(jk.left_out_scores < jk.thresholds)
+        ev.omission_p10 = _nanmean(jk.left_out_scores < jk.p10_thresholds)
         ev.jackknife_successes = jk.successes
         ev.jackknife_p = jk.p_value
-        ev.n_folds = n
+        ev.n_folds = jk.n
         ev.note = (
             "Boyce and TSS left empty: the jackknife holds out one record per model, "
             "and both need several held-out records scored by the same model."
@@ -962,6 +958,7 @@ def evaluate_family(
             presence_xy=presence_xy,
             study_area_xy=background_xy if study_area is None else study_area_xy,
             lonlat=lonlat,
+            cluster_km=cluster_km,
         )
         ev.auc_null_p = nm.p_value
         ev.extra["null_model"] = nm

@@ -99,6 +99,9 @@ log = logging.getLogger(__name__)
 DEFAULT_REPLICATES = default("overlap", "n_replicates")
 #: Environmental grid cells along each principal axis by default.
 DEFAULT_GRID_CELLS = default("overlap", "grid_cells")
+#: Records chained by gaps of at most this many grid cells form one spatial cluster
+#: (``[occurrences] cluster_cells``; the tests take it as ``cluster_km``).
+CLUSTER_CELLS = default("occurrences", "cluster_cells")
 
 
 def _p_columns(key: str) -> tuple:
@@ -453,6 +456,11 @@ class EnvironmentalSpace:
         Kernel density of the records (per unit score area).
     occupancy_a, occupancy_b : ndarray (G, G)
         ``z_occ / z_env`` on the support, 0 elsewhere, scaled to max 1.
+    xy_records_a, xy_records_b, xy_background_a, xy_background_b : ndarray or None
+        Coordinates (n, 2) of the records and accessible cells above, in the rows'
+        order; when given, the tests keep the records' spatial structure.
+    lonlat : bool
+        The coordinates are longitude, latitude (degrees); else x, y in km.
     """
 
     scaler: StandardScaler
@@ -479,6 +487,19 @@ class EnvironmentalSpace:
     support_quantile: float = 0.0
     available_quantile: float = 0.05
     predictor_names: tuple = ()
+    xy_records_a: np.ndarray | None = None
+    xy_records_b: np.ndarray | None = None
+    xy_background_a: np.ndarray | None = None
+    xy_background_b: np.ndarray | None = None
+    lonlat: bool = True
+
+    @property
+    def has_places(self) -> bool:
+        """Records and accessible cells carry coordinates (tests keep spatial structure)."""
+        return all(
+            getattr(self, f"xy_{kind}_{w}") is not None
+            for kind in ("records", "background") for w in "ab"
+        )
 
     @property
     def resolution(self) -> int:
@@ -582,6 +603,25 @@ def _own_available(scores_bg, z_own, space_like, quantile) -> np.ndarray:
     return holds & (z_own >= cut)
 
 
+def _attach_places(space, places, rows) -> None:
+    from screener.randomisation import _xy
+
+    names = ("records_a", "records_b", "background_a", "background_b")
+    if len(places) != 4:
+        raise InputError(
+            "places must hold 4 coordinate arrays: records of A, records of B, "
+            "background of A, background of B."
+        )
+    for name, xy, env in zip(names, places, rows, strict=True):
+        xy = _xy(xy, f"places ({name})")
+        if len(xy) != len(env):
+            raise InputError(
+                f"places ({name}) has {len(xy)} coordinates for {len(env)} "
+                "predictor rows; give one per row."
+            )
+        setattr(space, f"xy_{name}", xy)
+
+
 def environmental_space(
     env_records_a,
     env_records_b,
@@ -594,6 +634,8 @@ def environmental_space(
     available_quantile: float = 0.05,
     predictor_names=(),
     resolution: int | None = None,
+    places=None,
+    lonlat: bool = True,
 ) -> EnvironmentalSpace:
     """Project two taxa into one two-axis environmental space shared by the pair.
 
@@ -629,6 +671,13 @@ def environmental_space(
         Names of the predictors (figure axis labels).
     resolution : int, optional
         Old name of ``grid_cells``; still accepted for one release with a warning.
+    places : sequence of 4 array_like of shape (n, 2), optional
+        Coordinates of ``env_records_a``, ``env_records_b``, ``env_background_a`` and
+        ``env_background_b``, row for row.  With them the similarity tests move each
+        record pattern as a whole and the equivalency test can permute spatial
+        clusters (see :func:`similarity_test`, :func:`equivalency_test`).
+    lonlat : bool, default True
+        ``places`` are longitude, latitude in degrees (else x, y in km).
 
     Returns
     -------
@@ -723,7 +772,10 @@ def environmental_space(
         support_quantile=float(support_quantile),
         available_quantile=float(available_quantile),
         predictor_names=tuple(predictor_names or ()),
+        lonlat=bool(lonlat),
     )
+    if places is not None:
+        _attach_places(space, places, (ra, rb, ba, bb))
     nodes = space.nodes
     z_env = _scott_density(sav, nodes).reshape(shape)
     z_env = z_env / z_env.max()
@@ -1039,17 +1091,29 @@ class _EnvTask:
     pool: np.ndarray  # equivalency: pooled records; similarity: moved taxon's bg
     n_a: int  # equivalency: size of A; similarity: number of moved records
     fixed_occupancy: np.ndarray | None = None  # similarity only (flat)
+    clusters: np.ndarray | None = None  # equivalency by spatial clusters
 
     def density(self, pts):
         return _record_density(pts, self.nodes, self.available_cov) * self.inv_env
 
 
 def _equivalency_batch(task: _EnvTask, seeds: list) -> list:
+    from screener.randomisation import cluster_permutation
+
     out = []
+    n = len(task.pool)
+    observed = np.arange(n) < task.n_a
     for seed in seeds:
-        perm = np.random.default_rng(seed).permutation(len(task.pool))
-        za = task.density(task.pool[perm[: task.n_a]])
-        zb = task.density(task.pool[perm[task.n_a :]])
+        rng = np.random.default_rng(seed)
+        if task.clusters is None:
+            is_a = observed[rng.permutation(n)]
+        else:
+            is_a = cluster_permutation(observed, task.clusters, rng)
+        if is_a.sum() < 2 or (~is_a).sum() < 2:
+            out.append((float("nan"), float("nan")))
+            continue
+        za = task.density(task.pool[is_a])
+        zb = task.density(task.pool[~is_a])
         out.append(_d_i_or_nan(za, zb))
     return out
 
@@ -1064,12 +1128,19 @@ def _similarity_batch(task: _EnvTask, seeds: list) -> list:
     return out
 
 
+def _pattern_similarity_batch(task: _EnvTask, draws: list) -> list:
+    return [
+        _d_i_or_nan(task.fixed_occupancy, task.density(task.pool[idx])) for idx in draws
+    ]
+
+
 def equivalency_test(
     space: EnvironmentalSpace,
     *,
     n_replicates: int = DEFAULT_REPLICATES,
     random_state=0,
     executor: Executor | None = None,
+    cluster_km: float = 0.0,
 ) -> dict[str, OverlapTest]:
     """Niche equivalency test in environmental space.
 
@@ -1077,6 +1148,15 @@ def equivalency_test(
     and rebuilds both occupancies exactly as the observed ones (each group's own
     kernel bandwidth re-estimated, the shared available environment held fixed),
     ``n_replicates`` times.
+
+    With ``cluster_km > 0`` and record coordinates in ``space``, the records are
+    grouped into spatial clusters (records chained by gaps of at most ``cluster_km``,
+    :func:`screener.randomisation.spatial_clusters`) and the reassignment keeps them
+    (:func:`screener.randomisation.cluster_permutation`): labels are shuffled inside
+    clusters holding both taxa, and clusters holding one taxon change hands whole.
+    Records sampled together are then not counted as independent evidence; a taxon
+    known from two clusters is two observations, and the test says so by not
+    rejecting.  Replicates leaving a taxon fewer than 2 records count as invalid.
 
     Parameters
     ----------
@@ -1088,6 +1168,9 @@ def equivalency_test(
     executor : Executor, optional
         Where the replicates run (serial when omitted); the result does not depend on
         it.
+    cluster_km : float, default 0
+        Longest gap (km) between records of one spatial cluster; 0 = every record is
+        its own unit (the published test).
 
     Returns
     -------
@@ -1100,8 +1183,19 @@ def equivalency_test(
     ----------
     .. [1] Warren, D. L., Glor, R. E. & Turelli, M. (2008). Evolution 62, 2868-2883.
     .. [2] Broennimann, O. et al. (2012). Global Ecology and Biogeography 21, 481-497.
+    .. [3] Manly, B. F. J. (2007). Randomization, Bootstrap and Monte Carlo Methods in
+       Biology, 3rd ed. Chapman & Hall (restricted permutations of blocks; from
+       memory).
     """
     n = _check_replicates(n_replicates)
+    clusters = None
+    if cluster_km > 0 and space.xy_records_a is not None and space.xy_records_b is not None:
+        from screener.randomisation import spatial_clusters
+
+        clusters = spatial_clusters(
+            np.vstack([space.xy_records_a, space.xy_records_b]), cluster_km,
+            lonlat=space.lonlat,
+        )
     task = _EnvTask(
         nodes=space.nodes,
         shape=space.z_env.shape,
@@ -1109,6 +1203,7 @@ def equivalency_test(
         available_cov=space.available_cov,
         pool=np.vstack([space.scores_records_a, space.scores_records_b]),
         n_a=len(space.scores_records_a),
+        clusters=clusters,
     )
     values = _batched(
         _resolve_executor(executor),
@@ -1134,6 +1229,7 @@ def similarity_test(
     random_state=0,
     executor: Executor | None = None,
     alternative: str | None = None,
+    cluster_km: float = 0.0,
 ) -> dict[str, OverlapTest]:
     """Niche similarity (background) test in environmental space.
 
@@ -1143,6 +1239,17 @@ def similarity_test(
     available environment).  ``"ba"`` does the reverse.  When B's records are no
     more than a random draw from its accessible area, its observed D is one more draw
     from this null, so the test is exact.
+
+    With ``cluster_km > 0`` and coordinates in ``space`` (``places``), the random
+    records keep the moved taxon's spatial clusters (records chained by gaps of at
+    most ``cluster_km``, :func:`screener.randomisation.spatial_clusters`): each
+    replicate rotates every cluster about its centre by a random angle, moves it to a
+    random place of the accessible area, and takes the accessible cells nearest to
+    the moved records (:func:`screener.randomisation.pattern_draws`).  Records
+    collected in two clusters are then compared with two random clusters of the same
+    shapes, not with scattered points, whose wider spread of environments would make
+    any clustered sample look "conserved".  Records without a neighbour within
+    ``cluster_km`` are drawn as independent random cells, as in the published test.
 
     Parameters
     ----------
@@ -1156,6 +1263,9 @@ def similarity_test(
     executor : Executor, optional
     alternative : {"greater", "lower"}, optional
         Old name of ``hypothesis``, accepted for one release with a warning.
+    cluster_km : float, default 0
+        Longest gap (km) inside a spatial cluster of records; 0 = independent random
+        records (the published test).
 
     Returns
     -------
@@ -1166,6 +1276,9 @@ def similarity_test(
     ----------
     .. [1] Warren, D. L., Glor, R. E. & Turelli, M. (2008). Evolution 62, 2868-2883.
     .. [2] Broennimann, O. et al. (2012). Global Ecology and Biogeography 21, 481-497.
+    .. [3] Fortin, M.-J. & Dale, M. R. T. (2005). Spatial Analysis: A Guide for
+       Ecologists. Cambridge University Press (restricted randomisation keeping a
+       pattern's spatial structure; from memory).
     """
     hypothesis = _check_hypothesis(hypothesis, alternative)
     n = _check_replicates(n_replicates)
@@ -1181,11 +1294,26 @@ def similarity_test(
         n_a=len(getattr(space, f"scores_records_{moved}")),
         fixed_occupancy=getattr(space, f"occupancy_{fixed}").ravel(),
     )
-    values = _batched(
-        _resolve_executor(executor),
-        partial(_similarity_batch, task),
-        spawn_seeds(random_state, n),
-    )
+    seeds = spawn_seeds(random_state, n)
+    if cluster_km > 0 and space.has_places:
+        from screener.randomisation import pattern_draws, spatial_clusters
+
+        xy = getattr(space, f"xy_records_{moved}")
+        draws = pattern_draws(
+            xy,
+            getattr(space, f"xy_background_{moved}"),
+            n,
+            random_state=int(seeds[0]),
+            lonlat=space.lonlat,
+            clusters=spatial_clusters(xy, cluster_km, lonlat=space.lonlat),
+        )
+        values = _batched(
+            _resolve_executor(executor), partial(_pattern_similarity_batch, task), draws
+        )
+    else:
+        values = _batched(
+            _resolve_executor(executor), partial(_similarity_batch, task), seeds
+        )
     return _package(
         values,
         environmental_overlap(space),
@@ -1747,6 +1875,9 @@ def compare_pair(
     predictor_names=(),
     alternative: str | None = None,
     resolution: int | None = None,
+    places=None,
+    lonlat: bool = True,
+    cluster_km: float = 0.0,
 ) -> PairComparison:
     """Overlap, breadth, dynamics and tests for one pair of taxa.
 
@@ -1788,6 +1919,12 @@ def compare_pair(
         among themselves (:func:`correct_for_multiplicity` corrects a whole run).
     alternative, resolution : optional
         Old names of ``hypothesis`` and ``grid_cells`` (one release, with a warning).
+    places, lonlat : optional
+        Coordinates of the environmental rows (see :func:`environmental_space`).
+    cluster_km : float, default 0
+        With ``places``: records chained by gaps of at most this (km) form one
+        spatial cluster, which the environmental tests keep together
+        (:func:`equivalency_test`, :func:`similarity_test`); 0 = independent records.
 
     Returns
     -------
@@ -1870,13 +2007,14 @@ def compare_pair(
     if all(v is not None for v in envs):
         space = environmental_space(
             *envs, env_available=env_available, grid_cells=grid_cells,
-            predictor_names=predictor_names,
+            predictor_names=predictor_names, places=places, lonlat=lonlat,
         )
         d, i = environmental_overlap(space)
         ba, bb = niche_breadth(space)
         env = SpaceComparison("environmental", d, i, ba, bb, **niche_dynamics(space))
         env.equivalency = equivalency_test(
-            space, n_replicates=n, random_state=seeds[3], executor=ex
+            space, n_replicates=n, random_state=seeds[3], executor=ex,
+            cluster_km=cluster_km,
         )
         for direction, seed in (("ab", seeds[4]), ("ba", seeds[5])):
             setattr(
@@ -1889,6 +2027,7 @@ def compare_pair(
                     n_replicates=n,
                     random_state=seed,
                     executor=ex,
+                    cluster_km=cluster_km,
                 ),
             )
     out = PairComparison(name_a, name_b, geo, env, space, n, hypothesis)

@@ -59,6 +59,7 @@ from screener.outputs.writer import write_outputs
 from screener.overlap import compare_pair, correct_for_multiplicity
 from screener.parallel import Executor, make_executor
 from screener.project import Settings, settings_from_dict
+from screener.randomisation import cluster_link_km
 from screener.ranking import group_sites, rank_sites, site_ids, site_keys
 from screener.records import (
     RecordSet,
@@ -528,6 +529,7 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None
     names = list(taxa)
     rows, comparisons = [], []
     areas = np.asarray(grid.cell_area_km2, float)
+    cluster_km = cluster_link_km(grid, s.occurrences.cluster_cells)
     for a, b in itertools.combinations(names, 2):
         ta, tb = taxa[a], taxa[b]
         seed = int(np.random.SeedSequence(
@@ -562,6 +564,8 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None
             geographic_budget_s=float("inf"),
             alpha=s.overlap.alpha,
             predictor_names=intake.predictor_stack().names,
+            places=_overlap_places(grid, ta, tb),
+            cluster_km=cluster_km,
         )
         comparisons.append(cmp)
     # one Holm correction over every p-value of the run, then the tables and readings
@@ -572,6 +576,23 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None
 
     df = pd.DataFrame(rows) if rows else pd.DataFrame(columns=OVERLAP_COLUMNS)
     return OverlapResult(df, readings, comparisons)
+
+
+def _overlap_places(grid, ta, tb) -> tuple | None:
+    """Longitude, latitude of both taxa's records and background cells (row order of
+    their predictor rows), so the overlap tests keep the records' spatial structure."""
+    if ta.background_cells is None or tb.background_cells is None:
+        return None
+
+    def cells(rows, cols):
+        return np.column_stack(grid.lonlat(rows, cols))
+
+    return (
+        np.column_stack([ta.records.lon, ta.records.lat]),
+        np.column_stack([tb.records.lon, tb.records.lat]),
+        cells(*ta.background_cells),
+        cells(*tb.background_cells),
+    )
 
 
 def _shared_available(intake: Intake, ta, tb, seed: int) -> np.ndarray:

@@ -58,6 +58,7 @@ SCHEMA: dict = {
         "decimal": (str, "", 'Decimal mark: "." or ","; detected when empty.', {"choices": ("", ".", ",")}),
         "min_records": (int, 3, "A taxon with fewer kept records stops the run.", {"min": 1}),
         "thin_km": (float, 0.0, "Thin records so none are closer than this (km); 0 = off.", {"min": 0, "note": " (0 = no thinning)"}),
+        "cluster_cells": (int, 5, "Records chained by gaps of at most this many grid cells form one spatial cluster, which the overlap tests, the jackknife and the null model treat as one unit; 0 = every record on its own.", {"min": 0, "note": " (0 = records independent)"}),
         "sensitive": ((bool, list), False, "Generalise these taxa's coordinates (true = all)."),
         "max_uncertainty_m": (float, 0.0, "Darwin Core: drop records whose coordinateUncertaintyInMeters exceeds this (m); 0 = the record's cell size.", {"min": 0}),
         "basis_of_record": (list, [], 'Darwin Core: keep only these basisOfRecord values, e.g. ["PreservedSpecimen"]; empty = all.'),

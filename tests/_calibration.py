@@ -76,6 +76,8 @@ class Pair:
     background_a: np.ndarray
     background_b: np.ndarray
     available: np.ndarray
+    #: (column, row) of the rows above, in cells (x, y with one cell = 1 "km")
+    places: tuple = ()
 
 
 def _window_cells(cube, rng, size):
@@ -104,8 +106,13 @@ def _draw(rows, cols, n, process, rng, weights=None):
     return rng.choice(idx, n, replace=len(idx) < n)
 
 
-def make_pair(cube, scenario, process, rng, *, n=12, window=70, n_background=200):
-    """Records, accessible backgrounds and the shared available environment."""
+def make_pair(cube, scenario, process, rng, *, n=12, window=70, n_background=None):
+    """Records, accessible backgrounds and the shared available environment.
+
+    The background of a window is all its land cells (``n_background=None``, as a
+    run takes when the accessible area has fewer cells than ``[background]
+    max_points``) or a random sample of that many cells.
+    """
     wa = _window_cells(cube, rng, window)
     same = ("equivalency-null", "divergent", "separate-clusters")
     wb = wa if scenario in same else _window_cells(cube, rng, window)
@@ -113,8 +120,13 @@ def make_pair(cube, scenario, process, rng, *, n=12, window=70, n_background=200
     def env(w, idx):
         return cube[w[0][idx], w[1][idx]]
 
-    def bg(w):
-        return env(w, rng.choice(len(w[0]), min(n_background, len(w[0])), replace=False))
+    def xy(w, idx):
+        return np.column_stack([w[1][idx], w[0][idx]]).astype(float)
+
+    def bg_idx(w):
+        if n_background is None or n_background >= len(w[0]):
+            return np.arange(len(w[0]))
+        return rng.choice(len(w[0]), n_background, replace=False)
 
     if scenario in ("similarity-null", "separate-clusters"):
         ia = _draw(*wa, n, process, rng)
@@ -140,28 +152,45 @@ def make_pair(cube, scenario, process, rng, *, n=12, window=70, n_background=200
             np.abs(zb - target) <= band) >= 3 else _draw(*wb, n, process, rng)
     else:
         raise ValueError(scenario)
-    bga, bgb = bg(wa), bg(wb)
+    ga, gb = bg_idx(wa), bg_idx(wb)
     # shared available environment: the union of both windows, one draw
     rows = np.concatenate([wa[0], wb[0]])
     cols = np.concatenate([wa[1], wb[1]])
     union = np.unique(np.ravel_multi_index((rows, cols), cube.shape[:2]))
-    pick = rng.choice(union, min(2 * n_background, len(union)), replace=False)
+    pick = rng.choice(union, min(400, len(union)), replace=False)
     ur, uc = np.unravel_index(pick, cube.shape[:2])
-    return Pair(env(wa, ia), env(wb, ib), bga, bgb, cube[ur, uc])
+    return Pair(env(wa, ia), env(wb, ib), env(wa, ga), env(wb, gb), cube[ur, uc],
+                (xy(wa, ia), xy(wb, ib), xy(wa, ga), xy(wb, gb)))
 
 
-def run_pair(pair: Pair, rng, *, n_replicates=99, grid_cells=24, hypothesis="conserved"):
-    """p-values of the three environmental tests and the reading's claims."""
+#: Records of one spatial cluster: chained by gaps of at most this many cells (the
+#: default of a run, see ``screener.overlap.CLUSTER_CELLS``).
+CLUSTER_CELLS = ov.CLUSTER_CELLS
+
+
+def run_pair(pair: Pair, rng, *, n_replicates=99, grid_cells=24, hypothesis="conserved",
+             structured=True):
+    """p-values of the three environmental tests and the reading's claims.
+
+    ``structured``: the tests keep the records' spatial structure (pattern-keeping
+    similarity null, equivalency by spatial clusters), as a run does; False gives the
+    published tests with independent records.
+    """
     space = ov.environmental_space(
         pair.records_a, pair.records_b, pair.background_a, pair.background_b,
         env_available=pair.available, grid_cells=grid_cells,
+        places=pair.places if structured else None, lonlat=False,
     )
     seeds = rng.integers(2**31, size=3)
-    eq = ov.equivalency_test(space, n_replicates=n_replicates, random_state=int(seeds[0]))
+    link = float(CLUSTER_CELLS) if structured else 0.0
+    eq = ov.equivalency_test(space, n_replicates=n_replicates, random_state=int(seeds[0]),
+                             cluster_km=link)
     ab = ov.similarity_test(space, direction="ab", hypothesis=hypothesis,
-                            n_replicates=n_replicates, random_state=int(seeds[1]))
+                            n_replicates=n_replicates, random_state=int(seeds[1]),
+                            cluster_km=link)
     ba = ov.similarity_test(space, direction="ba", hypothesis=hypothesis,
-                            n_replicates=n_replicates, random_state=int(seeds[2]))
+                            n_replicates=n_replicates, random_state=int(seeds[2]),
+                            cluster_km=link)
     raw = np.array([eq["D"].p_value, ab["D"].p_value, ba["D"].p_value])
     holm = ov.holm_adjust(raw)
     return {
@@ -196,3 +225,41 @@ def rejection_rates(cube, scenario, process, n_pairs, seed, **kw):
     out["claims_any"] = (
         sum(r["claims_different"] or r["claims_similar"] for r in rows), n_pairs)
     return out
+
+
+# --- evaluation: jackknife and null model on records without niche signal ----------
+#: Family fitted in the evaluation scenarios (fast, deterministic).
+EVAL_FAMILY = "ellipsoid"
+
+
+def evaluation_rates(cube, process, n_taxa, seed, *, n=12, window=70, n_background=1000,
+                     n_null=19, structured=True):
+    """Share of taxa whose jackknife and null-model p is at most alpha.
+
+    Each taxon's records come from its window by the spatial process alone (no niche
+    signal), so both tests are under their null.  The study area of both tests is the
+    background (as in a run).  ``structured``: the jackknife leaves out each held-out
+    record's spatial cluster and the null model moves each cluster as a whole
+    (``CLUSTER_CELLS`` cells), as a run does; False: the published tests.
+    """
+    from screener.evaluation import jackknife, null_model_test
+
+    rng = np.random.default_rng(seed)
+    hits = {"jackknife": 0, "null_model": 0}
+    for _ in range(n_taxa):
+        rows, cols = _window_cells(cube, rng, window)
+        idx = _draw(rows, cols, n, process, rng)
+        bg = rng.choice(len(rows), min(n_background, len(rows)), replace=False)
+        env = cube[rows, cols]
+        xy = np.column_stack([cols, rows]).astype(float)
+        link = float(CLUSTER_CELLS) if structured else 0.0
+        s = int(rng.integers(2**31))
+        jk = jackknife(EVAL_FAMILY, {}, env[idx], env[bg], env[bg], random_state=s,
+                       presence_xy=xy[idx], buffer_km=link, lonlat=False)
+        nm = null_model_test(EVAL_FAMILY, {}, env[idx], env[bg], n_null=n_null,
+                             random_state=s, presence_xy=xy[idx] if structured else None,
+                             study_area_xy=xy[bg] if structured else None, lonlat=False,
+                             cluster_km=link if structured else None)
+        hits["jackknife"] += jk.p_value <= ALPHA
+        hits["null_model"] += nm.p_value <= ALPHA
+    return {k: (v, n_taxa) for k, v in hits.items()}

@@ -140,6 +140,39 @@ def test_jackknife_by_hand(small):
     assert jk.p_value < 0.05
 
 
+def test_buffered_jackknife_holds_out_whole_clusters_by_hand(small):
+    """Spatially buffered jackknife (Roberts et al. 2017, Ecography 40:913, from
+    memory): records chained within the buffer are held out together, one model and
+    one Poisson-binomial trial per cluster (Pearson et al. 2007 otherwise)."""
+    from screener.models import make_model
+
+    pres, bg = small
+    # km coordinates: records 0-2 chained by 1 km gaps, 3-4 a pair, 5, 6, 7 alone
+    xy = np.array([[0, 0], [1, 0], [2, 0], [20, 0], [20, 1], [40, 0], [60, 0],
+                   [80, 0]], float)
+    jk = jackknife("ellipsoid", {}, pres, bg, random_state=0, presence_xy=xy,
+                   buffer_km=1.5, lonlat=False)
+    assert jk.n == 5 and jk.buffer_km == 1.5
+    assert len(jk.left_out_scores) == 8
+    keep = np.arange(8) >= 3
+    m = make_model("ellipsoid").fit(pres[keep], bg)
+    thr = m.predict(pres[keep]).min()
+    assert_allclose(jk.thresholds[:3], thr)
+    assert_allclose(jk.left_out_scores[:3], m.predict(pres[:3]))
+    assert jk.share_present[0] == pytest.approx(np.mean(m.predict(bg) >= thr))
+    # a buffer that holds nobody else is the published jackknife
+    plain = jackknife("ellipsoid", {}, pres, bg, random_state=0)
+    alone = jackknife("ellipsoid", {}, pres, bg, random_state=0, presence_xy=xy,
+                      buffer_km=0.5, lonlat=False)
+    assert alone.n == 8 and alone.buffer_km == 0.0
+    assert_allclose(alone.left_out_scores, plain.left_out_scores)
+    assert alone.p_value == pytest.approx(plain.p_value)
+    # every record in one cluster leaves nothing to train on: no model, no p
+    none = jackknife("ellipsoid", {}, pres, bg, presence_xy=xy, buffer_km=100.0,
+                     lonlat=False)
+    assert none.n == 0 and np.isnan(none.p_value)
+
+
 def test_jackknife_area_weights(small):
     pres, bg = small
     # Weight only the cells far from the records: share predicted present drops.

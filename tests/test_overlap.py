@@ -384,6 +384,56 @@ def test_equivalency_replicates_rebuild_densities_like_the_observed_ones():
     assert ov._d_i_or_nan(za, zb) == pytest.approx(ov.environmental_overlap(space))
 
 
+def _places(rng, n_a, n_b, n_bg, spread_km=50.0):
+    return tuple(rng.uniform(0, spread_km, size=(k, 2)) for k in (n_a, n_b, n_bg, n_bg))
+
+
+def test_equivalency_with_single_record_clusters_is_the_published_permutation():
+    # Restricted permutation (Manly 2007, from memory): with every record its own
+    # cluster (a link shorter than any gap) it reduces to the plain permutation of
+    # Warren et al. 2008, draw for draw.
+    rng = np.random.default_rng(21)
+    ra, rb, ba, bb = _pair(rng, shift=0.7, n=12)
+    xy = np.column_stack([np.arange(24) * 10.0, np.zeros(24)])
+    places = (xy[:12], xy[12:], rng.uniform(0, 300, (600, 2)), rng.uniform(0, 300, (600, 2)))
+    space = ov.environmental_space(ra, rb, ba, bb, grid_cells=20, places=places,
+                                   lonlat=False)
+    plain = ov.equivalency_test(space, n_replicates=19, random_state=3)
+    linked = ov.equivalency_test(space, n_replicates=19, random_state=3, cluster_km=5.0)
+    assert_allclose(linked["D"].null, plain["D"].null, rtol=1e-12)
+
+
+def test_equivalency_cannot_reject_with_two_clusters_per_taxon():
+    # Each taxon known from two tight clusters of records: four units, six ways to
+    # split them, so no p below 1/6 is honest; record by record it rejects.
+    rng = np.random.default_rng(22)
+    ra, rb, ba, bb = _pair(rng, shift=2.0, n=12)
+    centres = np.array([[0, 0], [100, 0], [0, 100], [100, 100]], float)
+    xy = np.repeat(centres, 6, axis=0) + rng.uniform(0, 1, (24, 2))
+    places = (xy[:12], xy[12:], rng.uniform(0, 100, (600, 2)),
+              rng.uniform(0, 100, (600, 2)))
+    space = ov.environmental_space(ra, rb, ba, bb, grid_cells=20, places=places,
+                                   lonlat=False)
+    plain = ov.equivalency_test(space, n_replicates=99, random_state=4)
+    linked = ov.equivalency_test(space, n_replicates=99, random_state=4, cluster_km=3.0)
+    assert plain["D"].p_value <= 0.02
+    assert linked["D"].p_value > 0.1
+    assert len(np.unique(np.round(linked["D"].null, 12))) <= 6
+
+
+def test_places_must_match_the_rows():
+    rng = np.random.default_rng(23)
+    ra, rb, ba, bb = _pair(rng, n=8)
+    places = _places(rng, 8, 8, 600)
+    space = ov.environmental_space(ra, rb, ba, bb, grid_cells=20, places=places,
+                                   lonlat=False)
+    assert space.has_places
+    assert not ov.environmental_space(ra, rb, ba, bb, grid_cells=20).has_places
+    with pytest.raises(InputError, match="one per row"):
+        ov.environmental_space(ra, rb, ba, bb, grid_cells=20,
+                               places=_places(rng, 7, 8, 600), lonlat=False)
+
+
 def _calibration_rate(shift, n_pairs, seed, n_replicates=39):
     rng = np.random.default_rng(seed)
     rejected = 0

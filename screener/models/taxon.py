@@ -33,6 +33,7 @@ from screener.models.ensemble import agreement_map, ensemble_weights, weighted_m
 from screener.models.inspect import permutation_importance, response_curves
 from screener.models.mapping import outside_map, predict_map
 from screener.novelty import mess_map
+from screener.randomisation import cluster_link_km
 from screener.results import TaxonRecords, TaxonResult
 from screener.thresholds import compute_thresholds
 
@@ -161,7 +162,8 @@ def fit_family(family: str, sample: TaxonSample, stack: LayerStack, settings, *,
     params = family_params(s, family)
     common = dict(presence_xy=sample.presence_xy, background_xy=sample.background_xy,
                   study_area=B, jackknife_below=s.evaluation.jackknife_below,
-                  random_state=sample.seed, map_fn=map_fn)
+                  random_state=sample.seed, map_fn=map_fn,
+                  cluster_km=cluster_link_km(stack.grid, s.occurrences.cluster_cells))
     ev = evaluate_family(family, params, P, B, study_area_xy=sample.background_xy,
                          n_null=s.evaluation.n_null, **common)
     model = ev.extra["model"]
@@ -208,12 +210,12 @@ def _threshold_columns(th: dict) -> dict:
 
 
 def evaluation_rows(sample: TaxonSample, fits: dict, weights: dict, consensus_thresholds,
-                    settings, *, map_fn=map) -> list:
+                    settings, *, map_fn=map, cluster_km: float | None = None) -> list:
     """Rows of evaluation.csv for one taxon: one per family, then the ensemble.
 
     The consensus map is evaluated like a family: the same jackknife or spatial
-    blocks and pattern-keeping null model, the families refitted with the weights
-    fixed.  Its ``auc_train`` and thresholds are those of the mapped consensus.
+    blocks and pattern-keeping null model (spatial clusters of ``cluster_km``), the
+    families refitted with the weights fixed.  Its ``auc_train`` and thresholds are those of the mapped consensus.
     """
     s = settings
     taxon, n = sample.records.taxon, sample.records.n
@@ -236,7 +238,7 @@ def evaluation_rows(sample: TaxonSample, fits: dict, weights: dict, consensus_th
             background_xy=sample.background_xy, study_area=sample.background_env,
             study_area_xy=sample.background_xy,
             jackknife_below=s.evaluation.jackknife_below, n_null=s.evaluation.n_null,
-            random_state=sample.seed, map_fn=map_fn,
+            random_state=sample.seed, map_fn=map_fn, cluster_km=cluster_km,
         )
         ens.update({k: v for k, v in ev_c.as_row().items()
                     if k not in ("algorithm", "n_records")})
@@ -309,7 +311,9 @@ def fit_taxon(records: TaxonRecords, stack: LayerStack, settings, *, seed: int,
         most_dissimilar=most,
         thresholds=c_th,
         accessible=sample.accessible,
-        evaluation=evaluation_rows(sample, fits, weights, c_th, s, map_fn=map_fn),
+        evaluation=evaluation_rows(
+            sample, fits, weights, c_th, s, map_fn=map_fn,
+            cluster_km=cluster_link_km(stack.grid, s.occurrences.cluster_cells)),
         figures={"response_curves": {f: fit.curves for f, fit in fits.items()},
                  "importance": {f: fit.importance for f, fit in fits.items()}},
         presence_env=P,
