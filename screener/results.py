@@ -8,8 +8,17 @@ user see the same objects.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING
 
 import numpy as np
+
+if TYPE_CHECKING:  # names for the annotations only: results.py imports no stage
+    import geopandas as gpd
+    import pandas as pd
+
+    from screener.grid import Grid
+    from screener.isolation import CandidateSet
+    from screener.slices import SliceSet
 
 __all__ = [
     "RecordDrop",
@@ -176,7 +185,7 @@ class OverlapResult:
         :class:`screener.overlap.PairComparison` per pair (null distributions etc.).
     """
 
-    table: object
+    table: pd.DataFrame
     readings: list = field(default_factory=list)
     comparisons: list = field(default_factory=list)
 
@@ -208,15 +217,15 @@ class PlanResult:
         Time slices: projections, climatic stability and the sites' history.
     """
 
-    sites: object
-    paths: object
+    sites: gpd.GeoDataFrame
+    paths: gpd.GeoDataFrame | None
     barrier: np.ndarray | None
     access_hours: np.ndarray | None
-    candidates: object
+    candidates: CandidateSet
     clade_mess: np.ndarray | None
     routes: dict = field(default_factory=dict)
-    start_points: object = None
-    slices: object = None
+    start_points: pd.DataFrame | None = None
+    slices: SliceSet | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -273,27 +282,27 @@ class RunResult:
         Time slices: projections, climatic stability and the sites' history.
     """
 
-    grid: object
+    grid: Grid
     layer_names: list
     taxa: dict
-    sites: object
+    sites: gpd.GeoDataFrame
     dropped: list = field(default_factory=list)
-    overlap: object = None
+    overlap: pd.DataFrame | None = None
     overlap_readings: list = field(default_factory=list)
-    paths: object = None
+    paths: gpd.GeoDataFrame | None = None
     barrier: np.ndarray | None = None
     elevation: np.ndarray | None = None
     hillshade: np.ndarray | None = None
     access_hours: np.ndarray | None = None
-    sampling_points: object = None
+    sampling_points: pd.DataFrame | None = None
     settings: dict = field(default_factory=dict)
     provenance: dict = field(default_factory=dict)
     warnings: list = field(default_factory=list)
     figures: dict = field(default_factory=dict)
     intake_summary: list = field(default_factory=list)
     comparisons: list = field(default_factory=list)
-    candidates: object = None
+    candidates: CandidateSet | None = None
     clade_mess: np.ndarray | None = None
     routes: dict = field(default_factory=dict)
-    start_points: object = None
-    slices: object = None
+    start_points: pd.DataFrame | None = None
+    slices: SliceSet | None = None
