@@ -43,7 +43,7 @@ from screener.isolation import (
 )
 from screener.layers import LayerStack, check_layers, hillshade, read_layers, slope_aspect
 from screener.models import accepts_random_state
-from screener.models.mapping import GeographicRefit
+from screener.models.mapping import GeographicRefit, refit_seconds
 from screener.models.taxon import family_params, fit_taxon, taxon_seed
 from screener.novelty import mess_map
 from screener.outputs.sheets import plan_sampling_points
@@ -614,6 +614,11 @@ def _shared_available(intake: Intake, ta, tb, seed: int) -> np.ndarray:
     return intake.predictor_stack().values_at(bg.rows, bg.cols)
 
 
+#: "auto" runs the geographic-space tests of a pair when their estimated time
+#: (:func:`~screener.models.mapping.refit_seconds` x maps) is at most this, in seconds
+GEOGRAPHIC_TEST_BUDGET_S = 120.0
+
+
 def _geographic_refit(intake, ta, tb, progress):
     """The refitting callable for geographic tests, or None when switched off."""
     s = intake.settings
@@ -632,21 +637,21 @@ def _geographic_refit(intake, ta, tb, progress):
             "to run them."
         )
         return None
-    X = stack.valid_matrix()
-    background = np.vstack([ta.background_env, tb.background_env])
-    refit = GeographicRefit(family, params, background, X, intake.grid.mask)
-    t0 = time.perf_counter()
-    refit(np.ravel_multi_index((ta.records.rows, ta.records.cols), intake.grid.shape))
-    per = time.perf_counter() - t0
-    # equivalency needs 2 maps per replicate, each similarity test one more
-    estimate = per * s.overlap.n_replicates * 4
-    if mode == "auto" and estimate > 120:
+    # equivalency needs 2 maps per replicate, each similarity test one more; the
+    # estimate is a fixed cost model so that "auto" chooses alike on every machine
+    n_maps = 4 * s.overlap.n_replicates
+    estimate = refit_seconds(family, int(intake.grid.mask.sum())) * n_maps
+    if mode == "auto" and estimate > GEOGRAPHIC_TEST_BUDGET_S:
         progress.step(
             f"geographic-space tests would take about {estimate / 60:.0f} min "
-            f"(refitting {family} {4 * s.overlap.n_replicates} times); skipped. "
+            f"(refitting {family} {n_maps} times over "
+            f"{int(intake.grid.mask.sum()):,} cells); skipped. "
             "Set [overlap] geographic_tests = \"on\" to run them."
         )
         return None
+    X = stack.valid_matrix()
+    background = np.vstack([ta.background_env, tb.background_env])
+    refit = GeographicRefit(family, params, background, X, intake.grid.mask)
     return refit
 
 

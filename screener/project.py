@@ -106,7 +106,7 @@ SCHEMA: dict = {
         "grid_cells": (int, 64, "Environmental-space grid cells along each principal axis.", {"min": 10}),
         "available_environment": (str, "accessible", 'Shared available environment of a pair: "accessible" (union of both accessible areas) or "study_area" (the whole grid).', {"choices": ("accessible", "study_area")}),
         "alpha": (float, 0.05, "Family-wise error rate of the plain-language reading (Holm over every p-value of the run).", {"above": 0, "below": 1}),
-        "geographic_tests": (str, "auto", '"auto", "on" or "off": refit maps per replicate.', {"choices": ("auto", "on", "off")}),
+        "geographic_tests": (str, "auto", 'Refit and map the first family per replicate: "on", "off", or "auto" (run them when a fixed per-family cost model, the same on every machine, puts a pair under 2 minutes and the layers are held in memory).', {"choices": ("auto", "on", "off")}),
     },
     "isolation": {
         "min_gap_km": (float, 5.0, "Unsuitable gap (km) from which a patch is isolated.", {"min": 0}),

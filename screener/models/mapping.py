@@ -5,7 +5,8 @@ suitability map (float32, NaN off the valid mask), block by block, in this proce
 window by window on an executor's workers for stacks streamed from disk;
 :func:`outside_map` marks the cells beyond a model's calibration range the same way.
 :class:`GeographicRefit` refits a family to other record cells and maps it (the task
-of the geographic-space overlap tests).
+of the geographic-space overlap tests); :func:`refit_seconds` estimates what one
+such refit costs, from the family and the grid's size alone.
 """
 
 from __future__ import annotations
@@ -17,7 +18,21 @@ import numpy as np
 from screener.layers import LayerStack
 from screener.models import make_model
 
-__all__ = ["predict_map", "outside_map", "GeographicRefit"]
+__all__ = ["predict_map", "outside_map", "GeographicRefit", "refit_seconds",
+           "REFIT_COST"]
+
+#: Cost of one refit-and-map of each family on the reference machine (2 cores, the
+#: demo's four layers, 5,000 background cells, 20 records): seconds to fit, and
+#: seconds per valid cell mapped.  Measured by timing :class:`GeographicRefit` on
+#: 20,000 and 80,000 cells (fastest of three; see docs/benchmarks/models.md).  The
+#: figures are fixed so that ``[overlap] geographic_tests = "auto"`` makes the same
+#: choice on every machine and every run, whatever the machine's load.
+REFIT_COST: dict[str, tuple[float, float]] = {
+    "ellipsoid": (0.0005, 1.2e-7),
+    "envelope": (0.001, 1.3e-7),
+    "ppm": (0.007, 1.8e-6),
+    "forest": (1.6, 4.0e-5),
+}
 
 #: blocks at least this valid are predicted whole and masked afterwards (for families
 #: that accept invalid rows): cheaper than gathering the valid cells of a block
@@ -102,6 +117,22 @@ def outside_map(stack: LayerStack, clamp, max_cells: int = 1 << 20, map_fn=None)
     for (r0, r1), values in zip(bands, run(task, bands)):
         out[r0:r1][grid.mask[r0:r1]] = values
     return out
+
+
+def refit_seconds(family: str, n_cells: int) -> float:
+    """Estimated seconds for one refit of ``family`` mapped over ``n_cells`` cells.
+
+    A fixed cost model (:data:`REFIT_COST`), not a timing: the estimate, and every
+    choice made from it, is the same on every machine and does not depend on load.
+    A family missing from the table is costed as the dearest one.
+
+    Examples
+    --------
+    >>> round(refit_seconds("ellipsoid", 1_000_000), 2)
+    0.12
+    """
+    fit, per_cell = REFIT_COST.get(family, max(REFIT_COST.values()))
+    return fit + per_cell * int(n_cells)
 
 
 class GeographicRefit:
