@@ -270,6 +270,7 @@ def demo(ctx, out, overwrite, size, scheduler, debug):
                              cache_dir=None)
         repoint_run_json(RunFolder(stage / "results").run_json, stage, out)
     _print_summary(result, out / "results")
+    _print_warnings(result)
 
 
 @main.command()

@@ -262,15 +262,32 @@ def test_moisture_is_higher_windward_and_in_the_cloud_belt(small_read):
 
 
 def test_layers_are_not_copies_of_elevation(small_read):
-    # the demo should not trip its own collinearity warning on cloud: apart from
-    # temperature (elevation through the lapse rate, left out of the demo's models),
-    # cloud is not collinear with any layer (|r| <= 0.7, common practice)
+    # the demo should not trip its own collinearity warning: apart from temperature
+    # (elevation through the lapse rate, left out of the demo's models), no layer is
+    # collinear with another (|r| above the screener's warning level, common practice)
+    from screener.layers import COLLINEARITY_R
+
     layers, _, _ = small_read
     land = np.isfinite(layers["elevation"])
-    cloud = layers["cloud"][land]
-    for other in ("elevation", "temperature", "moisture"):
-        r = stats.pearsonr(cloud, layers[other][land]).statistic
-        assert abs(r) <= 0.7, (other, r)
+    for a, b in (("cloud", "elevation"), ("cloud", "temperature"), ("cloud", "moisture"),
+                 ("moisture", "temperature"), ("moisture", "elevation")):
+        r = stats.pearsonr(layers[a][land], layers[b][land]).statistic
+        assert abs(r) <= COLLINEARITY_R, (a, b, r)
+
+
+def test_moisture_carries_a_rain_shadow_across_the_island(small_read):
+    # at the same height, the windward (south-east) lowland is wetter than the lee
+    # (north-west) lowland: the across-island gradient, not elevation, sets most of
+    # the lowland's moisture
+    layers, grid, _ = small_read
+    elev = layers["elevation"]
+    low = np.isfinite(elev) & (elev < demo.LOWLAND_MAX_M)
+    rows, cols = np.indices(grid.shape)
+    across = cols / grid.n_cols + rows / grid.n_rows - 1.0  # > 0 south-east
+    lee = low & (across < -0.3)
+    windward = low & (across > 0.3)
+    assert lee.sum() > 50 and windward.sum() > 50
+    assert np.mean(layers["moisture"][windward]) > 2.0 * np.mean(layers["moisture"][lee])
 
 
 # --- records ----------------------------------------------------------------------
@@ -467,6 +484,16 @@ def test_check_reports_collinearity_once_and_not_for_left_out_layers(small):
 
     result = CliRunner().invoke(main, ["check", str(small)])
     assert result.exit_code == 0, result.output
-    assert result.output.count("Collinear") <= 1
-    # elevation is left out of the demo's predictors: no pair with it is reported
-    assert "elevation/" not in result.output and "/elevation" not in result.output
+    # the demo's predictors are not collinear, and elevation is left out of them
+    assert "Collinear" not in result.output
+    # with elevation put back among the predictors the pair elevation/temperature
+    # (r = -1 through the lapse rate) is reported, once
+    text = small.read_text(encoding="utf-8")
+    other = small.parent / "with_elevation.toml"
+    text = text.replace('exclude = ["elevation"]', "exclude = []")
+    text = text.replace("[slices]\n", '[slices]\nstatic = ["elevation"]\n')
+    other.write_text(text, encoding="utf-8")
+    result = CliRunner().invoke(main, ["check", str(other)])
+    assert result.exit_code == 0, result.output
+    assert result.output.count("Collinear") == 1, result.output
+    assert "elevation/temperature" in result.output

@@ -214,6 +214,10 @@ def test_demo_then_reproduce_and_debrief_after_a_move(tmp_path):
     r = CliRunner().invoke(main, ["-q", "demo", "--out", str(demo_dir), "--size", "small"])
     assert r.exit_code == 0, r.output
     prov = json.loads((demo_dir / "results" / "run.json").read_text())
+    # the demo prints each of its warnings once, and trips no collinearity warning
+    printed = [line for line in r.output.splitlines() if line.startswith("Warning: ")]
+    assert printed == [f"Warning: {w}" for w in prov["warnings"]]
+    assert len(set(printed)) == len(printed) and "Collinear" not in r.output
     # run.json points at the scenario the demo left behind
     assert (demo_dir / "scenario" / "project.toml").samefile(prov["project_file"])
     for path in prov["input_hashes"]:
