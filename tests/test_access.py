@@ -55,6 +55,25 @@ def test_inclined_plane_hours():
     assert_allclose(h[2, 7], 7.0 / v, rtol=1e-12)
 
 
+def test_cells_beside_nodata_keep_their_slope_and_stay_walkable():
+    """A 10 % plane (slope 0.1 everywhere, from its formula) with a sea of nodata along
+    one side and a hole: cells beside the nodata get the plane's slope from the
+    one-sided difference, and a start point on the coast reaches every land cell."""
+    grid = projected_grid((6, 9))
+    x_m = (np.arange(9) + 0.5) * 1000.0
+    y_m = (np.arange(6) + 0.5) * 1000.0
+    z = 0.06 * x_m[None, :] + 0.08 * y_m[:, None]  # |gradient| = hypot(0.06, 0.08) = 0.1
+    z[:, :2] = np.nan  # the sea west of the coast at column 2
+    z[3, 5] = np.nan  # a hole
+    land = np.isfinite(z)
+    grid = grid.with_mask(land)
+    slope = slope_rise_over_run(grid, z)
+    assert_allclose(slope[land], 0.1, rtol=1e-12)
+    assert np.isnan(slope[~land]).all()
+    h = walking_hours(grid, z, ([2], [2]))  # a landing on the coast
+    assert np.isfinite(h[land]).all() and h[2, 2] == 0.0
+
+
 def test_flat_latlon_hours_match_geodesic_distance():
     """Flat ground on a lat/lon grid: hours along a row = pyproj geodesic km / speed."""
     grid = Grid("EPSG:4326", Affine(0.01, 0, 20.0, 0, -0.01, 60.0), (3, 30))
