@@ -32,6 +32,13 @@ PROBE = """<script>
       images: imgs.length,
       brokenImages: imgs.filter(function(i){ return !(i.complete && i.naturalWidth > 0); })
                         .map(function(i){ return i.alt || i.src.slice(0, 40); }),
+      overflowing: Array.from(document.querySelectorAll('body *')).filter(function(el){
+          var st = getComputedStyle(el).overflowX;
+          return (st === 'auto' || st === 'scroll') && el.scrollWidth > el.clientWidth + 1;
+        }).map(function(el){
+          var sec = el.closest('section'), th = el.querySelector('th');
+          return (sec ? sec.id : '') + ': ' + (th ? th.textContent : el.tagName);
+        }),
       errors: errors,
       extra: (window.__probeExtra ? window.__probeExtra() : null)
     };
@@ -44,15 +51,10 @@ PROBE = """<script>
 </script>"""
 
 
-def probe(chromium: str, page: Path, tmp: Path, *, width: int = 1400,
-          extra_js: str = "") -> dict:
-    """Measurements of ``page`` rendered at ``width`` px (see the module docstring)."""
-    text = Path(page).read_text(encoding="utf-8")
-    inject = PROBE + (f"<script>{extra_js}</script>" if extra_js else "")
-    text = re.sub(r"(<head[^>]*>)", lambda m: m.group(1) + inject, text, count=1)
-    copy = tmp / f"probe-{Path(page).name}"
-    copy.write_text(text, encoding="utf-8")
-    cmd = [
+def chromium_command(chromium: str, tmp: Path, *, width: int, height: int = 900) -> list:
+    """The headless Chromium command line every browser test uses (no network features,
+    a profile of its own under ``tmp``); the caller adds the action and the page."""
+    return [
         chromium,
         "--headless",
         "--no-sandbox",
@@ -63,7 +65,33 @@ def probe(chromium: str, page: Path, tmp: Path, *, width: int = 1400,
         "--disable-component-update",
         "--disable-sync",
         f"--user-data-dir={tmp / 'profile'}",
-        f"--window-size={width},900",
+        f"--window-size={width},{height}",
+    ]
+
+
+def find_chromium() -> str | None:
+    """Path of Chromium, installing Debian's package when this is a root Debian session;
+    None (with the reason printed) where no browser can be had."""
+    from _synthetic_run import ensure_debian_tool
+
+    return ensure_debian_tool("chromium", "chromium")
+
+
+def probe(chromium: str, page: Path, tmp: Path, *, width: int = 1400,
+          extra_js: str = "") -> dict:
+    """Measurements of ``page`` rendered at ``width`` px (see the module docstring).
+
+    Besides the page's widths, images and errors, ``overflowing`` lists the scrolling
+    boxes (``.wide`` table wrappers and the like) whose content is wider than the box,
+    each as ``"<section id>: <first header>"``: content a reader must scroll sideways
+    to see.
+    """
+    text = Path(page).read_text(encoding="utf-8")
+    inject = PROBE + (f"<script>{extra_js}</script>" if extra_js else "")
+    text = re.sub(r"(<head[^>]*>)", lambda m: m.group(1) + inject, text, count=1)
+    copy = tmp / f"probe-{Path(page).name}"
+    copy.write_text(text, encoding="utf-8")
+    cmd = chromium_command(chromium, tmp, width=width) + [
         "--virtual-time-budget=10000",
         "--dump-dom",
         copy.as_uri(),
@@ -79,3 +107,14 @@ def probe(chromium: str, page: Path, tmp: Path, *, width: int = 1400,
     import html
 
     return json.loads(html.unescape(m.group(1)))
+
+
+def screenshot(chromium: str, page: Path, tmp: Path, *, width: int, height: int) -> Path:
+    """A PNG screenshot of ``page`` in a ``width`` x ``height`` px window."""
+    shot = tmp / f"shot-{width}x{height}.png"
+    cmd = chromium_command(chromium, tmp, width=width, height=height) + [
+        f"--screenshot={shot}",
+        Path(page).as_uri(),
+    ]
+    subprocess.run(cmd, capture_output=True, timeout=180, check=False)
+    return shot

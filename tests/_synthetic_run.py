@@ -131,6 +131,7 @@ def make_run(
                 "max_suitability": float(np.nanmax(clade[cells])),
                 "agreement": 0.8,
                 "novel_share": 0.1 * i,
+                "clamped_share": 0.15 * i + 0.05,
                 "elevation_min": 1200.0 + 50 * i,
                 "elevation_max": 1450.0 + 50 * i,
                 "nearest_taxon": TAXA[i % 2],

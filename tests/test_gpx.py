@@ -54,8 +54,8 @@ def test_gpx_validates_and_reads_back(tmp_path, run, schema):
         np.testing.assert_allclose(
             [w.latitude, w.longitude], [p.latitude, p.longitude], atol=1e-6
         )
-        if not same:
-            assert w.elevation == pytest.approx(p.elevation_m, abs=0.05)
+        # every sampling point's waypoint carries its elevation, the site's own too
+        assert w.elevation == pytest.approx(p.elevation_m, abs=0.05)
     assert n_same >= 1
     assert len(gpx.waypoints) == len(run.sites) + len(points) - n_same
     # Names fit a handheld's short display (common practice: <= 8 characters).
@@ -82,8 +82,10 @@ def test_gpx_start_points_and_route_tracks(tmp_path, run, schema):
         gpx = gpxpy.parse(fh)
     start = [w for w in gpx.waypoints if w.name == "Road end"]
     assert len(start) == 1 and start[0].latitude == pytest.approx(float(lat), abs=1e-6)
-    assert [t.name for t in gpx.tracks] == [f"{sid} route" for sid in routes]
-    for trk, route in zip(gpx.tracks, routes.values(), strict=True):
+    # one track per routed site, in rank order
+    ranked = [sid for sid in run.sites["site_id"] if sid in routes]
+    assert [t.name for t in gpx.tracks] == [f"{sid} route" for sid in ranked]
+    for trk, route in zip(gpx.tracks, (routes[sid] for sid in ranked), strict=True):
         pts = trk.segments[0].points
         assert len(pts) == len(route.cells)
         # the track runs from the start point to the site's cell

@@ -10,7 +10,7 @@ from html.parser import HTMLParser
 import numpy as np
 import pandas as pd
 import pytest
-from _synthetic_run import TAXA, ensure_debian_tool, make_run
+from _synthetic_run import TAXA, make_run
 
 from screener.access import walking_surface
 from screener.outputs.mappage import render_map_page
@@ -71,7 +71,9 @@ def test_routes_left_out_when_empty(run):
 
 @pytest.fixture(scope="session")
 def chromium():
-    exe = ensure_debian_tool("chromium", "chromium")
+    from _browser import find_chromium
+
+    exe = find_chromium()
     if exe is None:
         pytest.skip("chromium is not installed and could not be installed")
     return exe
@@ -101,23 +103,34 @@ window.__probeExtra = function(){
   document.getElementById('zin').click();
   out.zoomed = document.getElementById('map').getAttribute('viewBox') !== before;
   out.firstSite = site.getAttribute('data-site');
+  var box = document.getElementById('map').getBoundingClientRect();
+  out.mapBox = [box.width, box.height];
   return out;
 };
 """
 
 
-def test_map_page_in_headless_chromium(tmp_path, page, run, chromium):
+@pytest.mark.parametrize("width", [1400, 800, 600])
+def test_map_page_in_headless_chromium(tmp_path, page, run, chromium, width):
     from _browser import probe
 
     path = tmp_path / "map.html"
     path.write_text(page, encoding="utf-8")
-    got = probe(chromium, path, tmp_path, width=1400, extra_js=_CHECKS)
+    got = probe(chromium, path, tmp_path, width=width, extra_js=_CHECKS)
+    # no horizontal page scroll and nothing to scroll sideways, wide or narrow
     assert got["scrollWidth"] <= got["innerWidth"], got
+    assert got["overflowing"] == [], got["overflowing"]
     assert got["errors"] == []
+    # the map keeps a usable size: more than half the window's width (the layer panel
+    # goes above the map in a narrow window), at least 300 px tall
+    assert got["extra"]["mapBox"][0] > width / 2 and got["extra"]["mapBox"][1] >= 300
     extra = got["extra"]
     n_rasters = 1 + len(run.taxa)  # hillshade and one suitability layer per taxon
     assert extra["images"] == {"loaded": n_rasters, "failed": 0, "total": n_rasters}
     first = run.sites.iloc[0]
     assert extra["cardSite"] == extra["firstSite"] == first["site_id"]
     assert f"Site {first['site_id']}" in extra["card"] and "Road <end>" in extra["card"]
+    # the card gives the site's MESS share and clamped share under their column names
+    assert f"novel_share (MESS < 0){100 * first['novel_share']:.0f}%" in extra["card"]
+    assert f"clamped_share{100 * first['clamped_share']:.0f}%" in extra["card"]
     assert extra["sitesHidden"] and extra["zoomed"]

@@ -72,6 +72,59 @@ def test_field_pack_names_sites_by_site_id_with_walking_routes(demo_run):
     assert all(f'data-site="{sid}"' in page for sid in cand["site_id"])
 
 
+@pytest.mark.slow
+@pytest.mark.parametrize("width", [1400, 800])
+def test_demo_report_and_map_page_fit_the_window(demo_run, tmp_path, width):
+    """The demo's report and map page in headless Chromium: no horizontal page scroll
+    at 1400 px nor in a narrow (tablet) window, no console error, every figure loads;
+    at 1400 px no table needs a sideways scroll of its own."""
+    from _browser import find_chromium, probe
+
+    chromium = find_chromium()
+    if chromium is None:
+        pytest.skip("chromium is not installed and could not be installed")
+    _, out, _ = demo_run
+    for name in ("report.html", "map.html"):
+        got = probe(chromium, out / name, tmp_path, width=width)
+        assert got["scrollWidth"] <= got["innerWidth"], (name, got)
+        assert got["errors"] == [], name
+        assert got["brokenImages"] == [], name
+        if width >= 1400 or name == "map.html":
+            assert got["overflowing"] == [], (name, got["overflowing"])
+    assert got["images"] == 0  # the map page's rasters are SVG images, checked below
+    page = (out / "map.html").read_text()
+    assert page.count('<image href="data:image/png;base64,') == 1 + len(DEMO_TRUTH["small"].taxa)
+
+
+@pytest.mark.slow
+def test_demo_field_sheets_in_poppler_text(demo_run):
+    """pdftotext (poppler) of the demo's field_sheets.pdf: one sheet per top site with
+    its identifier, the walk in from a named start point, and every caution in full."""
+    import subprocess
+
+    from _synthetic_run import ensure_debian_tool
+
+    from screener.outputs.cautions import CAUTIONS
+
+    exe = ensure_debian_tool("pdftotext", "poppler-utils")
+    if exe is None:
+        pytest.skip("pdftotext (poppler-utils) is absent and could not be installed")
+    project, out, _ = demo_run
+    text = subprocess.run([exe, str(out / "field_sheets.pdf"), "-"], capture_output=True,
+                          check=True, timeout=120).stdout.decode("utf-8", "replace")
+    pages = [" ".join(p.split()) for p in text.split("\f") if p.strip()]
+    cand = pd.read_csv(out / "candidates.csv")
+    starts = pd.read_csv(project.parent / "start_points.csv")["name"].tolist()
+    assert len(pages) == min(len(cand), 10)
+    for page, site in zip(pages, cand.to_dict("records"), strict=False):
+        assert f"Field sheet: site {site['site_id']} (rank {site['rank']})" in page
+        for heading, caution in CAUTIONS:
+            assert f"{heading}: {caution}" in page, (site["site_id"], heading)
+        walk = page[page.index("Walk in from "):]
+        assert any(walk.startswith(f"Walk in from {name}: ") for name in starts), walk[:80]
+        assert f"clamped_share {100 * site['clamped_share']:.0f}%" in page
+
+
 def test_unrecorded_massif_is_the_top_isolated_site(demo_run):
     _, out, _ = demo_run
     truth = DEMO_TRUTH["small"].unrecorded

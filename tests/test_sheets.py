@@ -173,6 +173,9 @@ def test_field_sheets_in_poppler_text(tmp_path, run):
         for heading, text in CAUTIONS:
             assert f"{heading}: {text}" in page, heading
         assert "elevation (m)" in page
+        # the site's MESS share and clamped share, under their candidates.csv names
+        assert f"novel_share (MESS < 0) {100 * site['novel_share']:.0f}%" in page
+        assert f"clamped_share {100 * site['clamped_share']:.0f}%" in page
 
 
 def test_sheet_walk_and_point_elevations(run):
@@ -202,3 +205,32 @@ def test_coordinate_precision_follows_the_cell():
 def test_field_sheets_bad_page_size(tmp_path, run):
     with pytest.raises(InputError, match="page_size"):
         write_field_sheets(tmp_path / "x.pdf", run, page_size="A3")
+
+
+def test_sheet_text_stays_on_the_page_with_long_names(run):
+    """Long taxon names and missing robustness figures wrap, not run off the page."""
+    import dataclasses
+
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+
+    from screener.outputs.sheets import _page, site_sampling_points
+
+    long_name = "Alpha " + "verylongepithet " * 12
+    long_run = dataclasses.replace(run, taxa={long_name if i == 0 else k: v
+                                              for i, (k, v) in enumerate(run.taxa.items())})
+    site = run.sites.iloc[0].to_dict()
+    site["nearest_taxon"] = long_name
+    pts = site_sampling_points(run, top_n=1)
+    fig = _page(long_run, site, pts, page_size="A4", n_sites=len(run.sites), marker=None,
+                score_cols=[c for c in run.sites.columns if c.startswith("score_")],
+                header="Project: test")
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    width = fig.bbox.width
+    for t in fig.texts:
+        box = t.get_window_extent(renderer)
+        assert 0 <= box.x0 and box.x1 <= width, t.get_text()[:60]
+    text = " ".join(" ".join(t.get_text() for t in fig.texts).split())
+    assert "Rank under random weightings of the score: not estimated" in text
+    assert "not estimated-not estimated" not in text

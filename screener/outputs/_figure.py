@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["subplots", "get_cmap", "literal_text"]
+__all__ = ["subplots", "get_cmap", "literal_text", "png_data_uri"]
 
 _FIGURE_KW = ("figsize", "dpi", "layout", "constrained_layout")
 
@@ -30,3 +30,16 @@ def literal_text(fig):
     for t in fig.findobj(Text):
         t.set_parse_math(False)
     return fig
+
+
+def png_data_uri(png: bytes) -> str:
+    """A PNG image as a ``data:`` URI, to inline it in an HTML page (no external file).
+
+    Examples
+    --------
+    >>> png_data_uri(b"\\x89PNG")
+    'data:image/png;base64,iVBORw=='
+    """
+    import base64
+
+    return "data:image/png;base64," + base64.b64encode(png).decode("ascii")

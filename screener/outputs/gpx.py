@@ -174,11 +174,23 @@ def write_gpx(
         "known localities. Walking tracks are model estimates from slope alone. Check "
         "permits, access and safety before any visit."
     )
-    site_rows = {}
-    for i, site in enumerate(sites.to_dict("records")):
+    site_rows = {str(site["site_id"]): site for site in sites.to_dict("records")}
+    # sampling points with their waypoint names; the one at a site's own point is the
+    # site's waypoint, which then carries its elevation
+    named, site_ele = [], {}
+    if sampling_points is not None and len(sampling_points):
+        pts = sampling_points[sampling_points["site_id"].astype(str).isin(site_rows)]
+        for sid, group in pts.groupby(pts["site_id"].astype(str), sort=False):
+            names = sampling_waypoint_names(site_rows[sid], group)
+            for j, (pt, name) in enumerate(
+                zip(group.to_dict("records"), names, strict=True)
+            ):
+                if name == sid:
+                    site_ele[sid] = pt.get("elevation_m")
+                else:
+                    named.append((sid, j, pt, name))
+    for i, (sid, site) in enumerate(site_rows.items()):
         rank = int(site["rank"])
-        sid = str(site["site_id"])
-        site_rows[sid] = site
         lon, lat = _check_lonlat(site["longitude"], site["latitude"], f"site row {i}")
         desc = (
             f"{site['kind']}, rank {rank}, suitability mean "
@@ -186,28 +198,20 @@ def write_gpx(
             f"{_fmt(site.get('max_suitability'), '.2f')}, {elevation_band(site)}"
         )
         _wpt(root, lon, lat, sid, f"site {sid}, rank {rank}", desc, _SITE_SYMBOL,
-             str(site["kind"]))
+             str(site["kind"]), ele=site_ele.get(sid))
     n_points = 0
-    if sampling_points is not None and len(sampling_points):
-        pts = sampling_points[sampling_points["site_id"].astype(str).isin(site_rows)]
-        for sid, group in pts.groupby(pts["site_id"].astype(str), sort=False):
-            site = site_rows[sid]
-            names = sampling_waypoint_names(site, group)
-            for j, (pt, name) in enumerate(
-                zip(group.to_dict("records"), names, strict=True)
-            ):
-                if name == sid:
-                    continue  # the site's own waypoint is this point
-                lon, lat = _check_lonlat(
-                    pt["longitude"], pt["latitude"], f"sampling point {j} of site {sid}"
-                )
-                desc = (
-                    f"sampling point {int(pt['point_id'])} of site {sid} (rank "
-                    f"{int(site['rank'])}), suitability {_fmt(pt.get('suitability'), '.2f')}"
-                )
-                _wpt(root, lon, lat, name, f"site {sid}", desc, _POINT_SYMBOL,
-                     ele=pt.get("elevation_m"))
-                n_points += 1
+    for sid, j, pt, name in named:
+        site = site_rows[sid]
+        lon, lat = _check_lonlat(
+            pt["longitude"], pt["latitude"], f"sampling point {j} of site {sid}"
+        )
+        desc = (
+            f"sampling point {int(pt['point_id'])} of site {sid} (rank "
+            f"{int(site['rank'])}), suitability {_fmt(pt.get('suitability'), '.2f')}"
+        )
+        _wpt(root, lon, lat, name, f"site {sid}", desc, _POINT_SYMBOL,
+             ele=pt.get("elevation_m"))
+        n_points += 1
     n_starts = 0
     if start_points is not None and len(start_points):
         for j, sp in enumerate(start_points.to_dict("records")):
@@ -217,8 +221,10 @@ def write_gpx(
                  _START_SYMBOL, "start point")
             n_starts += 1
     n_tracks = 0
-    for sid, route in (routes or {}).items():
-        if str(sid) not in site_rows:
+    routes = {str(k): v for k, v in (routes or {}).items()}
+    for sid in site_rows:  # in rank order
+        route = routes.get(sid)
+        if route is None:
             continue
         trk = ET.SubElement(root, "trk")
         ET.SubElement(trk, "name").text = f"{sid} route"

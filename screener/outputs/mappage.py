@@ -13,7 +13,6 @@ east-west to north-south cell width, so shapes are not stretched.
 
 from __future__ import annotations
 
-import base64
 import datetime as dt
 import html
 import io
@@ -24,6 +23,7 @@ import math
 import numpy as np
 
 from screener import __version__
+from screener.outputs._figure import png_data_uri
 from screener.project import default
 
 __all__ = ["render_map_page"]
@@ -46,7 +46,7 @@ def _png(rgba: np.ndarray) -> str:
 
     buf = io.BytesIO()
     mimage.imsave(buf, rgba, format="png")
-    return "data:image/png;base64," + base64.b64encode(buf.getvalue()).decode("ascii")
+    return png_data_uri(buf.getvalue())
 
 
 def _thin(arr: np.ndarray) -> np.ndarray:
@@ -75,6 +75,15 @@ def _num(v, spec=".2f", missing="n/a") -> str:
     except (TypeError, ValueError):
         return missing
     return format(f, spec) if math.isfinite(f) else missing
+
+
+def _pct(share) -> str:
+    """A share of a site's cells (0-1) as a percentage."""
+    try:
+        v = 100 * float(share)
+    except (TypeError, ValueError):
+        return "n/a"
+    return f"{v:.0f}% of the site" if math.isfinite(v) else "n/a"
 
 
 class _Pixels:
@@ -130,6 +139,8 @@ def _site_cards(result) -> dict:
             ["suitability", f"mean {_num(r.get('mean_suitability'))}, max "
                             f"{_num(r.get('max_suitability'))}"],
             ["model", models.get(sid, "")],
+            ["novel_share (MESS < 0)", _pct(r.get("novel_share"))],
+            ["clamped_share", _pct(r.get("clamped_share"))],
             ["nearest taxon", f"{r.get('nearest_taxon', '')} (gap "
                               f"{_num(r.get('gap_km'), '.1f')} km)"],
             ["score", f"{_num(r.get('score'), '.3f')} (robustness "
@@ -164,6 +175,9 @@ box-sizing:border-box;font-size:.9em}
 #card table{border-collapse:collapse;font-size:.9em}
 #card td{padding:.1em .4em;vertical-align:top}
 .note{color:#555;font-size:.85em}
+@media (max-width:700px){#wrap{flex-direction:column;height:auto}
+#side{width:auto;flex:none;border-right:0;border-bottom:1px solid #ccc}
+#mapbox{height:80vh;flex:none}}
 """
 
 _SCRIPT = r"""

@@ -12,7 +12,6 @@ escaped with :func:`html.escape`.
 
 from __future__ import annotations
 
-import base64
 import datetime as dt
 import html
 import json
@@ -23,6 +22,7 @@ import numpy as np
 
 from screener import __version__
 from screener.outputs import maps
+from screener.outputs._figure import png_data_uri
 from screener.outputs.cautions import cautions_html
 from screener.outputs.privacy import FULL_PRECISION_MARKER, has_full_precision_sensitive
 from screener.project import default
@@ -54,7 +54,7 @@ figcaption{font-size:.85em;color:#444}
 dl.cautions dt{font-weight:bold;margin-top:.6em}dl.cautions dd{margin-left:1em}
 pre{white-space:pre-wrap;overflow-wrap:anywhere;font-size:.8em;background:#f7f7f7;
 padding:.8em;border:1px solid #ddd}
-nav a{margin-right:1em;white-space:nowrap}
+nav{display:flex;flex-wrap:wrap;gap:.2em 1em}nav a{white-space:nowrap}
 """
 
 
@@ -82,6 +82,12 @@ def _cell(value) -> str:
     return f"<td>{_e(value)}</td>"
 
 
+def _header(column) -> str:
+    """A column name, escaped, that may break after its underscores (so that a table
+    of long column names such as ``score_isolation_history`` fits a narrow page)."""
+    return _e(column).replace("_", "_<wbr>")
+
+
 def html_table(rows, columns=None, *, caption: str | None = None) -> str:
     """An HTML table from a list of dicts (or a DataFrame), values escaped."""
     if hasattr(rows, "to_dict"):
@@ -100,7 +106,7 @@ def html_table(rows, columns=None, *, caption: str | None = None) -> str:
         out.append(f"<caption>{_e(caption)}</caption>")
     out.append(
         "<thead><tr>"
-        + "".join(f"<th>{_e(c)}</th>" for c in columns)
+        + "".join(f"<th>{_header(c)}</th>" for c in columns)
         + "</tr></thead><tbody>"
     )
     for r in rows:
@@ -111,9 +117,9 @@ def html_table(rows, columns=None, *, caption: str | None = None) -> str:
 
 def _figure(fig_or_ax, caption: str, alt: str) -> str:
     fig = getattr(fig_or_ax, "figure", fig_or_ax)
-    data = base64.b64encode(maps.figure_to_png_bytes(fig)).decode("ascii")
+    uri = png_data_uri(maps.figure_to_png_bytes(fig))
     return (
-        f'<figure><img alt="{_e(alt)}" src="data:image/png;base64,{data}">'
+        f'<figure><img alt="{_e(alt)}" src="{uri}">'
         f"<figcaption>{_e(caption)}</figcaption></figure>"
     )
 
@@ -232,7 +238,7 @@ def _overlap(result) -> str:
         )
     ov = result.overlap
     if ov is not None and len(ov):
-        out.append(html_table(ov))
+        out.extend(_overlap_tables(ov))
     else:
         out.append('<p class="note">No niche overlap was computed.</p>')
     out.append(
@@ -248,6 +254,31 @@ def _overlap(result) -> str:
     )
     out.extend(_overlap_figures(result))
     return "\n".join(out)
+
+
+#: overlap.csv columns that name a compared pair; they start each overlap table
+_PAIR_COLUMNS = ("taxon_a", "taxon_b", "space")
+#: overlap.csv columns of the tests' precision, left to the file (the readings cite them)
+_PRECISION_SUFFIXES = ("_se", "_replicates")
+
+
+def _overlap_tables(ov) -> list:
+    """overlap.csv as two tables that fit the page: D, I and the tests' p-values, then
+    niche breadth and dynamics; each p-value's Monte Carlo error and replicate count
+    stay in the file."""
+    cols = [str(c) for c in ov.columns]
+    keys = [c for c in _PAIR_COLUMNS if c in cols]
+    shown = [c for c in cols if c not in keys and not c.endswith(_PRECISION_SUFFIXES)]
+    tests = [c for c in shown if c in ("D", "I", "D_tested", "n_replicates")
+             or "_p" in c]
+    rest = [c for c in shown if c not in tests]
+    out = [html_table(ov, keys + tests, caption="Overlap and its tests (p-values with "
+                      "their Holm-corrected values; standard errors and replicate "
+                      "counts are in overlap.csv)")]
+    if rest:
+        out.append(html_table(ov, keys + rest, caption="Niche breadth and niche "
+                              "dynamics of each pair"))
+    return out
 
 
 def _overlap_figures(result) -> list:
@@ -303,6 +334,10 @@ def _plan_rows(result) -> list:
             f"{float(r['longitude']):.{decimals}f}",
             "area (km²)": r.get("area_km2", math.nan),
             "suitability (mean)": r.get("mean_suitability", math.nan),
+            # the candidates.csv names: share of cells with MESS < 0, and of cells
+            # where a model's predictors were clamped to its calibration range
+            "novel_share": r.get("novel_share", math.nan),
+            "clamped_share": r.get("clamped_share", math.nan),
             "model": models.get(sid, ""),
             "gap (km)": r.get("gap_km", math.nan),
             "walk from": route.start_name if route else "",
@@ -334,7 +369,10 @@ def _plan(result) -> str:
             _plan_rows(result),
             caption=f"Ranked plan. Walk: slope-only estimate from the nearest start "
             f"point; days at a {day:g} h walking day (common practice 6-8 h). "
-            "Robustness: share of random weightings that keep the site among the top.",
+            "Robustness: share of random weightings that keep the site among the top. "
+            "novel_share: share of the site's cells in novel environments (MESS < 0); "
+            "clamped_share: share where a model's predictors lay outside its "
+            "calibration range and were clamped.",
         )
     )
     score_cols = [c for c in sites.columns if str(c).startswith("score_")]
@@ -375,8 +413,8 @@ def _conclusion(result) -> str:
     top = sites.iloc[0]
     sid = str(top["site_id"])
     why = (
-        f"Go first to site <strong>{_e(sid)}</strong>: a {_e(top.get('kind', ''))} "
-        f"patch of {_fmt(top.get('area_km2'), ',.1f')} km²"
+        f"Go first to site <strong>{_e(sid)}</strong>: {_article(top.get('kind', ''))} "
+        f"{_e(top.get('kind', ''))} patch of {_fmt(top.get('area_km2'), ',.1f')} km²"
     )
     if math.isfinite(_float(top.get("gap_km"))) and _float(top.get("gap_km")) > 0:
         why += (
@@ -408,10 +446,10 @@ def _conclusion(result) -> str:
             reasons.append(f"more than two walking days ({walk:.0f} h)")
         if not math.isfinite(walk) and routes:
             reasons.append("no walking route from any start point")
-        if _float(r.get("novel_share")) > 0.25:
-            reasons.append(
-                f"{100 * _float(r.get('novel_share')):.0f}% novel environment"
-            )
+        for col, words in (("novel_share", "novel environment (MESS < 0)"),
+                           ("clamped_share", "clamped predictors")):
+            if _float(r.get(col)) > 0.25:
+                reasons.append(f"{col} {100 * _float(r.get(col)):.0f}%: {words}")
         if _float(r.get("rank_robustness")) < 0.5:
             reasons.append("its rank depends on the weights")
         if _float(r.get("refit_suitable")) < 0.5:
@@ -435,6 +473,10 @@ def _conclusion(result) -> str:
         "site may hold nothing, and finding nothing is not proof of absence."
     )
     return '<div class="conclusion">' + "".join(f"<p>{i}</p>" for i in items) + "</div>"
+
+
+def _article(word) -> str:
+    return "an" if str(word)[:1].lower() in "aeiou" and str(word) else "a"
 
 
 def _float(v) -> float:
@@ -535,14 +577,19 @@ _DROPPED_SHOWN = 20
 def _novelty(result) -> str:
     items = [str(w) for w in (result.warnings or [])]
     sites = result.sites
-    if sites is not None and len(sites) and "novel_share" in sites.columns:
-        novel = sites[sites["novel_share"].astype(float) > 0]
-        for r in novel.to_dict("records"):
-            items.append(
-                f"Site {r['site_id']} (rank {int(r['rank'])}): "
-                f"{100 * float(r['novel_share']):.0f}% of its cells lie in "
-                "environments outside the calibration range."
-            )
+    if sites is not None and len(sites):
+        for r in sites.to_dict("records"):
+            novel, clamped = _float(r.get("novel_share")), _float(r.get("clamped_share"))
+            parts = []
+            if novel > 0:
+                parts.append(f"novel_share {100 * novel:.0f}% (cells in environments "
+                             "outside the calibration range, MESS < 0)")
+            if clamped > 0:
+                parts.append(f"clamped_share {100 * clamped:.0f}% (cells where a "
+                             "model's predictors were clamped to its calibration range)")
+            if parts:
+                items.append(f"Site {r['site_id']} (rank {int(r['rank'])}): "
+                             + "; ".join(parts) + ".")
     if not items:
         return '<p class="note">No warnings.</p>'
     return "<ul>" + "".join(f"<li>{_e(i)}</li>" for i in items) + "</ul>"
@@ -611,7 +658,7 @@ def render_report(result, *, title: str | None = None) -> str:
         ("cautions", "Cautions", cautions_html()),
         ("provenance", "Provenance", _provenance(result)),
     ]
-    nav = "".join(f'<a href="#{sid}">{_e(head)}</a>' for sid, head, _ in sections)
+    nav = "\n".join(f'<a href="#{sid}">{_e(head)}</a>' for sid, head, _ in sections)
     body = [f"<h1>{_e(title)}</h1>"]
     if marker:
         body.append(

@@ -446,6 +446,12 @@ def _num(v, spec=".2f", missing="not estimated"):
     return format(f, spec) if math.isfinite(f) else missing
 
 
+def _share_pct(v) -> str:
+    """A share of a site's cells (0-1) as a percentage, or 'not estimated'."""
+    pct = _num(100 * _float0(v), ".0f")
+    return pct if pct == "not estimated" else f"{pct}%"
+
+
 def _walk_lines(result, site) -> list[str]:
     route = (getattr(result, "routes", None) or {}).get(str(site["site_id"]))
     day = float((result.settings.get("access") or {}).get("walking_day_hours", default("access", "walking_day_hours")))
@@ -473,7 +479,6 @@ def _facts(result, site, n_sites) -> list[str]:
                f"{_round_to(u.northing, step_m):.0f} N (to {step_m} m)")
     except InputError:
         utm = "outside the UTM range (polar)"
-    novel = site.get("novel_share")
     taxon, th, use = site_model(result, site)
     th_txt = (f"suitable at or above its {THRESHOLD_WORDS.get(use, use)} threshold, "
               f"{th.value:.3f}"
@@ -484,22 +489,39 @@ def _facts(result, site, n_sites) -> list[str]:
         f"{elevation_band(site)}",
         f"Point (WGS84): lat {lat:.{decimals}f}, lon {lon:.{decimals}f} "
         f"(to {decimals} decimals, matched to the cell size)    UTM: {utm}",
-        f"Suitability from the {taxon} model (consensus of its families); {th_txt}",
+        f"Suitability from the {taxon} model (consensus of its families):",
+        f"    {th_txt}",
         f"Suitability: mean {_num(site.get('mean_suitability'))}, max "
         f"{_num(site.get('max_suitability'))}    agreement "
-        f"{_num(site.get('agreement'))}    novel environment "
-        f"{_num(100 * float(novel) if novel is not None else None, '.0f')}% of site",
+        f"{_num(site.get('agreement'))}",
+        f"Extrapolation: novel_share (MESS < 0) {_share_pct(site.get('novel_share'))} of "
+        f"the site; clamped_share {_share_pct(site.get('clamped_share'))} (predictors "
+        "outside a model's calibration range, clamped)",
         f"Nearest known taxon: {site.get('nearest_taxon', 'n/a')}    nearest record "
         f"{_num(site.get('nearest_record_km'), '.1f')} km    gap "
         f"{_num(site.get('gap_km'), '.1f')} km    barrier depth "
         f"{_num(site.get('barrier_depth'))}",
         *_walk_lines(result, site),
-        f"Rank {_num(site.get('rank_low'), '.0f')}-{_num(site.get('rank_high'), '.0f')} "
-        "under 90 % of random weightings of the score; kept by bootstrap refits of the "
-        f"records: suitable {_num(100 * _float0(site.get('refit_suitable')), '.0f')}%, "
-        f"isolated {_num(100 * _float0(site.get('refit_isolated')), '.0f')}%, top sites "
-        f"{_num(100 * _float0(site.get('refit_top_k')), '.0f')}%",
+        _robustness_line(site),
     ]
+
+
+def _robustness_line(site) -> str:
+    """How stable the site's rank is: under random weightings, and under refits."""
+    lo, hi = _float0(site.get("rank_low")), _float0(site.get("rank_high"))
+    if math.isfinite(lo) and math.isfinite(hi):
+        text = f"Rank {lo:.0f}-{hi:.0f} under 90 % of random weightings of the score"
+    else:
+        text = "Rank under random weightings of the score: not estimated"
+    shares = [(w, _float0(site.get(c))) for w, c in (("suitable", "refit_suitable"),
+                                                       ("isolated", "refit_isolated"),
+                                                       ("top sites", "refit_top_k"))]
+    if any(math.isfinite(v) for _, v in shares):
+        text += "; kept by bootstrap refits of the records: " + ", ".join(
+            f"{w} {_share_pct(v)}" for w, v in shares)
+    else:
+        text += "; bootstrap refits of the records: not run"
+    return text
 
 
 def _write_no_sites_sheet(path: Path, result, page_size: str) -> Path:
@@ -633,6 +655,10 @@ def _caution_lines(width: int = 140) -> list:
     return out
 
 
+#: Characters of 7.5 pt text that fit between the page margins of A4 and letter
+_FACT_CHARS = 125
+
+
 def _page(result, site, points, *, page_size, n_sites, marker, score_cols, header):
     w, h = PAGE_SIZES_IN[page_size]
     fig = Figure(figsize=(w, h))
@@ -673,9 +699,12 @@ def _page(result, site, points, *, page_size, n_sites, marker, score_cols, heade
                         caption=False)
     zoom_ax.set_title("Site", fontsize=8, loc="left")
     y = 0.625
-    for line in _facts(result, site, n_sites):
-        fig.text(0.06, y, line, fontsize=7.5, va="top")
-        y -= 0.0155
+    for fact in _facts(result, site, n_sites):
+        # long names (taxa, start points) wrap rather than run off the page
+        for line in textwrap.wrap(fact, _FACT_CHARS, subsequent_indent="    ",
+                                  break_on_hyphens=False) or [""]:
+            fig.text(0.06, y, line, fontsize=7.5, va="top")
+            y -= 0.0155
     if score_cols:
         sc_ax = fig.add_axes((0.22, y - 0.085, 0.5, 0.07))
         _score_panel(sc_ax, site, score_cols)
