@@ -175,3 +175,20 @@ def test_no_label_overprints_another_or_leaves_the_image(geographic):
         for i, a in enumerate(degree):
             for b in degree[:i]:
                 assert not a.overlaps(b), "graticule labels overprint"
+
+
+def test_site_zoom_contour_labels_lie_on_the_map():
+    """Contours are drawn for the zoomed window only: every contour label lies inside
+    the axes (labels outside are clipped from view but stay in a PDF's text)."""
+    from matplotlib.text import Text
+
+    run = make_run()
+    for site in run.sites.head(3).to_dict("records"):
+        ax = maps.plot_site_zoom(run, site, caption=False)
+        (x0, x1), (y0, y1) = sorted(ax.get_xlim()), sorted(ax.get_ylim())
+        labels = [t for t in ax.findobj(Text) if t.get_text().endswith(" m")
+                  and t in ax.texts]
+        assert labels, site["site_id"]  # the synthetic terrain has relief to label
+        for t in labels:
+            x, y = t.get_position()
+            assert x0 <= x <= x1 and y0 <= y <= y1, (site["site_id"], t.get_text())

@@ -765,7 +765,16 @@ def plot_site_zoom(
     if result.elevation is not None:
         _background(ax, result)
         xc, yc = _centres(grid)
+        # contours of the window only: their interval suits the site's relief, and no
+        # label lands outside the map (clipped labels still fill the PDF's text)
+        cols = np.flatnonzero((xc >= window[0]) & (xc <= window[1]))
+        rows = np.flatnonzero((yc >= window[2]) & (yc <= window[3]))
         z = np.asarray(result.elevation, float)
+        if cols.size >= 2 and rows.size >= 2:
+            z = z[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+            xc, yc = xc[cols[0]:cols[-1] + 1], yc[rows[0]:rows[-1] + 1]
+        else:
+            z = np.full((1, 1), np.nan)
         if np.isfinite(z).sum() > 4 and np.nanmax(z) > np.nanmin(z):
             cs = ax.contour(
                 xc, yc, z, levels=12, colors="0.1", linewidths=0.5, zorder=3
