@@ -71,6 +71,7 @@ __all__ = [
     "geographic_overlap",
     "levins_breadth",
     "EnvironmentalSpace",
+    "TaxonOccupancy",
     "environmental_space",
     "record_bandwidth",
     "environmental_overlap",
@@ -87,6 +88,7 @@ __all__ = [
     "estimate_seconds",
     "SpaceComparison",
     "PairComparison",
+    "OverlapTaxon",
     "compare_pair",
     "pairwise_table",
     "OVERLAP_COLUMNS",
@@ -416,14 +418,57 @@ def _record_density(scores, nodes, available_cov) -> np.ndarray:
     return _kernel_sum(scores, nodes, bw) / len(scores)
 
 
-@dataclass(eq=False)
+@dataclass(frozen=True, eq=False)
+class TaxonOccupancy:
+    """One taxon in an :class:`EnvironmentalSpace`.
+
+    Attributes
+    ----------
+    scores_records : ndarray of shape (n, 2)
+        Principal-axis scores of the records.
+    scores_background : ndarray of shape (m, 2)
+        Scores of the taxon's own accessible environment (the similarity test draws
+        from it).
+    bandwidth : ndarray of shape (2, 2)
+        Kernel covariance of the record density (:func:`record_bandwidth`).
+    available : ndarray of bool (G, G)
+        The taxon's own available environment for niche dynamics: cells holding its
+        accessible environment whose density is at least the ``available_quantile``
+        of the density over those cells.
+    z_occ : ndarray (G, G)
+        Kernel density of the records (per unit score area).
+    occupancy : ndarray (G, G)
+        ``z_occ / z_env`` on the support, 0 elsewhere, scaled to max 1.
+    xy_records, xy_background : ndarray of shape (n, 2) and (m, 2), or None
+        Coordinates of the records and accessible cells, in the rows' order; with
+        them the tests can keep the records' spatial structure.
+    """
+
+    scores_records: np.ndarray
+    scores_background: np.ndarray
+    bandwidth: np.ndarray
+    available: np.ndarray
+    z_occ: np.ndarray
+    occupancy: np.ndarray
+    xy_records: np.ndarray | None = None
+    xy_background: np.ndarray | None = None
+
+
+#: Fields of :class:`TaxonOccupancy`, still readable from the space under their old
+#: pair names (``occupancy_a`` is ``space.a.occupancy``).
+_PER_TAXON = tuple(TaxonOccupancy.__dataclass_fields__)
+
+
+@dataclass(frozen=True, eq=False)
 class EnvironmentalSpace:
     """Two taxa's records on a grid over a two-axis summary of the shared environment.
 
     Build it with :func:`environmental_space`.  Surfaces are ``(G, G)`` arrays, rows
     along the second principal axis and columns along the first (see the module
     docstring).  The available environment and its density are **shared by the
-    pair**, so two taxa with the same records have the same occupancy (D = 1).
+    pair**, so two taxa with the same records have the same occupancy (D = 1).  What
+    belongs to one taxon is in ``a`` and ``b``; the old pair names
+    (``occupancy_a``, ``scores_records_b``, ...) still read.
 
     Attributes
     ----------
@@ -434,33 +479,19 @@ class EnvironmentalSpace:
         ``G``, grid cells along each principal axis.
     pc1_edges, pc2_edges : ndarray of shape (G + 1,)
         Cell edges along each axis, in score units.
-    scores_records_a, scores_records_b : ndarray of shape (n, 2)
-    scores_background_a, scores_background_b : ndarray of shape (m, 2)
-        Each taxon's own accessible environment (the similarity test draws from it).
     scores_available : ndarray of shape (k, 2)
         The shared available environment.
     available_cov : ndarray of shape (2, 2)
         Covariance of ``scores_available`` (enters every record bandwidth).
-    bandwidth_a, bandwidth_b : ndarray of shape (2, 2)
-        Kernel covariance of each taxon's record density (:func:`record_bandwidth`).
     z_env : ndarray (G, G)
         Density of the shared available environment, scaled to max 1.
     support : ndarray of bool (G, G)
         Cells where occupancy is defined: ``z_env`` at least its value at the
         ``support_quantile`` of the available points.
-    available_a, available_b : ndarray of bool (G, G)
-        Each taxon's own available environment for niche dynamics: cells holding its
-        accessible environment whose density is at least the ``available_quantile``
-        of the density over those cells.
-    z_occ_a, z_occ_b : ndarray (G, G)
-        Kernel density of the records (per unit score area).
-    occupancy_a, occupancy_b : ndarray (G, G)
-        ``z_occ / z_env`` on the support, 0 elsewhere, scaled to max 1.
-    xy_records_a, xy_records_b, xy_background_a, xy_background_b : ndarray or None
-        Coordinates (n, 2) of the records and accessible cells above, in the rows'
-        order; when given, the tests keep the records' spatial structure.
+    a, b : TaxonOccupancy
+        Each taxon's records, accessible environment, densities and occupancy.
     lonlat : bool
-        The coordinates are longitude, latitude (degrees); else x, y in km.
+        The taxa's coordinates are longitude, latitude (degrees); else x, y in km.
     """
 
     scaler: StandardScaler
@@ -468,37 +499,38 @@ class EnvironmentalSpace:
     grid_cells: int
     pc1_edges: np.ndarray
     pc2_edges: np.ndarray
-    scores_records_a: np.ndarray
-    scores_records_b: np.ndarray
-    scores_background_a: np.ndarray
-    scores_background_b: np.ndarray
     scores_available: np.ndarray
     available_cov: np.ndarray
-    bandwidth_a: np.ndarray
-    bandwidth_b: np.ndarray
     z_env: np.ndarray
     support: np.ndarray
-    available_a: np.ndarray
-    available_b: np.ndarray
-    z_occ_a: np.ndarray
-    z_occ_b: np.ndarray
-    occupancy_a: np.ndarray
-    occupancy_b: np.ndarray
+    a: TaxonOccupancy
+    b: TaxonOccupancy
     support_quantile: float = 0.0
     available_quantile: float = 0.05
     predictor_names: tuple = ()
-    xy_records_a: np.ndarray | None = None
-    xy_records_b: np.ndarray | None = None
-    xy_background_a: np.ndarray | None = None
-    xy_background_b: np.ndarray | None = None
     lonlat: bool = True
+
+    def __getattr__(self, name: str):
+        # old pair names: ``occupancy_a`` -> ``a.occupancy``
+        field_name, _, which = name.rpartition("_")
+        if which in ("a", "b") and field_name in _PER_TAXON:
+            return getattr(self.taxon(which), field_name)
+        raise AttributeError(
+            f"{type(self).__name__!r} object has no attribute {name!r}"
+        )
+
+    def taxon(self, which: str) -> TaxonOccupancy:
+        """``a`` or ``b`` by letter."""
+        if which not in ("a", "b"):
+            raise InputError(f"taxon must be 'a' or 'b'; got {which!r}.")
+        return self.a if which == "a" else self.b
 
     @property
     def has_places(self) -> bool:
         """Records and accessible cells carry coordinates (tests keep spatial structure)."""
         return all(
-            getattr(self, f"xy_{kind}_{w}") is not None
-            for kind in ("records", "background") for w in "ab"
+            t.xy_records is not None and t.xy_background is not None
+            for t in (self.a, self.b)
         )
 
     @property
@@ -517,8 +549,7 @@ class EnvironmentalSpace:
     @property
     def nodes(self) -> np.ndarray:
         """Cell centres as ``(G * G, 2)`` (PC1, PC2) scores, in row-major order."""
-        c1, c2 = np.meshgrid(self.pc1_centres, self.pc2_centres, indexing="xy")
-        return np.column_stack([c1.ravel(), c2.ravel()])
+        return _nodes(self.pc1_edges, self.pc2_edges)
 
     @property
     def explained_variance_ratio(self) -> np.ndarray:
@@ -535,19 +566,11 @@ class EnvironmentalSpace:
     @property
     def analogue(self) -> np.ndarray:
         """Cells available to both taxa (analogue environment), bool (G, G)."""
-        return self.available_a & self.available_b
+        return self.a.available & self.b.available
 
     def cell_of(self, scores) -> tuple[np.ndarray, np.ndarray]:
         """Grid ``(rows, cols)`` (PC2 bin, PC1 bin) of score points, clipped inside."""
-        scores = np.asarray(scores, float)
-        g = self.grid_cells
-        col = np.clip(
-            np.searchsorted(self.pc1_edges, scores[:, 0], "right") - 1, 0, g - 1
-        )
-        row = np.clip(
-            np.searchsorted(self.pc2_edges, scores[:, 1], "right") - 1, 0, g - 1
-        )
-        return row, col
+        return _cell_of(self.pc1_edges, self.pc2_edges, scores)
 
     def transform(self, env) -> np.ndarray:
         """Principal-axis scores (n, 2) of predictor rows (n, n_vars)."""
@@ -563,8 +586,23 @@ class EnvironmentalSpace:
 
     def analogue_share(self, which: str) -> float:
         """Share of taxon ``which``'s records lying in analogue environment."""
-        rows, cols = self.cell_of(getattr(self, f"scores_records_{which}"))
+        rows, cols = self.cell_of(self.taxon(which).scores_records)
         return float(np.mean(self.analogue[rows, cols]))
+
+
+def _cell_of(pc1_edges, pc2_edges, scores) -> tuple[np.ndarray, np.ndarray]:
+    scores = np.asarray(scores, float)
+    g = len(pc1_edges) - 1
+    col = np.clip(np.searchsorted(pc1_edges, scores[:, 0], "right") - 1, 0, g - 1)
+    row = np.clip(np.searchsorted(pc2_edges, scores[:, 1], "right") - 1, 0, g - 1)
+    return row, col
+
+
+def _nodes(pc1_edges, pc2_edges) -> np.ndarray:
+    c1 = 0.5 * (pc1_edges[:-1] + pc1_edges[1:])
+    c2 = 0.5 * (pc2_edges[:-1] + pc2_edges[1:])
+    g1, g2 = np.meshgrid(c1, c2, indexing="xy")
+    return np.column_stack([g1.ravel(), g2.ravel()])
 
 
 def _occupancy(z_occ, inv_env) -> np.ndarray:
@@ -590,28 +628,32 @@ def _grid_cells_argument(grid_cells, resolution) -> int:
     return g
 
 
-def _own_available(scores_bg, z_own, space_like, quantile) -> np.ndarray:
+def _own_available(scores_bg, z_own, edges, quantile) -> np.ndarray:
     """Cells holding a taxon's accessible environment, marginal cells dropped.
 
     The marginal quantile is taken over the cells (each cell counts once), not over
     background points, which would weight it by how common each environment is.
     """
-    rows, cols = space_like.cell_of(scores_bg)
+    rows, cols = _cell_of(*edges, scores_bg)
     holds = np.zeros(z_own.shape, bool)
     holds[rows, cols] = True
     cut = np.quantile(z_own[holds], quantile) if quantile > 0 else 0.0
     return holds & (z_own >= cut)
 
 
-def _attach_places(space, places, rows) -> None:
+def _checked_places(places, rows) -> tuple:
+    """The four coordinate arrays of ``places``, checked against their rows."""
     from screener.randomisation import _xy
 
     names = ("records_a", "records_b", "background_a", "background_b")
+    if places is None:
+        return (None,) * 4
     if len(places) != 4:
         raise InputError(
             "places must hold 4 coordinate arrays: records of A, records of B, "
             "background of A, background of B."
         )
+    out = []
     for name, xy, env in zip(names, places, rows, strict=True):
         xy = _xy(xy, f"places ({name})")
         if len(xy) != len(env):
@@ -619,7 +661,8 @@ def _attach_places(space, places, rows) -> None:
                 f"places ({name}) has {len(xy)} coordinates for {len(env)} "
                 "predictor rows; give one per row."
             )
-        setattr(space, f"xy_{name}", xy)
+        out.append(xy)
+    return tuple(out)
 
 
 def environmental_space(
@@ -747,44 +790,18 @@ def environmental_space(
             "it over a wider area or use predictors that vary there."
         )
     shape = (grid_cells, grid_cells)
-    space = EnvironmentalSpace(
-        scaler=scaler,
-        pca=pca,
-        grid_cells=grid_cells,
-        pc1_edges=e1,
-        pc2_edges=e2,
-        scores_records_a=sra,
-        scores_records_b=srb,
-        scores_background_a=sba,
-        scores_background_b=sbb,
-        scores_available=sav,
-        available_cov=av_cov,
-        bandwidth_a=record_bandwidth(sra, av_cov),
-        bandwidth_b=record_bandwidth(srb, av_cov),
-        z_env=None,
-        support=None,
-        available_a=None,
-        available_b=None,
-        z_occ_a=None,
-        z_occ_b=None,
-        occupancy_a=None,
-        occupancy_b=None,
-        support_quantile=float(support_quantile),
-        available_quantile=float(available_quantile),
-        predictor_names=tuple(predictor_names or ()),
-        lonlat=bool(lonlat),
-    )
-    if places is not None:
-        _attach_places(space, places, (ra, rb, ba, bb))
-    nodes = space.nodes
+    xy_ra, xy_rb, xy_ba, xy_bb = _checked_places(places, (ra, rb, ba, bb))
+    nodes = _nodes(e1, e2)
     z_env = _scott_density(sav, nodes).reshape(shape)
     z_env = z_env / z_env.max()
-    rows, cols = space.cell_of(sav)
-    space.z_env = z_env
-    space.support = z_env >= max(np.quantile(z_env[rows, cols], support_quantile), 1e-300)
-    for which, sb, sr, bw in (
-        ("a", sba, sra, space.bandwidth_a),
-        ("b", sbb, srb, space.bandwidth_b),
+    rows, cols = _cell_of(e1, e2, sav)
+    support = z_env >= max(np.quantile(z_env[rows, cols], support_quantile), 1e-300)
+    inverse_env = np.zeros_like(z_env)
+    inverse_env[support] = 1.0 / z_env[support]
+    taxa = {}
+    for which, sb, sr, xy_r, xy_b in (
+        ("a", sba, sra, xy_ra, xy_ba),
+        ("b", sbb, srb, xy_rb, xy_bb),
     ):
         try:
             z_own = _scott_density(sb, nodes).reshape(shape)
@@ -793,20 +810,42 @@ def environmental_space(
                 f"the accessible environment of taxon {which.upper()} does not vary "
                 "along both principal axes; draw it over a wider accessible area."
             ) from err
-        setattr(
-            space,
-            f"available_{which}",
-            _own_available(sb, z_own, space, available_quantile),
-        )
+        bw = record_bandwidth(sr, av_cov)
         z_occ = (_kernel_sum(sr, nodes, bw) / len(sr)).reshape(shape)
-        setattr(space, f"z_occ_{which}", z_occ)
-        setattr(space, f"occupancy_{which}", _occupancy(z_occ, space.inverse_env))
-        if not getattr(space, f"occupancy_{which}").max() > 0:
+        occupancy = _occupancy(z_occ, inverse_env)
+        if not occupancy.max() > 0:
             raise InputError(
                 f"taxon {which.upper()}'s records lie outside the available "
                 "environment; draw the available environment over the area around "
                 "its records."
             )
+        taxa[which] = TaxonOccupancy(
+            scores_records=sr,
+            scores_background=sb,
+            bandwidth=bw,
+            available=_own_available(sb, z_own, (e1, e2), available_quantile),
+            z_occ=z_occ,
+            occupancy=occupancy,
+            xy_records=xy_r,
+            xy_background=xy_b,
+        )
+    space = EnvironmentalSpace(
+        scaler=scaler,
+        pca=pca,
+        grid_cells=grid_cells,
+        pc1_edges=e1,
+        pc2_edges=e2,
+        scores_available=sav,
+        available_cov=av_cov,
+        z_env=z_env,
+        support=support,
+        a=taxa["a"],
+        b=taxa["b"],
+        support_quantile=float(support_quantile),
+        available_quantile=float(available_quantile),
+        predictor_names=tuple(predictor_names or ()),
+        lonlat=bool(lonlat),
+    )
     log.debug(
         "environmental space: G=%d, PC1+PC2 explain %.0f%% of the available variance",
         grid_cells,
@@ -822,7 +861,7 @@ def environmental_overlap(space: EnvironmentalSpace) -> tuple[float, float]:
     ----------
     .. [1] Broennimann, O. et al. (2012). Global Ecology and Biogeography 21, 481-497.
     """
-    pn, qn = _normalised_pair(space.occupancy_a, space.occupancy_b)
+    pn, qn = _normalised_pair(space.a.occupancy, space.b.occupancy)
     return _d_from_normalised(pn, qn), _i_from_normalised(pn, qn)
 
 
@@ -835,8 +874,8 @@ def niche_breadth(space: EnvironmentalSpace) -> tuple[float, float]:
         Breadth of A and of B, each in [0, 1] with ``N`` = the support cells.
     """
     return (
-        levins_breadth(space.occupancy_a[space.support]),
-        levins_breadth(space.occupancy_b[space.support]),
+        levins_breadth(space.a.occupancy[space.support]),
+        levins_breadth(space.b.occupancy[space.support]),
     )
 
 
@@ -873,11 +912,11 @@ def niche_dynamics(space: EnvironmentalSpace) -> dict[str, float]:
     analog = space.analogue
     occupied = {}
     for which in ("a", "b"):
-        z = getattr(space, f"z_occ_{which}")
-        rows, cols = space.cell_of(getattr(space, f"scores_records_{which}"))
-        occupied[which] = z >= z[rows, cols].min()
-    za = np.where(analog & occupied["a"], space.z_occ_a, 0.0)
-    zb = np.where(analog & occupied["b"], space.z_occ_b, 0.0)
+        taxon = space.taxon(which)
+        rows, cols = space.cell_of(taxon.scores_records)
+        occupied[which] = taxon.z_occ >= taxon.z_occ[rows, cols].min()
+    za = np.where(analog & occupied["a"], space.a.z_occ, 0.0)
+    zb = np.where(analog & occupied["b"], space.b.z_occ, 0.0)
     nan = float("nan")
     stability = float(zb[occupied["a"]].sum() / zb.sum()) if zb.sum() > 0 else nan
     unfilling = float(za[~occupied["b"]].sum() / za.sum()) if za.sum() > 0 else nan
@@ -1189,11 +1228,12 @@ def equivalency_test(
     """
     n = _check_replicates(n_replicates)
     clusters = None
-    if cluster_km > 0 and space.xy_records_a is not None and space.xy_records_b is not None:
+    if cluster_km > 0 and space.a.xy_records is not None and (
+            space.b.xy_records is not None):
         from screener.randomisation import spatial_clusters
 
         clusters = spatial_clusters(
-            np.vstack([space.xy_records_a, space.xy_records_b]), cluster_km,
+            np.vstack([space.a.xy_records, space.b.xy_records]), cluster_km,
             lonlat=space.lonlat,
         )
     task = _EnvTask(
@@ -1201,8 +1241,8 @@ def equivalency_test(
         shape=space.z_env.shape,
         inv_env=space.inverse_env.ravel(),
         available_cov=space.available_cov,
-        pool=np.vstack([space.scores_records_a, space.scores_records_b]),
-        n_a=len(space.scores_records_a),
+        pool=np.vstack([space.a.scores_records, space.b.scores_records]),
+        n_a=len(space.a.scores_records),
         clusters=clusters,
     )
     values = _batched(
@@ -1284,28 +1324,29 @@ def similarity_test(
     n = _check_replicates(n_replicates)
     if direction not in ("ab", "ba"):
         raise InputError(f"direction must be 'ab' or 'ba'; got {direction!r}.")
-    fixed, moved = ("a", "b") if direction == "ab" else ("b", "a")
+    fixed, moved = (
+        (space.a, space.b) if direction == "ab" else (space.b, space.a)
+    )
     task = _EnvTask(
         nodes=space.nodes,
         shape=space.z_env.shape,
         inv_env=space.inverse_env.ravel(),
         available_cov=space.available_cov,
-        pool=getattr(space, f"scores_background_{moved}"),
-        n_a=len(getattr(space, f"scores_records_{moved}")),
-        fixed_occupancy=getattr(space, f"occupancy_{fixed}").ravel(),
+        pool=moved.scores_background,
+        n_a=len(moved.scores_records),
+        fixed_occupancy=fixed.occupancy.ravel(),
     )
     seeds = spawn_seeds(random_state, n)
     if cluster_km > 0 and space.has_places:
         from screener.randomisation import pattern_draws, spatial_clusters
 
-        xy = getattr(space, f"xy_records_{moved}")
         draws = pattern_draws(
-            xy,
-            getattr(space, f"xy_background_{moved}"),
+            moved.xy_records,
+            moved.xy_background,
             n,
             random_state=int(seeds[0]),
             lonlat=space.lonlat,
-            clusters=spatial_clusters(xy, cluster_km, lonlat=space.lonlat),
+            clusters=spatial_clusters(moved.xy_records, cluster_km, lonlat=space.lonlat),
         )
         values = _batched(
             _resolve_executor(executor), partial(_pattern_similarity_batch, task), draws
@@ -1848,17 +1889,79 @@ def _validate_map_pair(map_a, map_b, cell_area_km2):
     return a, b, w
 
 
+@dataclass(frozen=True, eq=False)
+class OverlapTaxon:
+    """One taxon as :func:`compare_pair` takes it.
+
+    Attributes
+    ----------
+    name : str
+        Taxon name.
+    map : ndarray (n_rows, n_cols)
+        Suitability map in [0, 1], NaN outside the mask.
+    env_records, env_background : array_like of shape (n, n_vars) and (m, n_vars)
+        Predictor rows at the records and at cells of the taxon's accessible area
+        (see :func:`environmental_space`); no environmental comparison without them.
+    xy_records, xy_background : array_like of shape (n, 2) and (m, 2), optional
+        Coordinates of those rows (longitude, latitude unless ``lonlat=False``); with
+        them the environmental tests can keep spatial clusters of records.
+    cells : array_like of int, optional
+        Flat grid indices of the records (geographic tests).
+    accessible : ndarray of bool (n_rows, n_cols), optional
+        The accessible area on the grid (geographic similarity test).
+    """
+
+    name: str
+    map: np.ndarray
+    env_records: np.ndarray | None = None
+    env_background: np.ndarray | None = None
+    xy_records: np.ndarray | None = None
+    xy_background: np.ndarray | None = None
+    cells: np.ndarray | None = None
+    accessible: np.ndarray | None = None
+
+    @property
+    def has_environment(self) -> bool:
+        return self.env_records is not None and self.env_background is not None
+
+
+#: Old keyword arguments of :func:`compare_pair`, one per taxon (``map_a``, ...).
+_OLD_PAIR_KEYWORDS = ("map", "env_records", "env_background", "cells", "accessible")
+
+
+def _taxa_from_old_keywords(name_a, name_b, old: dict):
+    unknown = set(old) - {f"{k}_{w}" for k in _OLD_PAIR_KEYWORDS for w in "ab"} - {
+        "places"}
+    if unknown:
+        raise TypeError(f"compare_pair() got unexpected arguments {sorted(unknown)}")
+    warnings.warn(
+        "compare_pair(name_a, name_b, map_a=..., ...) is replaced by compare_pair(a, "
+        "b) with one OverlapTaxon per taxon; the old form stops working in the next "
+        "release.",
+        FutureWarning,
+        stacklevel=3,
+    )
+    places = old.get("places") or (None,) * 4
+    out = []
+    for k, (name, w) in enumerate(((name_a, "a"), (name_b, "b"))):
+        out.append(OverlapTaxon(
+            name=name,
+            map=old.get(f"map_{w}"),
+            env_records=old.get(f"env_records_{w}"),
+            env_background=old.get(f"env_background_{w}"),
+            xy_records=places[k],
+            xy_background=places[2 + k],
+            cells=old.get(f"cells_{w}"),
+            accessible=old.get(f"accessible_{w}"),
+        ))
+    return out
+
+
 def compare_pair(
-    name_a: str,
-    name_b: str,
+    a: OverlapTaxon,
+    b: OverlapTaxon,
     *,
-    map_a,
-    map_b,
-    cell_area_km2,
-    env_records_a=None,
-    env_records_b=None,
-    env_background_a=None,
-    env_background_b=None,
+    cell_area_km2=None,
     env_available=None,
     n_replicates: int = DEFAULT_REPLICATES,
     hypothesis: str = "conserved",
@@ -1866,34 +1969,29 @@ def compare_pair(
     random_state=0,
     executor: Executor | None = None,
     geographic_fit_predict: Callable[[np.ndarray], np.ndarray] | None = None,
-    cells_a=None,
-    cells_b=None,
-    accessible_a=None,
-    accessible_b=None,
     geographic_budget_s: float = 600.0,
     alpha: float = 0.05,
     predictor_names=(),
-    alternative: str | None = None,
-    resolution: int | None = None,
-    places=None,
     lonlat: bool = True,
     cluster_km: float = 0.0,
+    alternative: str | None = None,
+    resolution: int | None = None,
+    **old,
 ) -> PairComparison:
     """Overlap, breadth, dynamics and tests for one pair of taxa.
 
     Parameters
     ----------
-    name_a, name_b : str
-        Taxon names.
-    map_a, map_b : ndarray (n_rows, n_cols)
-        Suitability maps in [0, 1], NaN outside the mask.
+    a, b : OverlapTaxon
+        The two taxa (maps on one grid; records, backgrounds and places as far as
+        known).  The old form ``compare_pair(name_a, name_b, map_a=..., ...)`` still
+        works for one release, with a warning.
     cell_area_km2 : ndarray (n_rows, n_cols) or float
         Cell areas in km².
-    env_records_a, env_records_b, env_background_a, env_background_b : array_like
-        Predictor rows at records and at cells of each accessible area (see
-        :func:`environmental_space`); the environmental row is skipped when any is None.
     env_available : array_like, optional
         Shared available environment of the pair (see :func:`environmental_space`).
+        The environmental row is skipped unless both taxa have records and
+        background rows.
     n_replicates : int, default 999
         Replicates per test; with ``R`` replicates no p-value is below
         ``1 / (R + 1)``.
@@ -1905,109 +2003,55 @@ def compare_pair(
     executor : Executor, optional
     geographic_fit_predict : callable, optional
         ``fit_predict(cells) -> map`` for the geographic tests; they run only when it
-        and ``cells_a``, ``cells_b`` are given (similarity also needs ``accessible_a``,
-        ``accessible_b``) and :func:`estimate_seconds` stays within
+        and both taxa's ``cells`` are given (similarity also needs both
+        ``accessible``) and :func:`estimate_seconds` stays within
         ``geographic_budget_s``.
-    cells_a, cells_b : array_like of int, optional
-        Flat cell indices of the records.
-    accessible_a, accessible_b : ndarray of bool, optional
-        Accessible areas on the grid.
     geographic_budget_s : float, default 600
         Skip the geographic tests (p = NaN, logged) when estimated slower than this.
     alpha : float, default 0.05
         Family-wise error rate of the reading; the pair's p-values are Holm-corrected
         among themselves (:func:`correct_for_multiplicity` corrects a whole run).
-    alternative, resolution : optional
-        Old names of ``hypothesis`` and ``grid_cells`` (one release, with a warning).
-    places, lonlat : optional
-        Coordinates of the environmental rows (see :func:`environmental_space`).
+    predictor_names : sequence of str, optional
+    lonlat : bool, default True
+        The taxa's coordinates are longitude, latitude (degrees); else x, y in km.
     cluster_km : float, default 0
-        With ``places``: records chained by gaps of at most this (km) form one
+        With coordinates: records chained by gaps of at most this (km) form one
         spatial cluster, which the environmental tests keep together
         (:func:`equivalency_test`, :func:`similarity_test`); 0 = independent records.
+    alternative, resolution : optional
+        Old names of ``hypothesis`` and ``grid_cells`` (one release, with a warning).
 
     Returns
     -------
     PairComparison
     """
+    if isinstance(a, str):
+        a, b = _taxa_from_old_keywords(a, b, old)
+    elif old:
+        raise TypeError(f"compare_pair() got unexpected arguments {sorted(old)}")
     hypothesis = _check_hypothesis(hypothesis, alternative)
     grid_cells = _grid_cells_argument(grid_cells, resolution)
     n = _check_replicates(n_replicates)
-    ma, mb, w = _validate_map_pair(map_a, map_b, cell_area_km2)
+    ma, mb, w = _validate_map_pair(a.map, b.map, cell_area_km2)
     seeds = spawn_seeds(random_state, 6)
     d, i = geographic_overlap(ma, mb, w)
     geo = SpaceComparison(
         "geographic", d, i, levins_breadth(ma, w), levins_breadth(mb, w)
     )
     ex = _resolve_executor(executor)
-    if (
-        geographic_fit_predict is not None
-        and cells_a is not None
-        and cells_b is not None
-    ):
-        n_workers = getattr(ex, "n_workers", 1)
-        n_fits = 2 * n
-        if accessible_a is not None and accessible_b is not None:
-            n_fits += 2 * n
-        est = estimate_seconds(
-            geographic_fit_predict,
-            cells_a,
-            n_fits,
-            fits_per_replicate=1,
-            n_workers=n_workers,
-        )
-        if est > geographic_budget_s:
-            log.info(
-                "geographic tests for %s / %s skipped: about %.0f s expected, budget "
-                "%.0f s",
-                name_a,
-                name_b,
-                est,
-                geographic_budget_s,
-            )
-        else:
-            geo.equivalency = geographic_equivalency_test(
-                geographic_fit_predict,
-                cells_a,
-                cells_b,
-                w,
-                n_replicates=n,
-                random_state=seeds[0],
-                executor=ex,
-            )
-            if accessible_a is not None and accessible_b is not None:
-                fit_a = geographic_fit_predict(_check_cells(cells_a, "cells_a"))
-                fit_b = geographic_fit_predict(_check_cells(cells_b, "cells_b"))
-                common = dict(hypothesis=hypothesis, n_replicates=n, executor=ex)
-                geo.similarity_ab = geographic_similarity_test(
-                    geographic_fit_predict,
-                    fit_a,
-                    accessible_b,
-                    len(cells_b),
-                    w,
-                    observed_map_moved=fit_b,
-                    direction="ab",
-                    random_state=seeds[1],
-                    **common,
-                )
-                geo.similarity_ba = geographic_similarity_test(
-                    geographic_fit_predict,
-                    fit_b,
-                    accessible_a,
-                    len(cells_a),
-                    w,
-                    observed_map_moved=fit_a,
-                    direction="ba",
-                    random_state=seeds[2],
-                    **common,
-                )
+    if geographic_fit_predict is not None and a.cells is not None and (
+            b.cells is not None):
+        _geographic_tests(geo, a, b, w, geographic_fit_predict, n, hypothesis, seeds,
+                          ex, geographic_budget_s)
     env = None
     space = None
-    envs = (env_records_a, env_records_b, env_background_a, env_background_b)
-    if all(v is not None for v in envs):
+    if a.has_environment and b.has_environment:
+        xy = (a.xy_records, b.xy_records, a.xy_background, b.xy_background)
         space = environmental_space(
-            *envs, env_available=env_available, grid_cells=grid_cells,
-            predictor_names=predictor_names, places=places, lonlat=lonlat,
+            a.env_records, b.env_records, a.env_background, b.env_background,
+            env_available=env_available, grid_cells=grid_cells,
+            predictor_names=predictor_names,
+            places=xy if all(v is not None for v in xy) else None, lonlat=lonlat,
         )
         d, i = environmental_overlap(space)
         ba, bb = niche_breadth(space)
@@ -2030,9 +2074,43 @@ def compare_pair(
                     cluster_km=cluster_km,
                 ),
             )
-    out = PairComparison(name_a, name_b, geo, env, space, n, hypothesis)
+    out = PairComparison(a.name, b.name, geo, env, space, n, hypothesis)
     correct_for_multiplicity([out], alpha)
     return out
+
+
+def _geographic_tests(geo, a, b, w, fit_predict, n, hypothesis, seeds, ex, budget_s):
+    """Run the geographic tests of a pair into ``geo`` unless slower than budget."""
+    n_fits = 2 * n
+    if a.accessible is not None and b.accessible is not None:
+        n_fits += 2 * n
+    est = estimate_seconds(
+        fit_predict, a.cells, n_fits, fits_per_replicate=1,
+        n_workers=getattr(ex, "n_workers", 1),
+    )
+    if est > budget_s:
+        log.info(
+            "geographic tests for %s / %s skipped: about %.0f s expected, budget "
+            "%.0f s", a.name, b.name, est, budget_s,
+        )
+        return
+    geo.equivalency = geographic_equivalency_test(
+        fit_predict, a.cells, b.cells, w, n_replicates=n, random_state=seeds[0],
+        executor=ex,
+    )
+    if a.accessible is None or b.accessible is None:
+        return
+    fit_a = fit_predict(_check_cells(a.cells, "cells_a"))
+    fit_b = fit_predict(_check_cells(b.cells, "cells_b"))
+    common = dict(hypothesis=hypothesis, n_replicates=n, executor=ex)
+    geo.similarity_ab = geographic_similarity_test(
+        fit_predict, fit_a, b.accessible, len(b.cells), w, observed_map_moved=fit_b,
+        direction="ab", random_state=seeds[1], **common,
+    )
+    geo.similarity_ba = geographic_similarity_test(
+        fit_predict, fit_b, a.accessible, len(a.cells), w, observed_map_moved=fit_a,
+        direction="ba", random_state=seeds[2], **common,
+    )
 
 
 def pairwise_table(

@@ -56,7 +56,7 @@ from screener.outputs.staging import (
 )
 from screener.outputs.tables import OVERLAP_COLUMNS
 from screener.outputs.writer import write_outputs
-from screener.overlap import compare_pair, correct_for_multiplicity
+from screener.overlap import OverlapTaxon, compare_pair, correct_for_multiplicity
 from screener.parallel import Executor, make_executor
 from screener.project import Settings, settings_from_dict
 from screener.randomisation import cluster_link_km
@@ -541,15 +541,9 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None
             + (" (environmental and geographic)" if refit else " (environmental)")
         )
         cmp = compare_pair(
-            a,
-            b,
-            map_a=ta.suitability,
-            map_b=tb.suitability,
+            _overlap_taxon(grid, a, ta),
+            _overlap_taxon(grid, b, tb),
             cell_area_km2=areas,
-            env_records_a=ta.presence_env,
-            env_records_b=tb.presence_env,
-            env_background_a=ta.background_env,
-            env_background_b=tb.background_env,
             env_available=_shared_available(intake, ta, tb, seed),
             n_replicates=s.overlap.n_replicates,
             hypothesis=s.overlap.similarity_hypothesis,
@@ -557,14 +551,9 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None
             random_state=seed,
             executor=executor,
             geographic_fit_predict=refit,
-            cells_a=np.ravel_multi_index((ta.records.rows, ta.records.cols), grid.shape),
-            cells_b=np.ravel_multi_index((tb.records.rows, tb.records.cols), grid.shape),
-            accessible_a=ta.accessible,
-            accessible_b=tb.accessible,
             geographic_budget_s=float("inf"),
             alpha=s.overlap.alpha,
             predictor_names=intake.predictor_stack().names,
-            places=_overlap_places(grid, ta, tb),
             cluster_km=cluster_km,
         )
         comparisons.append(cmp)
@@ -578,20 +567,22 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None
     return OverlapResult(df, readings, comparisons)
 
 
-def _overlap_places(grid, ta, tb) -> tuple | None:
-    """Longitude, latitude of both taxa's records and background cells (row order of
-    their predictor rows), so the overlap tests keep the records' spatial structure."""
-    if ta.background_cells is None or tb.background_cells is None:
-        return None
-
-    def cells(rows, cols):
-        return np.column_stack(grid.lonlat(rows, cols))
-
-    return (
-        np.column_stack([ta.records.lon, ta.records.lat]),
-        np.column_stack([tb.records.lon, tb.records.lat]),
-        cells(*ta.background_cells),
-        cells(*tb.background_cells),
+def _overlap_taxon(grid, name: str, t):
+    """One taxon's map, records, background and accessible area for the overlap
+    tests, with longitude, latitude of its records and background cells (row order of
+    their predictor rows) so the tests can keep the records' spatial structure."""
+    bg_xy = None
+    if t.background_cells is not None:
+        bg_xy = np.column_stack(grid.lonlat(*t.background_cells))
+    return OverlapTaxon(
+        name=name,
+        map=t.suitability,
+        env_records=t.presence_env,
+        env_background=t.background_env,
+        xy_records=np.column_stack([t.records.lon, t.records.lat]),
+        xy_background=bg_xy,
+        cells=np.ravel_multi_index((t.records.rows, t.records.cols), grid.shape),
+        accessible=t.accessible,
     )
 
 

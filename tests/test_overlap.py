@@ -582,20 +582,10 @@ def test_compare_pair_rows_and_reading():
     model = _BumpModel()
     cells_a = np.ravel_multi_index(([2, 3, 4], [2, 3, 2]), _SHAPE)
     cells_b = np.ravel_multi_index(([6, 7, 5], [8, 9, 9]), _SHAPE)
-    res = ov.compare_pair(
-        "Alpha",
-        "Beta",
-        map_a=model(cells_a),
-        map_b=model(cells_b),
-        cell_area_km2=1.0,
-        env_records_a=ra,
-        env_records_b=rb,
-        env_background_a=ba,
-        env_background_b=bb,
-        n_replicates=99,
-        grid_cells=30,
-        random_state=0,
-    )
+    alpha = ov.OverlapTaxon("Alpha", model(cells_a), env_records=ra, env_background=ba)
+    beta = ov.OverlapTaxon("Beta", model(cells_b), env_records=rb, env_background=bb)
+    res = ov.compare_pair(alpha, beta, cell_area_km2=1.0, n_replicates=99,
+                          grid_cells=30, random_state=0)
     rows = res.rows()
     assert [r["space"] for r in rows] == ["geographic", "environmental"]
     for r in rows:
@@ -623,21 +613,20 @@ def test_compare_pair_rows_and_reading():
     assert "not equivalent" in reading  # shift of 1.5 with 15 records
     assert "Holm's correction covered the 3 p-values" in reading
     # the same call twice gives the same table
-    again = ov.compare_pair(
-        "Alpha",
-        "Beta",
-        map_a=model(cells_a),
-        map_b=model(cells_b),
-        cell_area_km2=1.0,
-        env_records_a=ra,
-        env_records_b=rb,
-        env_background_a=ba,
-        env_background_b=bb,
-        n_replicates=99,
-        grid_cells=30,
-        random_state=0,
-    )
+    again = ov.compare_pair(alpha, beta, cell_area_km2=1.0, n_replicates=99,
+                            grid_cells=30, random_state=0)
     assert again.rows()[1]["equivalency_p"] == env["equivalency_p"]
+    # the old form, one keyword per taxon and value, gives the same numbers
+    with pytest.warns(FutureWarning, match="OverlapTaxon"):
+        old = ov.compare_pair(
+            "Alpha", "Beta", map_a=model(cells_a), map_b=model(cells_b),
+            cell_area_km2=1.0, env_records_a=ra, env_records_b=rb,
+            env_background_a=ba, env_background_b=bb, n_replicates=99,
+            grid_cells=30, random_state=0,
+        )
+    import pandas as pd
+
+    assert pd.DataFrame(old.rows()).equals(pd.DataFrame(res.rows()))  # NaN == NaN
 
 
 def test_compare_pair_geographic_tests_and_budget():
@@ -645,18 +634,10 @@ def test_compare_pair_geographic_tests_and_budget():
     cells_a = np.ravel_multi_index(([2, 3, 4], [2, 3, 2]), _SHAPE)
     cells_b = np.ravel_multi_index(([3, 4, 2], [3, 2, 4]), _SHAPE)
     access = np.ones(_SHAPE, bool)
-    kw = dict(
-        map_a=model(cells_a),
-        map_b=model(cells_b),
-        cell_area_km2=1.0,
-        n_replicates=9,
-        geographic_fit_predict=model,
-        cells_a=cells_a,
-        cells_b=cells_b,
-        accessible_a=access,
-        accessible_b=access,
-    )
-    res = ov.compare_pair("A", "B", **kw)
+    a = ov.OverlapTaxon("A", model(cells_a), cells=cells_a, accessible=access)
+    b = ov.OverlapTaxon("B", model(cells_b), cells=cells_b, accessible=access)
+    kw = dict(cell_area_km2=1.0, n_replicates=9, geographic_fit_predict=model)
+    res = ov.compare_pair(a, b, **kw)
     assert res.environmental is None
     (row,) = res.rows()
     assert all(
@@ -672,7 +653,7 @@ def test_compare_pair_geographic_tests_and_budget():
     assert row["D_tested"] == pytest.approx(
         ov.geographic_overlap(model(cells_a), model(cells_b), 1.0)[0]
     )
-    skipped = ov.compare_pair("A", "B", geographic_budget_s=0.0, **kw)
+    skipped = ov.compare_pair(a, b, geographic_budget_s=0.0, **kw)
     assert math.isnan(skipped.rows()[0]["equivalency_p"])
 
 
@@ -683,7 +664,8 @@ def test_pairwise_table_is_symmetric():
     }
     names = sorted(grid_maps)
     results = [
-        ov.compare_pair(a, b, map_a=grid_maps[a], map_b=grid_maps[b], cell_area_km2=1.0)
+        ov.compare_pair(ov.OverlapTaxon(a, grid_maps[a]), ov.OverlapTaxon(b, grid_maps[b]),
+                        cell_area_km2=1.0)
         for i, a in enumerate(names)
         for b in names[i + 1 :]
     ]
@@ -750,10 +732,9 @@ def test_a_run_is_holm_corrected_over_every_pair_test_and_space():
     for k in range(2):
         ra, rb, ba, bb = _pair(rng, shift=1.0 * k, n=10, n_bg=200)
         cmps.append(ov.compare_pair(
-            f"T{k}", f"U{k}", map_a=model([3, 40]), map_b=model([60, 90]),
-            cell_area_km2=1.0, env_records_a=ra, env_records_b=rb,
-            env_background_a=ba, env_background_b=bb, n_replicates=19,
-            grid_cells=20, random_state=k,
+            ov.OverlapTaxon(f"T{k}", model([3, 40]), env_records=ra, env_background=ba),
+            ov.OverlapTaxon(f"U{k}", model([60, 90]), env_records=rb, env_background=bb),
+            cell_area_km2=1.0, n_replicates=19, grid_cells=20, random_state=k,
         ))
     m = ov.correct_for_multiplicity(cmps, alpha=0.05)
     assert m == 6
