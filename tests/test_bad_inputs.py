@@ -842,12 +842,12 @@ def test_full_disk_while_writing(warm, tmp_path, monkeypatch):
 
 @pytest.mark.slow
 def test_read_only_file_system_while_writing(warm, tmp_path, monkeypatch):
-    from screener.outputs import tables
+    from screener.outputs import writer
 
     def refused(path, *a, **k):
         raise OSError(errno.EROFS, "Read-only file system", str(path))
 
-    monkeypatch.setattr(tables, "write_csv", refused)
+    monkeypatch.setattr(writer, "write_csv", refused)  # the writer's own name for it
     out = tmp_path / "out"
     result = invoke("run", warm / "project.toml", "--out", out)
     assert_refused(result, out, r"Cannot write .*: Read-only file system; choose another --out")
