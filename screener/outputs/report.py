@@ -449,7 +449,8 @@ def _conclusion(result) -> str:
         for col, words in (("novel_share", "novel environment (MESS < 0)"),
                            ("clamped_share", "clamped predictors")):
             if _float(r.get(col)) > 0.25:
-                reasons.append(f"{col} {100 * _float(r.get(col)):.0f}%: {words}")
+                reasons.append(f"{words} in {100 * _float(r.get(col)):.0f}% of its "
+                               f"cells ({col})")
         if _float(r.get("rank_robustness")) < 0.5:
             reasons.append("its rank depends on the weights")
         if _float(r.get("refit_suitable")) < 0.5:

@@ -495,8 +495,8 @@ def _facts(result, site, n_sites) -> list[str]:
         f"{_num(site.get('max_suitability'))}    agreement "
         f"{_num(site.get('agreement'))}",
         f"Extrapolation: novel_share (MESS < 0) {_share_pct(site.get('novel_share'))} of "
-        f"the site; clamped_share {_share_pct(site.get('clamped_share'))} (predictors "
-        "outside a model's calibration range, clamped)",
+        f"the site; clamped_share {_share_pct(site.get('clamped_share'))} (outside a "
+        "model's calibration range)",
         f"Nearest known taxon: {site.get('nearest_taxon', 'n/a')}    nearest record "
         f"{_num(site.get('nearest_record_km'), '.1f')} km    gap "
         f"{_num(site.get('gap_km'), '.1f')} km    barrier depth "
@@ -510,14 +510,14 @@ def _robustness_line(site) -> str:
     """How stable the site's rank is: under random weightings, and under refits."""
     lo, hi = _float0(site.get("rank_low")), _float0(site.get("rank_high"))
     if math.isfinite(lo) and math.isfinite(hi):
-        text = f"Rank {lo:.0f}-{hi:.0f} under 90 % of random weightings of the score"
+        text = f"Rank {lo:.0f}-{hi:.0f} in 90 % of random weightings of the score"
     else:
         text = "Rank under random weightings of the score: not estimated"
     shares = [(w, _float0(site.get(c))) for w, c in (("suitable", "refit_suitable"),
                                                        ("isolated", "refit_isolated"),
                                                        ("top sites", "refit_top_k"))]
     if any(math.isfinite(v) for _, v in shares):
-        text += "; kept by bootstrap refits of the records: " + ", ".join(
+        text += "; kept in bootstrap refits: " + ", ".join(
             f"{w} {_share_pct(v)}" for w, v in shares)
     else:
         text += "; bootstrap refits of the records: not run"
