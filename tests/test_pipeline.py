@@ -125,6 +125,31 @@ def test_demo_field_sheets_in_poppler_text(demo_run):
         assert f"clamped_share {100 * site['clamped_share']:.0f}%" in page
 
 
+@pytest.mark.slow
+def test_time_slice_figure_has_no_overprinted_text(demo_run, tmp_path):
+    """The report's time-slice figure of the demo: no two of the figure's own texts
+    (legend entries, its note) overlap once drawn."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.text import Text
+
+    from screener.outputs.timeslices import plot_slices
+    from screener.pipeline import run_project
+    from screener.project import load_project
+
+    project, _, _ = demo_run
+    result = run_project(load_project(project), tmp_path / "again")  # from the cache
+    fig = plot_slices(result)
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    renderer = canvas.get_renderer()
+    boxes = [(t.get_text(), t.get_window_extent(renderer)) for t in fig.findobj(Text)
+             if t.get_visible() and t.get_text().strip() and t.axes is None]
+    assert any(text.startswith("Numbers are present ranks") for text, _ in boxes)
+    for i, (a, box_a) in enumerate(boxes):
+        for b, box_b in boxes[i + 1:]:
+            assert not box_a.overlaps(box_b), (a, b)
+
+
 def test_unrecorded_massif_is_the_top_isolated_site(demo_run):
     _, out, _ = demo_run
     truth = DEMO_TRUTH["small"].unrecorded

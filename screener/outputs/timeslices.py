@@ -8,6 +8,7 @@ Rasters go to ``slices/`` (suitability and MESS of each taxon in each slice) and
 from __future__ import annotations
 
 import logging
+import textwrap
 
 import numpy as np
 from matplotlib.figure import Figure
@@ -152,10 +153,11 @@ def plot_slices(result, *, top_n: int = 10):
         Line2D([], [], linestyle="none", marker=".", color=maps.OKABE_ITO["vermillion"],
                label="unsuitable ground on a path (the gap)"),
     ]
+    # the note heads the legend: a free text at the figure's foot overprinted it
+    note = textwrap.fill("Numbers are present ranks; * = joined, near-range, unsuitable "
+                         "or drowned in that slice rather than isolated.", 45 * ncol)
     fig.legend(handles=handles, loc="outside lower center", ncol=2, fontsize=7,
-               frameon=False)
-    fig.text(0.01, 0.005, "Numbers are present ranks; * = joined, near-range, unsuitable "
-             "or drowned in that slice rather than isolated.", fontsize=7, color="0.2")
+               frameon=False, title=note, title_fontsize=7)
     return fig
 
 
