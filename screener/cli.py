@@ -273,6 +273,11 @@ def demo(ctx, out, overwrite, size, scheduler, debug):
     _print_warnings(result)
 
 
+allow_changed_opt = click.option(
+    "--allow-changed-inputs", is_flag=True,
+    help="Go on even if input files no longer match the hashes the run recorded.")
+
+
 @main.command()
 @click.argument("field_results", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--run", "run_dir", required=True,
@@ -280,13 +285,15 @@ def demo(ctx, out, overwrite, size, scheduler, debug):
               help="Output folder of the run whose predictions were surveyed.")
 @out_opt
 @overwrite_opt
+@allow_changed_opt
 @debug_opt
 @handle_errors
-def debrief(field_results, run_dir, out, overwrite, debug):
+def debrief(field_results, run_dir, out, overwrite, allow_changed_inputs, debug):
     """Score a run's predictions against FIELD_RESULTS after a survey."""
     from screener.debrief import debrief_run
 
-    summary = debrief_run(field_results, run_dir, out, overwrite=overwrite)
+    summary = debrief_run(field_results, run_dir, out, overwrite=overwrite,
+                          allow_changed_inputs=allow_changed_inputs)
     for line in summary:
         click.echo(line)
 
@@ -296,8 +303,7 @@ def debrief(field_results, run_dir, out, overwrite, debug):
 @out_opt
 @overwrite_opt
 @scheduler_opt
-@click.option("--allow-changed-inputs", is_flag=True,
-              help="Run even if input files no longer match the recorded hashes.")
+@allow_changed_opt
 @debug_opt
 @click.pass_context
 @handle_errors

@@ -157,13 +157,18 @@ def _check_field_taxa(fr, run_taxa, path) -> None:
         )
 
 
-def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> list:
+def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False,
+                allow_changed_inputs: bool = False) -> list:
     """Score a run against field results and write the debrief into ``out_dir``.
 
     Writes ``debrief.md`` (the summary), ``debrief.json`` (the numbers),
     ``site_outcomes.csv``, ``records_updated.csv`` (the run's record file plus the
     new finds at their own coordinates) and ``project_next.toml`` (the run's settings
     with the updated record file; taxa with too few records left out of modelling).
+
+    The run's record file must still have the SHA-256 that run.json recorded for it:
+    the updated record file is that file plus the finds, so an edited run.json or a
+    record file changed since the run is refused unless ``allow_changed_inputs``.
 
     Returns
     -------
@@ -205,6 +210,7 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
             f"The run's record file {rec_path} is not where run.json says; the updated "
             "record file needs it."
         )
+    _check_record_file_hash(rec_path, run, allow_changed_inputs)
     occ = settings.get("occurrences", {})
     # the record file read as `run` reads it: encoding, delimiter, decimal mark
     raw = read_records(rec_path, encoding=occ.get("encoding") or None,
@@ -252,6 +258,26 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False) -> 
         lines.insert(-1, "Left out of the next run's modelling (too few records): "
                      + ", ".join(left_out))
     return lines
+
+
+def _check_record_file_hash(rec_path, run, allow_changed_inputs: bool) -> None:
+    """Refuse a record file whose SHA-256 is not the one the run recorded for it."""
+    from screener.pipeline import file_sha256
+
+    hashes = run["provenance"].get("input_hashes")
+    recorded_as = {str(now): old for old, now in run["moved"].items()}
+    old = recorded_as.get(str(rec_path), str(rec_path))
+    recorded = hashes.get(old) if isinstance(hashes, dict) else None
+    if allow_changed_inputs or (recorded is not None and recorded == file_sha256(rec_path)):
+        return
+    why = ("run.json holds no hash for it" if recorded is None
+           else "it has changed since the run")
+    raise InputError(
+        f"The run's record file {rec_path} cannot be trusted: {why}. The updated record "
+        "file is this file plus the finds, so it would carry other records. Use the "
+        "run.json the run wrote and the record file it read, or pass "
+        "--allow-changed-inputs to go on with the file as it is now."
+    )
 
 
 def _updated_record_table(raw, field_results, grid, modelled_taxa, min_records):

@@ -6,6 +6,7 @@ pipeline uses, so these checks do not depend on a full run.
 
 from __future__ import annotations
 
+import hashlib
 import json
 
 import geopandas as gpd
@@ -55,7 +56,9 @@ def run_dir(tmp_path):
     records = tmp_path / "records.csv"
     records.write_text("taxon,longitude,latitude\nAlpha one,10.115,-5.005\n")
     prov = {"taxa": TAXA, "seeds": {"random_state": 7},
-            "settings": {"occurrences": {"path": str(records)}}}
+            "settings": {"occurrences": {"path": str(records)}},
+            # as a run records its inputs: SHA-256 of the file's bytes (hashlib)
+            "input_hashes": {str(records): hashlib.sha256(records.read_bytes()).hexdigest()}}
     (run / "run.json").write_text(json.dumps(prov))
     return run, grid, maps, mtp, records
 
@@ -138,3 +141,22 @@ def test_moved_record_file_is_an_input_error(run_dir, tmp_path):
     with pytest.raises(InputError, match="record file"):
         debrief_run(field, run, tmp_path / "debrief")
     assert not (tmp_path / "debrief").exists()
+
+
+def test_debrief_refuses_a_record_file_the_run_did_not_read(run_dir, tmp_path):
+    run, grid, maps, mtp, records = run_dir
+    field = tmp_path / "field.csv"
+    field.write_text("site_id,date,taxon,outcome\n1,2027-03-02,Alpha one,found\n")
+    # the record file edited after the run: the updated file would carry other records
+    records.write_text("taxon,longitude,latitude\nAlpha one,10.115,-5.005\nAlpha one,10.02,-5.03\n")
+    with pytest.raises(InputError, match="changed since the run"):
+        debrief_run(field, run, tmp_path / "out1")
+    assert not (tmp_path / "out1").exists()
+    debrief_run(field, run, tmp_path / "out2", allow_changed_inputs=True)
+    assert (tmp_path / "out2" / "records_updated.csv").read_text().count("10.02") == 1
+    # a run.json with its hashes deleted does not switch the check off
+    prov = json.loads((run / "run.json").read_text())
+    del prov["input_hashes"]
+    (run / "run.json").write_text(json.dumps(prov))
+    with pytest.raises(InputError, match="no hash"):
+        debrief_run(field, run, tmp_path / "out3")
