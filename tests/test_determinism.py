@@ -111,7 +111,10 @@ def test_run_json_records_provenance(runs):
     assert len({seeds[k] for k in seeds if k != "random_state"}) == 3
     t = prov["timings_s"]
     assert len(t) >= 4 and all(x >= 0 for x in t.values())
-    assert isinstance(prov["warnings"], list) and any("ollinear" in w for w in prov["warnings"])
+    # the demo's layers are built with |r| below the collinearity warning's 0.7, so the
+    # list is there and holds no collinearity warning
+    assert isinstance(prov["warnings"], list)
+    assert not any("ollinear" in w for w in prov["warnings"])
     assert prov["scheduler"] == "serial" and prov["cache"]["folder"] is None
     assert "run.json" in prov["outputs"] and "candidates.csv" in prov["outputs"]
 
