@@ -182,7 +182,7 @@ def test_cold_stage_joins_one_massif_and_leaves_the_unrecorded_one_isolated(demo
     assert not hullavar["ever_connected"]
     assert pelto["kind_cold_stage"] == "joined" and "cold_stage" in pelto["connected_in"]
     assert hullavar["rank"] < pelto["rank"]
-    assert (out / "stability" / "clade.tif").stat().st_size > 0
+    assert (out / "stability" / "_clade.tif").stat().st_size > 0
     report = (out / "report.html").read_text()
     assert "Climate through time" in report and "every past slice" in report
 

@@ -87,7 +87,11 @@ def test_time_slice_files_follow_the_run_folders_stems():
             f"r/slices/cold_stage.{stem}.tif"
         assert folder.slice_mess("cold_stage", taxon).name == f"cold_stage.{stem}.mess.tif"
         assert folder.stability(taxon).as_posix() == f"r/stability/{stem}.tif"
-    assert folder.stability().as_posix() == "r/stability/clade.tif"
+    assert folder.stability().as_posix() == "r/stability/_clade.tif"
+    # taxa named like the clade's map keep files of their own (case-blind too)
+    clash = RunFolder.for_taxa("r", ["Clade", "clade", "_clade", "CLADE"])
+    names = [clash.stability(t).name.casefold() for t in clash.stems]
+    assert len(set(names + [clash.stability().name.casefold()])) == 5
     # a slice name that is not a plain word gets a unique stem, never a path separator
     odd = folder.slice_suitability("last glacial / max", "Nebrivex alba")
     assert odd.parent.as_posix() == "r/slices" and "/" not in odd.name

@@ -206,8 +206,12 @@ class RunFolder:
                 / f"{slice_file_stem(slice_name)}.{self.stem(taxon)}.mess.tif")
 
     def stability(self, taxon: str | None = None) -> Path:
-        """Climatic stability of ``taxon``, or of the clade when ``taxon`` is None."""
-        name = self.stem(taxon) if taxon is not None else "clade"
+        """Climatic stability of ``taxon``, or of the clade when ``taxon`` is None.
+
+        The clade's file is ``_clade.tif``: no taxon stem starts with ``_``, so a taxon
+        named "Clade" cannot overwrite it, even on a file system that ignores case.
+        """
+        name = self.stem(taxon) if taxon is not None else "_clade"
         return self.root / "stability" / f"{name}.tif"
 
     # ------------------------------------------------------------- helpers
