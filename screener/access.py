@@ -34,6 +34,7 @@ __all__ = [
     "slope_rise_over_run",
     "start_cells_from_lonlat",
     "tobler_speed_kmh",
+    "walk_from_start_points",
     "walking_hours",
     "walking_surface",
 ]
@@ -231,3 +232,51 @@ def walking_hours(
         off_track_factor=off_track_factor,
         memory_mb=memory_mb,
     ).cost
+
+
+def walk_from_start_points(grid: Grid, elevation, start_points, *, off_track: bool = True,
+                           memory_mb=None, source="the start points"):
+    """Walking time (hours) from the start points that lie on valid cells.
+
+    Parameters
+    ----------
+    grid : Grid
+    elevation : ndarray of shape grid.shape
+        Elevation in metres (NaN off the grid's valid mask).
+    start_points : pandas.DataFrame
+        With ``longitude`` and ``latitude`` (WGS84 degrees); points off the grid or on
+        invalid cells are left out.
+    off_track : bool, default True
+        Walk at :data:`OFF_TRACK_FACTOR` of the on-track speed.
+    memory_mb : float, optional
+        Working memory of the cost-distance solver, in MB.
+    source : str
+        Where the start points came from, for the error message.
+
+    Returns
+    -------
+    walk : screener.costdistance.CostDistanceResult
+        As :func:`walking_surface` returns it (``walk.cost`` in hours).
+    starts : pandas.DataFrame
+        The start points used, with their ``row`` and ``col``.
+
+    Raises
+    ------
+    InputError
+        No start point lies on a valid cell.
+    """
+    x, y = grid.from_lonlat(start_points["longitude"].to_numpy(),
+                            start_points["latitude"].to_numpy())
+    r, c, inside = grid.rowcol(x, y)
+    ok = inside.copy()
+    ok[inside] = grid.mask[r[inside], c[inside]]
+    if not ok.any():
+        raise InputError(
+            f"None of the start points in {source} lies on a valid cell of the grid; "
+            "check their coordinates."
+        )
+    walk = walking_surface(grid, elevation, np.column_stack([r[ok], c[ok]]),
+                           off_track=off_track, memory_mb=memory_mb)
+    starts = start_points.loc[ok].copy()
+    starts["row"], starts["col"] = r[ok], c[ok]
+    return walk, starts

@@ -27,7 +27,7 @@ import pandas as pd
 import rasterio
 
 from screener import __version__
-from screener.access import walking_surface
+from screener.access import walk_from_start_points
 from screener.alignment import align_layers, aligned_layer_folder
 from screener.background import draw_background
 from screener.cache import StageCache, digest
@@ -72,7 +72,7 @@ from screener.records import (
 from screener.results import OverlapResult, PlanResult, RunResult, TaxonResult
 from screener.robustness import RefitPlan, record_resampling
 from screener.routes import walking_routes
-from screener.slices import TimeSlice, analyse_slices, slice_stack
+from screener.slices import TimeSlice, analyse_slices, site_mean, slice_stack
 
 __all__ = [
     "Intake",
@@ -712,35 +712,20 @@ def plan_sites(intake: Intake, taxa: dict, *, executor: Executor | None = None,
             map_fn=map_fn,
         )
         sites = sites.merge(slices.history, on="site_id", how="left")
-        sites["climatic_stability"] = _site_mean(grid, cand.patch_labels,
+        sites["climatic_stability"] = site_mean(grid, cand.patch_labels,
                                                  slices.clade_stability,
                                                  sites["site_id"].to_numpy(np.int64))
     access_hours = None
     routes, starts = {}, None
     if intake.start_points is not None and intake.elevation is not None:
         progress.step("walking time from start points (Tobler's hiking function)")
-        sp = intake.start_points
-        x, y = grid.from_lonlat(sp["longitude"].to_numpy(), sp["latitude"].to_numpy())
-        r, c, inside = grid.rowcol(x, y)
-        ok = inside & grid.mask[r, c]
-        if not ok.any():
-            raise InputError(
-                f"None of the start points in {s.access.start_points} lies on a valid "
-                "cell of the grid; check their coordinates."
-            )
-        walk = walking_surface(
-            grid,
-            intake.elevation,
-            np.column_stack([r[ok], c[ok]]),
-            off_track=s.access.off_track,
-            memory_mb=s.compute.memory_mb or None,
-        )
+        walk, starts = walk_from_start_points(
+            grid, intake.elevation, intake.start_points, off_track=s.access.off_track,
+            memory_mb=s.compute.memory_mb or None, source=s.access.start_points)
         access_hours = walk.cost
         sites["walk_hours"] = access_hours[
             sites["row"].to_numpy(int), sites["col"].to_numpy(int)
         ]
-        starts = sp.loc[ok].copy()
-        starts["row"], starts["col"] = r[ok], c[ok]
         routes = walking_routes(grid, intake.elevation, walk, starts, sites)
     else:
         sites["walk_hours"] = np.nan
@@ -816,18 +801,6 @@ def _record_resampling(intake, taxa, cand, n_sites, progress, map_fn, use, other
     )
     return record_resampling(plan, n, random_state=s.project.random_state,
                              map_fn=map_fn or map)
-
-
-def _site_mean(grid, labels, values, ids) -> np.ndarray:
-    """Area-weighted mean of ``values`` over each site's cells (NaN cells left out)."""
-    n = int(ids.max()) + 1 if len(ids) else 1
-    on = (labels > 0) & np.isfinite(values)
-    lab = labels[on].astype(np.int64)
-    a = np.broadcast_to(np.asarray(grid.cell_area_km2, float), grid.shape)[on]
-    tot = np.bincount(lab, weights=a, minlength=n)
-    s = np.bincount(lab, weights=a * values[on], minlength=n)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(tot > 0, s / tot, np.nan)[ids]
 
 
 def _surveyed_points(intake: Intake, taxa: dict):

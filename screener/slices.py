@@ -71,6 +71,7 @@ __all__ = [
     "history_readings",
     "map_models",
     "outside_range_share",
+    "site_mean",
     "project_taxon",
     "shifted_records",
     "site_history",
@@ -708,3 +709,31 @@ def history_readings(sites: pd.DataFrame, names, *, top_n: int = 10) -> list:
                      "in every slice (a refugium).")
         out.append(text)
     return out
+
+
+def site_mean(grid, labels, values, ids) -> np.ndarray:
+    """Area-weighted mean of ``values`` over each site's cells (NaN cells left out).
+
+    Parameters
+    ----------
+    grid : screener.grid.Grid
+        Gives the geodesic area of each cell (km²), the weights.
+    labels : ndarray of int, shape grid.shape
+        Site label of each cell (0 = no site).
+    values : ndarray of float, shape grid.shape
+    ids : ndarray of int
+        Site labels to report, in the order wanted.
+
+    Returns
+    -------
+    ndarray of float, shape (len(ids),)
+        NaN for a site with no finite value.
+    """
+    n = int(ids.max()) + 1 if len(ids) else 1
+    on = (labels > 0) & np.isfinite(values)
+    lab = labels[on].astype(np.int64)
+    a = np.broadcast_to(np.asarray(grid.cell_area_km2, float), grid.shape)[on]
+    tot = np.bincount(lab, weights=a, minlength=n)
+    s = np.bincount(lab, weights=a * values[on], minlength=n)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(tot > 0, s / tot, np.nan)[ids]
