@@ -258,7 +258,8 @@ def walk_from_start_points(grid: Grid, elevation, start_points, *, off_track: bo
     walk : screener.costdistance.CostDistanceResult
         As :func:`walking_surface` returns it (``walk.cost`` in hours).
     starts : pandas.DataFrame
-        The start points used, with their ``row`` and ``col``.
+        The start points used, with their ``row``, ``col`` and ``elevation_m`` (the
+        elevation of their cell, metres).
 
     Raises
     ------
@@ -279,4 +280,5 @@ def walk_from_start_points(grid: Grid, elevation, start_points, *, off_track: bo
                            off_track=off_track, memory_mb=memory_mb)
     starts = start_points.loc[ok].copy()
     starts["row"], starts["col"] = r[ok], c[ok]
+    starts["elevation_m"] = np.asarray(elevation, float)[r[ok], c[ok]]
     return walk, starts

@@ -12,6 +12,7 @@ from screener.access import (
     slope_rise_over_run,
     start_cells_from_lonlat,
     tobler_speed_kmh,
+    walk_from_start_points,
     walking_hours,
 )
 from screener.errors import InputError
@@ -120,3 +121,26 @@ def test_impassable_and_errors():
         start_cells_from_lonlat(grid, 100.0, 0.0)
     with pytest.raises(InputError, match="shape"):
         walking_hours(grid, np.zeros((2, 2)), ([0], [0]))
+
+
+def test_walk_from_start_points_uses_only_points_on_valid_cells():
+    """Flat lat/lon strip: hours from the one usable start = pyproj geodesic km / speed."""
+    import pandas as pd
+
+    grid = Grid("EPSG:4326", Affine(0.01, 0, 20.0, 0, -0.01, 60.0), (3, 30),
+                mask=np.ones((3, 30), bool))
+    lon0, lat0 = grid.lonlat([1], [0])
+    points = pd.DataFrame({"name": ["camp", "off the grid"],
+                           "longitude": [float(lon0[0]), 25.0],
+                           "latitude": [float(lat0[0]), 60.0]})
+    walk, starts = walk_from_start_points(grid, np.zeros(grid.shape), points,
+                                          off_track=False)
+    assert starts["name"].tolist() == ["camp"]
+    assert (starts["row"].tolist(), starts["col"].tolist()) == ([1], [0])
+    assert starts["elevation_m"].tolist() == [0.0]
+    lon, lat = grid.lonlat([1], [29])
+    km = Geod(ellps="WGS84").inv(lon0[0], lat0[0], lon[0], lat[0])[2] / 1000.0
+    assert_allclose(walk.cost[1, 29], km / tobler_speed_kmh(0.0), rtol=1e-6)
+    with pytest.raises(InputError, match="starts.csv"):
+        walk_from_start_points(grid, np.zeros(grid.shape), points.iloc[1:],
+                               source="starts.csv")

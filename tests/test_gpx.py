@@ -70,7 +70,8 @@ def test_gpx_start_points_and_route_tracks(tmp_path, run, schema):
 
     lon, lat = run.grid.lonlat(38, 48)
     starts = pd.DataFrame({"name": ["Road end"], "longitude": [float(lon)],
-                           "latitude": [float(lat)], "row": [38], "col": [48]})
+                           "latitude": [float(lat)], "row": [38], "col": [48],
+                           "elevation_m": [float(run.elevation[38, 48])]})
     surf = walking_surface(run.grid, run.elevation, np.array([[38, 48]]))
     sites = run.sites.copy()
     sites["row"], sites["col"], _ = run.grid.rowcol(sites["x"].to_numpy(),
@@ -82,6 +83,8 @@ def test_gpx_start_points_and_route_tracks(tmp_path, run, schema):
         gpx = gpxpy.parse(fh)
     start = [w for w in gpx.waypoints if w.name == "Road end"]
     assert len(start) == 1 and start[0].latitude == pytest.approx(float(lat), abs=1e-6)
+    # its elevation as gpxpy reads it back (GPX 1.1 <ele>, metres, one decimal)
+    assert start[0].elevation == pytest.approx(float(run.elevation[38, 48]), abs=0.05)
     # one track per routed site, in rank order
     ranked = [sid for sid in run.sites["site_id"] if sid in routes]
     assert [t.name for t in gpx.tracks] == [f"{sid} route" for sid in ranked]

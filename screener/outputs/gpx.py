@@ -218,7 +218,7 @@ def write_gpx(
             lon, lat = _check_lonlat(sp["longitude"], sp["latitude"], f"start point {j}")
             name = str(sp.get("name") or f"start {j + 1}")
             _wpt(root, lon, lat, name, "start point", f"start point {name}",
-                 _START_SYMBOL, "start point")
+                 _START_SYMBOL, "start point", ele=sp.get("elevation_m"))
             n_starts += 1
     n_tracks = 0
     routes = {str(k): v for k, v in (routes or {}).items()}
