@@ -192,18 +192,18 @@ def test_record_densities_match_sklearn_on_the_pca_grid():
     rng = np.random.default_rng(2)
     space = ov.environmental_space(*_pair(rng, shift=1.0), grid_cells=30)
     nodes = space.nodes
-    ref_a = _whitened_kde(space.scores_records_a, nodes, space.bandwidth_a)
-    ref_b = _whitened_kde(space.scores_records_b, nodes, space.bandwidth_b)
-    assert_allclose(space.z_occ_a.ravel(), ref_a, rtol=1e-8, atol=1e-14)
-    assert_allclose(space.z_occ_b.ravel(), ref_b, rtol=1e-8, atol=1e-14)
+    ref_a = _whitened_kde(space.a.scores_records, nodes, space.a.bandwidth)
+    ref_b = _whitened_kde(space.b.scores_records, nodes, space.b.bandwidth)
+    assert_allclose(space.a.z_occ.ravel(), ref_a, rtol=1e-8, atol=1e-14)
+    assert_allclose(space.b.z_occ.ravel(), ref_b, rtol=1e-8, atol=1e-14)
     # the shared environment density is gaussian_kde of the available environment
     # (both backgrounds pooled when none is given), scaled to max 1
     assert len(space.scores_available) == 1200
     env = gaussian_kde(space.scores_available.T)(nodes.T)
     assert_allclose(space.z_env.ravel(), env / env.max(), rtol=1e-10)
     # rows follow PC2, columns PC1: the densest record cell sits near the record mean
-    r, c = np.unravel_index(np.argmax(space.z_occ_b), space.z_occ_b.shape)
-    mean = space.scores_records_b.mean(axis=0)
+    r, c = np.unravel_index(np.argmax(space.b.z_occ), space.b.z_occ.shape)
+    mean = space.b.scores_records.mean(axis=0)
     assert abs(space.pc1_centres[c] - mean[0]) < 0.6
     assert abs(space.pc2_centres[r] - mean[1]) < 0.6
 
@@ -212,14 +212,14 @@ def test_occupancy_is_density_ratio_on_support():
     # Broennimann et al. 2012: occupancy = z_occ / z_env where the environment exists.
     rng = np.random.default_rng(4)
     space = ov.environmental_space(*_pair(rng), grid_cells=25)
-    ratio = np.where(space.support, space.z_occ_a / space.z_env, 0.0)
-    assert_allclose(space.occupancy_a, ratio / ratio.max(), rtol=1e-12)
-    assert space.occupancy_a.max() == pytest.approx(1.0)
+    ratio = np.where(space.support, space.a.z_occ / space.z_env, 0.0)
+    assert_allclose(space.a.occupancy, ratio / ratio.max(), rtol=1e-12)
+    assert space.a.occupancy.max() == pytest.approx(1.0)
     # support_quantile = 0: every available point's cell lies in the support
     rows, cols = space.cell_of(space.scores_available)
     assert space.support[rows, cols].all()
     # occupancy_of rebuilds an occupancy exactly as the taxa's are built
-    assert_allclose(space.occupancy_of(space.scores_records_b), space.occupancy_b)
+    assert_allclose(space.occupancy_of(space.b.scores_records), space.b.occupancy)
 
 
 def test_identical_records_give_d_of_one_whatever_background_each_drew():
@@ -237,7 +237,7 @@ def test_identical_records_give_d_of_one_whatever_background_each_drew():
     assert ov.environmental_overlap(given) == pytest.approx((1.0, 1.0), abs=1e-12)
     # deterministic: the same inputs give the same surfaces
     again = ov.environmental_space(rec, rec, bg_a, bg_b, env_available=area)
-    assert np.array_equal(again.occupancy_a, given.occupancy_a)
+    assert np.array_equal(again.a.occupancy, given.a.occupancy)
 
 
 def test_each_taxon_gets_its_own_bandwidth():
@@ -249,8 +249,8 @@ def test_each_taxon_gets_its_own_bandwidth():
     wide = rng.normal(0.0, 1.5, size=(20, 3))
     s1 = ov.environmental_space(ra, rb, ba, bb, env_available=ba)
     s2 = ov.environmental_space(ra, wide, ba, bb, env_available=ba)
-    assert_allclose(s1.bandwidth_a, s2.bandwidth_a, rtol=1e-12)
-    assert np.trace(s2.bandwidth_b) > 10 * np.trace(s1.bandwidth_b)
+    assert_allclose(s1.a.bandwidth, s2.a.bandwidth, rtol=1e-12)
+    assert np.trace(s2.b.bandwidth) > 10 * np.trace(s1.b.bandwidth)
     assert ov.environmental_overlap(s1)[0] < 0.01
 
 
@@ -303,14 +303,14 @@ def test_analogue_environment_is_cut_over_cells_not_background_points():
     ra = rng.normal(0, 0.3, size=(20, 3))
     rb = rng.uniform(-2.5, 2.5, size=(20, 3))
     space = ov.environmental_space(ra, rb, bg, bg, grid_cells=30)
-    rows, cols = space.cell_of(space.scores_background_a)
+    rows, cols = space.cell_of(space.a.scores_background)
     holds = np.zeros(space.z_env.shape, bool)
     holds[rows, cols] = True
-    kept = space.available_a.sum() / holds.sum()
+    kept = space.a.available.sum() / holds.sum()
     assert 0.93 <= kept <= 0.97  # one cell per cell: the 5 % quantile drops ~5 %
-    assert not np.any(space.available_a & ~holds)
+    assert not np.any(space.a.available & ~holds)
     # the share of records in analogue environment, counted directly
-    r, c = space.cell_of(space.scores_records_b)
+    r, c = space.cell_of(space.b.scores_records)
     dyn = ov.niche_dynamics(space)
     assert dyn["analogue_share_b"] == pytest.approx(np.mean(space.analogue[r, c]))
 
@@ -339,6 +339,19 @@ def test_old_option_names_still_work_with_a_warning():
     with pytest.warns(ScreenerDeprecationWarning, match="hypothesis"):
         t = ov.similarity_test(old, alternative="lower", n_replicates=9)["D"]
     assert t.hypothesis == "diverged" and t.tail == "lower"
+
+
+def test_old_pair_names_of_the_space_still_read():
+    # kept for one release: ``space.occupancy_a`` is ``space.a.occupancy``
+    rng = np.random.default_rng(1)
+    space = ov.environmental_space(*_pair(rng, n=8), grid_cells=20)
+    for which in ("a", "b"):
+        taxon = space.taxon(which)
+        for name in ("scores_records", "scores_background", "bandwidth", "available",
+                     "z_occ", "occupancy", "xy_records", "xy_background"):
+            assert getattr(space, f"{name}_{which}") is getattr(taxon, name)
+    with pytest.raises(AttributeError, match="occupancy_c"):
+        space.occupancy_c
 
 
 # --------------------------------------------------------------------------------------
@@ -376,7 +389,7 @@ def test_equivalency_replicates_rebuild_densities_like_the_observed_ones():
         shape=space.z_env.shape,
         inv_env=space.inverse_env.ravel(),
         available_cov=space.available_cov,
-        pool=np.vstack([space.scores_records_a, space.scores_records_b]),
+        pool=np.vstack([space.a.scores_records, space.b.scores_records]),
         n_a=10,
     )
     za = task.density(task.pool[:10])
@@ -712,13 +725,13 @@ def test_figures_draw_the_tested_value_and_both_niches():
     rgb = ax.images[0].get_array()[..., :3]
     both = np.all(np.isclose(rgb, [0.0, 158 / 255, 115 / 255]), axis=-1)
     assert np.array_equal(
-        both, niche_core(space.occupancy_a) & niche_core(space.occupancy_b)
+        both, niche_core(space.a.occupancy) & niche_core(space.b.occupancy)
     )
     assert len(ax.collections) == 2  # one marker set per taxon
     assert "more" in ax.get_xlabel() or "less" in ax.get_xlabel()
     # a niche core holds at least 90 % of the occupancy, and is the smallest such set
-    core = niche_core(space.occupancy_a)
-    occ = space.occupancy_a
+    core = niche_core(space.a.occupancy)
+    occ = space.a.occupancy
     assert occ[core].sum() >= 0.9 * occ.sum()
     assert occ[core].sum() - occ[core].min() < 0.9 * occ.sum()
 

@@ -163,8 +163,8 @@ def plot_niches(space, *, names=("A", "B"), D=None, ax=None):
         D = environmental_overlap(space)[0]
     extent = (space.pc1_edges[0], space.pc1_edges[-1],
               space.pc2_edges[0], space.pc2_edges[-1])
-    core_a = niche_core(space.occupancy_a)
-    core_b = niche_core(space.occupancy_b)
+    core_a = niche_core(space.a.occupancy)
+    core_b = niche_core(space.b.occupancy)
     rgba = np.ones(core_a.shape + (4,))
     # ground: grey, darker where the available environment is more common
     env = np.where(space.support, np.sqrt(np.clip(space.z_env, 0, 1)), 0.0)
@@ -177,10 +177,10 @@ def plot_niches(space, *, names=("A", "B"), D=None, ax=None):
               interpolation="nearest")
     markers = (("o", _A_ONLY), ("^", _B_ONLY))
     for which, (marker, colour), name in zip(("a", "b"), markers, names):
-        rec = getattr(space, f"scores_records_{which}")
+        rec = space.taxon(which).scores_records
         ax.scatter(rec[:, 0], rec[:, 1], s=28, marker=marker, c=colour,
                    edgecolors="black", linewidths=0.8, zorder=3)
-    n_a, n_b = len(space.scores_records_a), len(space.scores_records_b)
+    n_a, n_b = len(space.a.scores_records), len(space.b.scores_records)
     handles = [
         Patch(facecolor=_A_ONLY, label=f"only {names[0]}'s niche"),
         Patch(facecolor=_B_ONLY, label=f"only {names[1]}'s niche"),
