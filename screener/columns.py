@@ -1,10 +1,12 @@
 """Column registries of the output tables: name, dtype, unit and meaning of each column.
 
 One list per table (:data:`EVALUATION`, :data:`OVERLAP`, :data:`CANDIDATES`) gives the
-order of the CSV header, the field types of the GeoPackage layer and the column tables
-of the user guide (:func:`columns_markdown`).  A name with ``<taxon>`` stands for one
-column per taxon (``cost_to_<taxon>``), one with ``<slice>`` for one per time slice.  Stages make the tables; this module only
-says what their columns are, so both stages and writers may import it.
+order of the CSV header, the field types of the GeoPackage layer, the column tables of the
+user guide (:func:`columns_markdown`) and the README's contract table
+(:func:`contract_markdown`).  A name with ``<taxon>`` stands for one column per taxon
+(``cost_to_<taxon>``), one with ``<slice>`` for one per time slice.  Stages make the
+tables; this module only says what their columns are, so both stages and writers may
+import it.
 
 Examples
 --------
@@ -26,7 +28,7 @@ from dataclasses import dataclass
 import pandas as pd
 
 __all__ = ["Column", "EVALUATION", "OVERLAP", "CANDIDATES", "contract", "header",
-           "columns_markdown", "empty_frame", "find_column"]
+           "columns_markdown", "contract_markdown", "empty_frame", "find_column"]
 
 
 
@@ -268,4 +270,20 @@ def columns_markdown(columns) -> str:
     for c in columns:
         name = f"**`{c.name}`**" if c.contract else f"`{c.name}`"
         lines.append(f"| {name} | {c.dtype} | {c.unit} | {c.meaning} |")
+    return "\n".join(lines)
+
+
+def contract_markdown(tables: dict) -> str:
+    """The contract columns of each table as one short Markdown table (for the README).
+
+    Parameters
+    ----------
+    tables : dict
+        File name (``"candidates.csv"``) to its column registry, in the order to list.
+    """
+    lines = ["| file | contract columns, always written first, in this order |",
+             "| --- | --- |"]
+    for file, columns in tables.items():
+        names = ", ".join(f"`{n}`" for n in contract(columns))
+        lines.append(f"| `{file}` | {names} |")
     return "\n".join(lines)

@@ -78,6 +78,5 @@ def test_user_guide_column_tables_are_current(name):
     table = guide.split(f"<!-- columns:{name}:start -->", 1)[1].split(
         f"<!-- columns:{name}:end -->", 1)[0]
     assert table.strip() == columns_markdown(TABLES[name]).strip(), (
-        "docs/user-guide.md is out of date: regenerate the column tables from "
-        "screener.columns.columns_markdown()"
+        "docs/user-guide.md is out of date: run python tests/test_docs.py --write"
     )

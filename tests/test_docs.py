@@ -3,6 +3,13 @@
 import re
 from pathlib import Path
 
+from screener.columns import (
+    CANDIDATES,
+    EVALUATION,
+    OVERLAP,
+    columns_markdown,
+    contract_markdown,
+)
 from screener.outputs.cautions import cautions
 from screener.project import settings_table_markdown
 
@@ -33,9 +40,55 @@ def test_user_guide_settings_table_is_current():
     table = guide.split("<!-- settings-table:start -->", 1)[1].split(
         "<!-- settings-table:end -->", 1)[0]
     assert table.strip() == settings_table_markdown().strip(), (
-        "docs/user-guide.md is out of date: regenerate the table from "
-        "screener.project.settings_table_markdown()"
+        "docs/user-guide.md is out of date: run python tests/test_docs.py --write"
     )
+
+
+#: The generated blocks of the docs: (file, marker name, generator).  Each block sits
+#: between ``<!-- NAME:start -->`` and ``<!-- NAME:end -->``; ``python tests/test_docs.py
+#: --write`` regenerates them all.
+GENERATED = [
+    ("README.md", "columns:contract", lambda: contract_markdown(
+        {"candidates.csv": CANDIDATES, "evaluation.csv": EVALUATION,
+         "overlap.csv": OVERLAP})),
+    ("docs/user-guide.md", "settings-table", settings_table_markdown),
+    ("docs/user-guide.md", "columns:candidates", lambda: columns_markdown(CANDIDATES)),
+    ("docs/user-guide.md", "columns:evaluation", lambda: columns_markdown(EVALUATION)),
+    ("docs/user-guide.md", "columns:overlap", lambda: columns_markdown(OVERLAP)),
+]
+
+
+def _block(text: str, name: str) -> str:
+    """The text between the start and end markers ``name`` (an error if either is missing)."""
+    start, end = f"<!-- {name}:start -->", f"<!-- {name}:end -->"
+    assert start in text and end in text, f"markers {start} ... {end} are missing"
+    return text.split(start, 1)[1].split(end, 1)[0]
+
+
+def _with_block(text: str, name: str, body: str) -> str:
+    """``text`` with the block ``name`` replaced by ``body``."""
+    start, end = f"<!-- {name}:start -->", f"<!-- {name}:end -->"
+    head, rest = text.split(start, 1)
+    return f"{head}{start}\n{body.strip()}\n{end}{rest.split(end, 1)[1]}"
+
+
+def test_readme_contract_columns_table_is_current():
+    readme = (ROOT / "README.md").read_text(encoding="utf-8")
+    file, name, make = GENERATED[0]
+    assert _block(readme, name).strip() == make().strip(), (
+        "README.md is out of date: run python tests/test_docs.py --write"
+    )
+
+
+def test_write_keeps_the_text_around_each_block():
+    """What ``--write`` does to a file: only the block between its markers changes."""
+    for file, name, make in GENERATED:
+        text = (ROOT / file).read_text(encoding="utf-8")
+        new = _with_block(text, name, make())
+        assert _block(new, name).strip() == make().strip()
+        start, end = f"<!-- {name}:start -->", f"<!-- {name}:end -->"
+        assert new.split(start)[0] == text.split(start)[0]
+        assert new.split(end)[1] == text.split(end)[1]
 
 
 def test_top_level_layout():
@@ -144,3 +197,10 @@ if __name__ == "__main__":
     if "--write" in sys.argv:
         (ROOT / "docs" / "validation.md").write_text(expected_validation())
         print("wrote docs/validation.md")
+        for file, name, make in GENERATED:
+            path = ROOT / file
+            text = path.read_text(encoding="utf-8")
+            new = _with_block(text, name, make())
+            if new != text:
+                path.write_text(new, encoding="utf-8")
+                print(f"wrote the {name} block of {file}")
