@@ -61,6 +61,7 @@ import numpy as np
 from sklearn.decomposition import PCA
 from sklearn.preprocessing import StandardScaler
 
+from screener.background import draw_background
 from screener.errors import InputError, ScreenerDeprecationWarning
 from screener.parallel import Executor, make_executor, spawn_seeds
 from screener.project import default
@@ -73,6 +74,7 @@ __all__ = [
     "EnvironmentalSpace",
     "TaxonOccupancy",
     "environmental_space",
+    "shared_available_cells",
     "record_bandwidth",
     "environmental_overlap",
     "niche_breadth",
@@ -663,6 +665,47 @@ def _checked_places(places, rows) -> tuple:
             )
         out.append(xy)
     return tuple(out)
+
+
+def shared_available_cells(
+    grid,
+    accessible_a,
+    accessible_b,
+    *,
+    study_area: bool = False,
+    max_points: int = default("background", "max_points"),
+    random_state=0,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Cells of a pair's shared available environment (``env_available``).
+
+    Drawn from the union of the two accessible areas, or from the whole study area
+    with ``study_area=True``, by :func:`screener.background.draw_background` (up to
+    ``max_points`` cells, with probability proportional to their ground area).  The
+    predictor values at these cells are the ``env_available`` of
+    :func:`environmental_space` and :func:`compare_pair`: both taxa's occupancies
+    are corrected by this one density.
+
+    Parameters
+    ----------
+    grid : screener.grid.Grid
+    accessible_a, accessible_b : ndarray of bool (n_rows, n_cols)
+        Each taxon's accessible area.
+    study_area : bool, default False
+        Draw from the whole study area (``grid.mask``) instead.
+    max_points : int, default 10000
+    random_state : int, default 0
+        Seed; the same seed draws the same cells.
+
+    Returns
+    -------
+    rows, cols : ndarray of int64
+    """
+    if study_area:
+        area = grid.mask
+    else:
+        area = np.asarray(accessible_a, bool) | np.asarray(accessible_b, bool)
+    bg = draw_background(grid, area, max_points=max_points, random_state=random_state)
+    return bg.rows, bg.cols
 
 
 def environmental_space(

@@ -29,7 +29,6 @@ import rasterio
 from screener import __version__
 from screener.access import walk_from_start_points
 from screener.alignment import align_layers, aligned_layer_folder
-from screener.background import draw_background
 from screener.cache import StageCache, digest
 from screener.darwincore import DarwinCoreOptions
 from screener.errors import InputError, LayerError, ScreenerWarning, suggest
@@ -43,6 +42,7 @@ from screener.isolation import (
 )
 from screener.layers import LayerStack, check_layers, hillshade, read_layers, slope_aspect
 from screener.models import accepts_random_state
+from screener.models.ensemble import clade_agreement
 from screener.models.mapping import GeographicRefit, refit_seconds
 from screener.models.taxon import family_params, fit_taxon, taxon_seed
 from screener.novelty import mess_map
@@ -56,11 +56,16 @@ from screener.outputs.staging import (
 )
 from screener.outputs.tables import OVERLAP_COLUMNS
 from screener.outputs.writer import write_outputs
-from screener.overlap import OverlapTaxon, compare_pair, correct_for_multiplicity
+from screener.overlap import (
+    OverlapTaxon,
+    compare_pair,
+    correct_for_multiplicity,
+    shared_available_cells,
+)
 from screener.parallel import Executor, make_executor
 from screener.project import Settings, settings_from_dict
 from screener.randomisation import cluster_link_km
-from screener.ranking import group_sites, rank_sites, site_ids, site_keys
+from screener.ranking import assign_site_ids, group_sites, rank_sites
 from screener.records import (
     RecordSet,
     drop_summary_lines,
@@ -540,11 +545,16 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None
             f"{a} vs {b}: {s.overlap.n_replicates} replicates"
             + (" (environmental and geographic)" if refit else " (environmental)")
         )
+        avail = shared_available_cells(
+            grid, ta.accessible, tb.accessible,
+            study_area=s.overlap.available_environment == "study_area",
+            max_points=s.background.max_points, random_state=seed,
+        )
         cmp = compare_pair(
             _overlap_taxon(grid, a, ta),
             _overlap_taxon(grid, b, tb),
             cell_area_km2=areas,
-            env_available=_shared_available(intake, ta, tb, seed),
+            env_available=intake.predictor_stack().values_at(*avail),
             n_replicates=s.overlap.n_replicates,
             hypothesis=s.overlap.similarity_hypothesis,
             grid_cells=s.overlap.grid_cells,
@@ -584,25 +594,6 @@ def _overlap_taxon(grid, name: str, t):
         cells=np.ravel_multi_index((t.records.rows, t.records.cols), grid.shape),
         accessible=t.accessible,
     )
-
-
-def _shared_available(intake: Intake, ta, tb, seed: int) -> np.ndarray:
-    """Predictor values of the pair's shared available environment.
-
-    Cells drawn (deterministically, from the pair's seed) from the union of the two
-    accessible areas, or from the whole study area when ``[overlap]
-    available_environment = "study_area"``; both taxa's occupancies are corrected by
-    this one density.
-    """
-    grid = intake.grid
-    if intake.settings.overlap.available_environment == "study_area":
-        area = grid.mask
-    else:
-        area = np.asarray(ta.accessible, bool) | np.asarray(tb.accessible, bool)
-    bg = draw_background(
-        grid, area, max_points=intake.settings.background.max_points, random_state=seed
-    )
-    return intake.predictor_stack().values_at(bg.rows, bg.cols)
 
 
 #: "auto" runs the geographic-space tests of a pair when their estimated time
@@ -680,15 +671,7 @@ def plan_sites(intake: Intake, taxa: dict, *, executor: Executor | None = None,
     other = "relaxed" if use == "mtp" else "mtp"
     th_relaxed = {n: t.thresholds[other].value for n, t in taxa.items()}
     records = {n: (t.records.rows, t.records.cols) for n, t in taxa.items()}
-    agreement = None
-    ags = [t.agreement for t in taxa.values() if t.agreement is not None]
-    if ags:
-        # the cell-wise maximum over taxa (NaN if any taxon's is), folded in place:
-        # no stack of every taxon's map
-        agreement = np.array(ags[0], dtype=np.float32)
-        for a in ags[1:]:
-            np.maximum(agreement, a, out=agreement)
-        agreement[~grid.mask] = np.nan
+    agreement = clade_agreement((t.agreement for t in taxa.values()), grid.mask)
     clade_mess, _ = _clade_mess(intake, taxa, map_fn)
     clamped = None
     for t in taxa.values():
@@ -747,22 +730,13 @@ def plan_sites(intake: Intake, taxa: dict, *, executor: Executor | None = None,
 
     gdf = gpd.GeoDataFrame(gdf, geometry="geometry", crs=grid.pyproj_crs)
     paths = paths_geodataframe(grid, cand)
-    # one identifier per site, by rank (S01 = rank 1), and a key from its location
-
-    found = gdf["site_id"].astype(int).tolist()
-    ids = dict(zip(found, site_ids(gdf["rank"]), strict=True))
-    cand = cand.with_site_ids(dict(zip(found, gdf["rank"].astype(int), strict=True)), ids)
-    gdf["site_id"] = [ids[k] for k in found]
-    gdf.insert(gdf.columns.get_loc("site_id") + 1, "site_key",
-               site_keys(gdf["longitude"], gdf["latitude"]))
-    paths = paths[paths["site_id"].isin(found)].copy()
-    paths["site_id"] = paths["site_id"].map(ids).astype(object)
+    gdf, paths, cand, ids = assign_site_ids(gdf, paths, cand)
     shares = _record_resampling(intake, taxa, cand, len(gdf), progress, map_fn, use, other)
     for name, row in zip(("refit_suitable", "refit_isolated", "refit_top_k"), shares,
                          strict=True):
         gdf[name] = row
     if slices is not None:
-        hist = slices.history[slices.history["site_id"].isin(found)].copy()
+        hist = slices.history[slices.history["site_id"].isin(list(ids))].copy()
         hist["site_id"] = hist["site_id"].map(ids).astype(object)
         slices = dataclasses.replace(slices, history=hist)
     return PlanResult(

@@ -57,6 +57,7 @@ from screener.project import default
 
 __all__ = [
     "DEFAULT_WEIGHTS",
+    "assign_site_ids",
     "component_scores",
     "group_sites",
     "rank_sites",
@@ -328,6 +329,50 @@ def site_keys(lon, lat) -> list:
             f"{abs(y):05.2f}{'N' if y >= 0 else 'S'}{abs(x):06.2f}{'E' if x >= 0 else 'W'}"
         )
     return out
+
+
+def assign_site_ids(sites, paths, candidates):
+    """Give every ranked site its one identifier (:func:`site_ids`) and key.
+
+    Sites are numbered as found (``site_id`` an int) until ranked; this renames
+    them by rank (``S01`` = rank 1) everywhere they appear, and adds ``site_key``
+    (:func:`site_keys`, from ``longitude`` and ``latitude`` in degrees) right after
+    ``site_id``.
+
+    Parameters
+    ----------
+    sites : pandas.DataFrame or geopandas.GeoDataFrame
+        The ranked sites, with ``site_id`` (number as found), ``rank``,
+        ``longitude`` and ``latitude`` (degrees).
+    paths : pandas.DataFrame or geopandas.GeoDataFrame
+        Least-cost paths with ``site_id`` (number as found); paths of sites not in
+        ``sites`` are dropped.
+    candidates : screener.isolation.CandidateSet
+        The candidate set the numbers come from.
+
+    Returns
+    -------
+    sites, paths : same types as given
+        Copies with ``site_id`` the identifier (``S01``) and, in ``sites``,
+        ``site_key``.
+    candidates : screener.isolation.CandidateSet
+        Under the plan's identifiers (:meth:`~screener.isolation.CandidateSet.with_site_ids`;
+        ``patch_labels`` hold each site's rank).
+    ids : dict of int to str
+        Site number as found -> identifier, to rename other tables the same way.
+    """
+    found = sites["site_id"].astype(int).tolist()
+    ids = dict(zip(found, site_ids(sites["rank"]), strict=True))
+    candidates = candidates.with_site_ids(
+        dict(zip(found, sites["rank"].astype(int), strict=True)), ids
+    )
+    sites = sites.copy()
+    sites["site_id"] = [ids[k] for k in found]
+    sites.insert(sites.columns.get_loc("site_id") + 1, "site_key",
+                 site_keys(sites["longitude"], sites["latitude"]))
+    paths = paths[paths["site_id"].isin(found)].copy()
+    paths["site_id"] = paths["site_id"].map(ids).astype(object)
+    return sites, paths, candidates, ids
 
 
 def group_sites(

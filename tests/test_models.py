@@ -21,7 +21,12 @@ from screener.models import (
     make_model,
     training_presence_scores,
 )
-from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
+from screener.models.ensemble import (
+    agreement_map,
+    clade_agreement,
+    ensemble_weights,
+    weighted_mean_map,
+)
 from screener.models.inspect import permutation_importance, response_curves
 
 FAST = {"forest": {"n_estimators": 50}, "ppm": {"n_penalties": 4}}
@@ -375,3 +380,19 @@ def test_clamped_model_scores_beyond_the_range_as_at_its_edge():
     inside = bg[:50]
     assert_allclose(clamped.predict(inside), model.predict(inside), rtol=1e-12)
     assert clamped.accepts_invalid_rows == model.accepts_invalid_rows
+
+
+def test_clade_agreement_is_the_cellwise_maximum_over_taxa():
+    rng = np.random.default_rng(4)
+    maps = [rng.random((4, 5)).astype(np.float32) for _ in range(3)]
+    maps[1][0, 0] = np.nan
+    mask = np.ones((4, 5), bool)
+    mask[3, 4] = False
+    got = clade_agreement([maps[0], None, maps[1], maps[2]], mask)
+    ref = np.max(np.stack(maps), axis=0)  # numpy's maximum: NaN where any is NaN
+    ref[~mask] = np.nan
+    assert got.dtype == np.float32
+    assert_allclose(got, ref, equal_nan=True)
+    assert np.isnan(got[0, 0]) and np.isnan(got[3, 4])
+    assert not np.shares_memory(got, maps[0])  # the taxa's maps are left as they were
+    assert clade_agreement([None, None]) is None

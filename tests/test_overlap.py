@@ -759,3 +759,23 @@ def test_a_run_is_holm_corrected_over_every_pair_test_and_space():
     assert "covered the 6 p-values" in reading
     # 19 replicates cannot reach 0.05 / 6: the reading says so
     assert "raise [overlap] n_replicates" in reading
+
+
+def test_shared_available_cells_come_from_the_union_or_the_study_area():
+    mask = np.ones((6, 8), bool)
+    mask[0, :] = False
+    grid = Grid("EPSG:4326", Affine(1.0, 0, 10.0, 0, -1.0, 50.0), mask.shape, mask=mask)
+    acc_a = np.zeros(mask.shape, bool)
+    acc_b = np.zeros(mask.shape, bool)
+    acc_a[1:3, 0:3] = True
+    acc_b[2:5, 2:6] = True
+    rows, cols = ov.shared_available_cells(grid, acc_a, acc_b, max_points=1000)
+    drawn = np.zeros(mask.shape, bool)
+    drawn[rows, cols] = True
+    assert np.array_equal(drawn, acc_a | acc_b)  # fewer cells than max_points: all
+    rows, cols = ov.shared_available_cells(grid, acc_a, acc_b, study_area=True,
+                                           max_points=1000)
+    assert len(rows) == mask.sum() and mask[rows, cols].all()
+    r1 = ov.shared_available_cells(grid, acc_a, acc_b, max_points=5, random_state=3)
+    r2 = ov.shared_available_cells(grid, acc_a, acc_b, max_points=5, random_state=3)
+    assert len(r1[0]) == 5 and np.array_equal(r1[0], r2[0]) and (acc_a | acc_b)[r1].all()

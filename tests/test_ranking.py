@@ -112,3 +112,41 @@ def test_no_sites_gives_an_empty_plan():
     r = group_sites(rank_sites(empty, n_draws=100))
     assert len(r) == 0
     assert {"score", "rank", "rank_low", "rank_high", "rank_robustness", "group_id"} <= set(r)
+
+
+def test_assign_site_ids_names_every_site_by_rank_everywhere():
+    # a strip: known range | gap | patch | gap | patch (1 km cells, projected grid)
+    from affine import Affine
+
+    from screener.grid import Grid
+    from screener.isolation import (
+        Clade,
+        IsolationParameters,
+        find_candidates,
+        paths_geodataframe,
+        sites_geodataframe,
+    )
+    from screener.ranking import assign_site_ids, site_ids
+
+    s = np.full((5, 14), 0.2)
+    s[:, 0:3], s[:, 5:7], s[:, 11:14] = 0.9, 0.8, 0.9
+    grid = Grid("EPSG:32633", Affine(1000.0, 0, 500000, 0, -1000.0, 5000000), s.shape)
+    cand = find_candidates(
+        Clade(grid, {"A": s}, {"A": ([2], [0])}), {"A": 0.5},
+        parameters=IsolationParameters(min_gap_km=3.0, min_patch_km2=1.0,
+                                       within_range_min_km=50.0),
+    )
+    ranked = rank_sites(cand.sites, n_draws=0)
+    gdf = sites_geodataframe(grid, cand)[["site_id", "geometry"]].merge(
+        ranked, on="site_id", how="right").sort_values("rank", kind="stable")
+    found = gdf["site_id"].astype(int).tolist()
+    out, paths, cand2, ids = assign_site_ids(gdf, paths_geodataframe(grid, cand), cand)
+    assert len(found) == 2
+    assert ids == dict(zip(found, site_ids(gdf["rank"]), strict=True))
+    assert list(out["site_id"]) == ["S01", "S02"]
+    assert list(out.columns[:2]) == ["site_id", "site_key"]
+    assert gdf["site_id"].tolist() == found  # the input is left as it was
+    assert set(paths["site_id"]) <= {"S01", "S02"} and len(paths) > 0
+    # the labelled raster holds each site's rank on the cells of its patch
+    for number, rank in zip(found, gdf["rank"], strict=True):
+        assert np.array_equal(cand2.patch_labels == rank, cand.patch_labels == number)

@@ -3,14 +3,17 @@
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 
 import numpy as np
 from sklearn.base import BaseEstimator
 
 from screener.errors import InputError
 
-__all__ = ["ensemble_weights", "weighted_mean_map", "agreement_map", "ConsensusModel"]
+__all__ = [
+    "ensemble_weights", "weighted_mean_map", "agreement_map", "clade_agreement",
+    "ConsensusModel",
+]
 
 
 def ensemble_weights(
@@ -129,6 +132,47 @@ def agreement_map(
             count += a >= np.float32(thresholds[n])
     out = count / np.float32(len(names))
     out[nan] = np.nan
+    return out
+
+
+def clade_agreement(
+    maps: Iterable[np.ndarray | None], mask: np.ndarray | None = None
+) -> np.ndarray | None:
+    """Agreement of a clade: the cell-wise maximum over its taxa's agreement maps.
+
+    A cell counts as agreed for the clade as far as it is agreed for the taxon whose
+    families agree most there (each map from :func:`agreement_map`).  The maps are
+    folded one by one, so no stack of every taxon's map is held in memory.
+
+    Parameters
+    ----------
+    maps : iterable of ndarray (n_rows, n_cols) or None
+        Each taxon's agreement map (share of families, 0 to 1); None entries (taxa
+        without one) are skipped.
+    mask : ndarray of bool (n_rows, n_cols), optional
+        Study-area cells; cells outside are NaN.
+
+    Returns
+    -------
+    ndarray of float32 in [0, 1] or None
+        NaN where any taxon's map is NaN (or outside ``mask``); None when no taxon
+        has an agreement map.
+
+    Examples
+    --------
+    >>> clade_agreement([np.array([0.5, 1.0]), None, np.array([0.75, 0.25])])
+    array([0.75, 1.  ], dtype=float32)
+    """
+    out = None
+    for a in maps:
+        if a is None:
+            continue
+        if out is None:
+            out = np.array(a, dtype=np.float32)
+        else:
+            np.maximum(out, a, out=out)
+    if out is not None and mask is not None:
+        out[~np.asarray(mask, bool)] = np.nan
     return out
 
 
