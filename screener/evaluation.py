@@ -895,6 +895,20 @@ def evaluate_family(
             "Boyce and TSS left empty: the jackknife holds out one record per model, "
             "and both need several held-out records scored by the same model."
         )
+        n_held = int(np.asarray(jk.left_out_scores).size)
+        if n_held == 0:
+            ev.note = (
+                f"No jackknife: the {n} records form spatial clusters too large to hold "
+                f"out (records within {cluster_km or 0.0:.1f} km chain into one), "
+                "leaving fewer than 2 records to train on; AUC, omission and the "
+                "jackknife p are left empty. Judge this model with independent "
+                "records, such as the finds of a survey."
+            )
+        elif n_held < n:
+            ev.note += (
+                f" {n - n_held} of {n} records lie in a cluster too large to hold out "
+                "and were not tested."
+            )
         ev.extra["jackknife"] = jk
     else:
         method, pg, bgg = _partition(

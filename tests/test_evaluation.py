@@ -362,3 +362,18 @@ def test_consensus_is_evaluated_like_a_family():
     assert row["method"] == "jackknife" and 0 < row["jackknife_p"] <= 1
     assert 0 < row["auc_null_p"] <= 1 and 0.5 < row["auc"] <= 1
     assert "Boyce" in row["note"]  # says why Boyce and TSS are empty
+
+
+def test_family_evaluation_says_why_a_clustered_jackknife_is_empty(small):
+    pres, bg = small
+    xy = np.array([[0, 0], [1, 0], [2, 0], [20, 0], [20, 1], [40, 0], [60, 0],
+                   [80, 0]], float)
+    # one chain of records (100 km links): nothing can be held out with its cluster
+    one = evaluate_family("ellipsoid", {}, pres, bg, presence_xy=xy, background_xy=bg,
+                          n_null=0, lonlat=False, cluster_km=100.0)
+    assert np.isnan(one.auc) and one.n_folds == 0
+    assert one.note.startswith("No jackknife") and "100.0 km" in one.note
+    # clusters that can be held out: the usual note, no claim of untested records
+    some = evaluate_family("ellipsoid", {}, pres, bg, presence_xy=xy, background_xy=bg,
+                           n_null=0, lonlat=False, cluster_km=1.5)
+    assert some.n_folds == 5 and "not tested" not in some.note
