@@ -27,6 +27,7 @@ import numpy as np
 from screener.costdistance import cost_distance
 from screener.errors import InputError
 from screener.grid import Grid
+from screener.layers import ground_gradients
 
 __all__ = [
     "OFF_TRACK_FACTOR",
@@ -98,9 +99,10 @@ def isotropic_speed_kmh(
 def slope_rise_over_run(grid: Grid, elevation) -> np.ndarray:
     """Slope magnitude (rise over run) of every cell, from elevation in metres.
 
-    Central differences (``numpy.gradient``) with the grid's ground spacing: per row
-    for east-west steps (they shrink with latitude on geographic grids) and the
-    row-to-row distances north-south.  Beside missing elevation (a coast, the edge of
+    From :func:`screener.layers.ground_gradients`: central differences
+    (``numpy.gradient``) with the grid's ground spacing: per row for east-west steps
+    (they shrink with latitude on geographic grids) and the row-to-row distances
+    north-south.  Beside missing elevation (a coast, the edge of
     the data) the one-sided difference to the valid neighbour is used, so edge cells,
     such as a coastal start point, stay walkable; a cell with no valid neighbour
     along an axis has no slope along it.  NaN where elevation is missing.
@@ -113,30 +115,8 @@ def slope_rise_over_run(grid: Grid, elevation) -> np.ndarray:
     z = np.where(grid.mask, z, np.nan)
     if grid.n_rows < 2 or grid.n_cols < 2:
         raise InputError("`elevation` needs at least 2 rows and 2 columns for slopes.")
-    y_m = np.concatenate([[0.0], np.cumsum(grid.ns_step_km)]) * 1000.0
-    ew_m = np.asarray(grid.ew_step_km)[:, None] * 1000.0
-    gy = _to_valid_neighbour(z, np.gradient(z, y_m, axis=0),
-                             np.diff(z, axis=0) / np.diff(y_m)[:, None], axis=0)
-    gx = _to_valid_neighbour(z, np.gradient(z, axis=1) / ew_m,
-                             np.diff(z, axis=1) / ew_m, axis=1)
+    gx, gy = ground_gradients(grid, z)
     return np.hypot(gx, gy)
-
-
-def _to_valid_neighbour(z, central, step, axis):
-    """``central`` differences where finite; else the one-sided difference (``step``:
-    differences between consecutive cells along ``axis`` over their spacing) to the
-    next or the previous cell; else 0 on a valid cell with no valid neighbour; NaN on
-    missing cells."""
-    pad = [(0, 0), (0, 0)]
-    pad[axis] = (0, 1)
-    forward = np.pad(step, pad, constant_values=np.nan)
-    pad[axis] = (1, 0)
-    backward = np.pad(step, pad, constant_values=np.nan)
-    out = np.where(np.isfinite(central), central, forward)
-    out = np.where(np.isfinite(out), out, backward)
-    out = np.where(np.isfinite(out), out, 0.0)
-    # a central difference skips the cell itself: a missing cell has no slope
-    return np.where(np.isfinite(z), out, np.nan)
 
 
 def start_cells_from_lonlat(grid: Grid, lon, lat):

@@ -26,6 +26,7 @@ __all__ = [
     "list_bands",
     "read_layers",
     "check_layers",
+    "ground_gradients",
     "slope_aspect",
     "hillshade",
 ]
@@ -835,24 +836,74 @@ def check_layers(stack: LayerStack, *, sample: int = 200_000, random_state=0,
     return report
 
 
-def _metre_gradients(grid: Grid, elevation: np.ndarray):
-    """d(elevation)/d(east) and d(elevation)/d(north), dimensionless (m per m)."""
+def ground_gradients(grid: Grid, elevation) -> tuple:
+    """Gradient of elevation towards east and north in metres per metre (rise over run).
+
+    The one terrain gradient of the screener: slopes for walking
+    (:func:`screener.access.slope_rise_over_run`), slope and aspect
+    (:func:`slope_aspect`) and the hillshade (:func:`hillshade`) all use it.
+
+    Parameters
+    ----------
+    grid : Grid
+        Ground spacing: each row's own east-west cell width (km; it shrinks with
+        latitude on geographic grids) and the north-south distances between rows.
+    elevation : ndarray of shape (n_rows, n_cols)
+        Metres; NaN for nodata.
+
+    Returns
+    -------
+    dz_deast, dz_dnorth : ndarray of float64
+        NaN where elevation is missing.
+
+    Notes
+    -----
+    Central differences (``numpy.gradient``) over the ground spacing.  Beside missing
+    elevation (a coast, a hole, the edge of the data) the one-sided difference to the
+    valid neighbour is used, so cells next to nodata keep their slope; a valid cell
+    with no valid neighbour along an axis has no gradient along it (0).  An axis of
+    length 1 has no gradient along it.
+    """
     z = np.asarray(elevation, dtype=np.float64)
-    dz_drow, dz_dcol = np.gradient(z)  # per cell, NaN propagates
-    dx_m = grid.ew_step_km[:, None] * 1000.0
-    ns = grid.ns_step_km * 1000.0
-    if ns.size == 0:
-        dy_m = np.full((grid.n_rows, 1), np.inf)
+    if z.shape != tuple(grid.shape):
+        raise ValueError(f"elevation has shape {z.shape}, expected {tuple(grid.shape)}")
+    n_rows, n_cols = z.shape
+    if n_rows > 1:
+        # northing of each row (rows increase southwards)
+        y_m = -np.concatenate([[0.0], np.cumsum(grid.ns_step_km)]) * 1000.0
+        dz_dnorth = _to_valid_neighbour(z, np.gradient(z, y_m, axis=0),
+                                        np.diff(z, axis=0) / np.diff(y_m)[:, None],
+                                        axis=0)
     else:
-        # np.gradient uses central differences: spacing is the mean of neighbouring steps
-        dy = np.empty(grid.n_rows)
-        dy[0] = ns[0]
-        dy[-1] = ns[-1]
-        dy[1:-1] = 0.5 * (ns[:-1] + ns[1:])
-        dy_m = dy[:, None]
-    dz_deast = dz_dcol / dx_m
-    dz_dnorth = -dz_drow / dy_m  # rows increase southwards
+        dz_dnorth = np.where(np.isfinite(z), 0.0, np.nan)
+    if n_cols > 1:
+        ew_m = np.asarray(grid.ew_step_km, dtype=np.float64)[:, None] * 1000.0
+        dz_deast = _to_valid_neighbour(z, np.gradient(z, axis=1) / ew_m,
+                                       np.diff(z, axis=1) / ew_m, axis=1)
+    else:
+        dz_deast = np.where(np.isfinite(z), 0.0, np.nan)
     return dz_deast, dz_dnorth
+
+
+def _to_valid_neighbour(z, central, step, axis):
+    """``central`` differences where finite; else the one-sided difference (``step``:
+    differences between consecutive cells along ``axis`` over their spacing) to the
+    next or the previous cell; else 0 on a valid cell with no valid neighbour; NaN on
+    missing cells."""
+    pad = [(0, 0), (0, 0)]
+    pad[axis] = (0, 1)
+    forward = np.pad(step, pad, constant_values=np.nan)
+    pad[axis] = (1, 0)
+    backward = np.pad(step, pad, constant_values=np.nan)
+    out = np.where(np.isfinite(central), central, forward)
+    out = np.where(np.isfinite(out), out, backward)
+    out = np.where(np.isfinite(out), out, 0.0)
+    # a central difference skips the cell itself: a missing cell has no gradient
+    return np.where(np.isfinite(z), out, np.nan)
+
+
+#: rise over run below which a cell counts as flat (no aspect)
+FLAT_RISE_OVER_RUN = 1e-9
 
 
 def slope_aspect(grid: Grid, elevation: np.ndarray):
@@ -870,18 +921,24 @@ def slope_aspect(grid: Grid, elevation: np.ndarray):
     slope_deg : ndarray of float32
         Slope in degrees (0 = flat).
     aspect_deg : ndarray of float32
-        Downslope direction in degrees clockwise from north (NaN on flat cells).
+        Downslope direction in degrees clockwise from north (NaN on flat cells, rise
+        over run below ``FLAT_RISE_OVER_RUN``, and where elevation is missing).
 
     Notes
     -----
-    Central differences (``numpy.gradient``); on geographic grids the east-west
-    spacing is the geodesic width of the row, so degrees are never used as metres.
+    Gradients from :func:`ground_gradients`: central differences
+    (``numpy.gradient``), and beside nodata (a coast, a hole) the one-sided
+    difference to the valid neighbour, so coastal cells keep their slope and aspect;
+    NaN where elevation is missing.  On geographic grids the east-west spacing is the
+    geodesic width of the row, so degrees are never used as metres.
     """
-    gx, gy = _metre_gradients(grid, elevation)
+    gx, gy = ground_gradients(grid, elevation)
     slope = np.degrees(np.arctan(np.hypot(gx, gy)))
     # downslope direction: opposite of the gradient vector (east = gx, north = gy)
     aspect = (np.degrees(np.arctan2(-gx, -gy)) + 360.0) % 360.0
-    aspect[np.hypot(gx, gy) == 0] = np.nan
+    # flat: below 1 mm per 1000 km, the rounding of central differences over unequal
+    # row steps on flat ground
+    aspect[np.hypot(gx, gy) < FLAT_RISE_OVER_RUN] = np.nan
     return slope.astype(np.float32), aspect.astype(np.float32)
 
 
@@ -926,9 +983,10 @@ def hillshade(
     own east-west width, so a slope on a geographic grid is not exaggerated towards
     the poles; :meth:`matplotlib.colors.LightSource.shade_normals` then shades them
     (and stretches the result to [0, 1]).  On a projected grid the result equals
-    ``LightSource.hillshade`` with ``dx``, ``dy`` the cell size in metres.  Nodata
-    cells are filled with the nearest valid elevation for the gradients and are NaN
-    in the result.
+    ``LightSource.hillshade`` with ``dx``, ``dy`` the cell size in metres.  Beside
+    nodata (a coast, a hole) the gradients are the one-sided differences to the
+    valid neighbour (:func:`ground_gradients`); nodata cells are NaN in the result
+    and take no part in the stretch.
 
     References
     ----------
@@ -938,7 +996,6 @@ def hillshade(
        shade_normals).
     """
     from matplotlib.colors import LightSource
-    from scipy import ndimage
 
     z = np.asarray(elevation, dtype=float)
     if z.shape != tuple(grid.shape):
@@ -946,36 +1003,15 @@ def hillshade(
     nan = ~np.isfinite(z)
     if nan.all():
         return np.full(z.shape, np.nan)
-    if nan.any():
-        # Fill gaps with the nearest valid value so gradients at the edge stay finite.
-        idx = ndimage.distance_transform_edt(
-            nan, return_distances=False, return_indices=True
-        )
-        z = z[tuple(idx)]
-    z = vert_exag * z
-    dx_m = np.asarray(grid.ew_step_km, float) * 1000.0
-    if z.shape[0] > 1:
-        northing = -np.concatenate([[0.0], np.cumsum(grid.ns_step_km)]) * 1000.0
-        if grid.constant_steps:
-            e_dy = np.gradient(z, -float(grid.ns_step_km[0]) * 1000.0, axis=0)
-        else:
-            e_dy = np.gradient(z, northing, axis=0)
-    else:
-        e_dy = np.zeros_like(z)
-    if z.shape[1] > 1:
-        if grid.constant_steps:
-            e_dx = np.gradient(z, float(dx_m[0]), axis=1)
-        else:
-            e_dx = np.gradient(z, axis=1) / dx_m[:, None]
-    else:
-        e_dx = np.zeros_like(z)
-    normal = np.empty(z.shape + (3,))
-    normal[..., 0] = -e_dx
-    normal[..., 1] = -e_dy
-    normal[..., 2] = 1.0
-    normal /= np.sqrt(np.sum(normal**2, axis=-1))[..., None]
+    e_dx, e_dy = ground_gradients(grid, vert_exag * z)
+    valid = ~nan
+    normal = np.empty((int(valid.sum()), 3))
+    normal[:, 0] = -e_dx[valid]
+    normal[:, 1] = -e_dy[valid]
+    normal[:, 2] = 1.0
+    normal /= np.sqrt(np.sum(normal**2, axis=-1))[:, None]
     ls = LightSource(azdeg=azimuth, altdeg=altitude)
-    out = ls.shade_normals(normal, fraction=1.0)
-    out = np.asarray(out, float)
-    out[nan] = np.nan
+    # shaded (and stretched to [0, 1]) over the cells with elevation only
+    out = np.full(z.shape, np.nan)
+    out[valid] = np.asarray(ls.shade_normals(normal, fraction=1.0), float)
     return out

@@ -9,7 +9,7 @@ from numpy.testing import assert_allclose
 
 from screener.errors import CollinearityWarning, GridMismatchError, LayerError, ScreenerWarning
 from screener.grid import Grid
-from screener.layers import check_layers, read_layers, slope_aspect
+from screener.layers import check_layers, hillshade, read_layers, slope_aspect
 
 
 def test_union_of_nodata_defines_valid_cells(small_layers, tif_writer, tmp_path):
@@ -168,6 +168,53 @@ def test_slope_uses_true_metre_spacing_on_lat_lon_grid():
     slope2, aspect2 = slope_aspect(g, south_m)
     assert_allclose(slope2[1:-1], 45.0, atol=1e-6)
     assert_allclose(aspect2[1:-1], 0.0, atol=1e-6)
+
+
+def _ramp_with_coast_and_hole():
+    """A plane on a 1 km projected grid (rising 0.06 m/m east, 0.08 m/m north) with a
+    sea of nodata west of column 2 and a one-cell hole; also the full plane."""
+    grid = Grid("EPSG:32633", Affine(1000.0, 0, 500000.0, 0, -1000.0, 5000000.0), (6, 9))
+    east_m = (np.arange(9) + 0.5) * 1000.0
+    north_m = -(np.arange(6) + 0.5) * 1000.0  # rows run southwards
+    full = 0.06 * east_m[None, :] + 0.08 * north_m[:, None]
+    z = full.copy()
+    z[:, :2] = np.nan  # the sea
+    z[3, 5] = np.nan  # a hole
+    return grid, z, full
+
+
+def test_slope_and_aspect_beside_nodata_are_the_planes():
+    """Cells on the coast and around the hole keep the plane's slope and aspect (the
+    one-sided difference to the valid neighbour); cells without elevation stay NaN.
+    Reference: numpy.gradient of the full plane (no nodata) over the 1000 m spacing,
+    which is the plane's own gradient: slope atan(hypot(0.06, 0.08)) = atan(0.1),
+    aspect (downslope, clockwise from north) atan2(-0.06, -0.08) = 216.87 degrees."""
+    grid, z, full = _ramp_with_coast_and_hole()
+    d_south, d_east = np.gradient(full, 1000.0)
+    ref_slope = np.degrees(np.arctan(np.hypot(d_east, -d_south)))
+    ref_aspect = (np.degrees(np.arctan2(-d_east, d_south)) + 360.0) % 360.0
+    land = np.isfinite(z)
+    slope, aspect = slope_aspect(grid, z)
+    beside = land & ~np.isfinite(np.gradient(z, axis=0) + np.gradient(z, axis=1))
+    assert beside.sum() == 6 + 4  # the coast column and the hole's four neighbours
+    assert_allclose(slope[land], ref_slope[land], rtol=1e-6)  # float32 output
+    assert_allclose(aspect[land], ref_aspect[land], rtol=1e-6)
+    assert_allclose(ref_slope, np.degrees(np.arctan(0.1)), rtol=1e-12)
+    assert np.isnan(slope[~land]).all() and np.isnan(aspect[~land]).all()
+
+
+def test_hillshade_beside_nodata_is_the_planes():
+    """Hillshade of the ramp with a coast and a hole: every land cell, the coast and
+    the hole's neighbours included, is lit as the full plane is by
+    matplotlib.colors.LightSource.hillshade (dx = dy = 1000 m); nodata stays NaN."""
+    from matplotlib.colors import LightSource
+
+    grid, z, full = _ramp_with_coast_and_hole()
+    ref = LightSource(azdeg=315, altdeg=45).hillshade(full, dx=1000.0, dy=1000.0)
+    land = np.isfinite(z)
+    shade = hillshade(grid, z)
+    assert_allclose(shade[land], ref[land], rtol=1e-12)
+    assert np.isnan(shade[~land]).all()
 
 
 @pytest.mark.parametrize(
