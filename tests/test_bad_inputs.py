@@ -1086,6 +1086,7 @@ REPRODUCE_CASES = [
 ]
 
 
+@pytest.mark.slow  # its fixture runs the whole small demo once
 @pytest.mark.parametrize("edit, pattern", REPRODUCE_CASES,
                          ids=["other record file", "hashes deleted", "hashes emptied"])
 def test_reproduce_refuses_an_edited_run_json(warm, tmp_path, edit, pattern):
@@ -1094,6 +1095,7 @@ def test_reproduce_refuses_an_edited_run_json(warm, tmp_path, edit, pattern):
     assert_refused(result, out, pattern)
 
 
+@pytest.mark.slow  # its fixture runs the whole small demo once
 def test_reproduce_refuses_a_truncated_run_json(warm, tmp_path):
     text = (warm.parent / "first" / "run.json").read_text(encoding="utf-8")
     (tmp_path / "run.json").write_text(text[: len(text) // 2], encoding="utf-8")
@@ -1184,6 +1186,7 @@ DEBRIEF_CASES = [
 ]
 
 
+@pytest.mark.slow  # its fixture runs the whole small demo once
 @pytest.mark.parametrize("damage, field, pattern", DEBRIEF_CASES,
                          ids=["truncated run.json", "no candidates.gpkg", "binary field file",
                               "unknown field taxon", "unquoted decimal commas",
@@ -1203,6 +1206,7 @@ def test_debrief_refuses_damaged_input(warm, tmp_path, damage, field, pattern):
     assert_refused(result, out, pattern)
 
 
+@pytest.mark.slow  # its fixture runs the whole small demo once
 def test_debrief_with_taxa_named_1_and_na_and_a_new_lineage(warm, tmp_path):
     run_dir = _run_copy(warm, tmp_path)
     renames = {"Nebrivex tarvelli": "NA", "Nebrivex quennomae": "1"}

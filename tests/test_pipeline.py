@@ -150,6 +150,7 @@ def test_time_slice_figure_has_no_overprinted_text(demo_run, tmp_path):
             assert not box_a.overlaps(box_b), (a, b)
 
 
+@pytest.mark.slow  # runs the whole small demo (its fixture)
 def test_unrecorded_massif_is_the_top_isolated_site(demo_run):
     _, out, _ = demo_run
     truth = DEMO_TRUTH["small"].unrecorded
