@@ -41,10 +41,9 @@ from screener.isolation import (
     sites_geodataframe,
 )
 from screener.layers import LayerStack, check_layers, hillshade, read_layers, slope_aspect
-from screener.models import accepts_random_state
 from screener.models.ensemble import clade_agreement
-from screener.models.mapping import GeographicRefit, refit_seconds
-from screener.models.taxon import family_params, fit_taxon, taxon_seed
+from screener.models.mapping import geographic_refit
+from screener.models.taxon import fit_taxon, taxon_seed
 from screener.novelty import mess_map
 from screener.outputs.sheets import plan_sampling_points
 from screener.outputs.run_folder import locate_run_inputs, relocate
@@ -511,11 +510,6 @@ def model_taxon(
                      step=progress.step)
 
 
-def _takes_seed(family: str) -> bool:
-
-    return accepts_random_state(family)
-
-
 # --------------------------------------------------------------------------- overlap
 def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None,
                  progress=None) -> OverlapResult:
@@ -540,7 +534,10 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None
         seed = int(np.random.SeedSequence(
             [s.project.random_state, zlib.crc32(f"{a}\x00{b}".encode())]
         ).generate_state(1)[0])
-        refit = _geographic_refit(intake, ta, tb, progress)
+        refit, skipped = geographic_refit(s, intake.predictor_stack(), ta.background_env,
+                                          tb.background_env, seed=ta.seed)
+        if skipped:
+            progress.step(skipped)
         progress.step(
             f"{a} vs {b}: {s.overlap.n_replicates} replicates"
             + (" (environmental and geographic)" if refit else " (environmental)")
@@ -596,54 +593,7 @@ def _overlap_taxon(grid, name: str, t):
     )
 
 
-#: "auto" runs the geographic-space tests of a pair when their estimated time
-#: (:func:`~screener.models.mapping.refit_seconds` x maps) is at most this, in seconds
-GEOGRAPHIC_TEST_BUDGET_S = 120.0
-
-
-def _geographic_refit(intake, ta, tb, progress):
-    """The refitting callable for geographic tests, or None when switched off."""
-    s = intake.settings
-    mode = s.overlap.geographic_tests
-    if mode == "off" or s.overlap.n_replicates <= 0:
-        return None
-    family = s.models.families[0]
-    params = family_params(s, family)
-    if _takes_seed(family):
-        params = {**params, "random_state": ta.seed}
-    stack = intake.predictor_stack()
-    if stack.streamed and mode == "auto":
-        progress.step(
-            "geographic-space tests skipped: the grid is streamed from disk and each "
-            "replicate would map it four times. Set [overlap] geographic_tests = \"on\" "
-            "to run them."
-        )
-        return None
-    # equivalency needs 2 maps per replicate, each similarity test one more; the
-    # estimate is a fixed cost model so that "auto" chooses alike on every machine
-    n_maps = 4 * s.overlap.n_replicates
-    estimate = refit_seconds(family, int(intake.grid.mask.sum())) * n_maps
-    if mode == "auto" and estimate > GEOGRAPHIC_TEST_BUDGET_S:
-        progress.step(
-            f"geographic-space tests would take about {estimate / 60:.0f} min "
-            f"(refitting {family} {n_maps} times over "
-            f"{int(intake.grid.mask.sum()):,} cells); skipped. "
-            "Set [overlap] geographic_tests = \"on\" to run them."
-        )
-        return None
-    X = stack.valid_matrix()
-    background = np.vstack([ta.background_env, tb.background_env])
-    refit = GeographicRefit(family, params, background, X, intake.grid.mask)
-    return refit
-
-
 # --------------------------------------------------------------------------- sites
-def _clade_mess(intake: Intake, taxa: dict, map_fn=None):
-    """MESS of every cell against the pooled calibration background of the clade."""
-    ref = np.vstack([t.background_env for t in taxa.values()])
-    return mess_map(intake.predictor_stack(), ref, map_fn=map_fn)
-
-
 def plan_sites(intake: Intake, taxa: dict, *, executor: Executor | None = None,
                progress=None) -> PlanResult:
     """Candidate sites, least-cost paths, barriers, access and the ranked plan.
@@ -672,7 +622,10 @@ def plan_sites(intake: Intake, taxa: dict, *, executor: Executor | None = None,
     th_relaxed = {n: t.thresholds[other].value for n, t in taxa.items()}
     records = {n: (t.records.rows, t.records.cols) for n, t in taxa.items()}
     agreement = clade_agreement((t.agreement for t in taxa.values()), grid.mask)
-    clade_mess, _ = _clade_mess(intake, taxa, map_fn)
+    # MESS of every cell against the pooled calibration background of the clade
+    clade_mess, _ = mess_map(intake.predictor_stack(),
+                             np.vstack([t.background_env for t in taxa.values()]),
+                             map_fn=map_fn)
     clamped = None
     for t in taxa.values():
         if getattr(t, "clamped", None) is not None:
@@ -731,7 +684,15 @@ def plan_sites(intake: Intake, taxa: dict, *, executor: Executor | None = None,
     gdf = gpd.GeoDataFrame(gdf, geometry="geometry", crs=grid.pyproj_crs)
     paths = paths_geodataframe(grid, cand)
     gdf, paths, cand, ids = assign_site_ids(gdf, paths, cand)
-    shares = _record_resampling(intake, taxa, cand, len(gdf), progress, map_fn, use, other)
+    shares = np.full((3, len(gdf)), np.nan)
+    if s.ranking.n_refits > 0 and len(gdf):
+        progress.step(f"record resampling: {s.ranking.n_refits} bootstrap refits of "
+                      f"{s.models.families[0]} per taxon")
+        plan = RefitPlan.for_plan(s, intake.predictor_stack(), taxa, cand.patch_labels,
+                                  len(gdf))
+        shares = record_resampling(plan, s.ranking.n_refits,
+                                   random_state=s.project.random_state,
+                                   map_fn=map_fn or map)
     for name, row in zip(("refit_suitable", "refit_isolated", "refit_top_k"), shares,
                          strict=True):
         gdf[name] = row
@@ -746,35 +707,6 @@ def plan_sites(intake: Intake, taxa: dict, *, executor: Executor | None = None,
                 for k, v in routes.items() if int(k) in ids},
         start_points=starts, slices=slices,
     )
-
-
-def _record_resampling(intake, taxa, cand, n_sites, progress, map_fn, use, other):
-    """Shares of bootstrap refits keeping each plan site suitable, isolated, top k."""
-
-    s = intake.settings
-    n = s.ranking.n_refits
-    if n <= 0 or n_sites == 0:
-        return np.full((3, n_sites), np.nan)
-    family = s.models.families[0]
-    progress.step(f"record resampling: {n} bootstrap refits of {family} per taxon")
-    plan = RefitPlan(
-        grid=intake.grid,
-        values=intake.predictor_stack().valid_matrix(),
-        family=family,
-        params=family_params(s, family),
-        records={k: (t.records.rows, t.records.cols) for k, t in taxa.items()},
-        background={k: t.background_env for k, t in taxa.items()},
-        relax=s.thresholds.relax,
-        use=use,
-        isolation=IsolationParameters.from_settings(s, threshold_names=(use, other)),
-        site_labels=cand.patch_labels,
-        n_sites=n_sites,
-        top_k=s.ranking.top_k,
-        weights=s.ranking.weights or None,
-        seeded=_takes_seed(family),
-    )
-    return record_resampling(plan, n, random_state=s.project.random_state,
-                             map_fn=map_fn or map)
 
 
 def _surveyed_points(intake: Intake, taxa: dict):

@@ -90,6 +90,48 @@ class RefitPlan:
     weights: dict | None = None
     seeded: bool = False
 
+    @classmethod
+    def for_plan(cls, settings, stack, taxa, site_labels, n_sites: int) -> RefitPlan:
+        """The refits a run's settings ask for, of the plan's ``n_sites`` sites.
+
+        Parameters
+        ----------
+        settings : screener.project.Settings
+            The first family of ``[models] families`` is refitted with its
+            ``[models.<family>]`` parameters; ``[thresholds]``, ``[ranking]`` and
+            the isolation settings are those of the run.
+        stack : screener.layers.LayerStack
+            The predictor layers.
+        taxa : mapping of str to screener.results.TaxonResult
+            Each taxon's records (``.records.rows``, ``.records.cols``) and background
+            in environmental space (``.background_env``).
+        site_labels : ndarray of int, shape (n_rows, n_cols)
+            The plan's sites by rank (1..n_sites) on their cells, <= 0 elsewhere.
+        n_sites : int
+        """
+        from screener.models import accepts_random_state
+
+        family = settings.models.families[0]
+        use = settings.thresholds.use
+        other = "relaxed" if use == "mtp" else "mtp"
+        return cls(
+            grid=stack.grid,
+            values=stack.valid_matrix(),
+            family=family,
+            params=dict(settings.models.get(family, {}) or {}),
+            records={k: (t.records.rows, t.records.cols) for k, t in taxa.items()},
+            background={k: t.background_env for k, t in taxa.items()},
+            relax=settings.thresholds.relax,
+            use=use,
+            isolation=IsolationParameters.from_settings(
+                settings, threshold_names=(use, other)),
+            site_labels=site_labels,
+            n_sites=int(n_sites),
+            top_k=settings.ranking.top_k,
+            weights=settings.ranking.weights or None,
+            seeded=accepts_random_state(family),
+        )
+
 
 def refit_replicate(plan: RefitPlan, seed: int) -> np.ndarray:
     """One bootstrap replicate.

@@ -7,9 +7,8 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from screener import pipeline
 from screener.models import FAMILIES
-from screener.models.mapping import REFIT_COST, refit_seconds
+from screener.models.mapping import REFIT_COST, geographic_refit, refit_seconds
 from screener.project import settings_from_dict
 
 
@@ -23,13 +22,12 @@ def settings(small_layers):
     )
 
 
-def _pair(settings, n_rows, n_cols):
+def _refit(settings, n_rows, n_cols, streamed=False):
     mask = np.ones((n_rows, n_cols), bool)
-    stack = SimpleNamespace(streamed=False, valid_matrix=lambda: np.zeros((mask.sum(), 2)))
-    intake = SimpleNamespace(settings=settings, grid=SimpleNamespace(mask=mask),
-                             predictor_stack=lambda: stack)
-    taxon = SimpleNamespace(seed=1, background_env=np.zeros((4, 2)))
-    return intake, taxon, taxon
+    stack = SimpleNamespace(streamed=streamed, grid=SimpleNamespace(mask=mask),
+                            valid_matrix=lambda: np.zeros((mask.sum(), 2)))
+    background = np.zeros((4, 2))
+    return geographic_refit(settings, stack, background, background, seed=1)
 
 
 def test_every_family_has_a_refit_cost():
@@ -45,21 +43,23 @@ def test_auto_geographic_tests_choose_from_problem_size_not_from_a_clock(
     # refit (as before) skipped every pair on a busy machine and ran them on an idle one
     clock = itertools.count(step=3600.0)
     monkeypatch.setattr(time, "perf_counter", lambda: float(next(clock)))
-    messages = []
-    progress = SimpleNamespace(step=messages.append)
-
     small = settings.replace("overlap", geographic_tests="auto", n_replicates=99)
-    assert pipeline._geographic_refit(*_pair(small, 60, 80), progress) is not None
-    assert messages == []
+    refit, skipped = _refit(small, 60, 80)
+    assert refit is not None and skipped == ""
 
     # 9 million cells x 4 x 999 maps of the cheapest family: hours, so "auto" skips
     big = settings.replace("overlap", geographic_tests="auto", n_replicates=999)
-    assert pipeline._geographic_refit(*_pair(big, 3000, 3000), progress) is None
-    assert len(messages) == 1 and "skipped" in messages[0]
-    assert "geographic_tests = \"on\"" in messages[0]
+    refit, skipped = _refit(big, 3000, 3000)
+    assert refit is None
+    assert "skipped" in skipped and "geographic_tests = \"on\"" in skipped
 
     # "on" runs them whatever they cost; "off" never does
     on = big.replace("overlap", geographic_tests="on")
-    assert pipeline._geographic_refit(*_pair(on, 3000, 3000), progress) is not None
+    assert _refit(on, 3000, 3000)[0] is not None
     off = small.replace("overlap", geographic_tests="off")
-    assert pipeline._geographic_refit(*_pair(off, 60, 80), progress) is None
+    assert _refit(off, 60, 80) == (None, "")
+    # layers streamed from disk: "auto" skips and says why, "on" runs
+    refit, skipped = _refit(small, 60, 80, streamed=True)
+    assert refit is None and "streamed" in skipped
+    assert _refit(small.replace("overlap", geographic_tests="on"), 60, 80,
+                  streamed=True)[0] is not None

@@ -55,3 +55,31 @@ def test_sites_resting_on_one_record_are_found_less_often():
     assert 0.35 <= suitable[1] <= 0.9
     assert isolated[1] <= suitable[1]
     assert ((0 <= shares) & (shares <= 1)).all()
+
+
+def test_refit_plan_for_plan_takes_the_runs_settings(small_layers):
+    from types import SimpleNamespace
+
+    from screener.project import settings_from_dict
+
+    folder = small_layers[0].parent.parent
+    (folder / "occurrences.csv").write_text("taxon,longitude,latitude\nA,10.1,-5.1\n")
+    settings = settings_from_dict(
+        {"occurrences": {"path": "occurrences.csv"}, "layers": {"paths": ["layers/*.tif"]},
+         "models": {"families": ["ppm", "ellipsoid"]},
+         "thresholds": {"use": "relaxed", "relax": 0.2},
+         "ranking": {"top_k": 3}},
+        base_dir=folder,
+    )
+    grid, values, rows, cols, labels = scene()
+    stack = SimpleNamespace(grid=grid, valid_matrix=lambda: values)
+    taxon = SimpleNamespace(records=SimpleNamespace(rows=rows, cols=cols),
+                            background_env=values[:50])
+    plan = RefitPlan.for_plan(settings, stack, {"A": taxon}, labels, 2)
+    # the run's first family, with a seed because it takes one
+    assert plan.family == "ppm" and plan.seeded
+    assert plan.use == "relaxed" and plan.relax == 0.2 and plan.top_k == 3
+    # the relaxed set is primary, so the check set is the minimum training presence
+    assert tuple(plan.isolation.threshold_names) == ("relaxed", "mtp")
+    assert plan.records["A"][0] is rows and plan.background["A"] is taxon.background_env
+    assert plan.n_sites == 2 and plan.values is values

@@ -6,7 +6,8 @@ window by window on an executor's workers for stacks streamed from disk;
 :func:`outside_map` marks the cells beyond a model's calibration range the same way.
 :class:`GeographicRefit` refits a family to other record cells and maps it (the task
 of the geographic-space overlap tests); :func:`refit_seconds` estimates what one
-such refit costs, from the family and the grid's size alone.
+such refit costs, from the family and the grid's size alone, and
+:func:`geographic_refit` builds a pair's refit from the settings when they ask for it.
 """
 
 from __future__ import annotations
@@ -16,10 +17,10 @@ import functools
 import numpy as np
 
 from screener.layers import LayerStack
-from screener.models import make_model
+from screener.models import accepts_random_state, make_model
 
-__all__ = ["predict_map", "outside_map", "GeographicRefit", "refit_seconds",
-           "REFIT_COST"]
+__all__ = ["predict_map", "outside_map", "GeographicRefit", "geographic_refit",
+           "refit_seconds", "REFIT_COST", "GEOGRAPHIC_TEST_BUDGET_S"]
 
 #: Cost of one refit-and-map of each family on the reference machine (2 cores, the
 #: demo's four layers, 5,000 background cells, 20 records): seconds to fit, and
@@ -161,3 +162,62 @@ class GeographicRefit:
         out = np.full(self.mask.shape, np.nan, dtype=np.float32)
         out[self.mask] = model.predict(self.stack_values).astype(np.float32)
         return out
+
+
+#: ``[overlap] geographic_tests = "auto"`` runs the geographic-space tests of a pair
+#: when their estimated time (:func:`refit_seconds` x maps) is at most this, in seconds
+GEOGRAPHIC_TEST_BUDGET_S = 120.0
+
+
+def geographic_refit(settings, stack: LayerStack, background_a, background_b, *,
+                     seed: int) -> tuple[GeographicRefit | None, str]:
+    """The refit of one pair's geographic-space tests, as the settings ask for it.
+
+    The first family of ``[models] families`` is refitted, with its ``[models.<family>]``
+    parameters, against the pooled background of the pair.  ``[overlap]
+    geographic_tests = "auto"`` skips the tests when the layers are streamed from disk
+    or when :func:`refit_seconds` estimates more than
+    :data:`GEOGRAPHIC_TEST_BUDGET_S` for them (a fixed cost model, so the choice is
+    the same on every machine).
+
+    Parameters
+    ----------
+    settings : screener.project.Settings
+    stack : LayerStack
+        The predictor layers of the run.
+    background_a, background_b : ndarray of shape (n, n_layers)
+        Each taxon's background in environmental space.
+    seed : int
+        Seed of the refitted family, where it takes one.
+
+    Returns
+    -------
+    refit : GeographicRefit or None
+        None when the tests are off or skipped.
+    reason : str
+        Why "auto" skipped them, for the progress line; "" otherwise.
+    """
+    mode = settings.overlap.geographic_tests
+    if mode == "off" or settings.overlap.n_replicates <= 0:
+        return None, ""
+    family = settings.models.families[0]
+    params = dict(settings.models.get(family, {}) or {})
+    if accepts_random_state(family):
+        params["random_state"] = seed
+    if stack.streamed and mode == "auto":
+        return None, (
+            "geographic-space tests skipped: the grid is streamed from disk and each "
+            "replicate would map it four times. Set [overlap] geographic_tests = \"on\" "
+            "to run them.")
+    # equivalency needs 2 maps per replicate, each similarity test one more
+    n_maps = 4 * settings.overlap.n_replicates
+    n_cells = int(stack.grid.mask.sum())
+    estimate = refit_seconds(family, n_cells) * n_maps
+    if mode == "auto" and estimate > GEOGRAPHIC_TEST_BUDGET_S:
+        return None, (
+            f"geographic-space tests would take about {estimate / 60:.0f} min "
+            f"(refitting {family} {n_maps} times over {n_cells:,} cells); skipped. "
+            "Set [overlap] geographic_tests = \"on\" to run them.")
+    background = np.vstack([background_a, background_b])
+    return GeographicRefit(family, params, background, stack.valid_matrix(),
+                           stack.grid.mask), ""
