@@ -224,7 +224,7 @@ def _print_warnings(result):
 @handle_errors
 def check(project, debug):
     """Validate PROJECT without fitting: grid, layers, records kept and dropped."""
-    from screener.pipeline import check_project
+    from screener.intake import check_project
     from screener.project import load_project
 
     try:
@@ -309,7 +309,8 @@ def debrief(field_results, run_dir, out, overwrite, allow_changed_inputs, debug)
 @handle_errors
 def reproduce(ctx, run_json, out, overwrite, scheduler, allow_changed_inputs, debug):
     """Rerun a run from its run.json (same settings, seeds and inputs)."""
-    from screener.pipeline import reproduction_settings, run_project
+    from screener.intake import reproduction_settings
+    from screener.pipeline import run_project
 
     settings, prov = reproduction_settings(run_json, allow_changed_inputs=allow_changed_inputs)
     echo = None if ctx.obj.get("quiet") else _echo_err

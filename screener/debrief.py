@@ -262,7 +262,7 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False,
 
 def _check_record_file_hash(rec_path, run, allow_changed_inputs: bool) -> None:
     """Refuse a record file whose SHA-256 is not the one the run recorded for it."""
-    from screener.pipeline import file_sha256
+    from screener.intake import file_sha256
 
     hashes = run["provenance"].get("input_hashes")
     recorded_as = {str(now): old for old, now in run["moved"].items()}

@@ -9,7 +9,7 @@ from click.testing import CliRunner
 
 from screener.cli import main
 from screener.demo_mixed import TAXA, write_mixed_example
-from screener.pipeline import load_inputs
+from screener.intake import load_inputs
 from screener.project import load_project
 
 PLANTED = {

@@ -276,7 +276,7 @@ def test_debrief_scores_a_survey(demo_run, tmp_path):
     assert "line 3" in (deb / "debrief.md").read_text()
     # the next project models the run's taxa, not the single-record lineage, and its
     # intake does not stop on it
-    from screener.pipeline import check_project
+    from screener.intake import check_project
     from screener.project import load_project
 
     nxt = load_project(deb / "project_next.toml")
@@ -327,7 +327,8 @@ def test_demo_then_reproduce_and_debrief_after_a_move(tmp_path):
 def test_spatial_partitions_with_non_spatial_baseline(tmp_path):
     # Above the jackknife limit, evaluation uses spatial quadrants, and reports
     # alternating squares and random folds beside them (Radosavljevic & Anderson 2014).
-    from screener.pipeline import load_inputs, model_taxon
+    from screener.intake import load_inputs
+    from screener.pipeline import model_taxon
     from screener.project import load_project
 
     project = write_demo_scenario(tmp_path / "scen", size="small")
@@ -344,7 +345,8 @@ def test_spatial_partitions_with_non_spatial_baseline(tmp_path):
 
 
 def test_auto_scheduler_uses_processes_only_for_heavy_work(tmp_path):
-    from screener.pipeline import load_inputs, resolve_scheduler
+    from screener.intake import load_inputs
+    from screener.pipeline import resolve_scheduler
     from screener.project import load_project
 
     project = write_demo_scenario(tmp_path / "scen", size="small")

@@ -55,7 +55,8 @@ def test_derived_layers_on_a_streamed_stack(stacks):
 @pytest.mark.slow
 def test_model_maps_identical_when_streamed(tmp_path):
     from screener.demo import write_demo_scenario
-    from screener.pipeline import load_inputs, model_taxon
+    from screener.intake import load_inputs
+    from screener.pipeline import model_taxon
     from screener.project import load_project
 
     project = write_demo_scenario(tmp_path / "scen", size="small")

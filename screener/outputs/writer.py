@@ -46,7 +46,7 @@ def write_outputs(result: RunResult, folder, *, progress=None) -> list:
     result : RunResult
     folder : path-like
     progress : object with a ``step(text)`` method, optional
-        Receives a line per group of files (e.g. :class:`screener.pipeline.Progress`).
+        Receives a line per group of files (e.g. :class:`screener.progress.Progress`).
 
     Returns
     -------
