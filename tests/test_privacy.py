@@ -174,3 +174,43 @@ def test_a_coordinate_quoted_as_written_is_withheld(cell):
     assert cell in reason or repr(cell) in reason
     shared = withhold_coordinates(reason)
     assert shared.count("[withheld]") == 2 and not any(ch.isdigit() for ch in shared)
+
+
+def test_niche_figure_withholds_a_sensitive_taxons_record_scores():
+    # A record's principal-axis scores are its environment at full precision: with the
+    # layers they point back to its cell, so a shareable report must not draw them.
+    from _synthetic_run import figure_points
+
+    from screener.outputs.overlap_figures import plot_niches
+    from screener.overlap import PairComparison, environmental_space
+
+    rng = np.random.default_rng(4)
+    bg_a, bg_b = rng.normal(0, 1, (300, 3)), rng.normal(0.5, 1, (300, 3))
+    rec_a, rec_b = bg_a[:12], bg_b[:12]
+    space = environmental_space(rec_a, rec_b, bg_a, bg_b, lonlat=True)
+    cmp = PairComparison(taxon_a=TAXA[0], taxon_b=TAXA[1], geographic=None,
+                         environmental=None, space=space, n_replicates=0,
+                         hypothesis="conserved")
+    run = dataclasses.replace(make_run(), comparisons=[cmp])  # TAXA[1] is sensitive
+    shared = shareable_result(run)
+    kept, hidden = shared.comparisons[0].space.a, shared.comparisons[0].space.b
+    assert kept is space.a  # the taxon that is not sensitive, as it was
+    assert hidden.scores_records.shape == (0, 2) and hidden.xy_records is None
+    np.testing.assert_array_equal(hidden.occupancy, space.b.occupancy)  # niche kept
+    assert len(space.b.scores_records) == 12  # the full result is left unchanged
+
+    import matplotlib.pyplot as plt
+
+    fig = plot_niches(shared.comparisons[0].space, names=TAXA[:2])
+    plt.close(fig)
+    points = figure_points(fig)
+
+    def drawn(scores):
+        return [bool(np.any(np.all(np.abs(points - s) < 1e-9, axis=1))) for s in scores]
+
+    assert all(drawn(space.a.scores_records))
+    assert not any(drawn(space.b.scores_records))
+    legend = [t.get_text() for t in fig.legends[0].get_texts()] if fig.legends else [
+        t.get_text() for t in fig.axes[0].get_legend().get_texts()]
+    assert any("not drawn" in t and TAXA[1] in t for t in legend)
+    assert any(t == f"{TAXA[0]} records (12)" for t in legend)

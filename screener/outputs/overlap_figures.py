@@ -135,7 +135,9 @@ def plot_niches(space, *, names=("A", "B"), D=None, ax=None):
     * grey ground: the environment available to the pair (darker = more common);
     * orange / blue: cells in only one taxon's niche (the cells holding
       :data:`NICHE_MASS` of its occupancy); green: cells in both niches;
-    * circles / triangles: each taxon's records.
+    * circles / triangles: each taxon's records (not drawn for a sensitive taxon in a
+      shareable report: its record scores are withheld, see
+      :func:`screener.outputs.privacy.generalised_result`).
 
     Parameters
     ----------
@@ -180,7 +182,11 @@ def plot_niches(space, *, names=("A", "B"), D=None, ax=None):
         rec = space.taxon(which).scores_records
         ax.scatter(rec[:, 0], rec[:, 1], s=28, marker=marker, c=colour,
                    edgecolors="black", linewidths=0.8, zorder=3)
-    n_a, n_b = len(space.a.scores_records), len(space.b.scores_records)
+    shown = []
+    for t, name in zip((space.a, space.b), names):
+        n = len(t.scores_records)
+        shown.append(f"{name} records ({n})" if n else
+                     f"{name} records: not drawn\n(sensitive taxon)")
     handles = [
         Patch(facecolor=_A_ONLY, label=f"only {names[0]}'s niche"),
         Patch(facecolor=_B_ONLY, label=f"only {names[1]}'s niche"),
@@ -188,9 +194,9 @@ def plot_niches(space, *, names=("A", "B"), D=None, ax=None):
         Patch(facecolor="0.75", label="available environment\n(darker = more common)"),
         Patch(facecolor="white", edgecolor="0.6", label="not available"),
         Line2D([], [], ls="", marker="o", mfc=_A_ONLY, mec="black",
-               label=f"{names[0]} records ({n_a})"),
+               label=shown[0]),
         Line2D([], [], ls="", marker="^", mfc=_B_ONLY, mec="black",
-               label=f"{names[1]} records ({n_b})"),
+               label=shown[1]),
     ]
     ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0),
               frameon=False, fontsize="small")

@@ -256,9 +256,36 @@ def generalised_result(
         "sites": bool(sites),
         "reference": "Chapman 2020, GBIF Secretariat",
     }
+    if done and result.comparisons:
+        changes["comparisons"] = _withhold_record_scores(result.comparisons, set(done))
     out = replace(result, taxa=taxa, dropped=dropped, provenance=provenance, figures={},
                   **changes)
     log.info("generalised records of %d taxa to %.3g degree", len(done), g)
+    return out
+
+
+def _withhold_record_scores(comparisons, names: set) -> list:
+    """Pair comparisons whose sensitive taxa keep no record positions.
+
+    A record's principal-axis scores are its environment at full precision, and with
+    the layers they point back to its cell (continuous layers rarely repeat a value
+    combination); its coordinates are kept beside them for the tests.  Both are
+    dropped for the taxa in ``names``; the smoothed densities and occupancy stay, so
+    the niche figure still shows the niche, without the record points.
+    """
+    out = []
+    for cmp in comparisons:
+        space = cmp.space
+        if space is not None:
+            hidden = {}
+            for which, name in (("a", cmp.taxon_a), ("b", cmp.taxon_b)):
+                if name in names:
+                    hidden[which] = replace(space.taxon(which),
+                                            scores_records=np.empty((0, 2)),
+                                            xy_records=None)
+            if hidden:
+                cmp = replace(cmp, space=replace(space, **hidden))
+        out.append(cmp)
     return out
 
 
