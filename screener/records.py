@@ -40,6 +40,18 @@ __all__ = [
 
 log = logging.getLogger(__name__)
 
+#: Invisible characters refused in taxon names: the bidirectional embeddings,
+#: overrides, isolates and marks, which reorder how a name (and a file name made from
+#: it) is displayed (Unicode Standard Annex #9; Unicode Technical Report #36, "bidi
+#: spoofing"), the zero-width space, the word joiner and the byte-order mark, which
+#: make two different names look alike.  Zero-width joiners and non-joiners stay:
+#: several scripts need them.
+INVISIBLE_IN_NAMES = frozenset(
+    "\u200b\u200e\u200f\u061c\u2060\ufeff"
+    + "".join(map(chr, range(0x202A, 0x202F)))
+    + "".join(map(chr, range(0x2066, 0x206A)))
+)
+
 #: Fewest records a taxon may keep before the run stops (configurable).
 MIN_RECORDS = 3
 
@@ -523,6 +535,14 @@ def validate_records(
                 f"{raw.path} line {line}: the taxon name {t!r} holds the control character "
                 f"{ctrl!r}, which breaks files and terminals; remove it (names hold "
                 "letters, digits, spaces and punctuation)."
+            )
+        hidden = next((c for c in t if c in INVISIBLE_IN_NAMES), None)
+        if hidden is not None:
+            raise RecordsError(
+                f"{raw.path} line {line}: the taxon name {t!r} holds the invisible "
+                f"character U+{ord(hidden):04X} ({unicodedata.name(hidden, 'unnamed')}), "
+                "which makes a name display differently from what it is (reordered "
+                "text, or two names that look the same); remove it."
             )
     dropped: list = []
     keep_taxon, keep_a, keep_b, keep_line = [], [], [], []

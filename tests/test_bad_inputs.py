@@ -1313,6 +1313,21 @@ def test_control_characters_in_a_taxon_name_are_refused(scen):
     assert "\x1b" not in result.output  # printed escaped, never sent to the terminal
 
 
+
+@pytest.mark.parametrize("mark", ["\u202e", "\u2067", "\u200b"])
+def test_invisible_reordering_or_zero_width_marks_in_a_taxon_name_are_refused(scen, mark):
+    # A right-to-left override displays "quennomae" backwards in a terminal, a file
+    # manager and the report, and a zero-width space makes two different names look
+    # alike (Unicode Technical Report #36, bidi and invisible-character spoofing)
+    rows = read_rows(scen)
+    rows[3][0] = f"Nebrivex {mark}quennomae"
+    write_rows(scen, rows)
+    out = scen.parent / "out"
+    result = invoke("run", scen / "project.toml", "--out", out)
+    assert_refused(result, out, rf"line 4: the taxon name .* invisible character "
+                   rf"U\+{ord(mark):04X}")
+    assert mark not in result.output  # named by its code point, never sent raw
+
 # ------------------------------------------------------------------ the cache runs no code
 class _Payload:
     """Unpickling this runs code: it writes ``path``."""
