@@ -18,6 +18,7 @@ import numpy as np
 
 from screener.errors import InputError
 from screener.outputs.run_folder import RunFolder, locate_run_inputs, relocate
+from screener.project import default
 
 __all__ = ["load_run_outputs", "debrief_run"]
 
@@ -214,10 +215,11 @@ def debrief_run(field_results, run_dir, out_dir, *, overwrite: bool = False,
     occ = settings.get("occurrences", {})
     # the record file read as `run` reads it: encoding, delimiter, decimal mark
     raw = read_records(rec_path, encoding=occ.get("encoding") or None,
-                       taxon_column=occ.get("taxon_column") or "taxon",
+                       taxon_column=occ.get("taxon_column")
+                       or default("occurrences", "taxon_column"),
                        decimal=occ.get("decimal") or None)
     modelled = list(run["provenance"].get("taxa") or {})
-    min_records = int(occ.get("min_records") or 1)
+    min_records = int(occ.get("min_records") or default("occurrences", "min_records"))
     updated, taxon_of = _updated_record_table(raw, fr, grid, modelled, min_records)
     taxon_of = taxon_of.astype(str)
     left_out = sorted(set(taxon_of[(updated["note"] != "").to_numpy()]))

@@ -22,6 +22,7 @@ import pandas as pd
 
 from screener.errors import InputError, RecordsError, suggest
 from screener.grid import Grid
+from screener.project import default
 from screener.results import RecordDrop, TaxonRecords
 
 __all__ = [
@@ -52,8 +53,8 @@ INVISIBLE_IN_NAMES = frozenset(
     + "".join(map(chr, range(0x2066, 0x206A)))
 )
 
-#: Fewest records a taxon may keep before the run stops (configurable).
-MIN_RECORDS = 3
+#: Fewest records a taxon may keep before the run stops (``[occurrences] min_records``).
+MIN_RECORDS = default("occurrences", "min_records")
 
 
 @dataclass
@@ -492,7 +493,7 @@ def validate_records(
     grid: Grid,
     *,
     min_records: int = MIN_RECORDS,
-    thin_km: float = 0.0,
+    thin_km: float = default("occurrences", "thin_km"),
     sensitive=(),
     taxa=None,
     random_state=0,

@@ -45,6 +45,7 @@ import pandas as pd
 from scipy import stats
 
 from screener.errors import InputError
+from screener.project import default
 
 __all__ = [
     "OUTCOMES",
@@ -542,7 +543,7 @@ def updated_records(
     *,
     grid=None,
     modelled_taxa=None,
-    min_records: int = 1,
+    min_records: int = default("occurrences", "min_records"),
 ) -> pd.DataFrame:
     """The record table plus the survey's new finds, for the next run.
 
@@ -561,7 +562,7 @@ def updated_records(
         Taxa the run modelled.  A taxon not among them with fewer than
         ``min_records`` rows in the result is kept in the table but marked in the
         ``note`` column as left out of modelling.
-    min_records : int, default 1
+    min_records : int, default ``[occurrences] min_records`` (3)
         The run's ``[occurrences] min_records``.
 
     Returns
