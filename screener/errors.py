@@ -11,6 +11,8 @@ Messages say what is wrong, where (file, row, layer) and what to do.
 from __future__ import annotations
 
 import difflib
+import functools
+import warnings
 
 __all__ = [
     "ScreenerError",
@@ -23,6 +25,8 @@ __all__ = [
     "ScreenerWarning",
     "CollinearityWarning",
     "NoveltyWarning",
+    "ScreenerDeprecationWarning",
+    "accepts_old_form",
     "suggest",
 ]
 
@@ -63,6 +67,31 @@ class ScreenerDeprecationWarning(ScreenerWarning, FutureWarning):
     """A renamed or retired setting or argument: still read in this release, refused in
     the next.  A FutureWarning, so Python shows it to users by default; a
     ScreenerWarning, so a run lists it among its warnings (console, run.json, report)."""
+
+
+def accepts_old_form(translate):
+    """Decorator: a function whose parameters changed still takes its old form.
+
+    For one release the old call keeps working: ``translate(*args, **kwargs)``
+    returns None for a call in the new form, else ``(args, kwargs, message)``, the
+    same call in the new form and what to write instead.  The old call is warned
+    with :class:`ScreenerDeprecationWarning` (the message) and then made in the new
+    form, so both give the same result.  The decorated function keeps its new
+    signature and docstring.
+    """
+
+    def decorate(function):
+        @functools.wraps(function)
+        def wrapper(*args, **kwargs):
+            new = translate(*args, **kwargs)
+            if new is not None:
+                args, kwargs, message = new
+                warnings.warn(message, ScreenerDeprecationWarning, stacklevel=2)
+            return function(*args, **kwargs)
+
+        return wrapper
+
+    return decorate
 
 
 class CollinearityWarning(ScreenerWarning):

@@ -13,12 +13,12 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Callable
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 from scipy.stats import rankdata, spearmanr
 
-from screener.errors import InputError
+from screener.errors import InputError, accepts_old_form
 from screener.models import (
     accepts_groups,
     accepts_random_state,
@@ -31,6 +31,8 @@ from screener.randomisation import _xy, pattern_draws, spatial_clusters
 from screener.thresholds import percentile_training_presence
 
 __all__ = [
+    "Points",
+    "EvaluationOptions",
     "auc",
     "poisson_binomial_sf",
     "boyce_index",
@@ -299,6 +301,136 @@ def random_kfold_partition(
     return pg, bg
 
 
+# --- inputs and options -------------------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class Points:
+    """Predictor values at a set of places, with where the places are.
+
+    One value each for the records (presence), the background and the study area
+    of :func:`evaluate_family`, :func:`jackknife` and :func:`null_model_test`.
+
+    Attributes
+    ----------
+    env : array_like of shape (n, p)
+        Predictor values, one row per place.
+    xy : array_like of shape (n, 2), optional
+        Coordinates of the rows: longitude and latitude (degrees) when ``lonlat``,
+        else projected x and y (km).  Without them the spatial partitions, the
+        buffered jackknife and the pattern-keeping null model are not available.
+    area_km2 : array_like of shape (n,), optional
+        Ground area of each row's cell (km²), weighting the study area's share
+        predicted present; equal weights when omitted.
+    lonlat : bool, default True
+        ``xy`` are longitude/latitude degrees (else x, y in km).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> records = Points(np.array([[12.5, 800.0], [13.1, 950.0], [11.8, 700.0]]),
+    ...                  xy=np.array([[10.0, 45.0], [10.2, 45.1], [10.1, 44.9]]))
+    >>> records.n, records.lonlat
+    (3, True)
+    """
+
+    env: np.ndarray
+    xy: np.ndarray | None = None
+    area_km2: np.ndarray | None = None
+    lonlat: bool = True
+
+    @property
+    def n(self) -> int:
+        """Number of places (rows of ``env``)."""
+        return int(np.shape(self.env)[0])
+
+
+@dataclass(frozen=True)
+class EvaluationOptions:
+    """How :func:`evaluate_family` holds records out and tests the model.
+
+    Attributes
+    ----------
+    jackknife_below : int, default 25
+        Use the jackknife when there are fewer records than this
+        (``[evaluation] jackknife_below``).
+    partition : {"quadrants", "squares", "random"}, default "quadrants"
+        Folds from this many records on: "quadrants", four spatial blocks at the
+        records' medians (:func:`block_partition`); "squares", two groups of
+        alternating squares (:func:`checkerboard_partition`); "random", random
+        folds.
+    k_folds : int, default 5
+        Folds of "random".
+    square_size : float, optional
+        Side of the squares of "squares", in the units of the coordinates
+        (degrees or km); default a quarter of the larger side of the records'
+        bounding box.
+    n_null : int, default 99
+        Null-model replicates (0 skips the test; ``[evaluation] n_null``).
+    random_state : int, default 0
+        Seed of every random draw (fold, replicate and model seeds are drawn from
+        it up front).
+    cluster_km : float, optional
+        With record coordinates: records chained by gaps of at most this (km) form
+        one spatial cluster; the jackknife holds out whole clusters (a buffered
+        leave-one-out) and the null model moves each cluster on its own.  None or
+        0: the published leave-one-out, and the null model moves the whole
+        pattern.
+
+    Examples
+    --------
+    >>> EvaluationOptions(partition="squares", n_null=0).k_folds
+    5
+    """
+
+    jackknife_below: int = default("evaluation", "jackknife_below")
+    partition: str = "quadrants"
+    k_folds: int = 5
+    square_size: float | None = None
+    n_null: int = default("evaluation", "n_null")
+    random_state: int = 0
+    cluster_km: float | None = None
+
+    def __post_init__(self):
+        if self.partition not in METHODS[1:]:
+            raise InputError(
+                f"Unknown partition {self.partition!r}; use one of "
+                f"{', '.join(METHODS[1:])}."
+            )
+
+    @classmethod
+    def from_settings(cls, section, **values) -> EvaluationOptions:
+        """Options from the ``[evaluation]`` settings, other fields from ``values``.
+
+        Examples
+        --------
+        >>> from screener.project import SECTION_TYPES
+        >>> section = SECTION_TYPES["evaluation"](n_null=0)
+        >>> EvaluationOptions.from_settings(section, random_state=7).n_null
+        0
+        """
+        return cls(jackknife_below=section.jackknife_below, n_null=section.n_null,
+                   **values)
+
+
+def _points(value, name: str) -> Points:
+    if not isinstance(value, Points):
+        raise TypeError(
+            f"`{name}` must be a Points value (predictor rows with their coordinates), "
+            f"e.g. Points(env, xy=xy); got {type(value).__name__}."
+        )
+    return value
+
+
+def _lonlat(*places) -> bool:
+    """Whether the coordinates of these places are longitude/latitude (one answer)."""
+    kinds = {p.lonlat for p in places if p is not None and p.xy is not None}
+    if len(kinds) > 1:
+        raise InputError(
+            "Some coordinates are longitude/latitude and some are km (Points.lonlat "
+            "differs); give every set of places in one kind."
+        )
+    return kinds.pop() if kinds else True
+
+
 # --- fitting tasks (top-level functions so process pools can pickle them) ---------------
 @dataclass
 class _FitTask:
@@ -410,19 +542,49 @@ def _seeds(rng, size):
     return [int(s) for s in rng.integers(0, 2**31 - 1, size=size)]
 
 
+def _old_jackknife(family, params, presence, background, study_area=None,
+                   study_area_weights=None, random_state=0, *, map_fn=map,
+                   presence_xy=None, buffer_km=0.0, lonlat=True):
+    """The old form of :func:`jackknife` (arrays and keywords) in the new form."""
+    study = None if study_area is None else Points(
+        study_area, area_km2=study_area_weights, lonlat=lonlat)
+    options = EvaluationOptions(random_state=random_state, cluster_km=buffer_km)
+    return ((family, params, Points(presence, presence_xy, lonlat=lonlat),
+             Points(background, lonlat=lonlat), study, options), {"map_fn": map_fn})
+
+
+def _old_form_of(old, new_call: str):
+    """A translator for :func:`screener.errors.accepts_old_form`: a call whose
+    ``presence`` is not a :class:`Points` is in the old form."""
+    name = old.__name__.removeprefix("_old_")
+
+    def translate(*args, **kwargs):
+        presence = args[2] if len(args) > 2 else kwargs.get("presence")
+        if isinstance(presence, Points):
+            return None
+        new_args, new_kwargs = old(*args, **kwargs)
+        return new_args, new_kwargs, (
+            f"{name}() with predictor arrays and coordinate keywords is replaced by "
+            f"{new_call}; the old form stops working in the next release."
+        )
+
+    return translate
+
+
+@accepts_old_form(_old_form_of(_old_jackknife, (
+    "jackknife(family, params, Points(presence, xy=presence_xy, lonlat=lonlat), "
+    "Points(background), Points(study_area, area_km2=study_area_weights), "
+    "EvaluationOptions(random_state=random_state, cluster_km=buffer_km), "
+    "map_fn=map_fn)")))
 def jackknife(
     family: str,
     params: dict | None,
-    presence,
-    background,
-    study_area=None,
-    study_area_weights=None,
-    random_state=0,
+    presence: Points,
+    background: Points,
+    study_area: Points | None = None,
+    options: EvaluationOptions | None = None,
     *,
     map_fn: Callable = map,
-    presence_xy=None,
-    buffer_km: float = 0.0,
-    lonlat: bool = True,
 ) -> JackknifeResult:
     """Leave-one-out jackknife test for small samples.
 
@@ -432,9 +594,9 @@ def jackknife(
     Poisson-binomial, trial ``i`` succeeding with the share of the study area model
     ``i`` predicts present (area-weighted when weights are given).
 
-    With ``presence_xy`` and ``buffer_km > 0`` the jackknife is spatially buffered:
-    model ``i`` is also fitted without the records of record ``i``'s spatial cluster
-    (records within ``buffer_km`` of it, of those, and so on:
+    With the records' coordinates and ``options.cluster_km > 0`` the jackknife is
+    spatially buffered: model ``i`` is also fitted without the records of record
+    ``i``'s spatial cluster (records within ``cluster_km`` of it, of those, and so on:
     :func:`screener.randomisation.spatial_clusters`), so a held-out record is not
     predicted by its own neighbours (records of one cluster share their environment,
     and predicting one from the others says little about the niche).  A record
@@ -447,23 +609,23 @@ def jackknife(
         Model family key.
     params : dict or None
         Family parameters.
-    presence : array_like of shape (n, p), n >= 3
-    background : array_like of shape (m, p)
-    study_area : array_like of shape (c, p), optional
-        Predictor values of the study-area cells (all valid cells of the accessible
-        area, or a sample); the background when omitted.
-    study_area_weights : array_like of shape (c,), optional
-        Cell areas (km²) of those cells; equal weights when omitted.
-    random_state : int, default 0
-        Seed for the per-model seeds, drawn up front.
+    presence : Points
+        The records (n >= 3); their ``xy`` for the buffered jackknife.
+    background : Points
+    study_area : Points, optional
+        The study-area cells (all valid cells of the accessible area, or a sample)
+        with their ``area_km2`` (equal weights when omitted); the background when
+        omitted.
+    options : EvaluationOptions, optional
+        ``random_state`` seeds the per-model seeds (drawn up front); records chained
+        to the held-out one by gaps of at most ``cluster_km`` (km) are left out of
+        its training set too (None or 0: the published leave-one-out).
     map_fn : callable, default builtin ``map``
         ``map``-like callable used to run the n fits (e.g. an executor's ``map``).
-    presence_xy : array_like of shape (n, 2), optional
-        Record coordinates (longitude, latitude when ``lonlat``, else km).
-    buffer_km : float, default 0
-        Records chained to the held-out one by gaps of at most this (km) are left out
-        of its training set too; 0 = the published leave-one-out.
-    lonlat : bool, default True
+        The old form ``jackknife(family, params, presence_array, background_array,
+        study_area, study_area_weights, random_state, presence_xy=..., buffer_km=...,
+        lonlat=...)`` still works for one release, with a
+        :class:`~screener.errors.ScreenerDeprecationWarning`.
 
     Returns
     -------
@@ -478,13 +640,17 @@ def jackknife(
        temporal, spatial, hierarchical, or phylogenetic structure. Ecography 40:913-929
        (buffered leave-one-out; from memory).
     """
-    presence = check_predictors(presence, "presence", min_rows=3)
+    options = options or EvaluationOptions()
+    places = _points(presence, "presence"), _points(background, "background")
+    lonlat = _lonlat(*places)
+    presence_xy, buffer_km = places[0].xy, options.cluster_km or 0.0
+    presence = check_predictors(places[0].env, "presence", min_rows=3)
     background = check_predictors(
-        background, "background", n_features=presence.shape[1]
+        places[1].env, "background", n_features=presence.shape[1]
     )
-    study_area, weights = _study_area(study_area, study_area_weights, background)
+    study_area, weights = _study_area(study_area, background)
     n = presence.shape[0]
-    seeds = _seeds(np.random.default_rng(random_state), n)
+    seeds = _seeds(np.random.default_rng(options.random_state), n)
     groups = _jackknife_groups(presence_xy, n, buffer_km, lonlat)
     tasks, held = [], []
     for g in groups:
@@ -557,18 +723,20 @@ def _jackknife_groups(presence_xy, n, buffer_km, lonlat) -> list[np.ndarray]:
     return [np.flatnonzero(labels == labels[i]) for i in np.sort(first)]
 
 
-def _study_area(study_area, weights, background):
+def _study_area(study_area: Points | None, background):
+    """Study-area rows and their cell areas (the background, unweighted, if None)."""
     if study_area is None:
         return background, None
+    weights = _points(study_area, "study_area").area_km2
     study_area = check_predictors(
-        study_area, "study_area", n_features=background.shape[1]
+        study_area.env, "study_area", n_features=background.shape[1]
     )
     if weights is None:
         return study_area, None
     w = np.asarray(weights, dtype=float).ravel()
     if w.shape[0] != study_area.shape[0] or not np.all(np.isfinite(w)) or np.any(w < 0):
         raise InputError(
-            f"`study_area_weights` must be {study_area.shape[0]} non-negative cell "
+            f"`study_area.area_km2` must be {study_area.shape[0]} non-negative cell "
             f"areas (km²), one per study-area row; got shape {w.shape}."
         )
     return study_area, w
@@ -595,21 +763,38 @@ class NullModelResult:
     structured: bool = False
 
 
+def _old_null_model_test(family, params, presence, background, study_area=None, *,
+                         observed_auc=None, n_null=default("evaluation", "n_null"),
+                         random_state=0, map_fn=map, presence_xy=None,
+                         study_area_xy=None, lonlat=True, cluster_km=None):
+    """The old form of :func:`null_model_test` in the new form."""
+    records = Points(presence, presence_xy, lonlat=lonlat)
+    if study_area is None:  # the coordinates were those of the background
+        bg, study = Points(background, study_area_xy, lonlat=lonlat), None
+    else:
+        bg = Points(background, lonlat=lonlat)
+        study = Points(study_area, study_area_xy, lonlat=lonlat)
+    options = EvaluationOptions(n_null=n_null, random_state=random_state,
+                                cluster_km=cluster_km)
+    return ((family, params, records, bg, study, options),
+            {"observed_auc": observed_auc, "map_fn": map_fn})
+
+
+@accepts_old_form(_old_form_of(_old_null_model_test, (
+    "null_model_test(family, params, Points(presence, xy=presence_xy, lonlat=lonlat), "
+    "Points(background), Points(study_area, xy=study_area_xy), "
+    "EvaluationOptions(n_null=n_null, random_state=random_state, "
+    "cluster_km=cluster_km), observed_auc=observed_auc, map_fn=map_fn)")))
 def null_model_test(
     family: str,
     params: dict | None,
-    presence,
-    background,
-    study_area=None,
+    presence: Points,
+    background: Points,
+    study_area: Points | None = None,
+    options: EvaluationOptions | None = None,
     *,
     observed_auc: float | None = None,
-    n_null: int = default("evaluation", "n_null"),
-    random_state=0,
     map_fn: Callable = map,
-    presence_xy=None,
-    study_area_xy=None,
-    lonlat: bool = True,
-    cluster_km: float | None = None,
 ) -> NullModelResult:
     """Null-model test of the training AUC (Raes & ter Steege 2007).
 
@@ -626,25 +811,24 @@ def null_model_test(
     ----------
     family, params, presence, background
         As in :func:`jackknife`.
-    study_area : array_like of shape (c, p), optional
-        Rows records may be drawn from (the background when omitted).
-    observed_auc : float, optional
-        Training AUC of the model fitted to the real records; computed when omitted.
-    n_null : int, default 99
-    random_state : int, default 0
-    map_fn : callable, default builtin ``map``
-    presence_xy, study_area_xy : array_like of shape (n, 2) and (c, 2), optional
-        Coordinates of the records and of the study-area rows (of the background when
-        ``study_area`` is omitted).
-    lonlat : bool, default True
-        The coordinates are longitude/latitude degrees.
-    cluster_km : float, optional
-        With coordinates: records chained by gaps of at most this (km) form one
-        spatial cluster, and each cluster is moved on its own
-        (:func:`screener.randomisation.spatial_clusters`); when omitted the whole
+    study_area : Points, optional
+        Rows records may be drawn from (the background when omitted).  With its
+        ``xy`` (the background's when omitted) and the records' ``xy`` the random
+        records keep the records' pattern.
+    options : EvaluationOptions, optional
+        ``n_null`` replicates, seeded from ``random_state``.  With coordinates,
+        records chained by gaps of at most ``cluster_km`` (km) form one spatial
+        cluster, and each cluster is moved on its own
+        (:func:`screener.randomisation.spatial_clusters`); when None the whole
         record pattern moves as one.  Moving clusters separately keeps the
         clustering without asking a pattern that spans the whole study area to fit
         in it elsewhere.
+    observed_auc : float, optional
+        Training AUC of the model fitted to the real records; computed when omitted.
+    map_fn : callable, default builtin ``map``
+        The old form (arrays, ``n_null=``, ``random_state=``, ``presence_xy=``,
+        ``study_area_xy=``, ``lonlat=``, ``cluster_km=``) still works for one
+        release, with a :class:`~screener.errors.ScreenerDeprecationWarning`.
 
     Returns
     -------
@@ -657,18 +841,24 @@ def null_model_test(
     .. [2] Fortin, M.-J. & Dale, M. R. T. (2005). Spatial Analysis: A Guide for
        Ecologists. Cambridge University Press.
     """
-    presence = check_predictors(presence, "presence", min_rows=2)
+    options = options or EvaluationOptions()
+    records, bg = _points(presence, "presence"), _points(background, "background")
+    drawn_from = bg if study_area is None else _points(study_area, "study_area")
+    lonlat = _lonlat(records, drawn_from)
+    presence_xy, study_area_xy = records.xy, drawn_from.xy
+    n_null, cluster_km = options.n_null, options.cluster_km
+    presence = check_predictors(records.env, "presence", min_rows=2)
     background = check_predictors(
-        background, "background", n_features=presence.shape[1]
+        bg.env, "background", n_features=presence.shape[1]
     )
-    pool, _ = _study_area(study_area, None, background)
+    pool, _ = _study_area(study_area, background)
     n = presence.shape[0]
     if pool.shape[0] < n:
         raise InputError(
             f"The study area has {pool.shape[0]} cells, fewer than the {n} records; "
             "the null model needs at least as many cells as records."
         )
-    rng = np.random.default_rng(random_state)
+    rng = np.random.default_rng(options.random_state)
     obs_seed, pattern_seed, *seeds = _seeds(rng, int(n_null) + 2)
     if observed_auc is None:
         model = _make(family, params, obs_seed).fit(presence, background)
@@ -776,26 +966,39 @@ def _nanmean(values) -> float:
     return float(arr.mean()) if arr.size else math.nan
 
 
+def _old_evaluate_family(family, params, presence, background, *, presence_xy=None,
+                         background_xy=None, study_area=None, study_area_weights=None,
+                         jackknife_below=default("evaluation", "jackknife_below"),
+                         partition="quadrants", k_folds=5, checkerboard_size=None,
+                         n_null=default("evaluation", "n_null"), random_state=0,
+                         map_fn=map, study_area_xy=None, lonlat=True, cluster_km=None):
+    """The old form of :func:`evaluate_family` in the new form."""
+    study = None if study_area is None else Points(
+        study_area, study_area_xy, study_area_weights, lonlat)
+    options = EvaluationOptions(
+        jackknife_below=jackknife_below, partition=partition, k_folds=k_folds,
+        square_size=checkerboard_size, n_null=n_null, random_state=random_state,
+        cluster_km=cluster_km)
+    return ((family, params, Points(presence, presence_xy, lonlat=lonlat),
+             Points(background, background_xy, lonlat=lonlat), study, options),
+            {"map_fn": map_fn})
+
+
+@accepts_old_form(_old_form_of(_old_evaluate_family, (
+    "evaluate_family(family, params, Points(presence, xy=presence_xy, lonlat=lonlat), "
+    "Points(background, xy=background_xy), Points(study_area, xy=study_area_xy, "
+    "area_km2=study_area_weights), EvaluationOptions(jackknife_below=..., "
+    "partition=..., k_folds=..., square_size=checkerboard_size, n_null=..., "
+    "random_state=..., cluster_km=...), map_fn=map_fn)")))
 def evaluate_family(
     family: str,
     params: dict | None,
-    presence,
-    background,
+    presence: Points,
+    background: Points,
+    study_area: Points | None = None,
+    options: EvaluationOptions | None = None,
     *,
-    presence_xy=None,
-    background_xy=None,
-    study_area=None,
-    study_area_weights=None,
-    jackknife_below: int = default("evaluation", "jackknife_below"),
-    partition: str = "quadrants",
-    k_folds: int = 5,
-    checkerboard_size: float | None = None,
-    n_null: int = default("evaluation", "n_null"),
-    random_state=0,
     map_fn: Callable = map,
-    study_area_xy=None,
-    lonlat: bool = True,
-    cluster_km: float | None = None,
 ) -> FamilyEvaluation:
     """Evaluate one family: jackknife below ``jackknife_below`` records, else folds.
 
@@ -803,51 +1006,53 @@ def evaluate_family(
     ----------
     family : str
     params : dict or None
-    presence : array_like of shape (n, p)
-    background : array_like of shape (m, p)
-    presence_xy, background_xy : array_like of shape (n, 2) and (m, 2), optional
-        Coordinates (x, y) for the spatial partitions; without them "random" is
-        used.  With them, a family whose ``fit`` takes ``groups`` (ppm) gets the
-        records' spatial blocks (:func:`block_partition`) for the mapped model.
-    study_area, study_area_weights : optional
-        Study-area rows and cell areas (km²) for the jackknife and null model.
-    jackknife_below : int, default 25
-        Use the jackknife when ``n < jackknife_below``.
-    partition : {"quadrants", "squares", "random"}, default "quadrants"
-        "quadrants": four spatial blocks at the records' medians
-        (:func:`block_partition`); "squares": two groups of alternating squares
-        (:func:`checkerboard_partition`); "random": random folds.
-    k_folds : int, default 5
-        Folds of "random".
-    checkerboard_size : float, optional
-        Square side (CRS units) of "squares"; default a quarter of the larger side
-        of the records' bounding box.
-    n_null : int, default 99
-        Null-model replicates (0 skips the test).  With ``presence_xy`` and the
-        study area's coordinates (``study_area_xy``, or ``background_xy`` when
-        ``study_area`` is omitted) the null records keep the records' spatial pattern
-        (:func:`pattern_draws`).
-    random_state : int, default 0
+    presence : Points
+        The records (n >= 3).
+    background : Points
+        The background.  With both ``xy`` the spatial partitions are available
+        (without them "random" is used), and a family whose ``fit`` takes
+        ``groups`` (ppm) gets the records' spatial blocks (:func:`block_partition`)
+        for the mapped model.
+    study_area : Points, optional
+        Study-area rows with their cell areas (``area_km2``) and coordinates, for
+        the jackknife and the null model; the background when omitted.
+    options : EvaluationOptions, optional
+        Jackknife below ``jackknife_below`` records, else the ``partition`` folds;
+        ``n_null`` null-model replicates (0 skips the test; with the records' and
+        the study area's coordinates the null records keep the records' spatial
+        pattern, :func:`pattern_draws`); ``cluster_km``: the jackknife holds out
+        whole spatial clusters and the null model moves each cluster on its own
+        (:func:`jackknife`, :func:`null_model_test`).  Defaults when omitted.
     map_fn : callable, default builtin ``map``
-    study_area_xy : array_like of shape (c, 2), optional
-    lonlat : bool, default True
-        Coordinates are longitude/latitude degrees.
-    cluster_km : float, optional
-        With ``presence_xy``: records chained by gaps of at most this (km) form one
-        spatial cluster; the jackknife holds out whole clusters (its ``buffer_km``)
-        and the null model moves each cluster on its own (:func:`null_model_test`).
-        None: plain leave-one-out, and the null model moves the whole pattern.
+        The old form (arrays and one keyword per option) still works for one
+        release, with a :class:`~screener.errors.ScreenerDeprecationWarning`.
 
     Returns
     -------
     FamilyEvaluation
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(0)
+    >>> records = Points(rng.normal(0.0, 0.5, size=(8, 2)))
+    >>> background = Points(rng.normal(0.0, 2.0, size=(200, 2)))
+    >>> ev = evaluate_family("ellipsoid", {}, records, background,
+    ...                      options=EvaluationOptions(n_null=0))
+    >>> ev.method, ev.n_folds
+    ('jackknife', 8)
     """
-    presence = check_predictors(presence, "presence", min_rows=3)
+    options = options or EvaluationOptions()
+    places = _points(presence, "presence"), _points(background, "background")
+    _lonlat(*places, study_area)
+    presence_xy, background_xy = places[0].xy, places[1].xy
+    cluster_km = options.cluster_km
+    presence = check_predictors(places[0].env, "presence", min_rows=3)
     background = check_predictors(
-        background, "background", n_features=presence.shape[1]
+        places[1].env, "background", n_features=presence.shape[1]
     )
     n = presence.shape[0]
-    rng = np.random.default_rng(random_state)
+    rng = np.random.default_rng(options.random_state)
     full_seed, jk_seed, part_seed, fold_seed, null_seed = _seeds(rng, 5)
 
     fit_kw = {}
@@ -871,20 +1076,9 @@ def evaluate_family(
     )
     ev.extra["model"] = full  # the fitted full-data model, for mapping
 
-    if n < jackknife_below:
-        jk = jackknife(
-            family,
-            params,
-            presence,
-            background,
-            study_area,
-            study_area_weights,
-            random_state=jk_seed,
-            map_fn=map_fn,
-            presence_xy=presence_xy,
-            buffer_km=cluster_km or 0.0,
-            lonlat=lonlat,
-        )
+    if n < options.jackknife_below:
+        jk = jackknife(family, params, *places, study_area,
+                       replace(options, random_state=jk_seed), map_fn=map_fn)
         ev.auc = _nanmean(jk.fold_auc)
         ev.omission_mtp = _nanmean(jk.left_out_scores < jk.thresholds)
         ev.omission_p10 = _nanmean(jk.left_out_scores < jk.p10_thresholds)
@@ -912,13 +1106,13 @@ def evaluate_family(
         ev.extra["jackknife"] = jk
     else:
         method, pg, bgg = _partition(
-            partition,
+            options.partition,
             n,
             background.shape[0],
             presence_xy,
             background_xy,
-            k_folds,
-            checkerboard_size,
+            options.k_folds,
+            options.square_size,
             part_seed,
         )
         ev.method = method
@@ -955,35 +1149,19 @@ def evaluate_family(
         ev.boyce, ev.tss = _nanmean(boyces), _nanmean(tsss)
         ev.n_folds = len(results)
 
-    if n_null and n_null > 0:
+    if options.n_null and options.n_null > 0:
         fixed = dict(params or {})
         if hasattr(full, "selected_params"):
             fixed.update(full.selected_params())
-        nm = null_model_test(
-            family,
-            fixed,
-            presence,
-            background,
-            study_area,
-            observed_auc=auc_train,
-            n_null=n_null,
-            random_state=null_seed,
-            map_fn=map_fn,
-            presence_xy=presence_xy,
-            study_area_xy=background_xy if study_area is None else study_area_xy,
-            lonlat=lonlat,
-            cluster_km=cluster_km,
-        )
+        nm = null_model_test(family, fixed, *places, study_area,
+                             replace(options, random_state=null_seed),
+                             observed_auc=auc_train, map_fn=map_fn)
         ev.auc_null_p = nm.p_value
         ev.extra["null_model"] = nm
     return ev
 
 
 def _partition(partition, n, m, presence_xy, background_xy, k_folds, size, seed):
-    if partition not in METHODS[1:]:
-        raise InputError(
-            f"Unknown partition {partition!r}; use one of {', '.join(METHODS[1:])}."
-        )
     if partition != "random" and (presence_xy is None or background_xy is None):
         log.info(
             "No coordinates given for %s partitions; using random folds", partition

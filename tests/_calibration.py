@@ -242,7 +242,7 @@ def evaluation_rates(cube, process, n_taxa, seed, *, n=12, window=70, n_backgrou
     record's spatial cluster and the null model moves each cluster as a whole
     (``CLUSTER_CELLS`` cells), as a run does; False: the published tests.
     """
-    from screener.evaluation import jackknife, null_model_test
+    from screener.evaluation import EvaluationOptions, Points, jackknife, null_model_test
 
     rng = np.random.default_rng(seed)
     hits = {"jackknife": 0, "null_model": 0}
@@ -254,12 +254,16 @@ def evaluation_rates(cube, process, n_taxa, seed, *, n=12, window=70, n_backgrou
         xy = np.column_stack([cols, rows]).astype(float)
         link = float(CLUSTER_CELLS) if structured else 0.0
         s = int(rng.integers(2**31))
-        jk = jackknife(EVAL_FAMILY, {}, env[idx], env[bg], env[bg], random_state=s,
-                       presence_xy=xy[idx], buffer_km=link, lonlat=False)
-        nm = null_model_test(EVAL_FAMILY, {}, env[idx], env[bg], n_null=n_null,
-                             random_state=s, presence_xy=xy[idx] if structured else None,
-                             study_area_xy=xy[bg] if structured else None, lonlat=False,
-                             cluster_km=link if structured else None)
+        # coordinates in cells (taken as km: only their ratio to the link matters)
+        jk = jackknife(EVAL_FAMILY, {}, Points(env[idx], xy[idx], lonlat=False),
+                       Points(env[bg]), Points(env[bg]),
+                       EvaluationOptions(random_state=s, cluster_km=link))
+        nm = null_model_test(
+            EVAL_FAMILY, {},
+            Points(env[idx], xy[idx] if structured else None, lonlat=False),
+            Points(env[bg], xy[bg] if structured else None, lonlat=False),
+            options=EvaluationOptions(n_null=n_null, random_state=s,
+                                      cluster_km=link if structured else None))
         hits["jackknife"] += jk.p_value <= ALPHA
         hits["null_model"] += nm.p_value <= ALPHA
     return {k: (v, n_taxa) for k, v in hits.items()}

@@ -17,10 +17,6 @@ KNOWN_WIDE = {
     "overlap.compare_pair": 18,
     "overlap.environmental_space": 12,
     "overlap.geographic_similarity_test": 12,
-    # presence/background/study area with their coordinates -> one value each
-    "evaluation.evaluate_family": 18,
-    "evaluation.null_model_test": 13,
-    "evaluation.jackknife": 11,
     # reference, crs, resolution, extent describe one reference grid
     "alignment.align_layers": 11,
     # scikit-learn estimators keep every parameter explicit (kept on purpose)

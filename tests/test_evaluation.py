@@ -11,8 +11,10 @@ from numpy.testing import assert_allclose
 from scipy.stats import binom
 from sklearn.metrics import roc_auc_score, roc_curve
 
-from screener.errors import InputError
+from screener.errors import InputError, ScreenerDeprecationWarning
 from screener.evaluation import (
+    EvaluationOptions,
+    Points,
     auc,
     block_partition,
     boyce_index,
@@ -125,7 +127,7 @@ def test_jackknife_by_hand(small):
     from screener.models import make_model
 
     pres, bg = small
-    jk = jackknife("ellipsoid", {}, pres, bg, random_state=0)
+    jk = jackknife("ellipsoid", {}, Points(pres), Points(bg))
     for i in (0, 5):
         keep = np.arange(len(pres)) != i
         m = make_model("ellipsoid").fit(pres[keep], bg)
@@ -150,8 +152,8 @@ def test_buffered_jackknife_holds_out_whole_clusters_by_hand(small):
     # km coordinates: records 0-2 chained by 1 km gaps, 3-4 a pair, 5, 6, 7 alone
     xy = np.array([[0, 0], [1, 0], [2, 0], [20, 0], [20, 1], [40, 0], [60, 0],
                    [80, 0]], float)
-    jk = jackknife("ellipsoid", {}, pres, bg, random_state=0, presence_xy=xy,
-                   buffer_km=1.5, lonlat=False)
+    jk = jackknife("ellipsoid", {}, Points(pres, xy, lonlat=False), Points(bg),
+                   options=EvaluationOptions(random_state=0, cluster_km=1.5))
     assert jk.n == 5 and jk.buffer_km == 1.5
     assert len(jk.left_out_scores) == 8
     keep = np.arange(8) >= 3
@@ -161,15 +163,15 @@ def test_buffered_jackknife_holds_out_whole_clusters_by_hand(small):
     assert_allclose(jk.left_out_scores[:3], m.predict(pres[:3]))
     assert jk.share_present[0] == pytest.approx(np.mean(m.predict(bg) >= thr))
     # a buffer that holds nobody else is the published jackknife
-    plain = jackknife("ellipsoid", {}, pres, bg, random_state=0)
-    alone = jackknife("ellipsoid", {}, pres, bg, random_state=0, presence_xy=xy,
-                      buffer_km=0.5, lonlat=False)
+    plain = jackknife("ellipsoid", {}, Points(pres), Points(bg))
+    alone = jackknife("ellipsoid", {}, Points(pres, xy, lonlat=False), Points(bg),
+                      options=EvaluationOptions(cluster_km=0.5))
     assert alone.n == 8 and alone.buffer_km == 0.0
     assert_allclose(alone.left_out_scores, plain.left_out_scores)
     assert alone.p_value == pytest.approx(plain.p_value)
     # every record in one cluster leaves nothing to train on: no model, no p
-    none = jackknife("ellipsoid", {}, pres, bg, presence_xy=xy, buffer_km=100.0,
-                     lonlat=False)
+    none = jackknife("ellipsoid", {}, Points(pres, xy, lonlat=False), Points(bg),
+                     options=EvaluationOptions(cluster_km=100.0))
     assert none.n == 0 and np.isnan(none.p_value)
 
 
@@ -178,11 +180,12 @@ def test_jackknife_area_weights(small):
     # Weight only the cells far from the records: share predicted present drops.
     far = np.linalg.norm(bg - [1.2, 1.0], axis=1) > 1.5
     w = np.where(far, 1.0, 0.0)
-    jk_w = jackknife("ellipsoid", {}, pres, bg, study_area=bg, study_area_weights=w)
-    jk = jackknife("ellipsoid", {}, pres, bg, study_area=bg)
+    P, B = Points(pres), Points(bg)
+    jk_w = jackknife("ellipsoid", {}, P, B, study_area=Points(bg, area_km2=w))
+    jk = jackknife("ellipsoid", {}, P, B, study_area=B)
     assert np.all(jk_w.share_present <= jk.share_present)
     with pytest.raises(InputError, match="non-negative cell"):
-        jackknife("ellipsoid", {}, pres, bg, study_area=bg, study_area_weights=w[:5])
+        jackknife("ellipsoid", {}, P, B, study_area=Points(bg, area_km2=w[:5]))
 
 
 def test_parallel_map_gives_same_result(small):
@@ -194,22 +197,23 @@ def test_parallel_map_gives_same_result(small):
         out = [fn(t) for t in reversed(items)]
         return list(reversed(out))
 
-    a = jackknife("forest", {"n_estimators": 20}, pres, bg, random_state=7)
-    b = jackknife(
-        "forest", {"n_estimators": 20}, pres, bg, random_state=7, map_fn=reversed_map
-    )
+    P, B = Points(pres), Points(bg)
+    seven = EvaluationOptions(random_state=7)
+    a = jackknife("forest", {"n_estimators": 20}, P, B, options=seven)
+    b = jackknife("forest", {"n_estimators": 20}, P, B, options=seven,
+                  map_fn=reversed_map)
     assert_allclose(a.left_out_scores, b.left_out_scores)
-    na = null_model_test("ellipsoid", {}, pres, bg, n_null=5, random_state=1)
-    nb = null_model_test(
-        "ellipsoid", {}, pres, bg, n_null=5, random_state=1, map_fn=reversed_map
-    )
+    five = EvaluationOptions(n_null=5, random_state=1)
+    na = null_model_test("ellipsoid", {}, P, B, options=five)
+    nb = null_model_test("ellipsoid", {}, P, B, options=five, map_fn=reversed_map)
     assert_allclose(na.null, nb.null)
 
 
 def test_null_model_p_value_formula(small):
     """Raes & ter Steege 2007 (Ecography 30:727): p = (1 + #null >= obs) / (1 + R)."""
     pres, bg = small
-    nm = null_model_test("ellipsoid", {}, pres, bg, n_null=19, random_state=0)
+    nm = null_model_test("ellipsoid", {}, Points(pres), Points(bg),
+                         options=EvaluationOptions(n_null=19))
     assert nm.null.shape == (19,)
     assert nm.p_value == pytest.approx((1 + np.sum(nm.null >= nm.observed)) / 20)
     assert nm.observed > np.median(nm.null)
@@ -217,7 +221,8 @@ def test_null_model_p_value_formula(small):
 
 def test_evaluate_family_small_sample_uses_jackknife(small):
     pres, bg = small
-    ev = evaluate_family("envelope", None, pres, bg, n_null=9)
+    ev = evaluate_family("envelope", None, Points(pres), Points(bg),
+                         options=EvaluationOptions(n_null=9))
     assert ev.method == "jackknife" and ev.n_records == 8
     assert ev.jackknife_successes is not None and 0 <= ev.jackknife_p <= 1
     assert math.isnan(ev.boyce) and math.isnan(
@@ -235,16 +240,8 @@ def test_evaluate_family_partitions(partition):
     bxy = rng.uniform(0, 10, size=(800, 2))
     pres = rng.normal([1.0, 1.0], 0.4, size=(30, 2))
     pxy = rng.uniform(0, 10, size=(30, 2))
-    ev = evaluate_family(
-        "ellipsoid",
-        {},
-        pres,
-        bg,
-        presence_xy=pxy,
-        background_xy=bxy,
-        partition=partition,
-        n_null=0,
-    )
+    ev = evaluate_family("ellipsoid", {}, Points(pres, pxy), Points(bg, bxy),
+                         options=EvaluationOptions(partition=partition, n_null=0))
     assert ev.method == partition
     assert ev.n_folds == {"quadrants": 4, "squares": 2, "random": 5}[partition]
     assert 0.8 < ev.auc <= 1.0 and ev.boyce > 0 and 0 < ev.tss <= 1
@@ -256,10 +253,11 @@ def test_evaluate_family_without_coordinates_falls_back_to_random():
     rng = np.random.default_rng(6)
     bg = rng.normal(size=(300, 2))
     pres = rng.normal(1.0, 0.4, size=(26, 2))
-    ev = evaluate_family("ellipsoid", {}, pres, bg, n_null=0)
+    ev = evaluate_family("ellipsoid", {}, Points(pres), Points(bg),
+                         options=EvaluationOptions(n_null=0))
     assert ev.method == "random"
     with pytest.raises(InputError, match="Unknown partition"):
-        evaluate_family("ellipsoid", {}, pres, bg, partition="stripes", n_null=0)
+        EvaluationOptions(partition="stripes", n_null=0)
 
 
 def test_evaluate_family_gives_ppm_the_spatial_blocks():
@@ -270,11 +268,12 @@ def test_evaluate_family_gives_ppm_the_spatial_blocks():
     pres = rng.normal([1.0, 1.0], 0.4, size=(30, 2))
     pxy = rng.uniform(0, 10, size=(30, 2))
     kw = {"n_blocks": 5, "n_penalties": 3}
-    with_xy = evaluate_family(
-        "ppm", kw, pres, bg, presence_xy=pxy, background_xy=bxy, n_null=0
-    ).extra["model"]
+    no_null = EvaluationOptions(n_null=0)
+    with_xy = evaluate_family("ppm", kw, Points(pres, pxy), Points(bg, bxy),
+                              options=no_null).extra["model"]
     assert with_xy.n_blocks_ == 4
-    without = evaluate_family("ppm", kw, pres, bg, n_null=0).extra["model"]
+    without = evaluate_family("ppm", kw, Points(pres), Points(bg),
+                              options=no_null).extra["model"]
     assert without.n_blocks_ == 5
 
 
@@ -311,9 +310,11 @@ def test_null_model_keeps_the_records_spatial_pattern():
     scattered = patterned = 0
     for k in range(12):
         pres, pxy, pool, qxy = _clustered_no_signal(rng, z, slope)
-        plain = null_model_test("ellipsoid", {}, pres, pool, n_null=19, random_state=k)
-        kept = null_model_test("ellipsoid", {}, pres, pool, n_null=19, random_state=k,
-                               presence_xy=pxy, study_area_xy=qxy)
+        opts = EvaluationOptions(n_null=19, random_state=k)
+        plain = null_model_test("ellipsoid", {}, Points(pres), Points(pool),
+                                options=opts)
+        kept = null_model_test("ellipsoid", {}, Points(pres, pxy), Points(pool, qxy),
+                               options=opts)
         assert kept.structured and not plain.structured
         scattered += plain.p_value <= 0.05
         patterned += kept.p_value <= 0.05
@@ -356,7 +357,7 @@ def test_consensus_is_evaluated_like_a_family():
     assert_allclose(cm.predict(bg), want, rtol=1e-12)
     ev = evaluate_family(
         "consensus", {"families": {"ellipsoid": {}, "envelope": {}}, "weights": weights},
-        pres, bg, n_null=9, random_state=1,
+        Points(pres), Points(bg), options=EvaluationOptions(n_null=9, random_state=1),
     )
     row = ev.as_row()
     assert row["method"] == "jackknife" and 0 < row["jackknife_p"] <= 1
@@ -369,11 +370,94 @@ def test_family_evaluation_says_why_a_clustered_jackknife_is_empty(small):
     xy = np.array([[0, 0], [1, 0], [2, 0], [20, 0], [20, 1], [40, 0], [60, 0],
                    [80, 0]], float)
     # one chain of records (100 km links): nothing can be held out with its cluster
-    one = evaluate_family("ellipsoid", {}, pres, bg, presence_xy=xy, background_xy=bg,
-                          n_null=0, lonlat=False, cluster_km=100.0)
+    records, background = Points(pres, xy, lonlat=False), Points(bg, bg, lonlat=False)
+    one = evaluate_family("ellipsoid", {}, records, background,
+                          options=EvaluationOptions(n_null=0, cluster_km=100.0))
     assert np.isnan(one.auc) and one.n_folds == 0
     assert one.note.startswith("No jackknife") and "100.0 km" in one.note
     # clusters that can be held out: the usual note, no claim of untested records
-    some = evaluate_family("ellipsoid", {}, pres, bg, presence_xy=xy, background_xy=bg,
-                           n_null=0, lonlat=False, cluster_km=1.5)
+    some = evaluate_family("ellipsoid", {}, records, background,
+                           options=EvaluationOptions(n_null=0, cluster_km=1.5))
     assert some.n_folds == 5 and "not tested" not in some.note
+
+
+# --- the old form (arrays and one keyword per option) keeps working for one release ---
+def _same(a, b):
+    """Two results of the same call: equal field by field (NaN equal to NaN)."""
+    for k, v in vars(a).items():
+        w = getattr(b, k)
+        if isinstance(v, np.ndarray):
+            assert_allclose(v, w, rtol=0, atol=0, equal_nan=True)
+        elif k != "extra":
+            assert v == w or (v != v and w != w), k
+
+
+@pytest.fixture(scope="module")
+def placed(small):
+    """The small sample with km coordinates (two chained clusters) and cell areas."""
+    pres, bg = small
+    rng = np.random.default_rng(9)
+    pxy = np.array([[0, 0], [1, 0], [2, 0], [20, 0], [20, 1], [40, 0], [60, 0],
+                    [80, 0]], float)
+    bxy = rng.uniform(-10, 90, size=(len(bg), 2))
+    area = rng.uniform(0.5, 1.0, size=len(bg))
+    return pres, bg, pxy, bxy, area
+
+
+def test_old_jackknife_call_warns_and_gives_the_new_result(placed):
+    pres, bg, pxy, bxy, area = placed
+    new = jackknife("ellipsoid", {}, Points(pres, pxy, lonlat=False), Points(bg),
+                    Points(bg, area_km2=area),
+                    EvaluationOptions(random_state=3, cluster_km=1.5))
+    with pytest.warns(ScreenerDeprecationWarning, match=r"EvaluationOptions\("):
+        old = jackknife("ellipsoid", {}, pres, bg, bg, area, 3, presence_xy=pxy,
+                        buffer_km=1.5, lonlat=False)
+    assert new.buffer_km == 1.5
+    _same(new, old)
+
+
+def test_old_null_model_call_warns_and_gives_the_new_result(placed):
+    pres, bg, pxy, bxy, _ = placed
+    new = null_model_test("ellipsoid", {}, Points(pres, pxy, lonlat=False),
+                          Points(bg, bxy, lonlat=False),
+                          options=EvaluationOptions(n_null=9, random_state=2,
+                                                    cluster_km=1.5))
+    with pytest.warns(ScreenerDeprecationWarning, match=r"Points\(presence"):
+        old = null_model_test("ellipsoid", {}, pres, bg, n_null=9, random_state=2,
+                              presence_xy=pxy, study_area_xy=bxy, lonlat=False,
+                              cluster_km=1.5)
+    assert new.structured
+    _same(new, old)
+
+
+@pytest.mark.parametrize("n_records", [8, 30])
+def test_old_evaluate_family_call_warns_and_gives_the_new_result(placed, n_records):
+    pres, bg, pxy, bxy, area = placed
+    rng = np.random.default_rng(n_records)
+    if n_records > len(pres):  # enough records for folds ("squares")
+        pres = rng.normal([1.2, 1.0], 0.3, size=(n_records, 2))
+        pxy = rng.uniform(0, 80, size=(n_records, 2))
+    new = evaluate_family(
+        "ellipsoid", {}, Points(pres, pxy, lonlat=False), Points(bg, bxy, lonlat=False),
+        Points(bg, bxy, area, lonlat=False),
+        EvaluationOptions(partition="squares", square_size=20.0, n_null=5,
+                          random_state=4, cluster_km=1.5))
+    with pytest.warns(ScreenerDeprecationWarning, match="square_size=checkerboard_size"):
+        old = evaluate_family(
+            "ellipsoid", {}, pres, bg, presence_xy=pxy, background_xy=bxy,
+            study_area=bg, study_area_weights=area, study_area_xy=bxy,
+            partition="squares", checkerboard_size=20.0, n_null=5, random_state=4,
+            lonlat=False, cluster_km=1.5)
+    assert new.method == ("jackknife" if n_records < 25 else "squares")
+    _same(new, old)
+    _same(new.extra["null_model"], old.extra["null_model"])
+
+
+def test_new_form_wants_points_and_one_kind_of_coordinates(small):
+    pres, bg = small
+    with pytest.raises(TypeError, match="must be a Points value"):
+        evaluate_family("ellipsoid", {}, Points(pres), bg)
+    xy = np.zeros((len(pres), 2))
+    with pytest.raises(InputError, match="one kind"):
+        jackknife("ellipsoid", {}, Points(pres, xy), Points(bg, np.zeros((600, 2)),
+                                                            lonlat=False))

@@ -20,12 +20,18 @@ The pipeline calls :func:`fit_taxon` once per taxon; a notebook can call each st
 from __future__ import annotations
 
 import zlib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
 from screener.background import Background, accessible_area, draw_background
-from screener.evaluation import CONSENSUS, FamilyEvaluation, evaluate_family
+from screener.evaluation import (
+    CONSENSUS,
+    EvaluationOptions,
+    FamilyEvaluation,
+    Points,
+    evaluate_family,
+)
 from screener.evaluation import auc as auc_fn
 from screener.layers import LayerStack
 from screener.models.base import ClampedModel, training_presence_scores
@@ -160,18 +166,19 @@ def fit_family(family: str, sample: TaxonSample, stack: LayerStack, settings, *,
     s = settings
     P, B = sample.presence_env, sample.background_env
     params = family_params(s, family)
-    common = dict(presence_xy=sample.presence_xy, background_xy=sample.background_xy,
-                  study_area=B, jackknife_below=s.evaluation.jackknife_below,
-                  random_state=sample.seed, map_fn=map_fn,
-                  cluster_km=cluster_link_km(stack.grid, s.occurrences.cluster_cells))
-    ev = evaluate_family(family, params, P, B, study_area_xy=sample.background_xy,
-                         n_null=s.evaluation.n_null, **common)
+    records, background = _points(sample)
+    options = EvaluationOptions.from_settings(
+        s.evaluation, random_state=sample.seed,
+        cluster_km=cluster_link_km(stack.grid, s.occurrences.cluster_cells))
+    ev = evaluate_family(family, params, records, background, options=options,
+                         map_fn=map_fn)
     model = ev.extra["model"]
     baselines = {}
     if sample.records.n >= s.evaluation.jackknife_below:
         for part in ("squares", "random"):
-            other = evaluate_family(family, params, P, B, partition=part, n_null=0,
-                                    **common)
+            other = evaluate_family(
+                family, params, records, background,
+                options=replace(options, partition=part, n_null=0), map_fn=map_fn)
             baselines.update({f"auc_{part}": other.auc,
                               f"omission_mtp_{part}": other.omission_mtp})
     mapped = ClampedModel.from_rows(model, P, B) if s.models.clamp else model
@@ -196,6 +203,13 @@ def fit_family(family: str, sample: TaxonSample, stack: LayerStack, settings, *,
         importance=permutation_importance(model, P, B, random_state=sample.seed,
                                           names=stack.names),
     )
+
+
+def _points(sample: TaxonSample) -> tuple:
+    """The records and the background of a sample as evaluation :class:`Points`
+    (the background is also the study area of the jackknife and the null model)."""
+    return (Points(sample.presence_env, sample.presence_xy),
+            Points(sample.background_env, sample.background_xy))
 
 
 def _threshold_columns(th: dict) -> dict:
@@ -231,14 +245,14 @@ def evaluation_rows(sample: TaxonSample, fits: dict, weights: dict, consensus_th
         rows.append(row)
     ens = {"taxon": taxon, "algorithm": "ensemble", "n_records": n}
     if len(fits) > 1:
+        records, background = _points(sample)
         ev_c = evaluate_family(
             CONSENSUS,
             {"families": {f: family_params(s, f) for f in fits}, "weights": weights},
-            sample.presence_env, sample.background_env, presence_xy=sample.presence_xy,
-            background_xy=sample.background_xy, study_area=sample.background_env,
-            study_area_xy=sample.background_xy,
-            jackknife_below=s.evaluation.jackknife_below, n_null=s.evaluation.n_null,
-            random_state=sample.seed, map_fn=map_fn, cluster_km=cluster_km,
+            records, background,
+            options=EvaluationOptions.from_settings(
+                s.evaluation, random_state=sample.seed, cluster_km=cluster_km),
+            map_fn=map_fn,
         )
         ens.update({k: v for k, v in ev_c.as_row().items()
                     if k not in ("algorithm", "n_records")})
