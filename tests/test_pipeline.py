@@ -148,6 +148,16 @@ def test_time_slice_figure_has_no_overprinted_text(demo_run, tmp_path):
     for i, (a, box_a) in enumerate(boxes):
         for b, box_b in boxes[i + 1:]:
             assert not box_a.overlaps(box_b), (a, b)
+    # no blank band: each panel's map fills its axes box (up to the margins), and the
+    # legend starts within a few pixels below the lowest map
+    maps_ = [ax.get_window_extent(renderer) for ax in fig.axes]
+    for ax, box in zip(fig.axes, maps_):
+        pos = ax.get_position(original=True)  # the box layout gave the panel
+        given = pos.height * fig.bbox.height
+        assert box.height >= 0.9 * given, (box.height, given)
+    legend = fig.legends[0].get_window_extent(renderer)
+    gap = min(b.y0 for b in maps_) - legend.y1
+    assert gap < 0.05 * fig.bbox.height, gap
 
 
 @pytest.mark.slow  # runs the whole small demo (its fixture)

@@ -158,7 +158,28 @@ def plot_slices(result, *, top_n: int = 10):
                          "or drowned in that slice rather than isolated.", 45 * ncol)
     fig.legend(handles=handles, loc="outside lower center", ncol=2, fontsize=7,
                frameon=False, title=note, title_fontsize=7)
+    _trim_height(fig, axes, nrow)
     return fig
+
+
+def _trim_height(fig, axes, nrow: int) -> None:
+    """Shorten the figure by the blank band its equal-aspect maps leave: lay it out,
+    measure how much shorter (or narrower) each map is than the box it was given, and
+    change the height by that; twice, since the layout moves with the height."""
+    for _ in range(3):
+        fig.draw_without_rendering()
+        boxes = [(ax.get_position(original=True), ax.get_window_extent()) for ax in axes]
+        W, H = fig.bbox.width, fig.bbox.height
+        # positive: the maps are shorter than their boxes; negative: narrower
+        slack = max(pos.height * H - box.height for pos, box in boxes)
+        narrow = max(pos.width * W - box.width for pos, box in boxes)
+        if slack <= 1.0 and narrow > 1.0:
+            ratio = max(box.height / box.width for _, box in boxes)
+            slack = -narrow * ratio
+        if abs(slack) <= 1.0:
+            return
+        w, h = fig.get_size_inches()
+        fig.set_size_inches(w, h - slack * nrow / fig.dpi)
 
 
 def report_section(result, figure, table) -> str:
