@@ -91,6 +91,9 @@ __all__ = [
     "SpaceComparison",
     "PairComparison",
     "OverlapTaxon",
+    "SharedSpace",
+    "EnvironmentalSpaceParameters",
+    "OverlapTestParameters",
     "compare_pair",
     "pairwise_table",
     "OVERLAP_COLUMNS",
@@ -643,27 +646,310 @@ def _own_available(scores_bg, z_own, edges, quantile) -> np.ndarray:
     return holds & (z_own >= cut)
 
 
-def _checked_places(places, rows) -> tuple:
-    """The four coordinate arrays of ``places``, checked against their rows."""
+# --- the values a pair function takes ------------------------------------------------
+@dataclass(frozen=True, eq=False)
+class OverlapTaxon:
+    """One taxon as the pair functions take it (:func:`compare_pair`,
+    :func:`environmental_space`, :func:`geographic_similarity_test`).
+
+    Attributes
+    ----------
+    name : str
+        Taxon name.
+    map : ndarray (n_rows, n_cols), optional
+        Suitability map in [0, 1], NaN outside the mask; :func:`compare_pair` needs it.
+    env_records, env_background : array_like of shape (n, n_vars) and (m, n_vars)
+        Predictor rows at the records and at cells of the taxon's accessible area
+        (see :func:`environmental_space`); no environmental comparison without them.
+    xy_records, xy_background : array_like of shape (n, 2) and (m, 2), optional
+        Coordinates of those rows (longitude, latitude in degrees unless the pair's
+        :attr:`SharedSpace.lonlat` is False, then x, y in km); with them the
+        environmental tests can keep spatial clusters of records.  Used when both
+        taxa have both.
+    cells : array_like of int, optional
+        Flat grid indices of the records (geographic tests).
+    accessible : ndarray of bool (n_rows, n_cols), optional
+        The accessible area on the grid (geographic similarity test).
+    """
+
+    name: str
+    map: np.ndarray | None = None
+    env_records: np.ndarray | None = None
+    env_background: np.ndarray | None = None
+    xy_records: np.ndarray | None = None
+    xy_background: np.ndarray | None = None
+    cells: np.ndarray | None = None
+    accessible: np.ndarray | None = None
+
+    @property
+    def has_environment(self) -> bool:
+        return self.env_records is not None and self.env_background is not None
+
+
+@dataclass(frozen=True, eq=False)
+class SharedSpace:
+    """What the two taxa of a pair share: the grid of their maps (geographic space)
+    and the environment available to both (environmental space).
+
+    Attributes
+    ----------
+    cell_area_km2 : ndarray (n_rows, n_cols) or float, optional
+        Ground area of each grid cell, km² (the weights of D, I and breadth in
+        geographic space); :func:`compare_pair` needs it.
+    env_available : array_like of shape (k, n_vars), optional
+        Predictor rows of the pair's shared available environment, e.g. at the cells
+        of :func:`shared_available_cells`.  The PCA and the environment density of
+        :func:`environmental_space` are built on it; when None, on the two taxa's
+        background rows pooled.
+    predictor_names : sequence of str, default ()
+        Names of the predictor columns (axis labels of the figures).
+    lonlat : bool, default True
+        The taxa's coordinates (``xy_records``, ``xy_background``) are longitude,
+        latitude in degrees; False: x, y in km.
+
+    Examples
+    --------
+    >>> shared = SharedSpace(cell_area_km2=2.5, predictor_names=["heat", "rain"])
+    >>> shared.predictor_names, shared.lonlat
+    (('heat', 'rain'), True)
+    """
+
+    cell_area_km2: np.ndarray | float | None = None
+    env_available: np.ndarray | None = None
+    predictor_names: tuple = ()
+    lonlat: bool = True
+
+    def __post_init__(self):
+        object.__setattr__(self, "predictor_names", tuple(self.predictor_names or ()))
+        object.__setattr__(self, "lonlat", bool(self.lonlat))
+
+
+def _check_fraction(name: str, q) -> float:
+    if not 0.0 <= q < 1.0:
+        raise InputError(f"{name} must be in [0, 1); got {q}.")
+    return float(q)
+
+
+@dataclass(frozen=True)
+class EnvironmentalSpaceParameters:
+    """How a pair's environmental space is built (:func:`environmental_space`).
+
+    Defaults are those of the project file's ``[overlap]`` section
+    (:func:`screener.project.default`); :meth:`from_settings` reads a loaded project.
+
+    Attributes
+    ----------
+    grid_cells : int, default 64
+        ``G``, grid cells along each principal axis (at least 10;
+        ``[overlap] grid_cells``).
+    support_quantile : float, default 0.0
+        Occupancy is defined where the environment density is at least this quantile
+        of its values at the available points; 0 = at least as dense as the sparsest
+        available point, which keeps ``z_occ / z_env`` from exploding in the empty
+        margins.
+    available_quantile : float, default 0.05
+        Niche dynamics drops, from each taxon's cells, those whose density is below
+        this quantile over the cells (marginal environments; common practice).
+
+    Raises
+    ------
+    screener.errors.InputError
+        Fewer than 10 grid cells, or a quantile outside [0, 1).
+
+    Examples
+    --------
+    >>> EnvironmentalSpaceParameters(grid_cells=30)
+    EnvironmentalSpaceParameters(grid_cells=30, support_quantile=0.0, available_quantile=0.05)
+    """
+
+    grid_cells: int = DEFAULT_GRID_CELLS
+    support_quantile: float = 0.0
+    available_quantile: float = 0.05
+
+    def __post_init__(self):
+        g = int(self.grid_cells)
+        if g < 10:
+            raise InputError(
+                f"grid_cells must be at least 10 cells per axis; got {self.grid_cells}."
+            )
+        object.__setattr__(self, "grid_cells", g)
+        for name in ("support_quantile", "available_quantile"):
+            object.__setattr__(self, name, _check_fraction(name, getattr(self, name)))
+
+    @classmethod
+    def from_settings(cls, settings, **changes) -> EnvironmentalSpaceParameters:
+        """The parameters of a loaded project (``[overlap] grid_cells``), with
+        ``changes`` on top."""
+        return cls(**{"grid_cells": settings.overlap.grid_cells, **changes})
+
+
+@dataclass(frozen=True)
+class OverlapTestParameters:
+    """How the equivalency and similarity tests of a pair run, and how their result
+    is read (:func:`compare_pair`, :func:`geographic_similarity_test`).
+
+    Defaults are those of the project file's ``[overlap]`` section
+    (:func:`screener.project.default`); :meth:`from_settings` reads a loaded project.
+
+    Attributes
+    ----------
+    n_replicates : int, default 999
+        Replicates per test ``R``; no p-value is below ``1 / (R + 1)``
+        (``[overlap] n_replicates``).
+    hypothesis : {"conserved", "diverged"}, default "conserved"
+        What the similarity tests ask: is the overlap higher (upper tail) or lower
+        (lower tail) than the environments each taxon had available explain
+        (``[overlap] similarity_hypothesis``)?
+    alpha : float, default 0.05
+        Family-wise error rate of the plain-language reading (``[overlap] alpha``);
+        the p-values are Holm-corrected before it claims anything.
+    random_state : None, int or numpy.random.Generator, default 0
+        Root of the replicate seeds, all drawn up front (:func:`spawn_seeds`).
+    cluster_km : float, default 0
+        With record coordinates: records chained by gaps of at most this (km) form
+        one spatial cluster, which the environmental tests keep together
+        (:func:`equivalency_test`, :func:`similarity_test`); 0 = every record on its
+        own (the published tests).
+    geographic_budget_s : float, default 600
+        Skip the geographic tests (p = NaN, logged) when :func:`estimate_seconds`
+        puts them above this many seconds; ``inf`` runs them whatever they cost.
+
+    Raises
+    ------
+    screener.errors.InputError
+        Fewer than 1 replicate, an unknown hypothesis, ``alpha`` outside (0, 1), or a
+        negative ``cluster_km`` or budget.
+
+    Examples
+    --------
+    >>> t = OverlapTestParameters(n_replicates=99, hypothesis="diverged")
+    >>> t.n_replicates, t.hypothesis, t.alpha
+    (99, 'diverged', 0.05)
+    """
+
+    n_replicates: int = DEFAULT_REPLICATES
+    hypothesis: str = default("overlap", "similarity_hypothesis")
+    alpha: float = default("overlap", "alpha")
+    random_state: object = 0
+    cluster_km: float = 0.0
+    geographic_budget_s: float = 600.0
+
+    def __post_init__(self):
+        object.__setattr__(self, "n_replicates", _check_replicates(self.n_replicates))
+        object.__setattr__(self, "hypothesis", _check_hypothesis(self.hypothesis))
+        if not 0.0 < self.alpha < 1.0:
+            raise InputError(f"alpha must be between 0 and 1; got {self.alpha}.")
+        for name in ("cluster_km", "geographic_budget_s"):
+            v = getattr(self, name)
+            if not (v >= 0):  # also refuses NaN
+                raise InputError(f"{name} must be at least 0; got {v}.")
+            object.__setattr__(self, name, float(v))
+
+    @classmethod
+    def from_settings(cls, settings, **changes) -> OverlapTestParameters:
+        """The parameters of a loaded project (``[overlap] n_replicates``,
+        ``similarity_hypothesis``, ``alpha`` and ``[project] random_state``), with
+        ``changes`` on top (e.g. the pair's own ``random_state`` and the
+        ``cluster_km`` of :func:`screener.randomisation.cluster_link_km`)."""
+        ov = settings.overlap
+        values = dict(
+            n_replicates=ov.n_replicates,
+            hypothesis=ov.similarity_hypothesis,
+            alpha=ov.alpha,
+            random_state=settings.project.random_state,
+        )
+        values.update(changes)
+        return cls(**values)
+
+
+#: Old keyword arguments of the pair functions -> (the argument that replaces them,
+#: its field).  ``resolution`` and ``alternative`` are older names of ``grid_cells``
+#: and ``hypothesis``.
+_OLD_KEYWORD_HOMES = {
+    "cell_area_km2": ("shared", "cell_area_km2"),
+    "env_available": ("shared", "env_available"),
+    "predictor_names": ("shared", "predictor_names"),
+    "lonlat": ("shared", "lonlat"),
+    "grid_cells": ("space_parameters", "grid_cells"),
+    "resolution": ("space_parameters", "grid_cells"),
+    "support_quantile": ("space_parameters", "support_quantile"),
+    "available_quantile": ("space_parameters", "available_quantile"),
+    "n_replicates": ("test_parameters", "n_replicates"),
+    "hypothesis": ("test_parameters", "hypothesis"),
+    "alternative": ("test_parameters", "hypothesis"),
+    "alpha": ("test_parameters", "alpha"),
+    "random_state": ("test_parameters", "random_state"),
+    "cluster_km": ("test_parameters", "cluster_km"),
+    "geographic_budget_s": ("test_parameters", "geographic_budget_s"),
+}
+_VALUE_TYPES = {
+    "shared": SharedSpace,
+    "space_parameters": EnvironmentalSpaceParameters,
+    "test_parameters": OverlapTestParameters,
+}
+
+
+def _values_from_old_keywords(function: str, old: dict, given: dict, *,
+                              warn: bool = True) -> dict:
+    """Fold the old keywords in ``old`` (removed from it) into the values of
+    ``given`` that replace them, with one warning that says what to write instead
+    (unless the caller warns about the whole old form)."""
+    moved = {k: old.pop(k) for k in list(old) if k in _OLD_KEYWORD_HOMES}
+    if not moved:
+        return given
+    if "resolution" in moved:
+        moved["grid_cells"] = _grid_cells_argument(
+            moved.get("grid_cells", DEFAULT_GRID_CELLS), moved.pop("resolution"))
+    if "alternative" in moved:
+        moved["hypothesis"] = _check_hypothesis(None, moved.pop("alternative"))
+    fields_of = {}
+    for key, value in moved.items():
+        argument, name = _OLD_KEYWORD_HOMES[key]
+        fields_of.setdefault(argument, {})[name] = value
+    out = dict(given)
+    hints = []
+    for argument, values in fields_of.items():
+        if given.get(argument) is not None:
+            raise TypeError(
+                f"{function}() got {argument}= and the old keywords {sorted(values)}; "
+                f"give them inside {argument}."
+            )
+        cls = _VALUE_TYPES[argument]
+        out[argument] = cls(**values)
+        inner = ", ".join(f"{k}=..." for k in values)
+        hints.append(f"{argument}={cls.__name__}({inner})")
+    if not warn:
+        return out
+    warnings.warn(
+        f"{function}(): the keywords {', '.join(sorted(moved))} are grouped into "
+        f"values; write {', '.join(hints)} (screener.overlap).  The old keywords stop "
+        "working in the next release.",
+        ScreenerDeprecationWarning,
+        stacklevel=3,
+    )
+    return out
+
+
+def _checked_places(a: OverlapTaxon, b: OverlapTaxon, rows) -> tuple:
+    """The four coordinate arrays of the pair (records of A, of B, background of A,
+    of B), checked against their predictor rows; all None unless both taxa have
+    both."""
     from screener.randomisation import _xy
 
-    names = ("records_a", "records_b", "background_a", "background_b")
-    if places is None:
+    xy = (a.xy_records, b.xy_records, a.xy_background, b.xy_background)
+    if any(v is None for v in xy):
         return (None,) * 4
-    if len(places) != 4:
-        raise InputError(
-            "places must hold 4 coordinate arrays: records of A, records of B, "
-            "background of A, background of B."
-        )
+    names = (f"xy_records of {a.name}", f"xy_records of {b.name}",
+             f"xy_background of {a.name}", f"xy_background of {b.name}")
     out = []
-    for name, xy, env in zip(names, places, rows, strict=True):
-        xy = _xy(xy, f"places ({name})")
-        if len(xy) != len(env):
+    for name, coords, env in zip(names, xy, rows, strict=True):
+        coords = _xy(coords, name)
+        if len(coords) != len(env):
             raise InputError(
-                f"places ({name}) has {len(xy)} coordinates for {len(env)} "
-                "predictor rows; give one per row."
+                f"{name} has {len(coords)} coordinates for {len(env)} predictor rows; "
+                "give one per row."
             )
-        out.append(xy)
+        out.append(coords)
     return tuple(out)
 
 
@@ -708,62 +994,98 @@ def shared_available_cells(
     return bg.rows, bg.cols
 
 
+#: Positional arguments of the old form of :func:`environmental_space`.
+_OLD_SPACE_ARRAYS = ("env_records_a", "env_records_b", "env_background_a",
+                     "env_background_b")
+
+
+def _space_taxa_from_old_arguments(a, b, arrays, old: dict):
+    """The two taxa of ``environmental_space(env_records_a, env_records_b,
+    env_background_a, env_background_b, places=...)`` (the old form), with a
+    warning."""
+    values = dict(zip(_OLD_SPACE_ARRAYS, (a, b, *arrays), strict=False))
+    for key in _OLD_SPACE_ARRAYS:
+        if key in old:
+            if values.get(key) is not None:
+                raise TypeError(f"environmental_space() got {key} twice")
+            values[key] = old.pop(key)
+    missing = [k for k in _OLD_SPACE_ARRAYS if values.get(k) is None]
+    if missing or len(arrays) > 2:
+        raise TypeError(
+            "environmental_space() takes two OverlapTaxon values (a, b); the old form "
+            f"takes four arrays {list(_OLD_SPACE_ARRAYS)}" + (
+                f" and {missing} are missing" if missing else "")
+        )
+    places = old.pop("places", None)
+    if places is not None and len(places) != 4:
+        raise InputError(
+            "places must hold 4 coordinate arrays: records of A, records of B, "
+            "background of A, background of B."
+        )
+    xy = tuple(places) if places is not None else (None,) * 4
+    warnings.warn(
+        "environmental_space(env_records_a, env_records_b, env_background_a, "
+        "env_background_b, places=...) is replaced by environmental_space(a, b) with "
+        "one OverlapTaxon per taxon: OverlapTaxon(name, env_records=..., "
+        "env_background=..., xy_records=..., xy_background=...).  The old form stops "
+        "working in the next release.",
+        ScreenerDeprecationWarning,
+        stacklevel=3,
+    )
+    return tuple(
+        OverlapTaxon(
+            name=name,
+            env_records=values[f"env_records_{w}"],
+            env_background=values[f"env_background_{w}"],
+            xy_records=xy[k],
+            xy_background=xy[2 + k],
+        )
+        for k, (name, w) in enumerate((("A", "a"), ("B", "b")))
+    )
+
+
 def environmental_space(
-    env_records_a,
-    env_records_b,
-    env_background_a,
-    env_background_b,
-    *,
-    env_available=None,
-    grid_cells: int = DEFAULT_GRID_CELLS,
-    support_quantile: float = 0.0,
-    available_quantile: float = 0.05,
-    predictor_names=(),
-    resolution: int | None = None,
-    places=None,
-    lonlat: bool = True,
+    a: OverlapTaxon | None = None,
+    b: OverlapTaxon | None = None,
+    *old_arrays,
+    shared: SharedSpace | None = None,
+    space_parameters: EnvironmentalSpaceParameters | None = None,
+    **old,
 ) -> EnvironmentalSpace:
     """Project two taxa into one two-axis environmental space shared by the pair.
 
     Predictors are standardised and summarised by a PCA calibrated on the **shared
-    available environment**: ``env_available`` when given (the pipeline draws it from
-    the union of the two accessible areas, or from the whole study area), otherwise
-    the two taxa's accessible-area samples pooled.  Its density (``gaussian_kde``,
-    Scott's bandwidth) corrects both taxa's record densities, so identical records
-    give identical occupancies (D = 1) whatever background each taxon drew.  Each
-    taxon's record density uses a bandwidth from its own records
+    available environment**: ``shared.env_available`` when given (the pipeline draws
+    it from the union of the two accessible areas, or from the whole study area),
+    otherwise the two taxa's accessible-area samples pooled.  Its density
+    (``gaussian_kde``, Scott's bandwidth) corrects both taxa's record densities, so
+    identical records give identical occupancies (D = 1) whatever background each
+    taxon drew.  Each taxon's record density uses a bandwidth from its own records
     (:func:`record_bandwidth`).
 
     Parameters
     ----------
-    env_records_a, env_records_b : array_like of shape (n_records, n_vars)
-        Predictor values at each taxon's records (at least 2 per taxon).
-    env_background_a, env_background_b : array_like of shape (n_cells, n_vars)
-        Predictor values of cells drawn from each taxon's own accessible area: the
-        similarity test draws random records from them, and niche dynamics uses them
-        to tell analogue environments.
-    env_available : array_like of shape (k, n_vars), optional
-        The shared available environment (see above).
-    grid_cells : int, default 64
-        ``G``, grid cells along each principal axis (at least 10).
-    support_quantile : float, default 0.0
-        Occupancy is defined where ``z_env`` is at least this quantile of its values at
-        the available points; 0 = at least as dense as the sparsest available point,
-        which keeps ``z_occ / z_env`` from exploding in the empty margins.
-    available_quantile : float, default 0.05
-        Niche dynamics drops, from each taxon's cells, those whose density is below
-        this quantile over the cells (marginal environments; common practice).
-    predictor_names : sequence of str, optional
-        Names of the predictors (figure axis labels).
-    resolution : int, optional
-        Old name of ``grid_cells``; still accepted for one release with a warning.
-    places : sequence of 4 array_like of shape (n, 2), optional
-        Coordinates of ``env_records_a``, ``env_records_b``, ``env_background_a`` and
-        ``env_background_b``, row for row.  With them the similarity tests move each
-        record pattern as a whole and the equivalency test can permute spatial
-        clusters (see :func:`similarity_test`, :func:`equivalency_test`).
-    lonlat : bool, default True
-        ``places`` are longitude, latitude in degrees (else x, y in km).
+    a, b : OverlapTaxon
+        The two taxa, each with ``env_records`` (predictor values at its records, at
+        least 2, shape (n, n_vars)) and ``env_background`` (predictor values of cells
+        drawn from its own accessible area, shape (m, n_vars)): the similarity test
+        draws random records from the background, and niche dynamics uses it to tell
+        analogue environments.  With ``xy_records`` and ``xy_background`` on both
+        (row for row) the similarity tests move each record pattern as a whole and
+        the equivalency test can permute spatial clusters (see
+        :func:`similarity_test`, :func:`equivalency_test`).  Maps are not used.
+    shared : SharedSpace, optional
+        The shared available environment (``env_available``), the predictor names
+        (figure axis labels) and whether coordinates are longitude, latitude
+        (``lonlat``).
+    space_parameters : EnvironmentalSpaceParameters, optional
+        Grid cells along each axis and the support and available-environment
+        quantiles (defaults of ``[overlap]``).
+    *old_arrays, **old
+        The old form ``environmental_space(env_records_a, env_records_b,
+        env_background_a, env_background_b, env_available=..., grid_cells=...,
+        places=..., ...)`` still works for one release, with a
+        :class:`~screener.errors.ScreenerDeprecationWarning` that says what to write.
 
     Returns
     -------
@@ -779,17 +1101,47 @@ def environmental_space(
     ----------
     .. [1] Broennimann, O. et al. (2012). Global Ecology and Biogeography 21, 481-497.
     .. [2] Warren, D. L., Glor, R. E. & Turelli, M. (2008). Evolution 62, 2868-2883.
+
+    Examples
+    --------
+    >>> rng = np.random.default_rng(0)
+    >>> a = OverlapTaxon("A", env_records=rng.normal(0, 1, (10, 3)),
+    ...                  env_background=rng.normal(0, 2, (300, 3)))
+    >>> b = OverlapTaxon("B", env_records=rng.normal(1, 1, (10, 3)),
+    ...                  env_background=rng.normal(0, 2, (300, 3)))
+    >>> space = environmental_space(
+    ...     a, b, space_parameters=EnvironmentalSpaceParameters(grid_cells=20))
+    >>> space.z_env.shape
+    (20, 20)
     """
-    grid_cells = _grid_cells_argument(grid_cells, resolution)
-    ra = _check_env(env_records_a, "env_records_a")
+    if old_arrays or not isinstance(a, OverlapTaxon):
+        a, b = _space_taxa_from_old_arguments(a, b, old_arrays, old)
+    given = _values_from_old_keywords(
+        "environmental_space", old,
+        {"shared": shared, "space_parameters": space_parameters},
+    )
+    if old:
+        raise TypeError(f"environmental_space() got unexpected arguments {sorted(old)}")
+    for taxon in (a, b):
+        if not isinstance(taxon, OverlapTaxon) or not taxon.has_environment:
+            raise InputError(
+                "environmental_space() needs two OverlapTaxon values with "
+                "env_records and env_background."
+            )
+    shared = given["shared"] or SharedSpace()
+    parameters = given["space_parameters"] or EnvironmentalSpaceParameters()
+    grid_cells = parameters.grid_cells
+    support_quantile = parameters.support_quantile
+    available_quantile = parameters.available_quantile
+    ra = _check_env(a.env_records, "env_records_a")
     n_vars = ra.shape[1]
-    rb = _check_env(env_records_b, "env_records_b", n_vars)
-    ba = _check_env(env_background_a, "env_background_a", n_vars)
-    bb = _check_env(env_background_b, "env_background_b", n_vars)
+    rb = _check_env(b.env_records, "env_records_b", n_vars)
+    ba = _check_env(a.env_background, "env_background_a", n_vars)
+    bb = _check_env(b.env_background, "env_background_b", n_vars)
     av = (
         np.vstack([ba, bb])
-        if env_available is None
-        else _check_env(env_available, "env_available", n_vars)
+        if shared.env_available is None
+        else _check_env(shared.env_available, "env_available", n_vars)
     )
     if n_vars < 2:
         raise InputError(
@@ -807,12 +1159,6 @@ def environmental_space(
             raise InputError(
                 f"`{name}` has {len(arr)} rows; at least {least} are needed."
             )
-    for qname, q in (
-        ("support_quantile", support_quantile),
-        ("available_quantile", available_quantile),
-    ):
-        if not 0.0 <= q < 1.0:
-            raise InputError(f"{qname} must be in [0, 1); got {q}.")
 
     scaler = StandardScaler().fit(av)
     pca = PCA(n_components=2).fit(scaler.transform(av))
@@ -833,7 +1179,7 @@ def environmental_space(
             "it over a wider area or use predictors that vary there."
         )
     shape = (grid_cells, grid_cells)
-    xy_ra, xy_rb, xy_ba, xy_bb = _checked_places(places, (ra, rb, ba, bb))
+    xy_ra, xy_rb, xy_ba, xy_bb = _checked_places(a, b, (ra, rb, ba, bb))
     nodes = _nodes(e1, e2)
     z_env = _scott_density(sav, nodes).reshape(shape)
     z_env = z_env / z_env.max()
@@ -886,8 +1232,8 @@ def environmental_space(
         b=taxa["b"],
         support_quantile=float(support_quantile),
         available_quantile=float(available_quantile),
-        predictor_names=tuple(predictor_names or ()),
-        lonlat=bool(lonlat),
+        predictor_names=shared.predictor_names,
+        lonlat=shared.lonlat,
     )
     log.debug(
         "environmental space: G=%d, PC1+PC2 explain %.0f%% of the available variance",
@@ -1494,43 +1840,80 @@ def geographic_equivalency_test(
     )
 
 
+def _geographic_similarity(map_fixed, map_moved, accessible_moved, n_moved, *,
+                           fit_predict, weights, direction, tests, random_state,
+                           executor) -> dict[str, OverlapTest]:
+    """The geographic similarity test on maps fitted to the real records."""
+    candidates = np.flatnonzero(np.asarray(accessible_moved, bool).ravel())
+    if candidates.size == 0:
+        raise InputError("the accessible area of the moved taxon has no cells.")
+    observed = geographic_overlap(map_fixed, map_moved, weights)
+    seeds = spawn_seeds(random_state, tests.n_replicates)
+    fn = partial(
+        _geo_similarity_replicate,
+        fit_predict,
+        np.asarray(map_fixed, float),
+        candidates,
+        int(n_moved),
+        weights,
+    )
+    values = _resolve_executor(executor).map(fn, seeds)
+    return _package(
+        values,
+        observed,
+        test="similarity",
+        space="geographic",
+        direction=direction,
+        hypothesis=tests.hypothesis,
+    )
+
+
+#: Arguments of the old form of :func:`geographic_similarity_test`, in order.
+_OLD_GEO_SIMILARITY = ("map_fixed", "accessible_moved", "n_moved", "cell_area_km2")
+
+
 def geographic_similarity_test(
     fit_predict: Callable[[np.ndarray], np.ndarray],
-    map_fixed,
-    accessible_moved,
-    n_moved: int,
-    cell_area_km2,
-    *,
-    observed_map_moved=None,
+    a: OverlapTaxon | None = None,
+    b: OverlapTaxon | None = None,
+    cell_area_km2=None,
     direction: str = "ab",
-    hypothesis: str = "conserved",
-    n_replicates: int = DEFAULT_REPLICATES,
-    random_state=0,
+    *,
+    test_parameters: OverlapTestParameters | None = None,
     executor: Executor | None = None,
-    alternative: str | None = None,
+    **old,
 ) -> dict[str, OverlapTest]:
     """Niche similarity (background) test in geographic space.
 
-    The fixed taxon's map is compared with maps fitted to ``n_moved`` cells drawn at
-    random (without replacement when possible) from the other taxon's accessible area.
+    ``direction="ab"`` keeps A's map and compares it with maps fitted to as many
+    cells as B has records, drawn at random (without replacement when possible)
+    from B's accessible area; ``"ba"`` does the reverse.  The observed overlap is
+    that of ``fit_predict`` on each taxon's real records, so observed and null come
+    from one model (as in :func:`geographic_equivalency_test`).
 
     Parameters
     ----------
     fit_predict : callable
         As :func:`geographic_equivalency_test`.
-    map_fixed : ndarray (n_rows, n_cols)
-        Suitability map of the taxon kept in place.
-    accessible_moved : ndarray of bool (n_rows, n_cols)
-        Accessible area of the taxon whose records are moved.
-    n_moved : int
-        Its number of records.
-    cell_area_km2 : ndarray or float
-    observed_map_moved : ndarray, optional
-        Its map fitted to the real records (the observed overlap); required.
-    direction : {"ab", "ba"}
-        Label stored on the result.
-    hypothesis, n_replicates, random_state, executor, alternative
+    a, b : OverlapTaxon
+        The two taxa, each with ``cells`` (flat grid indices of its records); the
+        moved taxon also with ``accessible`` (bool map of its accessible area).
+        Their ``map`` is not used.
+    cell_area_km2 : ndarray (n_rows, n_cols) or float
+        Cell areas in km² (weights for D and I).
+    direction : {"ab", "ba"}, default "ab"
+        Which taxon's map is kept: "ab" keeps A and moves B's records.
+    test_parameters : OverlapTestParameters, optional
+        ``n_replicates``, ``hypothesis`` and ``random_state`` are used.
+    executor : Executor, optional
         As :func:`similarity_test`.
+    **old
+        The old form ``geographic_similarity_test(fit_predict, map_fixed,
+        accessible_moved, n_moved, cell_area_km2, observed_map_moved=...,
+        hypothesis=..., n_replicates=..., random_state=...)`` still works for one
+        release, with a :class:`~screener.errors.ScreenerDeprecationWarning` (with
+        five positional arguments, give the old ``direction`` positionally too or
+        leave it at "ab").
 
     Returns
     -------
@@ -1541,33 +1924,88 @@ def geographic_similarity_test(
     ----------
     .. [1] Warren, D. L., Glor, R. E. & Turelli, M. (2008). Evolution 62, 2868-2883.
     """
-    hypothesis = _check_hypothesis(hypothesis, alternative)
-    n = _check_replicates(n_replicates)
-    if observed_map_moved is None:
+    if not isinstance(a, OverlapTaxon):
+        return _old_geographic_similarity_test(
+            fit_predict, (a, b, cell_area_km2, direction), test_parameters, executor,
+            old)
+    given = _values_from_old_keywords(
+        "geographic_similarity_test", old, {"test_parameters": test_parameters})
+    if old:
+        raise TypeError(
+            f"geographic_similarity_test() got unexpected arguments {sorted(old)}")
+    tests = given["test_parameters"] or OverlapTestParameters()
+    if direction not in ("ab", "ba"):
+        raise InputError(f"direction must be 'ab' or 'ba'; got {direction!r}.")
+    if cell_area_km2 is None:
+        raise InputError("geographic_similarity_test() needs cell_area_km2 (km²).")
+    fixed, moved = (a, b) if direction == "ab" else (b, a)
+    for taxon in (a, b):
+        if taxon.cells is None:
+            raise InputError(f"taxon {taxon.name} needs `cells` (its records' cells).")
+    if moved.accessible is None:
+        raise InputError(
+            f"taxon {moved.name} needs `accessible` (its accessible area): its "
+            "random records are drawn from it."
+        )
+    cells_fixed = _check_cells(fixed.cells, f"cells of {fixed.name}")
+    cells_moved = _check_cells(moved.cells, f"cells of {moved.name}")
+    return _geographic_similarity(
+        fit_predict(cells_fixed), fit_predict(cells_moved), moved.accessible,
+        len(cells_moved), fit_predict=fit_predict, weights=cell_area_km2,
+        direction=direction, tests=tests, random_state=tests.random_state,
+        executor=executor,
+    )
+
+
+def _old_geographic_similarity_test(fit_predict, positional, test_parameters, executor,
+                                    old):
+    """``geographic_similarity_test(fit_predict, map_fixed, accessible_moved,
+    n_moved, cell_area_km2, observed_map_moved=..., ...)``, the old form."""
+    *slots, direction = positional
+    if not isinstance(direction, str):  # five positional arguments: the cell areas
+        slots.append(direction)
+        direction = "ab"
+    # the slots hold the old arguments given by position, in order, then
+    # cell_area_km2 when it was given by keyword
+    values = {k: old.pop(k) for k in (*_OLD_GEO_SIMILARITY, "observed_map_moved")
+              if k in old}
+    free = [k for k in _OLD_GEO_SIMILARITY if k not in values]
+    given_slots = [v for v in slots if v is not None]
+    if len(given_slots) > len(free):
+        raise TypeError("geographic_similarity_test() got an old argument twice")
+    values.update(zip(free, given_slots, strict=False))
+    given = _values_from_old_keywords(
+        "geographic_similarity_test", old, {"test_parameters": test_parameters},
+        warn=False)
+    if old:
+        raise TypeError(
+            f"geographic_similarity_test() got unexpected arguments {sorted(old)}")
+    missing = [k for k in _OLD_GEO_SIMILARITY if k not in values]
+    if missing:
+        raise TypeError(
+            "geographic_similarity_test() takes two OverlapTaxon values (a, b) and "
+            f"cell_area_km2; the old form also misses {missing}"
+        )
+    if values.get("observed_map_moved") is None:
         raise InputError(
             "observed_map_moved (the map fitted to the real records) is needed."
         )
-    candidates = np.flatnonzero(np.asarray(accessible_moved, bool).ravel())
-    if candidates.size == 0:
-        raise InputError("the accessible area of the moved taxon has no cells.")
-    observed = geographic_overlap(map_fixed, observed_map_moved, cell_area_km2)
-    seeds = spawn_seeds(random_state, n)
-    fn = partial(
-        _geo_similarity_replicate,
-        fit_predict,
-        np.asarray(map_fixed, float),
-        candidates,
-        int(n_moved),
-        cell_area_km2,
+    warnings.warn(
+        "geographic_similarity_test(fit_predict, map_fixed, accessible_moved, "
+        "n_moved, cell_area_km2, observed_map_moved=...) is replaced by "
+        "geographic_similarity_test(fit_predict, a, b, cell_area_km2, direction=..., "
+        "test_parameters=OverlapTestParameters(...)) with one OverlapTaxon per taxon "
+        "(cells=..., accessible=...); the observed maps are fit_predict on the "
+        "records' cells.  The old form stops working in the next release.",
+        ScreenerDeprecationWarning,
+        stacklevel=3,
     )
-    values = _resolve_executor(executor).map(fn, seeds)
-    return _package(
-        values,
-        observed,
-        test="similarity",
-        space="geographic",
-        direction=direction,
-        hypothesis=hypothesis,
+    tests = given["test_parameters"] or OverlapTestParameters()
+    return _geographic_similarity(
+        values["map_fixed"], values["observed_map_moved"], values["accessible_moved"],
+        values["n_moved"], fit_predict=fit_predict, weights=values["cell_area_km2"],
+        direction=direction, tests=tests, random_state=tests.random_state,
+        executor=executor,
     )
 
 
@@ -1932,70 +2370,35 @@ def _validate_map_pair(map_a, map_b, cell_area_km2):
     return a, b, w
 
 
-@dataclass(frozen=True, eq=False)
-class OverlapTaxon:
-    """One taxon as :func:`compare_pair` takes it.
-
-    Attributes
-    ----------
-    name : str
-        Taxon name.
-    map : ndarray (n_rows, n_cols)
-        Suitability map in [0, 1], NaN outside the mask.
-    env_records, env_background : array_like of shape (n, n_vars) and (m, n_vars)
-        Predictor rows at the records and at cells of the taxon's accessible area
-        (see :func:`environmental_space`); no environmental comparison without them.
-    xy_records, xy_background : array_like of shape (n, 2) and (m, 2), optional
-        Coordinates of those rows (longitude, latitude unless ``lonlat=False``); with
-        them the environmental tests can keep spatial clusters of records.
-    cells : array_like of int, optional
-        Flat grid indices of the records (geographic tests).
-    accessible : ndarray of bool (n_rows, n_cols), optional
-        The accessible area on the grid (geographic similarity test).
-    """
-
-    name: str
-    map: np.ndarray
-    env_records: np.ndarray | None = None
-    env_background: np.ndarray | None = None
-    xy_records: np.ndarray | None = None
-    xy_background: np.ndarray | None = None
-    cells: np.ndarray | None = None
-    accessible: np.ndarray | None = None
-
-    @property
-    def has_environment(self) -> bool:
-        return self.env_records is not None and self.env_background is not None
-
-
 #: Old keyword arguments of :func:`compare_pair`, one per taxon (``map_a``, ...).
 _OLD_PAIR_KEYWORDS = ("map", "env_records", "env_background", "cells", "accessible")
 
 
 def _taxa_from_old_keywords(name_a, name_b, old: dict):
-    unknown = set(old) - {f"{k}_{w}" for k in _OLD_PAIR_KEYWORDS for w in "ab"} - {
-        "places"}
-    if unknown:
-        raise TypeError(f"compare_pair() got unexpected arguments {sorted(unknown)}")
+    """The two taxa of ``compare_pair(name_a, name_b, map_a=..., ...)`` (the old
+    form; its keywords are removed from ``old``), with a warning."""
+    per_taxon = {k: old.pop(k) for k in list(old)
+                 if k in {f"{n}_{w}" for n in _OLD_PAIR_KEYWORDS for w in "ab"}}
     warnings.warn(
         "compare_pair(name_a, name_b, map_a=..., ...) is replaced by compare_pair(a, "
-        "b) with one OverlapTaxon per taxon; the old form stops working in the next "
-        "release.",
-        FutureWarning,
+        "b) with one OverlapTaxon per taxon: OverlapTaxon(name, map=..., "
+        "env_records=..., env_background=..., cells=..., accessible=...).  The old "
+        "form stops working in the next release.",
+        ScreenerDeprecationWarning,
         stacklevel=3,
     )
-    places = old.get("places") or (None,) * 4
+    places = old.pop("places", None) or (None,) * 4
     out = []
     for k, (name, w) in enumerate(((name_a, "a"), (name_b, "b"))):
         out.append(OverlapTaxon(
             name=name,
-            map=old.get(f"map_{w}"),
-            env_records=old.get(f"env_records_{w}"),
-            env_background=old.get(f"env_background_{w}"),
+            map=per_taxon.get(f"map_{w}"),
+            env_records=per_taxon.get(f"env_records_{w}"),
+            env_background=per_taxon.get(f"env_background_{w}"),
             xy_records=places[k],
             xy_background=places[2 + k],
-            cells=old.get(f"cells_{w}"),
-            accessible=old.get(f"accessible_{w}"),
+            cells=per_taxon.get(f"cells_{w}"),
+            accessible=per_taxon.get(f"accessible_{w}"),
         ))
     return out
 
@@ -2004,21 +2407,11 @@ def compare_pair(
     a: OverlapTaxon,
     b: OverlapTaxon,
     *,
-    cell_area_km2=None,
-    env_available=None,
-    n_replicates: int = DEFAULT_REPLICATES,
-    hypothesis: str = "conserved",
-    grid_cells: int = DEFAULT_GRID_CELLS,
-    random_state=0,
+    shared: SharedSpace | None = None,
+    test_parameters: OverlapTestParameters | None = None,
+    space_parameters: EnvironmentalSpaceParameters | None = None,
     executor: Executor | None = None,
     geographic_fit_predict: Callable[[np.ndarray], np.ndarray] | None = None,
-    geographic_budget_s: float = 600.0,
-    alpha: float = 0.05,
-    predictor_names=(),
-    lonlat: bool = True,
-    cluster_km: float = 0.0,
-    alternative: str | None = None,
-    resolution: int | None = None,
     **old,
 ) -> PairComparison:
     """Overlap, breadth, dynamics and tests for one pair of taxa.
@@ -2026,57 +2419,66 @@ def compare_pair(
     Parameters
     ----------
     a, b : OverlapTaxon
-        The two taxa (maps on one grid; records, backgrounds and places as far as
-        known).  The old form ``compare_pair(name_a, name_b, map_a=..., ...)`` still
-        works for one release, with a warning.
-    cell_area_km2 : ndarray (n_rows, n_cols) or float
-        Cell areas in km².
-    env_available : array_like, optional
-        Shared available environment of the pair (see :func:`environmental_space`).
-        The environmental row is skipped unless both taxa have records and
-        background rows.
-    n_replicates : int, default 999
-        Replicates per test; with ``R`` replicates no p-value is below
-        ``1 / (R + 1)``.
-    hypothesis : {"conserved", "diverged"}, default "conserved"
-        What the similarity tests ask.
-    grid_cells : int, default 64
-        Environmental grid cells along each principal axis.
-    random_state : None, int or Generator, default 0
+        The two taxa (maps on one grid; records, backgrounds and coordinates as far
+        as known).  The environmental row is skipped unless both taxa have records
+        and background rows.
+    shared : SharedSpace
+        What the pair shares: cell areas in km² (required), the shared available
+        environment (see :func:`environmental_space`), predictor names and whether
+        coordinates are longitude, latitude.
+    test_parameters : OverlapTestParameters, optional
+        Replicates, hypothesis, alpha, seed, spatial clusters and the geographic
+        budget of the tests (defaults of ``[overlap]``).  The pair's p-values are
+        Holm-corrected among themselves (:func:`correct_for_multiplicity` corrects a
+        whole run).
+    space_parameters : EnvironmentalSpaceParameters, optional
+        How the environmental space is built (grid cells along each axis, ...).
     executor : Executor, optional
+        Where the replicates run (serial when omitted); the result does not depend
+        on it.
     geographic_fit_predict : callable, optional
         ``fit_predict(cells) -> map`` for the geographic tests; they run only when it
         and both taxa's ``cells`` are given (similarity also needs both
         ``accessible``) and :func:`estimate_seconds` stays within
-        ``geographic_budget_s``.
-    geographic_budget_s : float, default 600
-        Skip the geographic tests (p = NaN, logged) when estimated slower than this.
-    alpha : float, default 0.05
-        Family-wise error rate of the reading; the pair's p-values are Holm-corrected
-        among themselves (:func:`correct_for_multiplicity` corrects a whole run).
-    predictor_names : sequence of str, optional
-    lonlat : bool, default True
-        The taxa's coordinates are longitude, latitude (degrees); else x, y in km.
-    cluster_km : float, default 0
-        With coordinates: records chained by gaps of at most this (km) form one
-        spatial cluster, which the environmental tests keep together
-        (:func:`equivalency_test`, :func:`similarity_test`); 0 = independent records.
-    alternative, resolution : optional
-        Old names of ``hypothesis`` and ``grid_cells`` (one release, with a warning).
+        ``test_parameters.geographic_budget_s``.
+    **old
+        The old keywords (``cell_area_km2=``, ``n_replicates=``, ``grid_cells=``,
+        ...) and the old form ``compare_pair(name_a, name_b, map_a=..., ...)`` still
+        work for one release, with a
+        :class:`~screener.errors.ScreenerDeprecationWarning` that says what to write.
 
     Returns
     -------
     PairComparison
+
+    Examples
+    --------
+    >>> y, x = np.mgrid[0:20, 0:20]
+    >>> a = OverlapTaxon("A", map=np.exp(-((x - 6) ** 2 + (y - 6) ** 2) / 20.0))
+    >>> b = OverlapTaxon("B", map=np.exp(-((x - 9) ** 2 + (y - 8) ** 2) / 20.0))
+    >>> pair = compare_pair(a, b, shared=SharedSpace(cell_area_km2=1.0))
+    >>> round(pair.geographic.D, 2)
+    0.58
     """
     if isinstance(a, str):
         a, b = _taxa_from_old_keywords(a, b, old)
-    elif old:
+    given = _values_from_old_keywords(
+        "compare_pair", old,
+        {"shared": shared, "test_parameters": test_parameters,
+         "space_parameters": space_parameters},
+    )
+    if old:
         raise TypeError(f"compare_pair() got unexpected arguments {sorted(old)}")
-    hypothesis = _check_hypothesis(hypothesis, alternative)
-    grid_cells = _grid_cells_argument(grid_cells, resolution)
-    n = _check_replicates(n_replicates)
-    ma, mb, w = _validate_map_pair(a.map, b.map, cell_area_km2)
-    seeds = spawn_seeds(random_state, 6)
+    shared = given["shared"] or SharedSpace()
+    tests = given["test_parameters"] or OverlapTestParameters()
+    if shared.cell_area_km2 is None:
+        raise InputError(
+            "compare_pair() needs the cell areas: shared=SharedSpace(cell_area_km2=...) "
+            "(km², one per cell or one for all)."
+        )
+    n = tests.n_replicates
+    ma, mb, w = _validate_map_pair(a.map, b.map, shared.cell_area_km2)
+    seeds = spawn_seeds(tests.random_state, 6)
     d, i = geographic_overlap(ma, mb, w)
     geo = SpaceComparison(
         "geographic", d, i, levins_breadth(ma, w), levins_breadth(mb, w)
@@ -2084,24 +2486,18 @@ def compare_pair(
     ex = _resolve_executor(executor)
     if geographic_fit_predict is not None and a.cells is not None and (
             b.cells is not None):
-        _geographic_tests(geo, a, b, w, geographic_fit_predict, n, hypothesis, seeds,
-                          ex, geographic_budget_s)
+        _geographic_tests(geo, a, b, w, geographic_fit_predict, tests, seeds, ex)
     env = None
     space = None
     if a.has_environment and b.has_environment:
-        xy = (a.xy_records, b.xy_records, a.xy_background, b.xy_background)
         space = environmental_space(
-            a.env_records, b.env_records, a.env_background, b.env_background,
-            env_available=env_available, grid_cells=grid_cells,
-            predictor_names=predictor_names,
-            places=xy if all(v is not None for v in xy) else None, lonlat=lonlat,
-        )
+            a, b, shared=shared, space_parameters=given["space_parameters"])
         d, i = environmental_overlap(space)
         ba, bb = niche_breadth(space)
         env = SpaceComparison("environmental", d, i, ba, bb, **niche_dynamics(space))
         env.equivalency = equivalency_test(
             space, n_replicates=n, random_state=seeds[3], executor=ex,
-            cluster_km=cluster_km,
+            cluster_km=tests.cluster_km,
         )
         for direction, seed in (("ab", seeds[4]), ("ba", seeds[5])):
             setattr(
@@ -2110,20 +2506,21 @@ def compare_pair(
                 similarity_test(
                     space,
                     direction=direction,
-                    hypothesis=hypothesis,
+                    hypothesis=tests.hypothesis,
                     n_replicates=n,
                     random_state=seed,
                     executor=ex,
-                    cluster_km=cluster_km,
+                    cluster_km=tests.cluster_km,
                 ),
             )
-    out = PairComparison(a.name, b.name, geo, env, space, n, hypothesis)
-    correct_for_multiplicity([out], alpha)
+    out = PairComparison(a.name, b.name, geo, env, space, n, tests.hypothesis)
+    correct_for_multiplicity([out], tests.alpha)
     return out
 
 
-def _geographic_tests(geo, a, b, w, fit_predict, n, hypothesis, seeds, ex, budget_s):
+def _geographic_tests(geo, a, b, w, fit_predict, tests, seeds, ex):
     """Run the geographic tests of a pair into ``geo`` unless slower than budget."""
+    n = tests.n_replicates
     n_fits = 2 * n
     if a.accessible is not None and b.accessible is not None:
         n_fits += 2 * n
@@ -2131,10 +2528,10 @@ def _geographic_tests(geo, a, b, w, fit_predict, n, hypothesis, seeds, ex, budge
         fit_predict, a.cells, n_fits, fits_per_replicate=1,
         n_workers=getattr(ex, "n_workers", 1),
     )
-    if est > budget_s:
+    if est > tests.geographic_budget_s:
         log.info(
             "geographic tests for %s / %s skipped: about %.0f s expected, budget "
-            "%.0f s", a.name, b.name, est, budget_s,
+            "%.0f s", a.name, b.name, est, tests.geographic_budget_s,
         )
         return
     geo.equivalency = geographic_equivalency_test(
@@ -2145,14 +2542,14 @@ def _geographic_tests(geo, a, b, w, fit_predict, n, hypothesis, seeds, ex, budge
         return
     fit_a = fit_predict(_check_cells(a.cells, "cells_a"))
     fit_b = fit_predict(_check_cells(b.cells, "cells_b"))
-    common = dict(hypothesis=hypothesis, n_replicates=n, executor=ex)
-    geo.similarity_ab = geographic_similarity_test(
-        fit_predict, fit_a, b.accessible, len(b.cells), w, observed_map_moved=fit_b,
-        direction="ab", random_state=seeds[1], **common,
+    common = dict(tests=tests, executor=ex, fit_predict=fit_predict, weights=w)
+    geo.similarity_ab = _geographic_similarity(
+        fit_a, fit_b, b.accessible, len(b.cells), direction="ab",
+        random_state=seeds[1], **common,
     )
-    geo.similarity_ba = geographic_similarity_test(
-        fit_predict, fit_b, a.accessible, len(a.cells), w, observed_map_moved=fit_a,
-        direction="ba", random_state=seeds[2], **common,
+    geo.similarity_ba = _geographic_similarity(
+        fit_b, fit_a, a.accessible, len(a.cells), direction="ba",
+        random_state=seeds[2], **common,
     )
 
 

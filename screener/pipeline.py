@@ -54,7 +54,10 @@ from screener.outputs.staging import check_output_folder, new_run_id, staged_out
 from screener.outputs.tables import OVERLAP_COLUMNS
 from screener.outputs.writer import write_outputs
 from screener.overlap import (
+    EnvironmentalSpaceParameters,
     OverlapTaxon,
+    OverlapTestParameters,
+    SharedSpace,
     compare_pair,
     correct_for_multiplicity,
     shared_available_cells,
@@ -163,18 +166,18 @@ def compare_taxa(intake: Intake, taxa: dict, *, executor: Executor | None = None
         cmp = compare_pair(
             _overlap_taxon(grid, a, ta),
             _overlap_taxon(grid, b, tb),
-            cell_area_km2=areas,
-            env_available=intake.predictor_stack().values_at(*avail),
-            n_replicates=s.overlap.n_replicates,
-            hypothesis=s.overlap.similarity_hypothesis,
-            grid_cells=s.overlap.grid_cells,
-            random_state=seed,
+            shared=SharedSpace(
+                cell_area_km2=areas,
+                env_available=intake.predictor_stack().values_at(*avail),
+                predictor_names=intake.predictor_stack().names,
+            ),
+            test_parameters=OverlapTestParameters.from_settings(
+                s, random_state=seed, cluster_km=cluster_km,
+                geographic_budget_s=float("inf"),
+            ),
+            space_parameters=EnvironmentalSpaceParameters.from_settings(s),
             executor=executor,
             geographic_fit_predict=refit,
-            geographic_budget_s=float("inf"),
-            alpha=s.overlap.alpha,
-            predictor_names=intake.predictor_stack().names,
-            cluster_km=cluster_km,
         )
         comparisons.append(cmp)
     # one Holm correction over every p-value of the run, then the tables and readings

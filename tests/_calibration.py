@@ -176,10 +176,14 @@ def run_pair(pair: Pair, rng, *, n_replicates=99, grid_cells=24, hypothesis="con
     similarity null, equivalency by spatial clusters), as a run does; False gives the
     published tests with independent records.
     """
+    xy = pair.places if structured else (None,) * 4
     space = ov.environmental_space(
-        pair.records_a, pair.records_b, pair.background_a, pair.background_b,
-        env_available=pair.available, grid_cells=grid_cells,
-        places=pair.places if structured else None, lonlat=False,
+        ov.OverlapTaxon("A", env_records=pair.records_a, env_background=pair.background_a,
+                        xy_records=xy[0], xy_background=xy[2]),
+        ov.OverlapTaxon("B", env_records=pair.records_b, env_background=pair.background_b,
+                        xy_records=xy[1], xy_background=xy[3]),
+        shared=ov.SharedSpace(env_available=pair.available, lonlat=False),
+        space_parameters=ov.EnvironmentalSpaceParameters(grid_cells=grid_cells),
     )
     seeds = rng.integers(2**31, size=3)
     link = float(CLUSTER_CELLS) if structured else 0.0

@@ -13,10 +13,6 @@ LIMIT = 8
 
 #: function -> its parameter count today (known debt; shrink, never grow)
 KNOWN_WIDE = {
-    # options of the tests -> one frozen options value per test kind
-    "overlap.compare_pair": 18,
-    "overlap.environmental_space": 12,
-    "overlap.geographic_similarity_test": 12,
     # reference, crs, resolution, extent describe one reference grid
     "alignment.align_layers": 11,
     # scikit-learn estimators keep every parameter explicit (kept on purpose)

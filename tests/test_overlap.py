@@ -161,6 +161,22 @@ def _pair(rng, shift=0.0, n=30, n_bg=600, n_vars=3, spread=0.5):
     return ra, rb, bg_a, bg_b
 
 
+def _space(ra, rb, ba, bb, *, places=None, env_available=None, predictor_names=(),
+           lonlat=True, **parameters):
+    """The environmental space of two taxa given as arrays (records, background of
+    A and B, and their coordinates in the order records A, B, background A, B)."""
+    xy = places if places is not None else (None,) * 4
+    a = ov.OverlapTaxon("A", env_records=ra, env_background=ba, xy_records=xy[0],
+                        xy_background=xy[2])
+    b = ov.OverlapTaxon("B", env_records=rb, env_background=bb, xy_records=xy[1],
+                        xy_background=xy[3])
+    shared = ov.SharedSpace(env_available=env_available,
+                            predictor_names=predictor_names, lonlat=lonlat)
+    return ov.environmental_space(
+        a, b, shared=shared,
+        space_parameters=ov.EnvironmentalSpaceParameters(**parameters))
+
+
 def _whitened_kde(points, nodes, cov):
     """Gaussian density with kernel covariance `cov` via sklearn on whitened data."""
     chol = np.linalg.cholesky(cov)
@@ -190,7 +206,7 @@ def test_record_densities_match_sklearn_on_the_pca_grid():
     # Reference: sklearn.neighbors.KernelDensity (Gaussian) with the same kernel
     # covariance, applied in whitened coordinates; same grid nodes.
     rng = np.random.default_rng(2)
-    space = ov.environmental_space(*_pair(rng, shift=1.0), grid_cells=30)
+    space = _space(*_pair(rng, shift=1.0), grid_cells=30)
     nodes = space.nodes
     ref_a = _whitened_kde(space.a.scores_records, nodes, space.a.bandwidth)
     ref_b = _whitened_kde(space.b.scores_records, nodes, space.b.bandwidth)
@@ -211,7 +227,7 @@ def test_record_densities_match_sklearn_on_the_pca_grid():
 def test_occupancy_is_density_ratio_on_support():
     # Broennimann et al. 2012: occupancy = z_occ / z_env where the environment exists.
     rng = np.random.default_rng(4)
-    space = ov.environmental_space(*_pair(rng), grid_cells=25)
+    space = _space(*_pair(rng), grid_cells=25)
     ratio = np.where(space.support, space.a.z_occ / space.z_env, 0.0)
     assert_allclose(space.a.occupancy, ratio / ratio.max(), rtol=1e-12)
     assert space.a.occupancy.max() == pytest.approx(1.0)
@@ -231,12 +247,12 @@ def test_identical_records_give_d_of_one_whatever_background_each_drew():
     bg_a = area[rng.choice(2000, 400, replace=False)]
     bg_b = area[rng.choice(2000, 400, replace=False)]
     rec = area[rng.choice(2000, 15, replace=False)]
-    space = ov.environmental_space(rec, rec, bg_a, bg_b, grid_cells=40)
+    space = _space(rec, rec, bg_a, bg_b, grid_cells=40)
     assert ov.environmental_overlap(space) == pytest.approx((1.0, 1.0), abs=1e-12)
-    given = ov.environmental_space(rec, rec, bg_a, bg_b, env_available=area)
+    given = _space(rec, rec, bg_a, bg_b, env_available=area)
     assert ov.environmental_overlap(given) == pytest.approx((1.0, 1.0), abs=1e-12)
     # deterministic: the same inputs give the same surfaces
-    again = ov.environmental_space(rec, rec, bg_a, bg_b, env_available=area)
+    again = _space(rec, rec, bg_a, bg_b, env_available=area)
     assert np.array_equal(again.a.occupancy, given.a.occupancy)
 
 
@@ -247,8 +263,8 @@ def test_each_taxon_gets_its_own_bandwidth():
     ra, rb, ba, bb = _pair(rng, shift=0.0, n=20, spread=0.2)
     rb = rb + np.array([3.0, 0.0, 0.0])
     wide = rng.normal(0.0, 1.5, size=(20, 3))
-    s1 = ov.environmental_space(ra, rb, ba, bb, env_available=ba)
-    s2 = ov.environmental_space(ra, wide, ba, bb, env_available=ba)
+    s1 = _space(ra, rb, ba, bb, env_available=ba)
+    s2 = _space(ra, wide, ba, bb, env_available=ba)
     assert_allclose(s1.a.bandwidth, s2.a.bandwidth, rtol=1e-12)
     assert np.trace(s2.b.bandwidth) > 10 * np.trace(s1.b.bandwidth)
     assert ov.environmental_overlap(s1)[0] < 0.01
@@ -259,17 +275,17 @@ def test_environmental_overlap_is_unit_free():
     rng = np.random.default_rng(8)
     ra, rb, ba, bb = _pair(rng, shift=0.8)
     d1, i1 = ov.environmental_overlap(
-        ov.environmental_space(ra, rb, ba, bb, grid_cells=30)
+        _space(ra, rb, ba, bb, grid_cells=30)
     )
     scale = np.array([1000.0, 1.0, 0.01])
     d2, i2 = ov.environmental_overlap(
-        ov.environmental_space(
+        _space(
             ra * scale, rb * scale, ba * scale, bb * scale, grid_cells=30
         )
     )
     assert d1 == pytest.approx(d2, abs=1e-6)
     assert i1 == pytest.approx(i2, abs=1e-6)
-    same = ov.environmental_space(ra, ra, ba, bb, grid_cells=30)
+    same = _space(ra, ra, ba, bb, grid_cells=30)
     dyn = ov.niche_dynamics(same)
     assert dyn["stability"] == pytest.approx(1.0)
     assert dyn["expansion"] == pytest.approx(0.0, abs=1e-12)
@@ -283,7 +299,7 @@ def test_niche_dynamics_of_disjoint_niches():
     bg = rng.normal(size=(1500, 3)) * 2.0
     ra = rng.normal(-2.5, 0.2, size=(25, 3))
     rb = rng.normal(2.5, 0.2, size=(25, 3))
-    space = ov.environmental_space(ra, rb, bg, bg, grid_cells=40)
+    space = _space(ra, rb, bg, bg, grid_cells=40)
     dyn = ov.niche_dynamics(space)
     assert dyn["expansion"] > 0.9
     assert dyn["unfilling"] > 0.9
@@ -302,7 +318,7 @@ def test_analogue_environment_is_cut_over_cells_not_background_points():
     bg = np.vstack([core, halo])
     ra = rng.normal(0, 0.3, size=(20, 3))
     rb = rng.uniform(-2.5, 2.5, size=(20, 3))
-    space = ov.environmental_space(ra, rb, bg, bg, grid_cells=30)
+    space = _space(ra, rb, bg, bg, grid_cells=30)
     rows, cols = space.cell_of(space.a.scores_background)
     holds = np.zeros(space.z_env.shape, bool)
     holds[rows, cols] = True
@@ -321,20 +337,22 @@ def test_environmental_space_input_errors():
     with pytest.raises(InputError, match="NaN"):
         bad = ra.copy()
         bad[3, 1] = np.nan
-        ov.environmental_space(bad, rb, ba, bb)
+        _space(bad, rb, ba, bb)
     with pytest.raises(InputError, match="same predictors"):
-        ov.environmental_space(ra, rb[:, :2], ba, bb)
+        _space(ra, rb[:, :2], ba, bb)
     with pytest.raises(InputError, match="at least 2 predictors"):
-        ov.environmental_space(ra[:, :1], rb[:, :1], ba[:, :1], bb[:, :1])
+        _space(ra[:, :1], rb[:, :1], ba[:, :1], bb[:, :1])
     with pytest.raises(InputError, match="grid_cells"):
-        ov.environmental_space(ra, rb, ba, bb, grid_cells=5)
+        _space(ra, rb, ba, bb, grid_cells=5)
 
 
 def test_old_option_names_still_work_with_a_warning():
     rng = np.random.default_rng(1)
     ra, rb, ba, bb = _pair(rng, n=8)
-    with pytest.warns(ScreenerDeprecationWarning, match="grid_cells"):
+    with pytest.warns(ScreenerDeprecationWarning) as caught:
         old = ov.environmental_space(ra, rb, ba, bb, resolution=20)
+    said = " ".join(str(w.message) for w in caught)
+    assert "renamed `grid_cells`" in said and "OverlapTaxon" in said
     assert old.grid_cells == 20
     with pytest.warns(ScreenerDeprecationWarning, match="hypothesis"):
         t = ov.similarity_test(old, alternative="lower", n_replicates=9)["D"]
@@ -344,7 +362,7 @@ def test_old_option_names_still_work_with_a_warning():
 def test_old_pair_names_of_the_space_still_read():
     # kept for one release: ``space.occupancy_a`` is ``space.a.occupancy``
     rng = np.random.default_rng(1)
-    space = ov.environmental_space(*_pair(rng, n=8), grid_cells=20)
+    space = _space(*_pair(rng, n=8), grid_cells=20)
     for which in ("a", "b"):
         taxon = space.taxon(which)
         for name in ("scores_records", "scores_background", "bandwidth", "available",
@@ -362,7 +380,7 @@ def test_old_pair_names_of_the_space_still_read():
 def test_equivalency_p_value_formula_and_reproducibility():
     # Warren et al. 2008: p = (1 + #{null <= observed}) / (1 + R).
     rng = np.random.default_rng(12)
-    space = ov.environmental_space(*_pair(rng, shift=0.7, n=15), grid_cells=30)
+    space = _space(*_pair(rng, shift=0.7, n=15), grid_cells=30)
     res = ov.equivalency_test(space, n_replicates=29, random_state=7)
     for stat in ("D", "I"):
         t = res[stat]
@@ -383,7 +401,7 @@ def test_equivalency_replicates_rebuild_densities_like_the_observed_ones():
     # A replicate that happens to keep every record with its own taxon must give the
     # observed D: same bandwidth rule, same shared environment.
     rng = np.random.default_rng(14)
-    space = ov.environmental_space(*_pair(rng, shift=0.7, n=10), grid_cells=25)
+    space = _space(*_pair(rng, shift=0.7, n=10), grid_cells=25)
     task = ov._EnvTask(
         nodes=space.nodes,
         shape=space.z_env.shape,
@@ -409,7 +427,7 @@ def test_equivalency_with_single_record_clusters_is_the_published_permutation():
     ra, rb, ba, bb = _pair(rng, shift=0.7, n=12)
     xy = np.column_stack([np.arange(24) * 10.0, np.zeros(24)])
     places = (xy[:12], xy[12:], rng.uniform(0, 300, (600, 2)), rng.uniform(0, 300, (600, 2)))
-    space = ov.environmental_space(ra, rb, ba, bb, grid_cells=20, places=places,
+    space = _space(ra, rb, ba, bb, grid_cells=20, places=places,
                                    lonlat=False)
     plain = ov.equivalency_test(space, n_replicates=19, random_state=3)
     linked = ov.equivalency_test(space, n_replicates=19, random_state=3, cluster_km=5.0)
@@ -425,7 +443,7 @@ def test_equivalency_cannot_reject_with_two_clusters_per_taxon():
     xy = np.repeat(centres, 6, axis=0) + rng.uniform(0, 1, (24, 2))
     places = (xy[:12], xy[12:], rng.uniform(0, 100, (600, 2)),
               rng.uniform(0, 100, (600, 2)))
-    space = ov.environmental_space(ra, rb, ba, bb, grid_cells=20, places=places,
+    space = _space(ra, rb, ba, bb, grid_cells=20, places=places,
                                    lonlat=False)
     plain = ov.equivalency_test(space, n_replicates=99, random_state=4)
     linked = ov.equivalency_test(space, n_replicates=99, random_state=4, cluster_km=3.0)
@@ -438,12 +456,12 @@ def test_places_must_match_the_rows():
     rng = np.random.default_rng(23)
     ra, rb, ba, bb = _pair(rng, n=8)
     places = _places(rng, 8, 8, 600)
-    space = ov.environmental_space(ra, rb, ba, bb, grid_cells=20, places=places,
+    space = _space(ra, rb, ba, bb, grid_cells=20, places=places,
                                    lonlat=False)
     assert space.has_places
-    assert not ov.environmental_space(ra, rb, ba, bb, grid_cells=20).has_places
+    assert not _space(ra, rb, ba, bb, grid_cells=20).has_places
     with pytest.raises(InputError, match="one per row"):
-        ov.environmental_space(ra, rb, ba, bb, grid_cells=20,
+        _space(ra, rb, ba, bb, grid_cells=20,
                                places=_places(rng, 7, 8, 600), lonlat=False)
 
 
@@ -452,7 +470,7 @@ def _calibration_rate(shift, n_pairs, seed, n_replicates=39):
     rejected = 0
     for _ in range(n_pairs):
         ra, rb, ba, bb = _pair(rng, shift=shift, n=12, n_bg=150, spread=0.6)
-        space = ov.environmental_space(ra, rb, ba, bb, grid_cells=20)
+        space = _space(ra, rb, ba, bb, grid_cells=20)
         res = ov.equivalency_test(
             space, n_replicates=n_replicates, random_state=int(rng.integers(2**31))
         )
@@ -490,7 +508,7 @@ def test_similarity_null_is_random_records_from_the_other_accessible_area():
         bb = rng.normal(size=(200, 3)) + np.array([0.8, 0.0, 0.0])
         ra = ba[rng.choice(200, 10, replace=False)]
         rb = bb[rng.choice(200, 10, replace=False)]
-        space = ov.environmental_space(ra, rb, ba, bb, grid_cells=20)
+        space = _space(ra, rb, ba, bb, grid_cells=20)
         t = ov.similarity_test(
             space, n_replicates=39, random_state=int(rng.integers(2**31))
         )["D"]
@@ -507,7 +525,7 @@ def test_similarity_detects_conservatism_and_its_p_formula():
     bg_b = rng.normal(size=(800, 3)) * 2.0 - np.array([1.0, 0.0, 0.0])
     ra = rng.normal(0.0, 0.3, size=(20, 3)) + np.array([0.0, 2.0, 0.0])
     rb = rng.normal(0.0, 0.3, size=(20, 3)) + np.array([0.0, 2.0, 0.0])
-    space = ov.environmental_space(ra, rb, bg_a, bg_b, grid_cells=30)
+    space = _space(ra, rb, bg_a, bg_b, grid_cells=30)
     for direction in ("ab", "ba"):
         res = ov.similarity_test(
             space, direction=direction, n_replicates=49, random_state=1
@@ -589,6 +607,113 @@ def test_geographic_equivalency_detects_separated_ranges():
     assert ov.estimate_seconds(model, cells_a, 10) >= 0.0
 
 
+def test_geographic_similarity_test_takes_the_two_taxa():
+    # Warren et al. 2008: the fixed taxon's map against maps fitted to random cells
+    # of the other's accessible area.  Observed maps come from the test's own model,
+    # so the old form given those maps gives the same null, draw for draw.
+    model = _BumpModel()
+    cells_a = np.ravel_multi_index(([2, 3, 4, 3], [2, 3, 2, 4]), _SHAPE)
+    cells_b = np.ravel_multi_index(([15, 16, 17, 16], [19, 20, 21, 21]), _SHAPE)
+    near_b = np.zeros(_SHAPE, bool)
+    near_b[12:, 16:] = True
+    a = ov.OverlapTaxon("A", cells=cells_a, accessible=~near_b)
+    b = ov.OverlapTaxon("B", cells=cells_b, accessible=near_b)
+    tests = ov.OverlapTestParameters(n_replicates=19, random_state=5)
+    new = ov.geographic_similarity_test(model, a, b, 1.0, test_parameters=tests)
+    t = new["D"]
+    assert t.direction == "ab" and t.space == "geographic" and t.n_replicates == 19
+    assert t.observed == pytest.approx(
+        ov.geographic_overlap(model(cells_a), model(cells_b), 1.0)[0]
+    )
+    with pytest.warns(ScreenerDeprecationWarning, match="one OverlapTaxon per taxon"):
+        old = ov.geographic_similarity_test(
+            model, model(cells_a), near_b, 4, 1.0, observed_map_moved=model(cells_b),
+            n_replicates=19, random_state=5,
+        )
+    assert_allclose(old["D"].null, t.null, rtol=0, atol=0)
+    assert old["D"].p_value == t.p_value and old["I"].p_value == new["I"].p_value
+    with pytest.warns(ScreenerDeprecationWarning):
+        by_keyword = ov.geographic_similarity_test(
+            model, map_fixed=model(cells_a), accessible_moved=near_b, n_moved=4,
+            cell_area_km2=1.0, observed_map_moved=model(cells_b), n_replicates=19,
+            random_state=5,
+        )
+    assert_allclose(by_keyword["D"].null, t.null, rtol=0, atol=0)
+    # "ba" keeps B and moves A's records within A's accessible area
+    back = ov.geographic_similarity_test(model, a, b, 1.0, direction="ba",
+                                         test_parameters=tests)["D"]
+    assert back.direction == "ba" and back.observed == pytest.approx(t.observed)
+    with pytest.raises(InputError, match="accessible"):
+        ov.geographic_similarity_test(model, a, ov.OverlapTaxon("B", cells=cells_b),
+                                      1.0, test_parameters=tests)
+
+
+def test_old_form_of_environmental_space_gives_the_same_space():
+    rng = np.random.default_rng(24)
+    ra, rb, ba, bb = _pair(rng, shift=0.6, n=10)
+    places = _places(rng, 10, 10, 600)
+    new = _space(ra, rb, ba, bb, places=places, env_available=ba, lonlat=False,
+                 predictor_names=("heat", "rain", "soil"), grid_cells=20,
+                 available_quantile=0.1)
+    with pytest.warns(ScreenerDeprecationWarning) as caught:
+        old = ov.environmental_space(
+            ra, rb, ba, bb, env_available=ba, grid_cells=20, available_quantile=0.1,
+            predictor_names=("heat", "rain", "soil"), places=places, lonlat=False,
+        )
+    said = " ".join(str(w.message) for w in caught)
+    assert "OverlapTaxon(name, env_records=..." in said
+    assert "shared=SharedSpace(env_available=..., predictor_names=..., lonlat=...)" in said
+    assert "EnvironmentalSpaceParameters(grid_cells=..., available_quantile=...)" in said
+    for which in ("a", "b"):
+        for name in ("occupancy", "available", "xy_records", "xy_background"):
+            assert np.array_equal(getattr(old.taxon(which), name),
+                                  getattr(new.taxon(which), name))
+    assert np.array_equal(old.z_env, new.z_env)
+    assert (old.predictor_names, old.lonlat, old.available_quantile) == (
+        new.predictor_names, new.lonlat, new.available_quantile)
+
+
+def test_parameter_values_refuse_what_the_tests_cannot_run():
+    with pytest.raises(InputError, match="grid_cells"):
+        ov.EnvironmentalSpaceParameters(grid_cells=5)
+    with pytest.raises(InputError, match="available_quantile"):
+        ov.EnvironmentalSpaceParameters(available_quantile=1.0)
+    with pytest.raises(InputError, match="n_replicates"):
+        ov.OverlapTestParameters(n_replicates=0)
+    with pytest.raises(InputError, match="hypothesis"):
+        ov.OverlapTestParameters(hypothesis="greater")
+    with pytest.raises(InputError, match="alpha"):
+        ov.OverlapTestParameters(alpha=1.5)
+    with pytest.raises(InputError, match="cluster_km"):
+        ov.OverlapTestParameters(cluster_km=float("nan"))
+    # defaults are the project file's (screener.project.default)
+    from screener.project import default
+
+    t = ov.OverlapTestParameters()
+    assert (t.n_replicates, t.hypothesis, t.alpha) == (
+        default("overlap", "n_replicates"), default("overlap", "similarity_hypothesis"),
+        default("overlap", "alpha"))
+    assert ov.EnvironmentalSpaceParameters().grid_cells == default("overlap", "grid_cells")
+
+
+def test_parameter_values_read_a_loaded_project(tmp_path):
+    from screener.project import settings_from_dict
+
+    (tmp_path / "records.csv").write_text("taxon,longitude,latitude\nA,10.1,-5.1\n")
+    (tmp_path / "heat.tif").write_bytes(b"")  # only its name is read here
+    s = settings_from_dict(
+        {"occurrences": {"path": "records.csv"}, "layers": {"paths": ["*.tif"]},
+         "project": {"random_state": 7},
+         "overlap": {"n_replicates": 49, "grid_cells": 20, "alpha": 0.1,
+                     "similarity_hypothesis": "diverged"}},
+        base_dir=tmp_path,
+    )
+    t = ov.OverlapTestParameters.from_settings(s, cluster_km=2.5)
+    assert (t.n_replicates, t.hypothesis, t.alpha, t.random_state, t.cluster_km) == (
+        49, "diverged", 0.1, 7, 2.5)
+    assert ov.EnvironmentalSpaceParameters.from_settings(s).grid_cells == 20
+
+
 def test_compare_pair_rows_and_reading():
     rng = np.random.default_rng(30)
     ra, rb, ba, bb = _pair(rng, shift=1.5, n=15, n_bg=300)
@@ -597,8 +722,10 @@ def test_compare_pair_rows_and_reading():
     cells_b = np.ravel_multi_index(([6, 7, 5], [8, 9, 9]), _SHAPE)
     alpha = ov.OverlapTaxon("Alpha", model(cells_a), env_records=ra, env_background=ba)
     beta = ov.OverlapTaxon("Beta", model(cells_b), env_records=rb, env_background=bb)
-    res = ov.compare_pair(alpha, beta, cell_area_km2=1.0, n_replicates=99,
-                          grid_cells=30, random_state=0)
+    new = dict(shared=ov.SharedSpace(cell_area_km2=1.0),
+               test_parameters=ov.OverlapTestParameters(n_replicates=99, random_state=0),
+               space_parameters=ov.EnvironmentalSpaceParameters(grid_cells=30))
+    res = ov.compare_pair(alpha, beta, **new)
     rows = res.rows()
     assert [r["space"] for r in rows] == ["geographic", "environmental"]
     for r in rows:
@@ -626,20 +753,32 @@ def test_compare_pair_rows_and_reading():
     assert "not equivalent" in reading  # shift of 1.5 with 15 records
     assert "Holm's correction covered the 3 p-values" in reading
     # the same call twice gives the same table
-    again = ov.compare_pair(alpha, beta, cell_area_km2=1.0, n_replicates=99,
-                            grid_cells=30, random_state=0)
+    again = ov.compare_pair(alpha, beta, **new)
     assert again.rows()[1]["equivalency_p"] == env["equivalency_p"]
-    # the old form, one keyword per taxon and value, gives the same numbers
-    with pytest.warns(FutureWarning, match="OverlapTaxon"):
+    # the old forms, one keyword per taxon and per option, give the same numbers
+    import pandas as pd
+
+    with pytest.warns(ScreenerDeprecationWarning) as caught:
         old = ov.compare_pair(
             "Alpha", "Beta", map_a=model(cells_a), map_b=model(cells_b),
             cell_area_km2=1.0, env_records_a=ra, env_records_b=rb,
             env_background_a=ba, env_background_b=bb, n_replicates=99,
             grid_cells=30, random_state=0,
         )
-    import pandas as pd
-
+    said = " ".join(str(w.message) for w in caught)
+    assert "OverlapTaxon" in said
+    assert "shared=SharedSpace(cell_area_km2=...)" in said
+    assert "space_parameters=EnvironmentalSpaceParameters(grid_cells=...)" in said
+    assert "OverlapTestParameters(n_replicates=..., random_state=...)" in said
     assert pd.DataFrame(old.rows()).equals(pd.DataFrame(res.rows()))  # NaN == NaN
+    with pytest.warns(ScreenerDeprecationWarning, match="test_parameters="):
+        old = ov.compare_pair(alpha, beta, cell_area_km2=1.0, n_replicates=99,
+                              grid_cells=30, random_state=0)
+    assert pd.DataFrame(old.rows()).equals(pd.DataFrame(res.rows()))
+    with pytest.raises(TypeError, match="give them inside test_parameters"):
+        ov.compare_pair(alpha, beta, n_replicates=9, **new)
+    with pytest.raises(InputError, match="cell areas"):
+        ov.compare_pair(alpha, beta)
 
 
 def test_compare_pair_geographic_tests_and_budget():
@@ -649,8 +788,9 @@ def test_compare_pair_geographic_tests_and_budget():
     access = np.ones(_SHAPE, bool)
     a = ov.OverlapTaxon("A", model(cells_a), cells=cells_a, accessible=access)
     b = ov.OverlapTaxon("B", model(cells_b), cells=cells_b, accessible=access)
-    kw = dict(cell_area_km2=1.0, n_replicates=9, geographic_fit_predict=model)
-    res = ov.compare_pair(a, b, **kw)
+    shared = ov.SharedSpace(cell_area_km2=1.0)
+    res = ov.compare_pair(a, b, shared=shared, geographic_fit_predict=model,
+                          test_parameters=ov.OverlapTestParameters(n_replicates=9))
     assert res.environmental is None
     (row,) = res.rows()
     assert all(
@@ -666,7 +806,9 @@ def test_compare_pair_geographic_tests_and_budget():
     assert row["D_tested"] == pytest.approx(
         ov.geographic_overlap(model(cells_a), model(cells_b), 1.0)[0]
     )
-    skipped = ov.compare_pair(a, b, geographic_budget_s=0.0, **kw)
+    skipped = ov.compare_pair(
+        a, b, shared=shared, geographic_fit_predict=model,
+        test_parameters=ov.OverlapTestParameters(n_replicates=9, geographic_budget_s=0))
     assert math.isnan(skipped.rows()[0]["equivalency_p"])
 
 
@@ -678,7 +820,7 @@ def test_pairwise_table_is_symmetric():
     names = sorted(grid_maps)
     results = [
         ov.compare_pair(ov.OverlapTaxon(a, grid_maps[a]), ov.OverlapTaxon(b, grid_maps[b]),
-                        cell_area_km2=1.0)
+                        shared=ov.SharedSpace(cell_area_km2=1.0))
         for i, a in enumerate(names)
         for b in names[i + 1 :]
     ]
@@ -706,7 +848,7 @@ def test_figures_draw_the_tested_value_and_both_niches():
 
     rng = np.random.default_rng(40)
     ra, rb, ba, bb = _pair(rng, shift=0.8, n=12)
-    space = ov.environmental_space(
+    space = _space(
         ra, rb, ba, bb, grid_cells=25, predictor_names=("heat", "rain", "soil")
     )
     test = ov.equivalency_test(space, n_replicates=19)["D"]
@@ -747,7 +889,9 @@ def test_a_run_is_holm_corrected_over_every_pair_test_and_space():
         cmps.append(ov.compare_pair(
             ov.OverlapTaxon(f"T{k}", model([3, 40]), env_records=ra, env_background=ba),
             ov.OverlapTaxon(f"U{k}", model([60, 90]), env_records=rb, env_background=bb),
-            cell_area_km2=1.0, n_replicates=19, grid_cells=20, random_state=k,
+            shared=ov.SharedSpace(cell_area_km2=1.0),
+            test_parameters=ov.OverlapTestParameters(n_replicates=19, random_state=k),
+            space_parameters=ov.EnvironmentalSpaceParameters(grid_cells=20),
         ))
     m = ov.correct_for_multiplicity(cmps, alpha=0.05)
     assert m == 6

@@ -38,7 +38,11 @@ def small_space():
     bg_b = rng.normal(size=(300, 3)) + 0.3
     ra = rng.normal(0, 0.5, size=(12, 3))
     rb = rng.normal(0.5, 0.5, size=(14, 3))
-    return ov.environmental_space(ra, rb, bg_a, bg_b, grid_cells=25)
+    return ov.environmental_space(
+        ov.OverlapTaxon("A", env_records=ra, env_background=bg_a),
+        ov.OverlapTaxon("B", env_records=rb, env_background=bg_b),
+        space_parameters=ov.EnvironmentalSpaceParameters(grid_cells=25),
+    )
 
 
 def test_spawn_seeds_reproducible_and_distinct():

@@ -48,13 +48,21 @@ def _data(rng, shift=0.0, n=50, n_bg=2000, n_vars=4, spread=0.5):
     return ra, rb, bg_a, bg_b
 
 
+def _space(ra, rb, bg_a, bg_b, grid_cells):
+    return ov.environmental_space(
+        ov.OverlapTaxon("A", env_records=ra, env_background=bg_a),
+        ov.OverlapTaxon("B", env_records=rb, env_background=bg_b),
+        space_parameters=ov.EnvironmentalSpaceParameters(grid_cells=grid_cells),
+    )
+
+
 def main(argv=None):
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true")
     args = parser.parse_args(argv)
     repeats = 2 if args.quick else 5
     rng = np.random.default_rng(0)
-    space = ov.environmental_space(*_data(rng, shift=0.5), grid_cells=100)
+    space = _space(*_data(rng, shift=0.5), grid_cells=100)
     nodes = space.nodes
     lines = []
 
@@ -150,7 +158,7 @@ def main(argv=None):
     ):
         rejected = 0
         for _ in range(pairs):
-            sp = ov.environmental_space(
+            sp = _space(
                 *_data(cal_rng, shift=shift, n=12, n_bg=300, n_vars=3, spread=0.6),
                 grid_cells=40,
             )

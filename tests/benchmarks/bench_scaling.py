@@ -289,12 +289,15 @@ def replicate_speedup(repeats: int) -> dict:
     background points).
     """
     from screener.evaluation import EvaluationOptions, Points, null_model_test
-    from screener.overlap import environmental_space, equivalency_test
+    from screener.overlap import OverlapTaxon, environmental_space, equivalency_test
     from screener.parallel import make_executor
 
     rng = np.random.default_rng(3)
-    space = environmental_space(rng.normal(0, 1, (50, 4)), rng.normal(0.3, 1, (50, 4)),
-                                rng.normal(0, 2, (3000, 4)), rng.normal(0, 2, (3000, 4)))
+    records_a, records_b = rng.normal(0, 1, (50, 4)), rng.normal(0.3, 1, (50, 4))
+    space = environmental_space(
+        OverlapTaxon("A", env_records=records_a, env_background=rng.normal(0, 2, (3000, 4))),
+        OverlapTaxon("B", env_records=records_b, env_background=rng.normal(0, 2, (3000, 4))),
+    )
     bg = rng.normal(0, 1, (10_000, 6))
     pres = bg[:12] * 0.3 + 1.0
     out = {}
