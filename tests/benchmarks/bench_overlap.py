@@ -6,7 +6,7 @@ Run from the repository root::
     python tests/benchmarks/bench_overlap.py --quick    # fewer repeats, prints only
 
 Measures, on invented data (2 x 50 records, 2 x 2,000 background cells, 4 predictors,
-R = 100):
+G = 100 grid cells per axis):
 
 1. an environmental-space equivalency test with 1,000 replicates, serial;
 2. 1,000 bare kernel-density evaluations (``scipy.stats.gaussian_kde`` of 50 points on
@@ -16,7 +16,10 @@ R = 100):
 4. pool start-up time per start method;
 5. a larger calibration run (null and power) of the equivalency test.
 
-Times are min and median over repeats (VM timings are noisy).
+Times are min and median over repeats (VM timings are noisy).  The page records the
+1-minute load average before and after the run: other jobs on the same cores inflate
+the medians and hide the process speed-up.  The page's text from ``## Reading`` on is
+hand-written and kept when the figures are rewritten; check it against new figures.
 """
 
 from __future__ import annotations
@@ -61,6 +64,7 @@ def main(argv=None):
     parser.add_argument("--quick", action="store_true")
     args = parser.parse_args(argv)
     repeats = 2 if args.quick else 5
+    load_before = os.getloadavg()[0]
     rng = np.random.default_rng(0)
     space = _space(*_data(rng, shift=0.5), grid_cells=100)
     nodes = space.nodes
@@ -83,7 +87,7 @@ def main(argv=None):
     report("| measurement | min (s) | median (s) |")
     report("| --- | --- | --- |")
     report(
-        f"| E-space equivalency, 1000 replicates, 2 x 50 records, R = 100, serial "
+        f"| E-space equivalency, 1000 replicates, 2 x 50 records, G = 100, serial "
         f"| {eq[0]:.2f} | {eq[1]:.2f} |"
     )
     report(
@@ -181,6 +185,7 @@ def main(argv=None):
             os.path.dirname(__file__), "..", "..", "docs", "benchmarks", "overlap.md"
         )
         os.makedirs(os.path.dirname(path), exist_ok=True)
+        load_after = os.getloadavg()[0]
         head = [
             "# Benchmark: niche-overlap tests",
             "",
@@ -189,11 +194,21 @@ def main(argv=None):
             "script's docstring).  Machine: "
             f"{platform.machine()}, {os.cpu_count()} cores, Python "
             f"{platform.python_version()}, numpy {np.__version__}.  Times in seconds, "
-            f"min and median of {repeats} repeats.",
+            f"min and median of {repeats} repeats ({max(1, repeats // 2)} for the "
+            "bare-density loop and the start-up rows).  1-minute load average "
+            f"{load_before:.1f} before and {load_after:.1f} after the run on "
+            f"{os.cpu_count()} cores; a load above the core count means other jobs "
+            "shared the cores, which inflates the medians and hides the process "
+            "speed-up.",
             "",
         ]
+        kept = []
+        if os.path.exists(path):
+            old = open(path, encoding="utf-8").read().split("\n")
+            starts = [i for i, line in enumerate(old) if line.startswith("## Reading")]
+            kept = [""] + old[starts[0]:] if starts else []
         with open(path, "w", encoding="utf-8") as fh:
-            fh.write("\n".join(head + lines) + "\n")
+            fh.write("\n".join(head + lines + kept).rstrip("\n") + "\n")
         print(f"wrote {os.path.normpath(path)}")
 
 
