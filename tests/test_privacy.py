@@ -182,12 +182,15 @@ def test_niche_figure_withholds_a_sensitive_taxons_record_scores():
     from _synthetic_run import figure_points
 
     from screener.outputs.overlap_figures import plot_niches
-    from screener.overlap import PairComparison, environmental_space
+    from screener.overlap import OverlapTaxon, PairComparison, environmental_space
 
     rng = np.random.default_rng(4)
     bg_a, bg_b = rng.normal(0, 1, (300, 3)), rng.normal(0.5, 1, (300, 3))
     rec_a, rec_b = bg_a[:12], bg_b[:12]
-    space = environmental_space(rec_a, rec_b, bg_a, bg_b, lonlat=True)
+    space = environmental_space(
+        OverlapTaxon(TAXA[0], env_records=rec_a, env_background=bg_a),
+        OverlapTaxon(TAXA[1], env_records=rec_b, env_background=bg_b),
+    )
     cmp = PairComparison(taxon_a=TAXA[0], taxon_b=TAXA[1], geographic=None,
                          environmental=None, space=space, n_replicates=0,
                          hypothesis="conserved")
