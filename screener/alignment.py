@@ -27,10 +27,11 @@ from pathlib import Path
 
 import numpy as np
 
-from screener.errors import LayerError
+from screener.errors import LayerError, accepts_old_form
 from screener.layers import BandRef, _base, _open_raster, list_bands
 
 __all__ = [
+    "ReferenceGridSpec",
     "ReferenceGrid",
     "LayerOrigin",
     "AlignedLayers",
@@ -72,6 +73,64 @@ class ReferenceGrid:
     def describe(self) -> str:
         return (f"{_crs_text(self.crs)}, {self.height} x {self.width} cells of "
                 f"{self.res[0]:.6g} x {self.res[1]:.6g} CRS units")
+
+
+@dataclass(frozen=True)
+class ReferenceGridSpec:
+    """What the reference grid is to be: a named layer's grid, or one described by
+    its CRS, cell size and extent (``[layers] reference``, ``crs``, ``resolution``,
+    ``extent``).
+
+    Attributes
+    ----------
+    reference : str
+        Name of the layer whose grid is the reference.  Empty: the first layer's
+        grid, unless ``crs``, ``resolution`` or ``extent`` describe the grid (then
+        a named layer is refused).
+    crs : str
+        CRS of a described grid (e.g. "EPSG:4326"); empty: the first layer's.
+    resolution : float or (float, float), optional
+        Cell size in CRS units (degrees or metres); default the first layer's cell
+        size (in its CRS when the CRS is the same, else GDAL's estimate of the
+        equivalent size).  0 counts as not given.
+    extent : (xmin, ymin, xmax, ymax), optional
+        In CRS units; default the first layer's bounds (transformed to ``crs``).
+        Extended outwards to whole cells.  Empty counts as not given.
+
+    Examples
+    --------
+    >>> spec = ReferenceGridSpec(crs="EPSG:4326", resolution=[0.01, 0.01],
+    ...                          extent=[10.0, 45.0, 11.0, 46.0])
+    >>> spec.resolution, spec.extent
+    ((0.01, 0.01), (10.0, 45.0, 11.0, 46.0))
+    >>> ReferenceGridSpec(resolution=0.0, extent=[]) == ReferenceGridSpec()
+    True
+    """
+
+    reference: str = ""
+    crs: str = ""
+    resolution: float | tuple | None = None
+    extent: tuple | None = None
+
+    def __post_init__(self):
+        def tupled(value):
+            if not value:
+                return None
+            return tuple(value) if isinstance(value, (list, tuple)) else value
+
+        object.__setattr__(self, "resolution", tupled(self.resolution))
+        object.__setattr__(self, "extent", tupled(self.extent))
+
+    @classmethod
+    def from_settings(cls, section) -> ReferenceGridSpec:
+        """The reference grid the ``[layers]`` settings describe."""
+        return cls(reference=section.reference, crs=section.crs,
+                   resolution=section.resolution, extent=section.extent)
+
+    def resolve(self, bands) -> ReferenceGrid:
+        """The grid itself, for these layers (see :func:`reference_grid`)."""
+        return reference_grid(bands, reference=self.reference, crs=self.crs,
+                              resolution=self.resolution, extent=self.extent)
 
 
 @dataclass(frozen=True)
@@ -217,8 +276,8 @@ def reference_grid(bands, *, reference: str = "", crs: str = "", resolution=None
         res = (resolution, resolution) if isinstance(resolution, (int, float)) else resolution
         if len(res) != 2 or min(res) <= 0:
             raise LayerError(
-                f"[layers] resolution = {resolution!r} must be a positive cell size, or "
-                "[x, y] sizes, in the units of [layers] crs."
+                f"[layers] resolution = {_as_written(resolution)!r} must be a positive "
+                "cell size, or [x, y] sizes, in the units of [layers] crs."
             )
         res = (float(res[0]), float(res[1]))
     elif dst_crs == src_crs:
@@ -229,6 +288,11 @@ def reference_grid(bands, *, reference: str = "", crs: str = "", resolution=None
     height = max(1, int(np.ceil((bounds[3] - bounds[1]) / res[1] - 1e-9)))
     transform = Affine(res[0], 0.0, bounds[0], 0.0, -res[1], bounds[3])
     return ReferenceGrid(dst_crs, transform, width, height, "project file")
+
+
+def _as_written(value):
+    """A value as the project file writes it (TOML arrays are lists)."""
+    return list(value) if isinstance(value, tuple) else value
 
 
 def _same_grid(src, ref: ReferenceGrid) -> bool:
@@ -374,14 +438,33 @@ def _source_nodata(src, band: int, extra):
     return nd
 
 
+_OLD_GRID_KEYWORDS = ("reference", "crs", "resolution", "extent")
+
+
+def _old_align_layers(*args, **kwargs):
+    """The old form of :func:`align_layers` (the reference grid as four keywords) in
+    the new form; None for a call in the new form."""
+    old = {k: kwargs.pop(k) for k in _OLD_GRID_KEYWORDS if k in kwargs}
+    if not old:
+        return None
+    if "grid_spec" in kwargs:
+        raise TypeError("align_layers() takes grid_spec or the old keywords "
+                        f"{', '.join(old)}, not both.")
+    kwargs["grid_spec"] = ReferenceGridSpec(**old)
+    return args, kwargs, (
+        "align_layers(paths, cache_dir=..., reference=..., crs=..., resolution=..., "
+        "extent=...) is replaced by align_layers(paths, cache_dir=..., "
+        "grid_spec=ReferenceGridSpec(reference=..., crs=..., resolution=..., "
+        "extent=...)) (or ReferenceGridSpec.from_settings(settings.layers)); the old "
+        "form stops working in the next release.")
+
+
+@accepts_old_form(_old_align_layers)
 def align_layers(
     paths,
     *,
     cache_dir,
-    reference: str = "",
-    crs: str = "",
-    resolution=None,
-    extent=None,
+    grid_spec: ReferenceGridSpec | None = None,
     categorical=(),
     nodata_values: dict | None = None,
     elevation: str = "",
@@ -396,8 +479,10 @@ def align_layers(
         Raster files; each band of a multi-band file is a layer.
     cache_dir : path-like
         Folder for aligned files (content-keyed: reruns reuse them; safe to delete).
-    reference, crs, resolution, extent
-        The reference grid, see :func:`reference_grid`.
+    grid_spec : ReferenceGridSpec, optional
+        The reference grid (default: the first layer's).  The old keywords
+        ``reference``, ``crs``, ``resolution`` and ``extent`` still work for one
+        release, with a :class:`~screener.errors.ScreenerDeprecationWarning`.
     categorical : sequence of str
         Layers resampled by the most frequent class ("mode").
     nodata_values : dict of str to float, optional
@@ -423,8 +508,7 @@ def align_layers(
     import rasterio
 
     bands = list_bands(paths)
-    ref = reference_grid(bands, reference=reference, crs=crs, resolution=resolution,
-                         extent=extent)
+    ref = (grid_spec or ReferenceGridSpec()).resolve(bands)
     cache_dir = Path(cache_dir)
     nodata_values = dict(nodata_values or {})
     categorical = set(categorical)

@@ -17,7 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
-from screener.alignment import align_layers, aligned_layer_folder
+from screener.alignment import ReferenceGridSpec, align_layers, aligned_layer_folder
 from screener.darwincore import DarwinCoreOptions
 from screener.errors import InputError, LayerError, ScreenerWarning, suggest
 from screener.layers import LayerStack, check_layers, read_layers, slope_aspect
@@ -245,10 +245,7 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
             aligned = align_layers(
                 paths,
                 cache_dir=aligned_layer_folder(cache_dir),
-                reference=s.layers.reference,
-                crs=s.layers.crs,
-                resolution=s.layers.resolution or None,
-                extent=s.layers.extent or None,
+                grid_spec=ReferenceGridSpec.from_settings(s.layers),
                 categorical=s.layers.categorical,
                 nodata_values=s.layers.nodata,
                 elevation=s.layers.elevation,

@@ -10,8 +10,8 @@ from pyproj import Geod
 from rasterio.enums import Resampling
 from rasterio.warp import reproject
 
-from screener.alignment import align_layers, reference_grid
-from screener.errors import LayerError
+from screener.alignment import ReferenceGridSpec, align_layers, reference_grid
+from screener.errors import LayerError, ScreenerDeprecationWarning
 from screener.grid import Grid
 from screener.layers import list_bands, read_layers, slope_aspect
 
@@ -94,6 +94,44 @@ def test_reference_from_project_settings(mixed, tmp_path):
         reference_grid(bands, crs="EPSG:99999999")
     with pytest.raises(LayerError, match="names no layer"):
         reference_grid(bands, reference="refx")
+
+
+def test_described_grid_aligns_like_gdal_and_the_old_keywords_still_work(mixed,
+                                                                          tmp_path):
+    """A grid described by CRS, cell size and extent: the fine layer averaged onto it
+    equals rasterio.warp.reproject; the old keywords warn and give the same layers."""
+    fine, fine_arr, fine_t = mixed["fine"]
+    spec = ReferenceGridSpec(crs="EPSG:4326", resolution=0.1,
+                             extent=[10.2, 40.0, 10.9, 45.0])
+    al = align_layers([mixed["ref"], fine], cache_dir=tmp_path / "c", grid_spec=spec)
+    assert (al.reference.width, al.reference.height) == (7, 50)
+    assert al.reference.source == "project file"
+    assert_allclose(_read(al.bands[1].path),
+                    _direct(fine_arr, fine_t, "EPSG:4326", al.reference, "average"),
+                    rtol=0, atol=1e-6, equal_nan=True)
+    with pytest.warns(ScreenerDeprecationWarning, match=r"grid_spec=ReferenceGridSpec\("):
+        old = align_layers([mixed["ref"], fine], cache_dir=tmp_path / "c", crs="EPSG:4326",
+                           resolution=0.1, extent=[10.2, 40.0, 10.9, 45.0])
+    assert old.reference == al.reference
+    assert [b.path for b in old.bands] == [b.path for b in al.bands]
+    assert old.origins == al.origins
+    with pytest.raises(TypeError, match="not both"):
+        align_layers([mixed["ref"]], cache_dir=tmp_path / "c", grid_spec=spec,
+                     crs="EPSG:4326")
+
+
+def test_reference_grid_spec_from_layer_settings(mixed):
+    from screener.project import SECTION_TYPES
+
+    layers = SECTION_TYPES["layers"]
+    assert ReferenceGridSpec.from_settings(layers()) == ReferenceGridSpec()
+    spec = ReferenceGridSpec.from_settings(layers(crs="EPSG:3035", resolution=[1000.0, 500.0],
+                                                  extent=[0, 0, 5000, 4000]))
+    assert spec == ReferenceGridSpec("", "EPSG:3035", (1000.0, 500.0), (0, 0, 5000, 4000))
+    # errors quote the value as the project file writes it (a TOML array)
+    with pytest.raises(LayerError, match=r"resolution = \[1000.0, -1.0\]"):
+        ReferenceGridSpec(crs="EPSG:3035", resolution=[1000.0, -1.0]).resolve(
+            list_bands([mixed["ref"]]))
 
 
 def test_layer_not_covering_the_study_area_names_layer_and_share(mixed, tmp_path):

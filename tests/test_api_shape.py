@@ -13,8 +13,6 @@ LIMIT = 8
 
 #: function -> its parameter count today (known debt; shrink, never grow)
 KNOWN_WIDE = {
-    # reference, crs, resolution, extent describe one reference grid
-    "alignment.align_layers": 11,
     # scikit-learn estimators keep every parameter explicit (kept on purpose)
     "models.point_process.PointProcessNiche.__init__": 10,
 }
