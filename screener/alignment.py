@@ -122,10 +122,11 @@ class ReferenceGridSpec:
         object.__setattr__(self, "extent", tupled(self.extent))
 
     @classmethod
-    def from_settings(cls, section) -> ReferenceGridSpec:
-        """The reference grid the ``[layers]`` settings describe."""
-        return cls(reference=section.reference, crs=section.crs,
-                   resolution=section.resolution, extent=section.extent)
+    def from_settings(cls, settings) -> ReferenceGridSpec:
+        """The reference grid the ``[layers]`` settings of a loaded project describe."""
+        layers = settings.layers
+        return cls(reference=layers.reference, crs=layers.crs,
+                   resolution=layers.resolution, extent=layers.extent)
 
     def resolve(self, bands) -> ReferenceGrid:
         """The grid itself, for these layers (see :func:`reference_grid`)."""
@@ -455,7 +456,7 @@ def _old_align_layers(*args, **kwargs):
         "align_layers(paths, cache_dir=..., reference=..., crs=..., resolution=..., "
         "extent=...) is replaced by align_layers(paths, cache_dir=..., "
         "grid_spec=ReferenceGridSpec(reference=..., crs=..., resolution=..., "
-        "extent=...)) (or ReferenceGridSpec.from_settings(settings.layers)); the old "
+        "extent=...)) (or ReferenceGridSpec.from_settings(settings)); the old "
         "form stops working in the next release.")
 
 

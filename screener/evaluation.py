@@ -32,7 +32,7 @@ from screener.thresholds import percentile_training_presence
 
 __all__ = [
     "Points",
-    "EvaluationOptions",
+    "EvaluationParameters",
     "auc",
     "poisson_binomial_sf",
     "boyce_index",
@@ -301,7 +301,7 @@ def random_kfold_partition(
     return pg, bg
 
 
-# --- inputs and options -------------------------------------------------------------
+# --- inputs and parameters ----------------------------------------------------------
 @dataclass(frozen=True, eq=False)
 class Points:
     """Predictor values at a set of places, with where the places are.
@@ -344,7 +344,7 @@ class Points:
 
 
 @dataclass(frozen=True)
-class EvaluationOptions:
+class EvaluationParameters:
     """How :func:`evaluate_family` holds records out and tests the model.
 
     Attributes
@@ -377,7 +377,7 @@ class EvaluationOptions:
 
     Examples
     --------
-    >>> EvaluationOptions(partition="squares", n_null=0).k_folds
+    >>> EvaluationParameters(partition="squares", n_null=0).k_folds
     5
     """
 
@@ -397,18 +397,13 @@ class EvaluationOptions:
             )
 
     @classmethod
-    def from_settings(cls, section, **values) -> EvaluationOptions:
-        """Options from the ``[evaluation]`` settings, other fields from ``values``.
-
-        Examples
-        --------
-        >>> from screener.project import SECTION_TYPES
-        >>> section = SECTION_TYPES["evaluation"](n_null=0)
-        >>> EvaluationOptions.from_settings(section, random_state=7).n_null
-        0
-        """
-        return cls(jackknife_below=section.jackknife_below, n_null=section.n_null,
-                   **values)
+    def from_settings(cls, settings, **changes) -> EvaluationParameters:
+        """The parameters of a loaded project (``[evaluation]``), with ``changes`` on
+        top (the taxon's ``random_state``, the grid's ``cluster_km``)."""
+        values = dict(jackknife_below=settings.evaluation.jackknife_below,
+                      n_null=settings.evaluation.n_null)
+        values.update(changes)
+        return cls(**values)
 
 
 def _points(value, name: str) -> Points:
@@ -548,9 +543,9 @@ def _old_jackknife(family, params, presence, background, study_area=None,
     """The old form of :func:`jackknife` (arrays and keywords) in the new form."""
     study = None if study_area is None else Points(
         study_area, area_km2=study_area_weights, lonlat=lonlat)
-    options = EvaluationOptions(random_state=random_state, cluster_km=buffer_km)
+    parameters = EvaluationParameters(random_state=random_state, cluster_km=buffer_km)
     return ((family, params, Points(presence, presence_xy, lonlat=lonlat),
-             Points(background, lonlat=lonlat), study, options), {"map_fn": map_fn})
+             Points(background, lonlat=lonlat), study, parameters), {"map_fn": map_fn})
 
 
 def _old_form_of(old, new_call: str):
@@ -574,7 +569,7 @@ def _old_form_of(old, new_call: str):
 @accepts_old_form(_old_form_of(_old_jackknife, (
     "jackknife(family, params, Points(presence, xy=presence_xy, lonlat=lonlat), "
     "Points(background), Points(study_area, area_km2=study_area_weights), "
-    "EvaluationOptions(random_state=random_state, cluster_km=buffer_km), "
+    "EvaluationParameters(random_state=random_state, cluster_km=buffer_km), "
     "map_fn=map_fn)")))
 def jackknife(
     family: str,
@@ -582,7 +577,7 @@ def jackknife(
     presence: Points,
     background: Points,
     study_area: Points | None = None,
-    options: EvaluationOptions | None = None,
+    parameters: EvaluationParameters | None = None,
     *,
     map_fn: Callable = map,
 ) -> JackknifeResult:
@@ -594,7 +589,7 @@ def jackknife(
     Poisson-binomial, trial ``i`` succeeding with the share of the study area model
     ``i`` predicts present (area-weighted when weights are given).
 
-    With the records' coordinates and ``options.cluster_km > 0`` the jackknife is
+    With the records' coordinates and ``parameters.cluster_km > 0`` the jackknife is
     spatially buffered: model ``i`` is also fitted without the records of record
     ``i``'s spatial cluster (records within ``cluster_km`` of it, of those, and so on:
     :func:`screener.randomisation.spatial_clusters`), so a held-out record is not
@@ -616,7 +611,7 @@ def jackknife(
         The study-area cells (all valid cells of the accessible area, or a sample)
         with their ``area_km2`` (equal weights when omitted); the background when
         omitted.
-    options : EvaluationOptions, optional
+    parameters : EvaluationParameters, optional
         ``random_state`` seeds the per-model seeds (drawn up front); records chained
         to the held-out one by gaps of at most ``cluster_km`` (km) are left out of
         its training set too (None or 0: the published leave-one-out).
@@ -640,17 +635,17 @@ def jackknife(
        temporal, spatial, hierarchical, or phylogenetic structure. Ecography 40:913-929
        (buffered leave-one-out; from memory).
     """
-    options = options or EvaluationOptions()
+    parameters = parameters or EvaluationParameters()
     places = _points(presence, "presence"), _points(background, "background")
     lonlat = _lonlat(*places)
-    presence_xy, buffer_km = places[0].xy, options.cluster_km or 0.0
+    presence_xy, buffer_km = places[0].xy, parameters.cluster_km or 0.0
     presence = check_predictors(places[0].env, "presence", min_rows=3)
     background = check_predictors(
         places[1].env, "background", n_features=presence.shape[1]
     )
     study_area, weights = _study_area(study_area, background)
     n = presence.shape[0]
-    seeds = _seeds(np.random.default_rng(options.random_state), n)
+    seeds = _seeds(np.random.default_rng(parameters.random_state), n)
     groups = _jackknife_groups(presence_xy, n, buffer_km, lonlat)
     tasks, held = [], []
     for g in groups:
@@ -774,16 +769,16 @@ def _old_null_model_test(family, params, presence, background, study_area=None, 
     else:
         bg = Points(background, lonlat=lonlat)
         study = Points(study_area, study_area_xy, lonlat=lonlat)
-    options = EvaluationOptions(n_null=n_null, random_state=random_state,
+    parameters = EvaluationParameters(n_null=n_null, random_state=random_state,
                                 cluster_km=cluster_km)
-    return ((family, params, records, bg, study, options),
+    return ((family, params, records, bg, study, parameters),
             {"observed_auc": observed_auc, "map_fn": map_fn})
 
 
 @accepts_old_form(_old_form_of(_old_null_model_test, (
     "null_model_test(family, params, Points(presence, xy=presence_xy, lonlat=lonlat), "
     "Points(background), Points(study_area, xy=study_area_xy), "
-    "EvaluationOptions(n_null=n_null, random_state=random_state, "
+    "EvaluationParameters(n_null=n_null, random_state=random_state, "
     "cluster_km=cluster_km), observed_auc=observed_auc, map_fn=map_fn)")))
 def null_model_test(
     family: str,
@@ -791,7 +786,7 @@ def null_model_test(
     presence: Points,
     background: Points,
     study_area: Points | None = None,
-    options: EvaluationOptions | None = None,
+    parameters: EvaluationParameters | None = None,
     *,
     observed_auc: float | None = None,
     map_fn: Callable = map,
@@ -815,7 +810,7 @@ def null_model_test(
         Rows records may be drawn from (the background when omitted).  With its
         ``xy`` (the background's when omitted) and the records' ``xy`` the random
         records keep the records' pattern.
-    options : EvaluationOptions, optional
+    parameters : EvaluationParameters, optional
         ``n_null`` replicates, seeded from ``random_state``.  With coordinates,
         records chained by gaps of at most ``cluster_km`` (km) form one spatial
         cluster, and each cluster is moved on its own
@@ -841,12 +836,12 @@ def null_model_test(
     .. [2] Fortin, M.-J. & Dale, M. R. T. (2005). Spatial Analysis: A Guide for
        Ecologists. Cambridge University Press.
     """
-    options = options or EvaluationOptions()
+    parameters = parameters or EvaluationParameters()
     records, bg = _points(presence, "presence"), _points(background, "background")
     drawn_from = bg if study_area is None else _points(study_area, "study_area")
     lonlat = _lonlat(records, drawn_from)
     presence_xy, study_area_xy = records.xy, drawn_from.xy
-    n_null, cluster_km = options.n_null, options.cluster_km
+    n_null, cluster_km = parameters.n_null, parameters.cluster_km
     presence = check_predictors(records.env, "presence", min_rows=2)
     background = check_predictors(
         bg.env, "background", n_features=presence.shape[1]
@@ -858,7 +853,7 @@ def null_model_test(
             f"The study area has {pool.shape[0]} cells, fewer than the {n} records; "
             "the null model needs at least as many cells as records."
         )
-    rng = np.random.default_rng(options.random_state)
+    rng = np.random.default_rng(parameters.random_state)
     obs_seed, pattern_seed, *seeds = _seeds(rng, int(n_null) + 2)
     if observed_auc is None:
         model = _make(family, params, obs_seed).fit(presence, background)
@@ -975,19 +970,19 @@ def _old_evaluate_family(family, params, presence, background, *, presence_xy=No
     """The old form of :func:`evaluate_family` in the new form."""
     study = None if study_area is None else Points(
         study_area, study_area_xy, study_area_weights, lonlat)
-    options = EvaluationOptions(
+    parameters = EvaluationParameters(
         jackknife_below=jackknife_below, partition=partition, k_folds=k_folds,
         square_size=checkerboard_size, n_null=n_null, random_state=random_state,
         cluster_km=cluster_km)
     return ((family, params, Points(presence, presence_xy, lonlat=lonlat),
-             Points(background, background_xy, lonlat=lonlat), study, options),
+             Points(background, background_xy, lonlat=lonlat), study, parameters),
             {"map_fn": map_fn})
 
 
 @accepts_old_form(_old_form_of(_old_evaluate_family, (
     "evaluate_family(family, params, Points(presence, xy=presence_xy, lonlat=lonlat), "
     "Points(background, xy=background_xy), Points(study_area, xy=study_area_xy, "
-    "area_km2=study_area_weights), EvaluationOptions(jackknife_below=..., "
+    "area_km2=study_area_weights), EvaluationParameters(jackknife_below=..., "
     "partition=..., k_folds=..., square_size=checkerboard_size, n_null=..., "
     "random_state=..., cluster_km=...), map_fn=map_fn)")))
 def evaluate_family(
@@ -996,7 +991,7 @@ def evaluate_family(
     presence: Points,
     background: Points,
     study_area: Points | None = None,
-    options: EvaluationOptions | None = None,
+    parameters: EvaluationParameters | None = None,
     *,
     map_fn: Callable = map,
 ) -> FamilyEvaluation:
@@ -1016,7 +1011,7 @@ def evaluate_family(
     study_area : Points, optional
         Study-area rows with their cell areas (``area_km2``) and coordinates, for
         the jackknife and the null model; the background when omitted.
-    options : EvaluationOptions, optional
+    parameters : EvaluationParameters, optional
         Jackknife below ``jackknife_below`` records, else the ``partition`` folds;
         ``n_null`` null-model replicates (0 skips the test; with the records' and
         the study area's coordinates the null records keep the records' spatial
@@ -1038,21 +1033,21 @@ def evaluate_family(
     >>> records = Points(rng.normal(0.0, 0.5, size=(8, 2)))
     >>> background = Points(rng.normal(0.0, 2.0, size=(200, 2)))
     >>> ev = evaluate_family("ellipsoid", {}, records, background,
-    ...                      options=EvaluationOptions(n_null=0))
+    ...                      parameters=EvaluationParameters(n_null=0))
     >>> ev.method, ev.n_folds
     ('jackknife', 8)
     """
-    options = options or EvaluationOptions()
+    parameters = parameters or EvaluationParameters()
     places = _points(presence, "presence"), _points(background, "background")
     _lonlat(*places, study_area)
     presence_xy, background_xy = places[0].xy, places[1].xy
-    cluster_km = options.cluster_km
+    cluster_km = parameters.cluster_km
     presence = check_predictors(places[0].env, "presence", min_rows=3)
     background = check_predictors(
         places[1].env, "background", n_features=presence.shape[1]
     )
     n = presence.shape[0]
-    rng = np.random.default_rng(options.random_state)
+    rng = np.random.default_rng(parameters.random_state)
     full_seed, jk_seed, part_seed, fold_seed, null_seed = _seeds(rng, 5)
 
     fit_kw = {}
@@ -1076,9 +1071,9 @@ def evaluate_family(
     )
     ev.extra["model"] = full  # the fitted full-data model, for mapping
 
-    if n < options.jackknife_below:
+    if n < parameters.jackknife_below:
         jk = jackknife(family, params, *places, study_area,
-                       replace(options, random_state=jk_seed), map_fn=map_fn)
+                       replace(parameters, random_state=jk_seed), map_fn=map_fn)
         ev.auc = _nanmean(jk.fold_auc)
         ev.omission_mtp = _nanmean(jk.left_out_scores < jk.thresholds)
         ev.omission_p10 = _nanmean(jk.left_out_scores < jk.p10_thresholds)
@@ -1106,13 +1101,13 @@ def evaluate_family(
         ev.extra["jackknife"] = jk
     else:
         method, pg, bgg = _partition(
-            options.partition,
+            parameters.partition,
             n,
             background.shape[0],
             presence_xy,
             background_xy,
-            options.k_folds,
-            options.square_size,
+            parameters.k_folds,
+            parameters.square_size,
             part_seed,
         )
         ev.method = method
@@ -1149,12 +1144,12 @@ def evaluate_family(
         ev.boyce, ev.tss = _nanmean(boyces), _nanmean(tsss)
         ev.n_folds = len(results)
 
-    if options.n_null and options.n_null > 0:
+    if parameters.n_null and parameters.n_null > 0:
         fixed = dict(params or {})
         if hasattr(full, "selected_params"):
             fixed.update(full.selected_params())
         nm = null_model_test(family, fixed, *places, study_area,
-                             replace(options, random_state=null_seed),
+                             replace(parameters, random_state=null_seed),
                              observed_auc=auc_train, map_fn=map_fn)
         ev.auc_null_p = nm.p_value
         ev.extra["null_model"] = nm

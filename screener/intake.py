@@ -245,7 +245,7 @@ def load_inputs(settings: Settings, *, progress: Progress | None = None,
             aligned = align_layers(
                 paths,
                 cache_dir=aligned_layer_folder(cache_dir),
-                grid_spec=ReferenceGridSpec.from_settings(s.layers),
+                grid_spec=ReferenceGridSpec.from_settings(s),
                 categorical=s.layers.categorical,
                 nodata_values=s.layers.nodata,
                 elevation=s.layers.elevation,

@@ -246,7 +246,7 @@ def evaluation_rates(cube, process, n_taxa, seed, *, n=12, window=70, n_backgrou
     record's spatial cluster and the null model moves each cluster as a whole
     (``CLUSTER_CELLS`` cells), as a run does; False: the published tests.
     """
-    from screener.evaluation import EvaluationOptions, Points, jackknife, null_model_test
+    from screener.evaluation import EvaluationParameters, Points, jackknife, null_model_test
 
     rng = np.random.default_rng(seed)
     hits = {"jackknife": 0, "null_model": 0}
@@ -261,12 +261,12 @@ def evaluation_rates(cube, process, n_taxa, seed, *, n=12, window=70, n_backgrou
         # coordinates in cells (taken as km: only their ratio to the link matters)
         jk = jackknife(EVAL_FAMILY, {}, Points(env[idx], xy[idx], lonlat=False),
                        Points(env[bg]), Points(env[bg]),
-                       EvaluationOptions(random_state=s, cluster_km=link))
+                       EvaluationParameters(random_state=s, cluster_km=link))
         nm = null_model_test(
             EVAL_FAMILY, {},
             Points(env[idx], xy[idx] if structured else None, lonlat=False),
             Points(env[bg], xy[bg] if structured else None, lonlat=False),
-            options=EvaluationOptions(n_null=n_null, random_state=s,
+            parameters=EvaluationParameters(n_null=n_null, random_state=s,
                                       cluster_km=link if structured else None))
         hits["jackknife"] += jk.p_value <= ALPHA
         hits["null_model"] += nm.p_value <= ALPHA

@@ -121,12 +121,16 @@ def test_described_grid_aligns_like_gdal_and_the_old_keywords_still_work(mixed,
 
 
 def test_reference_grid_spec_from_layer_settings(mixed):
+    from types import SimpleNamespace
+
     from screener.project import SECTION_TYPES
 
-    layers = SECTION_TYPES["layers"]
-    assert ReferenceGridSpec.from_settings(layers()) == ReferenceGridSpec()
-    spec = ReferenceGridSpec.from_settings(layers(crs="EPSG:3035", resolution=[1000.0, 500.0],
-                                                  extent=[0, 0, 5000, 4000]))
+    def project(**layers):  # a loaded project's [layers] section, defaults filled in
+        return SimpleNamespace(layers=SECTION_TYPES["layers"](**layers))
+
+    assert ReferenceGridSpec.from_settings(project()) == ReferenceGridSpec()
+    spec = ReferenceGridSpec.from_settings(project(
+        crs="EPSG:3035", resolution=[1000.0, 500.0], extent=[0, 0, 5000, 4000]))
     assert spec == ReferenceGridSpec("", "EPSG:3035", (1000.0, 500.0), (0, 0, 5000, 4000))
     # errors quote the value as the project file writes it (a TOML array)
     with pytest.raises(LayerError, match=r"resolution = \[1000.0, -1.0\]"):

@@ -13,7 +13,7 @@ from sklearn.metrics import roc_auc_score, roc_curve
 
 from screener.errors import InputError, ScreenerDeprecationWarning
 from screener.evaluation import (
-    EvaluationOptions,
+    EvaluationParameters,
     Points,
     auc,
     block_partition,
@@ -153,7 +153,7 @@ def test_buffered_jackknife_holds_out_whole_clusters_by_hand(small):
     xy = np.array([[0, 0], [1, 0], [2, 0], [20, 0], [20, 1], [40, 0], [60, 0],
                    [80, 0]], float)
     jk = jackknife("ellipsoid", {}, Points(pres, xy, lonlat=False), Points(bg),
-                   options=EvaluationOptions(random_state=0, cluster_km=1.5))
+                   parameters=EvaluationParameters(random_state=0, cluster_km=1.5))
     assert jk.n == 5 and jk.buffer_km == 1.5
     assert len(jk.left_out_scores) == 8
     keep = np.arange(8) >= 3
@@ -165,13 +165,13 @@ def test_buffered_jackknife_holds_out_whole_clusters_by_hand(small):
     # a buffer that holds nobody else is the published jackknife
     plain = jackknife("ellipsoid", {}, Points(pres), Points(bg))
     alone = jackknife("ellipsoid", {}, Points(pres, xy, lonlat=False), Points(bg),
-                      options=EvaluationOptions(cluster_km=0.5))
+                      parameters=EvaluationParameters(cluster_km=0.5))
     assert alone.n == 8 and alone.buffer_km == 0.0
     assert_allclose(alone.left_out_scores, plain.left_out_scores)
     assert alone.p_value == pytest.approx(plain.p_value)
     # every record in one cluster leaves nothing to train on: no model, no p
     none = jackknife("ellipsoid", {}, Points(pres, xy, lonlat=False), Points(bg),
-                     options=EvaluationOptions(cluster_km=100.0))
+                     parameters=EvaluationParameters(cluster_km=100.0))
     assert none.n == 0 and np.isnan(none.p_value)
 
 
@@ -198,14 +198,14 @@ def test_parallel_map_gives_same_result(small):
         return list(reversed(out))
 
     P, B = Points(pres), Points(bg)
-    seven = EvaluationOptions(random_state=7)
-    a = jackknife("forest", {"n_estimators": 20}, P, B, options=seven)
-    b = jackknife("forest", {"n_estimators": 20}, P, B, options=seven,
+    seven = EvaluationParameters(random_state=7)
+    a = jackknife("forest", {"n_estimators": 20}, P, B, parameters=seven)
+    b = jackknife("forest", {"n_estimators": 20}, P, B, parameters=seven,
                   map_fn=reversed_map)
     assert_allclose(a.left_out_scores, b.left_out_scores)
-    five = EvaluationOptions(n_null=5, random_state=1)
-    na = null_model_test("ellipsoid", {}, P, B, options=five)
-    nb = null_model_test("ellipsoid", {}, P, B, options=five, map_fn=reversed_map)
+    five = EvaluationParameters(n_null=5, random_state=1)
+    na = null_model_test("ellipsoid", {}, P, B, parameters=five)
+    nb = null_model_test("ellipsoid", {}, P, B, parameters=five, map_fn=reversed_map)
     assert_allclose(na.null, nb.null)
 
 
@@ -213,7 +213,7 @@ def test_null_model_p_value_formula(small):
     """Raes & ter Steege 2007 (Ecography 30:727): p = (1 + #null >= obs) / (1 + R)."""
     pres, bg = small
     nm = null_model_test("ellipsoid", {}, Points(pres), Points(bg),
-                         options=EvaluationOptions(n_null=19))
+                         parameters=EvaluationParameters(n_null=19))
     assert nm.null.shape == (19,)
     assert nm.p_value == pytest.approx((1 + np.sum(nm.null >= nm.observed)) / 20)
     assert nm.observed > np.median(nm.null)
@@ -222,7 +222,7 @@ def test_null_model_p_value_formula(small):
 def test_evaluate_family_small_sample_uses_jackknife(small):
     pres, bg = small
     ev = evaluate_family("envelope", None, Points(pres), Points(bg),
-                         options=EvaluationOptions(n_null=9))
+                         parameters=EvaluationParameters(n_null=9))
     assert ev.method == "jackknife" and ev.n_records == 8
     assert ev.jackknife_successes is not None and 0 <= ev.jackknife_p <= 1
     assert math.isnan(ev.boyce) and math.isnan(
@@ -241,7 +241,7 @@ def test_evaluate_family_partitions(partition):
     pres = rng.normal([1.0, 1.0], 0.4, size=(30, 2))
     pxy = rng.uniform(0, 10, size=(30, 2))
     ev = evaluate_family("ellipsoid", {}, Points(pres, pxy), Points(bg, bxy),
-                         options=EvaluationOptions(partition=partition, n_null=0))
+                         parameters=EvaluationParameters(partition=partition, n_null=0))
     assert ev.method == partition
     assert ev.n_folds == {"quadrants": 4, "squares": 2, "random": 5}[partition]
     assert 0.8 < ev.auc <= 1.0 and ev.boyce > 0 and 0 < ev.tss <= 1
@@ -254,10 +254,10 @@ def test_evaluate_family_without_coordinates_falls_back_to_random():
     bg = rng.normal(size=(300, 2))
     pres = rng.normal(1.0, 0.4, size=(26, 2))
     ev = evaluate_family("ellipsoid", {}, Points(pres), Points(bg),
-                         options=EvaluationOptions(n_null=0))
+                         parameters=EvaluationParameters(n_null=0))
     assert ev.method == "random"
     with pytest.raises(InputError, match="Unknown partition"):
-        EvaluationOptions(partition="stripes", n_null=0)
+        EvaluationParameters(partition="stripes", n_null=0)
 
 
 def test_evaluate_family_gives_ppm_the_spatial_blocks():
@@ -268,12 +268,12 @@ def test_evaluate_family_gives_ppm_the_spatial_blocks():
     pres = rng.normal([1.0, 1.0], 0.4, size=(30, 2))
     pxy = rng.uniform(0, 10, size=(30, 2))
     kw = {"n_blocks": 5, "n_penalties": 3}
-    no_null = EvaluationOptions(n_null=0)
+    no_null = EvaluationParameters(n_null=0)
     with_xy = evaluate_family("ppm", kw, Points(pres, pxy), Points(bg, bxy),
-                              options=no_null).extra["model"]
+                              parameters=no_null).extra["model"]
     assert with_xy.n_blocks_ == 4
     without = evaluate_family("ppm", kw, Points(pres), Points(bg),
-                              options=no_null).extra["model"]
+                              parameters=no_null).extra["model"]
     assert without.n_blocks_ == 5
 
 
@@ -310,11 +310,11 @@ def test_null_model_keeps_the_records_spatial_pattern():
     scattered = patterned = 0
     for k in range(12):
         pres, pxy, pool, qxy = _clustered_no_signal(rng, z, slope)
-        opts = EvaluationOptions(n_null=19, random_state=k)
+        opts = EvaluationParameters(n_null=19, random_state=k)
         plain = null_model_test("ellipsoid", {}, Points(pres), Points(pool),
-                                options=opts)
+                                parameters=opts)
         kept = null_model_test("ellipsoid", {}, Points(pres, pxy), Points(pool, qxy),
-                               options=opts)
+                               parameters=opts)
         assert kept.structured and not plain.structured
         scattered += plain.p_value <= 0.05
         patterned += kept.p_value <= 0.05
@@ -357,7 +357,7 @@ def test_consensus_is_evaluated_like_a_family():
     assert_allclose(cm.predict(bg), want, rtol=1e-12)
     ev = evaluate_family(
         "consensus", {"families": {"ellipsoid": {}, "envelope": {}}, "weights": weights},
-        Points(pres), Points(bg), options=EvaluationOptions(n_null=9, random_state=1),
+        Points(pres), Points(bg), parameters=EvaluationParameters(n_null=9, random_state=1),
     )
     row = ev.as_row()
     assert row["method"] == "jackknife" and 0 < row["jackknife_p"] <= 1
@@ -372,12 +372,12 @@ def test_family_evaluation_says_why_a_clustered_jackknife_is_empty(small):
     # one chain of records (100 km links): nothing can be held out with its cluster
     records, background = Points(pres, xy, lonlat=False), Points(bg, bg, lonlat=False)
     one = evaluate_family("ellipsoid", {}, records, background,
-                          options=EvaluationOptions(n_null=0, cluster_km=100.0))
+                          parameters=EvaluationParameters(n_null=0, cluster_km=100.0))
     assert np.isnan(one.auc) and one.n_folds == 0
     assert one.note.startswith("No jackknife") and "100.0 km" in one.note
     # clusters that can be held out: the usual note, no claim of untested records
     some = evaluate_family("ellipsoid", {}, records, background,
-                           options=EvaluationOptions(n_null=0, cluster_km=1.5))
+                           parameters=EvaluationParameters(n_null=0, cluster_km=1.5))
     assert some.n_folds == 5 and "not tested" not in some.note
 
 
@@ -408,8 +408,8 @@ def test_old_jackknife_call_warns_and_gives_the_new_result(placed):
     pres, bg, pxy, bxy, area = placed
     new = jackknife("ellipsoid", {}, Points(pres, pxy, lonlat=False), Points(bg),
                     Points(bg, area_km2=area),
-                    EvaluationOptions(random_state=3, cluster_km=1.5))
-    with pytest.warns(ScreenerDeprecationWarning, match=r"EvaluationOptions\("):
+                    EvaluationParameters(random_state=3, cluster_km=1.5))
+    with pytest.warns(ScreenerDeprecationWarning, match=r"EvaluationParameters\("):
         old = jackknife("ellipsoid", {}, pres, bg, bg, area, 3, presence_xy=pxy,
                         buffer_km=1.5, lonlat=False)
     assert new.buffer_km == 1.5
@@ -420,7 +420,7 @@ def test_old_null_model_call_warns_and_gives_the_new_result(placed):
     pres, bg, pxy, bxy, _ = placed
     new = null_model_test("ellipsoid", {}, Points(pres, pxy, lonlat=False),
                           Points(bg, bxy, lonlat=False),
-                          options=EvaluationOptions(n_null=9, random_state=2,
+                          parameters=EvaluationParameters(n_null=9, random_state=2,
                                                     cluster_km=1.5))
     with pytest.warns(ScreenerDeprecationWarning, match=r"Points\(presence"):
         old = null_model_test("ellipsoid", {}, pres, bg, n_null=9, random_state=2,
@@ -440,7 +440,7 @@ def test_old_evaluate_family_call_warns_and_gives_the_new_result(placed, n_recor
     new = evaluate_family(
         "ellipsoid", {}, Points(pres, pxy, lonlat=False), Points(bg, bxy, lonlat=False),
         Points(bg, bxy, area, lonlat=False),
-        EvaluationOptions(partition="squares", square_size=20.0, n_null=5,
+        EvaluationParameters(partition="squares", square_size=20.0, n_null=5,
                           random_state=4, cluster_km=1.5))
     with pytest.warns(ScreenerDeprecationWarning, match="square_size=checkerboard_size"):
         old = evaluate_family(
@@ -461,3 +461,15 @@ def test_new_form_wants_points_and_one_kind_of_coordinates(small):
     with pytest.raises(InputError, match="one kind"):
         jackknife("ellipsoid", {}, Points(pres, xy), Points(bg, np.zeros((600, 2)),
                                                             lonlat=False))
+
+
+def test_evaluation_parameters_from_settings():
+    from types import SimpleNamespace
+
+    from screener.project import SECTION_TYPES
+
+    settings = SimpleNamespace(evaluation=SECTION_TYPES["evaluation"](jackknife_below=12,
+                                                                      n_null=0))
+    p = EvaluationParameters.from_settings(settings, random_state=5, cluster_km=2.0)
+    assert (p.jackknife_below, p.n_null, p.random_state, p.cluster_km) == (12, 0, 5, 2.0)
+    assert p.partition == EvaluationParameters().partition

@@ -19,7 +19,7 @@ from matplotlib import cbook
 from pyproj import Geod
 from scipy.stats import spearmanr
 
-from screener.evaluation import EvaluationOptions, Points, jackknife
+from screener.evaluation import EvaluationParameters, Points, jackknife
 from screener.models import make_model, training_presence_scores
 from screener.thresholds import compute_thresholds
 
@@ -105,7 +105,7 @@ def test_jackknife_significant_with_ten_records(landscape, family):
         pres, bg, _, _ = _sample(landscape, 10, seed=100 + seed)
         p_values.append(
             jackknife(family, PARAMS[family], Points(pres), Points(bg),
-                      options=EvaluationOptions(random_state=seed)).p_value
+                      parameters=EvaluationParameters(random_state=seed)).p_value
         )
     assert sum(p < 0.05 for p in p_values) >= 4, p_values
     assert np.median(p_values) < 0.05, p_values

@@ -27,7 +27,7 @@ import numpy as np
 from screener.background import Background, accessible_area, draw_background
 from screener.evaluation import (
     CONSENSUS,
-    EvaluationOptions,
+    EvaluationParameters,
     FamilyEvaluation,
     Points,
     evaluate_family,
@@ -167,10 +167,10 @@ def fit_family(family: str, sample: TaxonSample, stack: LayerStack, settings, *,
     P, B = sample.presence_env, sample.background_env
     params = family_params(s, family)
     records, background = _points(sample)
-    options = EvaluationOptions.from_settings(
-        s.evaluation, random_state=sample.seed,
+    parameters = EvaluationParameters.from_settings(
+        s, random_state=sample.seed,
         cluster_km=cluster_link_km(stack.grid, s.occurrences.cluster_cells))
-    ev = evaluate_family(family, params, records, background, options=options,
+    ev = evaluate_family(family, params, records, background, parameters=parameters,
                          map_fn=map_fn)
     model = ev.extra["model"]
     baselines = {}
@@ -178,7 +178,7 @@ def fit_family(family: str, sample: TaxonSample, stack: LayerStack, settings, *,
         for part in ("squares", "random"):
             other = evaluate_family(
                 family, params, records, background,
-                options=replace(options, partition=part, n_null=0), map_fn=map_fn)
+                parameters=replace(parameters, partition=part, n_null=0), map_fn=map_fn)
             baselines.update({f"auc_{part}": other.auc,
                               f"omission_mtp_{part}": other.omission_mtp})
     mapped = ClampedModel.from_rows(model, P, B) if s.models.clamp else model
@@ -250,8 +250,8 @@ def evaluation_rows(sample: TaxonSample, fits: dict, weights: dict, consensus_th
             CONSENSUS,
             {"families": {f: family_params(s, f) for f in fits}, "weights": weights},
             records, background,
-            options=EvaluationOptions.from_settings(
-                s.evaluation, random_state=sample.seed, cluster_km=cluster_km),
+            parameters=EvaluationParameters.from_settings(
+                s, random_state=sample.seed, cluster_km=cluster_km),
             map_fn=map_fn,
         )
         ens.update({k: v for k, v in ev_c.as_row().items()

@@ -288,7 +288,7 @@ def replicate_speedup(repeats: int) -> dict:
     point-process family (99 replicates, the default, each a model fit on 10,000
     background points).
     """
-    from screener.evaluation import EvaluationOptions, Points, null_model_test
+    from screener.evaluation import EvaluationParameters, Points, null_model_test
     from screener.overlap import OverlapTaxon, environmental_space, equivalency_test
     from screener.parallel import make_executor
 
@@ -310,7 +310,7 @@ def replicate_speedup(repeats: int) -> dict:
             out[f"null-model ppm-99, {kind}-{n}"] = timed(
                 lambda ex=ex: null_model_test("ppm", {"terms": "linear+quadratic"},
                                               Points(pres), Points(bg),
-                                              options=EvaluationOptions(n_null=99),
+                                              parameters=EvaluationParameters(n_null=99),
                                               observed_auc=0.9, map_fn=ex.map),
                 repeats)[:2]
     return out
