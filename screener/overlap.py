@@ -55,14 +55,14 @@ import time
 import warnings
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
-from functools import partial
+from functools import partial, wraps
 
 import numpy as np
 from sklearn.decomposition import PCA
 from sklearn.preprocessing import StandardScaler
 
 from screener.background import draw_background
-from screener.errors import InputError, ScreenerDeprecationWarning
+from screener.errors import InputError, ScreenerDeprecationWarning, accepts_old_form
 from screener.parallel import Executor, make_executor, spawn_seeds
 from screener.project import default
 
@@ -616,23 +616,6 @@ def _occupancy(z_occ, inv_env) -> np.ndarray:
     return z / m if m > 0 else z
 
 
-def _grid_cells_argument(grid_cells, resolution) -> int:
-    if resolution is not None:
-        warnings.warn(
-            "`resolution` is renamed `grid_cells` (cells along each principal axis); "
-            "the old name stops working in the next release.",
-            ScreenerDeprecationWarning,
-            stacklevel=3,
-        )
-        grid_cells = resolution
-    g = int(grid_cells)
-    if g < 10:
-        raise InputError(
-            f"grid_cells must be at least 10 cells per axis; got {grid_cells}."
-        )
-    return g
-
-
 def _own_available(scores_bg, z_own, edges, quantile) -> np.ndarray:
     """Cells holding a taxon's accessible environment, marginal cells dropped.
 
@@ -889,45 +872,63 @@ _VALUE_TYPES = {
 }
 
 
-def _values_from_old_keywords(function: str, old: dict, given: dict, *,
-                              warn: bool = True) -> dict:
-    """Fold the old keywords in ``old`` (removed from it) into the values of
-    ``given`` that replace them, with one warning that says what to write instead
-    (unless the caller warns about the whole old form)."""
-    moved = {k: old.pop(k) for k in list(old) if k in _OLD_KEYWORD_HOMES}
+def _fold_old_keywords(function: str, kwargs: dict) -> str:
+    """Fold the old keywords in ``kwargs`` (in place) into the values that replace
+    them (``shared=``, ``space_parameters=``, ``test_parameters=``); returns what to
+    write instead ("" when there were none)."""
+    moved = {k: kwargs.pop(k) for k in list(kwargs) if k in _OLD_KEYWORD_HOMES}
+    for old_default_none in ("resolution", "alternative"):
+        if moved.get(old_default_none, 0) is None:
+            del moved[old_default_none]
     if not moved:
-        return given
+        return ""
+    used = sorted(moved)
+    renamed = []
     if "resolution" in moved:
-        moved["grid_cells"] = _grid_cells_argument(
-            moved.get("grid_cells", DEFAULT_GRID_CELLS), moved.pop("resolution"))
+        moved["grid_cells"] = moved.pop("resolution")
+        renamed.append("`resolution` is `grid_cells`")
     if "alternative" in moved:
-        moved["hypothesis"] = _check_hypothesis(None, moved.pop("alternative"))
+        alternative = moved.pop("alternative")
+        if alternative not in _OLD_ALTERNATIVES:
+            raise InputError(
+                f"alternative must be 'greater' or 'lower'; got {alternative!r}. It "
+                "is renamed `hypothesis`: 'conserved' or 'diverged'."
+            )
+        moved["hypothesis"] = _OLD_ALTERNATIVES[alternative]
+        renamed.append("`alternative` 'greater' / 'lower' is `hypothesis` 'conserved' / "
+                       "'diverged'")
     fields_of = {}
     for key, value in moved.items():
         argument, name = _OLD_KEYWORD_HOMES[key]
         fields_of.setdefault(argument, {})[name] = value
-    out = dict(given)
     hints = []
     for argument, values in fields_of.items():
-        if given.get(argument) is not None:
+        if kwargs.get(argument) is not None:
             raise TypeError(
                 f"{function}() got {argument}= and the old keywords {sorted(values)}; "
                 f"give them inside {argument}."
             )
         cls = _VALUE_TYPES[argument]
-        out[argument] = cls(**values)
+        kwargs[argument] = cls(**values)
         inner = ", ".join(f"{k}=..." for k in values)
         hints.append(f"{argument}={cls.__name__}({inner})")
-    if not warn:
-        return out
-    warnings.warn(
-        f"{function}(): the keywords {', '.join(sorted(moved))} are grouped into "
-        f"values; write {', '.join(hints)} (screener.overlap).  The old keywords stop "
-        "working in the next release.",
-        ScreenerDeprecationWarning,
-        stacklevel=3,
-    )
-    return out
+    text = f"write {', '.join(hints)} instead of the keywords {', '.join(used)}"
+    return text + (f" ({'; '.join(renamed)})" if renamed else "")
+
+
+def _old_form_message(function: str, parts) -> str:
+    return (f"{function}(): {'; '.join(p for p in parts if p)} (screener.overlap). "
+            "The old form stops working in the next release.")
+
+
+def _old_call(function: str, args, kwargs: dict, allowed: set, parts: list):
+    """The end of a translator for :func:`screener.errors.accepts_old_form`: the old
+    option keywords folded into values, unknown keywords refused, what to write."""
+    parts = [*parts, _fold_old_keywords(function, kwargs)]
+    unknown = set(kwargs) - allowed
+    if unknown:
+        raise TypeError(f"{function}() got unexpected arguments {sorted(unknown)}")
+    return args, kwargs, _old_form_message(function, parts)
 
 
 def _checked_places(a: OverlapTaxon, b: OverlapTaxon, rows) -> tuple:
@@ -997,60 +998,62 @@ def shared_available_cells(
 #: Positional arguments of the old form of :func:`environmental_space`.
 _OLD_SPACE_ARRAYS = ("env_records_a", "env_records_b", "env_background_a",
                      "env_background_b")
+_SPACE_KEYWORDS = {"a", "b", "shared", "space_parameters"}
 
 
-def _space_taxa_from_old_arguments(a, b, arrays, old: dict):
-    """The two taxa of ``environmental_space(env_records_a, env_records_b,
-    env_background_a, env_background_b, places=...)`` (the old form), with a
-    warning."""
-    values = dict(zip(_OLD_SPACE_ARRAYS, (a, b, *arrays), strict=False))
-    for key in _OLD_SPACE_ARRAYS:
-        if key in old:
-            if values.get(key) is not None:
-                raise TypeError(f"environmental_space() got {key} twice")
-            values[key] = old.pop(key)
-    missing = [k for k in _OLD_SPACE_ARRAYS if values.get(k) is None]
-    if missing or len(arrays) > 2:
-        raise TypeError(
-            "environmental_space() takes two OverlapTaxon values (a, b); the old form "
-            f"takes four arrays {list(_OLD_SPACE_ARRAYS)}" + (
-                f" and {missing} are missing" if missing else "")
+def _environmental_space_old_form(*args, **kwargs):
+    """Translator for :func:`screener.errors.accepts_old_form`: the old call
+    ``environmental_space(env_records_a, env_records_b, env_background_a,
+    env_background_b, places=..., grid_cells=..., ...)`` in the new form."""
+    a = args[0] if args else kwargs.get("a")
+    if isinstance(a, OverlapTaxon) and set(kwargs) <= _SPACE_KEYWORDS:
+        return None
+    kwargs = dict(kwargs)
+    parts = []
+    if not isinstance(a, OverlapTaxon):
+        if len(args) > 4:
+            raise TypeError("environmental_space() takes at most 4 predictor arrays "
+                            f"in its old form; got {len(args)}")
+        arrays = dict(zip(_OLD_SPACE_ARRAYS, args))
+        for key in _OLD_SPACE_ARRAYS:
+            if key in kwargs:
+                if key in arrays:
+                    raise TypeError(f"environmental_space() got {key} twice")
+                arrays[key] = kwargs.pop(key)
+        missing = [k for k in _OLD_SPACE_ARRAYS if arrays.get(k) is None]
+        if missing:
+            raise TypeError(
+                "environmental_space() takes two OverlapTaxon values (a, b); its old "
+                f"form four predictor arrays, and {missing} are missing"
+            )
+        places = kwargs.pop("places", None)
+        if places is not None and len(places) != 4:
+            raise InputError(
+                "places must hold 4 coordinate arrays: records of A, records of B, "
+                "background of A, background of B."
+            )
+        xy = tuple(places) if places is not None else (None,) * 4
+        args = tuple(
+            OverlapTaxon(name, env_records=arrays[f"env_records_{w}"],
+                         env_background=arrays[f"env_background_{w}"],
+                         xy_records=xy[k], xy_background=xy[2 + k])
+            for k, (name, w) in enumerate((("A", "a"), ("B", "b")))
         )
-    places = old.pop("places", None)
-    if places is not None and len(places) != 4:
-        raise InputError(
-            "places must hold 4 coordinate arrays: records of A, records of B, "
-            "background of A, background of B."
+        parts.append(
+            "write environmental_space(a, b) with one OverlapTaxon(name, "
+            "env_records=..., env_background=..., xy_records=..., xy_background=...) "
+            "per taxon instead of the four predictor arrays and places="
         )
-    xy = tuple(places) if places is not None else (None,) * 4
-    warnings.warn(
-        "environmental_space(env_records_a, env_records_b, env_background_a, "
-        "env_background_b, places=...) is replaced by environmental_space(a, b) with "
-        "one OverlapTaxon per taxon: OverlapTaxon(name, env_records=..., "
-        "env_background=..., xy_records=..., xy_background=...).  The old form stops "
-        "working in the next release.",
-        ScreenerDeprecationWarning,
-        stacklevel=3,
-    )
-    return tuple(
-        OverlapTaxon(
-            name=name,
-            env_records=values[f"env_records_{w}"],
-            env_background=values[f"env_background_{w}"],
-            xy_records=xy[k],
-            xy_background=xy[2 + k],
-        )
-        for k, (name, w) in enumerate((("A", "a"), ("B", "b")))
-    )
+    return _old_call("environmental_space", args, kwargs, _SPACE_KEYWORDS, parts)
 
 
+@accepts_old_form(_environmental_space_old_form)
 def environmental_space(
-    a: OverlapTaxon | None = None,
-    b: OverlapTaxon | None = None,
-    *old_arrays,
+    a: OverlapTaxon,
+    b: OverlapTaxon,
+    *,
     shared: SharedSpace | None = None,
     space_parameters: EnvironmentalSpaceParameters | None = None,
-    **old,
 ) -> EnvironmentalSpace:
     """Project two taxa into one two-axis environmental space shared by the pair.
 
@@ -1062,6 +1065,11 @@ def environmental_space(
     identical records give identical occupancies (D = 1) whatever background each
     taxon drew.  Each taxon's record density uses a bandwidth from its own records
     (:func:`record_bandwidth`).
+
+    The old form ``environmental_space(env_records_a, env_records_b,
+    env_background_a, env_background_b, env_available=..., grid_cells=...,
+    places=..., ...)`` still works for one release, with a
+    :class:`~screener.errors.ScreenerDeprecationWarning` that says what to write.
 
     Parameters
     ----------
@@ -1081,11 +1089,6 @@ def environmental_space(
     space_parameters : EnvironmentalSpaceParameters, optional
         Grid cells along each axis and the support and available-environment
         quantiles (defaults of ``[overlap]``).
-    *old_arrays, **old
-        The old form ``environmental_space(env_records_a, env_records_b,
-        env_background_a, env_background_b, env_available=..., grid_cells=...,
-        places=..., ...)`` still works for one release, with a
-        :class:`~screener.errors.ScreenerDeprecationWarning` that says what to write.
 
     Returns
     -------
@@ -1114,22 +1117,14 @@ def environmental_space(
     >>> space.z_env.shape
     (20, 20)
     """
-    if old_arrays or not isinstance(a, OverlapTaxon):
-        a, b = _space_taxa_from_old_arguments(a, b, old_arrays, old)
-    given = _values_from_old_keywords(
-        "environmental_space", old,
-        {"shared": shared, "space_parameters": space_parameters},
-    )
-    if old:
-        raise TypeError(f"environmental_space() got unexpected arguments {sorted(old)}")
     for taxon in (a, b):
         if not isinstance(taxon, OverlapTaxon) or not taxon.has_environment:
             raise InputError(
                 "environmental_space() needs two OverlapTaxon values with "
                 "env_records and env_background."
             )
-    shared = given["shared"] or SharedSpace()
-    parameters = given["space_parameters"] or EnvironmentalSpaceParameters()
+    shared = shared or SharedSpace()
+    parameters = space_parameters or EnvironmentalSpaceParameters()
     grid_cells = parameters.grid_cells
     support_quantile = parameters.support_quantile
     available_quantile = parameters.available_quantile
@@ -1868,20 +1863,67 @@ def _geographic_similarity(map_fixed, map_moved, accessible_moved, n_moved, *,
     )
 
 
-#: Arguments of the old form of :func:`geographic_similarity_test`, in order.
-_OLD_GEO_SIMILARITY = ("map_fixed", "accessible_moved", "n_moved", "cell_area_km2")
+def _old_geographic_similarity_test(
+    fit_predict, map_fixed, accessible_moved, n_moved, cell_area_km2, *,
+    observed_map_moved=None, direction="ab", executor=None, **options,
+):
+    """The old form of :func:`geographic_similarity_test`, on maps already fitted
+    (``options``: ``hypothesis``, ``n_replicates``, ``random_state``,
+    ``alternative``)."""
+    kwargs = dict(options)
+    said = _fold_old_keywords("geographic_similarity_test", kwargs)
+    tests = kwargs.pop("test_parameters", None) or OverlapTestParameters()
+    if kwargs:
+        raise TypeError(
+            f"geographic_similarity_test() got unexpected arguments {sorted(kwargs)}")
+    warnings.warn(
+        _old_form_message("geographic_similarity_test", [
+            "write geographic_similarity_test(fit_predict, a, b, cell_area_km2, "
+            "direction=...) with one OverlapTaxon(name, cells=..., accessible=...) per "
+            "taxon (the observed maps are fit_predict on the records' cells) instead "
+            "of map_fixed, accessible_moved, n_moved and observed_map_moved=", said]),
+        ScreenerDeprecationWarning,
+        stacklevel=3,
+    )
+    if observed_map_moved is None:
+        raise InputError(
+            "observed_map_moved (the map fitted to the real records) is needed."
+        )
+    return _geographic_similarity(
+        map_fixed, observed_map_moved, accessible_moved, n_moved,
+        fit_predict=fit_predict, weights=cell_area_km2, direction=direction,
+        tests=tests, random_state=tests.random_state, executor=executor,
+    )
 
 
+def _runs_old_form(old):
+    """Decorator: calls whose second argument is not an :class:`OverlapTaxon` are the
+    old form, which cannot be written in the new one (it takes maps already fitted);
+    ``old`` runs them, with a warning."""
+
+    def decorate(function):
+        @wraps(function)
+        def wrapper(*args, **kwargs):
+            a = args[1] if len(args) > 1 else kwargs.get("a")
+            if isinstance(a, OverlapTaxon):
+                return function(*args, **kwargs)
+            return old(*args, **kwargs)
+
+        return wrapper
+
+    return decorate
+
+
+@_runs_old_form(_old_geographic_similarity_test)
 def geographic_similarity_test(
     fit_predict: Callable[[np.ndarray], np.ndarray],
-    a: OverlapTaxon | None = None,
-    b: OverlapTaxon | None = None,
-    cell_area_km2=None,
-    direction: str = "ab",
+    a: OverlapTaxon,
+    b: OverlapTaxon,
+    cell_area_km2,
     *,
+    direction: str = "ab",
     test_parameters: OverlapTestParameters | None = None,
     executor: Executor | None = None,
-    **old,
 ) -> dict[str, OverlapTest]:
     """Niche similarity (background) test in geographic space.
 
@@ -1890,6 +1932,12 @@ def geographic_similarity_test(
     from B's accessible area; ``"ba"`` does the reverse.  The observed overlap is
     that of ``fit_predict`` on each taxon's real records, so observed and null come
     from one model (as in :func:`geographic_equivalency_test`).
+
+    The old form ``geographic_similarity_test(fit_predict, map_fixed,
+    accessible_moved, n_moved, cell_area_km2, observed_map_moved=...,
+    hypothesis=..., n_replicates=..., random_state=...)`` still works for one
+    release, with a :class:`~screener.errors.ScreenerDeprecationWarning` that says
+    what to write.
 
     Parameters
     ----------
@@ -1907,13 +1955,6 @@ def geographic_similarity_test(
         ``n_replicates``, ``hypothesis`` and ``random_state`` are used.
     executor : Executor, optional
         As :func:`similarity_test`.
-    **old
-        The old form ``geographic_similarity_test(fit_predict, map_fixed,
-        accessible_moved, n_moved, cell_area_km2, observed_map_moved=...,
-        hypothesis=..., n_replicates=..., random_state=...)`` still works for one
-        release, with a :class:`~screener.errors.ScreenerDeprecationWarning` (with
-        five positional arguments, give the old ``direction`` positionally too or
-        leave it at "ab").
 
     Returns
     -------
@@ -1924,20 +1965,9 @@ def geographic_similarity_test(
     ----------
     .. [1] Warren, D. L., Glor, R. E. & Turelli, M. (2008). Evolution 62, 2868-2883.
     """
-    if not isinstance(a, OverlapTaxon):
-        return _old_geographic_similarity_test(
-            fit_predict, (a, b, cell_area_km2, direction), test_parameters, executor,
-            old)
-    given = _values_from_old_keywords(
-        "geographic_similarity_test", old, {"test_parameters": test_parameters})
-    if old:
-        raise TypeError(
-            f"geographic_similarity_test() got unexpected arguments {sorted(old)}")
-    tests = given["test_parameters"] or OverlapTestParameters()
+    tests = test_parameters or OverlapTestParameters()
     if direction not in ("ab", "ba"):
         raise InputError(f"direction must be 'ab' or 'ba'; got {direction!r}.")
-    if cell_area_km2 is None:
-        raise InputError("geographic_similarity_test() needs cell_area_km2 (km²).")
     fixed, moved = (a, b) if direction == "ab" else (b, a)
     for taxon in (a, b):
         if taxon.cells is None:
@@ -1952,58 +1982,6 @@ def geographic_similarity_test(
     return _geographic_similarity(
         fit_predict(cells_fixed), fit_predict(cells_moved), moved.accessible,
         len(cells_moved), fit_predict=fit_predict, weights=cell_area_km2,
-        direction=direction, tests=tests, random_state=tests.random_state,
-        executor=executor,
-    )
-
-
-def _old_geographic_similarity_test(fit_predict, positional, test_parameters, executor,
-                                    old):
-    """``geographic_similarity_test(fit_predict, map_fixed, accessible_moved,
-    n_moved, cell_area_km2, observed_map_moved=..., ...)``, the old form."""
-    *slots, direction = positional
-    if not isinstance(direction, str):  # five positional arguments: the cell areas
-        slots.append(direction)
-        direction = "ab"
-    # the slots hold the old arguments given by position, in order, then
-    # cell_area_km2 when it was given by keyword
-    values = {k: old.pop(k) for k in (*_OLD_GEO_SIMILARITY, "observed_map_moved")
-              if k in old}
-    free = [k for k in _OLD_GEO_SIMILARITY if k not in values]
-    given_slots = [v for v in slots if v is not None]
-    if len(given_slots) > len(free):
-        raise TypeError("geographic_similarity_test() got an old argument twice")
-    values.update(zip(free, given_slots, strict=False))
-    given = _values_from_old_keywords(
-        "geographic_similarity_test", old, {"test_parameters": test_parameters},
-        warn=False)
-    if old:
-        raise TypeError(
-            f"geographic_similarity_test() got unexpected arguments {sorted(old)}")
-    missing = [k for k in _OLD_GEO_SIMILARITY if k not in values]
-    if missing:
-        raise TypeError(
-            "geographic_similarity_test() takes two OverlapTaxon values (a, b) and "
-            f"cell_area_km2; the old form also misses {missing}"
-        )
-    if values.get("observed_map_moved") is None:
-        raise InputError(
-            "observed_map_moved (the map fitted to the real records) is needed."
-        )
-    warnings.warn(
-        "geographic_similarity_test(fit_predict, map_fixed, accessible_moved, "
-        "n_moved, cell_area_km2, observed_map_moved=...) is replaced by "
-        "geographic_similarity_test(fit_predict, a, b, cell_area_km2, direction=..., "
-        "test_parameters=OverlapTestParameters(...)) with one OverlapTaxon per taxon "
-        "(cells=..., accessible=...); the observed maps are fit_predict on the "
-        "records' cells.  The old form stops working in the next release.",
-        ScreenerDeprecationWarning,
-        stacklevel=3,
-    )
-    tests = given["test_parameters"] or OverlapTestParameters()
-    return _geographic_similarity(
-        values["map_fixed"], values["observed_map_moved"], values["accessible_moved"],
-        values["n_moved"], fit_predict=fit_predict, weights=values["cell_area_km2"],
         direction=direction, tests=tests, random_state=tests.random_state,
         executor=executor,
     )
@@ -2374,23 +2352,14 @@ def _validate_map_pair(map_a, map_b, cell_area_km2):
 _OLD_PAIR_KEYWORDS = ("map", "env_records", "env_background", "cells", "accessible")
 
 
-def _taxa_from_old_keywords(name_a, name_b, old: dict):
-    """The two taxa of ``compare_pair(name_a, name_b, map_a=..., ...)`` (the old
-    form; its keywords are removed from ``old``), with a warning."""
-    per_taxon = {k: old.pop(k) for k in list(old)
+def _taxa_from_old_keywords(name_a, name_b, kwargs: dict):
+    """The two taxa of ``compare_pair(name_a, name_b, map_a=..., places=...)`` (the
+    old form; its keywords are removed from ``kwargs``)."""
+    per_taxon = {k: kwargs.pop(k) for k in list(kwargs)
                  if k in {f"{n}_{w}" for n in _OLD_PAIR_KEYWORDS for w in "ab"}}
-    warnings.warn(
-        "compare_pair(name_a, name_b, map_a=..., ...) is replaced by compare_pair(a, "
-        "b) with one OverlapTaxon per taxon: OverlapTaxon(name, map=..., "
-        "env_records=..., env_background=..., cells=..., accessible=...).  The old "
-        "form stops working in the next release.",
-        ScreenerDeprecationWarning,
-        stacklevel=3,
-    )
-    places = old.pop("places", None) or (None,) * 4
-    out = []
-    for k, (name, w) in enumerate(((name_a, "a"), (name_b, "b"))):
-        out.append(OverlapTaxon(
+    places = kwargs.pop("places", None) or (None,) * 4
+    return tuple(
+        OverlapTaxon(
             name=name,
             map=per_taxon.get(f"map_{w}"),
             env_records=per_taxon.get(f"env_records_{w}"),
@@ -2399,10 +2368,39 @@ def _taxa_from_old_keywords(name_a, name_b, old: dict):
             xy_background=places[2 + k],
             cells=per_taxon.get(f"cells_{w}"),
             accessible=per_taxon.get(f"accessible_{w}"),
-        ))
-    return out
+        )
+        for k, (name, w) in enumerate(((name_a, "a"), (name_b, "b")))
+    )
 
 
+_PAIR_KEYWORDS = {"a", "b", "shared", "test_parameters", "space_parameters",
+                  "executor", "geographic_fit_predict"}
+
+
+def _compare_pair_old_form(*args, **kwargs):
+    """Translator for :func:`screener.errors.accepts_old_form`: ``compare_pair``
+    with one keyword per option (``cell_area_km2=``, ``n_replicates=``, ...) or per
+    taxon and value (``compare_pair(name_a, name_b, map_a=...)``) in the new form."""
+    a = args[0] if args else kwargs.get("a")
+    if isinstance(a, OverlapTaxon) and set(kwargs) <= _PAIR_KEYWORDS:
+        return None
+    kwargs = dict(kwargs)
+    parts = []
+    if not isinstance(a, OverlapTaxon):
+        names = list(args[:2]) + [kwargs.pop(k) for k in ("a", "b") if k in kwargs]
+        if len(names) != 2 or len(args) > 2:
+            raise TypeError("compare_pair() takes two taxa")
+        args = _taxa_from_old_keywords(*names, kwargs)
+        parts.append(
+            "write compare_pair(a, b) with one OverlapTaxon(name, map=..., "
+            "env_records=..., env_background=..., xy_records=..., xy_background=..., "
+            "cells=..., accessible=...) per taxon instead of name_a, name_b, map_a=, "
+            "..., places="
+        )
+    return _old_call("compare_pair", args, kwargs, _PAIR_KEYWORDS, parts)
+
+
+@accepts_old_form(_compare_pair_old_form)
 def compare_pair(
     a: OverlapTaxon,
     b: OverlapTaxon,
@@ -2412,9 +2410,13 @@ def compare_pair(
     space_parameters: EnvironmentalSpaceParameters | None = None,
     executor: Executor | None = None,
     geographic_fit_predict: Callable[[np.ndarray], np.ndarray] | None = None,
-    **old,
 ) -> PairComparison:
     """Overlap, breadth, dynamics and tests for one pair of taxa.
+
+    The old forms, one keyword per option (``cell_area_km2=``, ``n_replicates=``,
+    ``grid_cells=``, ...) and ``compare_pair(name_a, name_b, map_a=..., ...)``,
+    still work for one release, with a
+    :class:`~screener.errors.ScreenerDeprecationWarning` that says what to write.
 
     Parameters
     ----------
@@ -2441,11 +2443,6 @@ def compare_pair(
         and both taxa's ``cells`` are given (similarity also needs both
         ``accessible``) and :func:`estimate_seconds` stays within
         ``test_parameters.geographic_budget_s``.
-    **old
-        The old keywords (``cell_area_km2=``, ``n_replicates=``, ``grid_cells=``,
-        ...) and the old form ``compare_pair(name_a, name_b, map_a=..., ...)`` still
-        work for one release, with a
-        :class:`~screener.errors.ScreenerDeprecationWarning` that says what to write.
 
     Returns
     -------
@@ -2460,17 +2457,8 @@ def compare_pair(
     >>> round(pair.geographic.D, 2)
     0.58
     """
-    if isinstance(a, str):
-        a, b = _taxa_from_old_keywords(a, b, old)
-    given = _values_from_old_keywords(
-        "compare_pair", old,
-        {"shared": shared, "test_parameters": test_parameters,
-         "space_parameters": space_parameters},
-    )
-    if old:
-        raise TypeError(f"compare_pair() got unexpected arguments {sorted(old)}")
-    shared = given["shared"] or SharedSpace()
-    tests = given["test_parameters"] or OverlapTestParameters()
+    shared = shared or SharedSpace()
+    tests = test_parameters or OverlapTestParameters()
     if shared.cell_area_km2 is None:
         raise InputError(
             "compare_pair() needs the cell areas: shared=SharedSpace(cell_area_km2=...) "
@@ -2491,7 +2479,7 @@ def compare_pair(
     space = None
     if a.has_environment and b.has_environment:
         space = environmental_space(
-            a, b, shared=shared, space_parameters=given["space_parameters"])
+            a, b, shared=shared, space_parameters=space_parameters)
         d, i = environmental_overlap(space)
         ba, bb = niche_breadth(space)
         env = SpaceComparison("environmental", d, i, ba, bb, **niche_dynamics(space))

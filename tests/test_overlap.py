@@ -352,7 +352,7 @@ def test_old_option_names_still_work_with_a_warning():
     with pytest.warns(ScreenerDeprecationWarning) as caught:
         old = ov.environmental_space(ra, rb, ba, bb, resolution=20)
     said = " ".join(str(w.message) for w in caught)
-    assert "renamed `grid_cells`" in said and "OverlapTaxon" in said
+    assert "`resolution` is `grid_cells`" in said and "OverlapTaxon" in said
     assert old.grid_cells == 20
     with pytest.warns(ScreenerDeprecationWarning, match="hypothesis"):
         t = ov.similarity_test(old, alternative="lower", n_replicates=9)["D"]
@@ -625,10 +625,10 @@ def test_geographic_similarity_test_takes_the_two_taxa():
     assert t.observed == pytest.approx(
         ov.geographic_overlap(model(cells_a), model(cells_b), 1.0)[0]
     )
-    with pytest.warns(ScreenerDeprecationWarning, match="one OverlapTaxon per taxon"):
+    with pytest.warns(ScreenerDeprecationWarning, match=r"OverlapTaxon\(name, cells="):
         old = ov.geographic_similarity_test(
             model, model(cells_a), near_b, 4, 1.0, observed_map_moved=model(cells_b),
-            n_replicates=19, random_state=5,
+            direction="ab", n_replicates=19, random_state=5,
         )
     assert_allclose(old["D"].null, t.null, rtol=0, atol=0)
     assert old["D"].p_value == t.p_value and old["I"].p_value == new["I"].p_value
