@@ -1399,15 +1399,27 @@ def format_p(p: float, n_valid: int) -> str:
     return f"p = {p:.{decimals}f}"
 
 
+#: Replicate values this close to the observed one (relative to 1, D and I lie in
+#: [0, 1]) count as ties, i.e. as extreme as the observed.  A replicate that rebuilds
+#: the observed split from its records in another order gives the observed value up
+#: to rounding (1e-16), and must count: a restricted permutation has few distinct
+#: splits, and missing the ties made p too small (docs/calibration.md).
+TIE_TOLERANCE = 1e-9
+
+
 def _p_value(observed: float, null, tail: str) -> tuple[float, int]:
+    """Monte Carlo p ``(1 + k) / (1 + R)``, ``k`` replicates at least as extreme as
+    the observed value (ties within :data:`TIE_TOLERANCE` included), ``R`` the valid
+    replicates (Davison & Hinkley 1997, Bootstrap Methods and their Application,
+    ch. 4; from memory)."""
     null = np.asarray(null, float)
     null = null[np.isfinite(null)]
     if null.size == 0:
         return float("nan"), 0
     if tail == "upper":
-        k = int(np.sum(null >= observed))
+        k = int(np.sum(null >= observed - TIE_TOLERANCE))
     else:
-        k = int(np.sum(null <= observed))
+        k = int(np.sum(null <= observed + TIE_TOLERANCE))
     return (1.0 + k) / (1.0 + null.size), int(null.size)
 
 
@@ -1572,14 +1584,17 @@ def equivalency_test(
     kernel bandwidth re-estimated, the shared available environment held fixed),
     ``n_replicates`` times.
 
-    With ``cluster_km > 0`` and record coordinates in ``space``, the records are
-    grouped into spatial clusters (records chained by gaps of at most ``cluster_km``,
-    :func:`screener.randomisation.spatial_clusters`) and the reassignment keeps them
-    (:func:`screener.randomisation.cluster_permutation`): labels are shuffled inside
-    clusters holding both taxa, and clusters holding one taxon change hands whole.
-    Records sampled together are then not counted as independent evidence; a taxon
-    known from two clusters is two observations, and the test says so by not
-    rejecting.  Replicates leaving a taxon fewer than 2 records count as invalid.
+    With ``cluster_km > 0`` and record coordinates in ``space``, each taxon's records
+    are grouped into its own collecting sites (records chained by gaps of at most
+    ``cluster_km``); a site of A and one of B whose centres lie within ``cluster_km``
+    are one shared site (:func:`screener.randomisation.permutation_units`).  The
+    reassignment keeps these units
+    (:func:`screener.randomisation.cluster_permutation`): labels are shuffled among
+    the records of a shared site (taxon crossed with site), and sites of one taxon
+    change hands whole (site nested in taxon; Anderson & ter Braak 2003).  Records
+    sampled together are then not counted as independent evidence; a taxon known
+    from two sites is two observations, and the test says so by not rejecting.
+    Replicates leaving a taxon fewer than 2 records count as invalid.
 
     Parameters
     ----------
@@ -1609,16 +1624,18 @@ def equivalency_test(
     .. [3] Manly, B. F. J. (2007). Randomization, Bootstrap and Monte Carlo Methods in
        Biology, 3rd ed. Chapman & Hall (restricted permutations of blocks; from
        memory).
+    .. [4] Anderson, M. J. & ter Braak, C. J. F. (2003). Journal of Statistical
+       Computation and Simulation 73, 85-113 (permute the units a factor varies
+       among; from memory).
     """
     n = _check_replicates(n_replicates)
     clusters = None
     if cluster_km > 0 and space.a.xy_records is not None and (
             space.b.xy_records is not None):
-        from screener.randomisation import spatial_clusters
+        from screener.randomisation import permutation_units
 
-        clusters = spatial_clusters(
-            np.vstack([space.a.xy_records, space.b.xy_records]), cluster_km,
-            lonlat=space.lonlat,
+        clusters = permutation_units(
+            space.a.xy_records, space.b.xy_records, cluster_km, lonlat=space.lonlat,
         )
     task = _EnvTask(
         nodes=space.nodes,

@@ -8,8 +8,10 @@ here randomise the records while keeping their spatial structure:
 
 * :func:`pattern_draws` moves the whole record pattern to random places of an area
   (the null model of the evaluation and the similarity tests);
-* :func:`spatial_clusters` groups records that lie close together, and
-  :func:`cluster_permutation` reassigns taxon labels by those groups (the
+* :func:`spatial_clusters` groups records that lie close together,
+  :func:`permutation_units` turns two taxa's records into the units a permutation may
+  exchange (each taxon's own collecting sites, and sites both taxa share), and
+  :func:`cluster_permutation` reassigns taxon labels by those units (the
   equivalency test).
 
 References
@@ -20,6 +22,11 @@ References
 .. [2] Manly, B. F. J. (2007). Randomization, Bootstrap and Monte Carlo Methods in
    Biology, 3rd ed. Chapman & Hall (permuting within and between blocks; from
    memory).
+.. [3] Anderson, M. J. & ter Braak, C. J. F. (2003). Permutation tests for
+   multi-factorial analysis of variance. Journal of Statistical Computation and
+   Simulation 73, 85-113 (a factor is tested by permuting the units it varies among:
+   whole units when they are nested in it, records within units when it is crossed
+   with them; from memory).
 """
 
 from __future__ import annotations
@@ -39,6 +46,7 @@ __all__ = [
     "spatial_clusters",
     "cluster_link_km",
     "cluster_permutation",
+    "permutation_units",
     "KM_PER_DEGREE",
 ]
 
@@ -201,6 +209,71 @@ def spatial_clusters(xy, link_km: float, *, lonlat: bool = True) -> np.ndarray:
     return connected_components(graph, directed=False)[1]
 
 
+def permutation_units(xy_a, xy_b, link_km: float, *, lonlat: bool = True) -> np.ndarray:
+    """Units of the equivalency permutation: each taxon's sites, and shared sites.
+
+    Each taxon's records are grouped on their own (:func:`spatial_clusters` with
+    ``link_km``): these groups are the taxon's collecting sites.  A site of A and a
+    site of B whose centres (mean positions) lie within ``link_km`` of each other are
+    one site where both taxa were collected (joined transitively); every other site
+    is a unit of one taxon.  This follows the design of the sample (Anderson & ter
+    Braak 2003): at a shared site taxon is crossed with site, so the labels are
+    exchangeable among the site's records; a site of one taxon is nested in that
+    taxon, so only whole sites are exchangeable.  Grouping the pooled records instead
+    would join two neighbouring sites of different taxa into one "shared" site whose
+    records are not exchangeable (they sample two places); that made the test reject
+    too often when each taxon had its own sites (docs/calibration.md).
+
+    Parameters
+    ----------
+    xy_a, xy_b : array_like of shape (n_a, 2) and (n_b, 2)
+        Record coordinates of the two taxa: longitude, latitude (degrees) when
+        ``lonlat``, else x, y in km.
+    link_km : float
+        Longest gap (km) inside a site, and the largest distance between the centres
+        of a shared site's two parts; 0 makes every record its own unit.
+    lonlat : bool, default True
+        Distances on one local equirectangular plane around the mean latitude of all
+        records.
+
+    Returns
+    -------
+    ndarray of int, shape (n_a + n_b,)
+        Unit of each record (A's records first), ``0 .. k - 1``; pass it to
+        :func:`cluster_permutation` as ``clusters``.  A unit holds records of both
+        taxa only when it is a shared site.
+
+    References
+    ----------
+    .. [1] Anderson, M. J. & ter Braak, C. J. F. (2003). Journal of Statistical
+       Computation and Simulation 73, 85-113 (from memory).
+    .. [2] Manly, B. F. J. (2007). Randomization, Bootstrap and Monte Carlo Methods in
+       Biology, 3rd ed. Chapman & Hall (restricted permutations; from memory).
+    """
+    xa = _xy(xy_a, "xy_a")
+    xb = _xy(xy_b, "xy_b")
+    xy = np.vstack([xa, xb])
+    if not link_km > 0:
+        return np.arange(len(xy))
+    if lonlat:
+        plane = _local_xy(xy, float(np.mean(xy[:, 1]))) * KM_PER_DEGREE
+    else:
+        plane = xy
+    n_a = len(xa)
+    site_a = spatial_clusters(plane[:n_a], link_km, lonlat=False)
+    site_b = spatial_clusters(plane[n_a:], link_km, lonlat=False)
+    k_a = int(site_a.max()) + 1 if n_a else 0
+    site = np.concatenate([site_a, site_b + k_a])
+    n_sites = k_a + (int(site_b.max()) + 1 if len(xb) else 0)
+    centres = np.vstack([plane[site == k].mean(axis=0) for k in range(n_sites)])
+    pairs = cKDTree(centres).query_pairs(float(link_km), output_type="ndarray")
+    pairs = pairs[(pairs[:, 0] < k_a) != (pairs[:, 1] < k_a)]  # across taxa only
+    graph = coo_matrix(
+        (np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n_sites, n_sites)
+    )
+    return connected_components(graph, directed=False)[1][site]
+
+
 def cluster_permutation(is_a, clusters, rng) -> np.ndarray:
     """One random reassignment of taxon labels that keeps the records' clusters.
 
@@ -208,7 +281,10 @@ def cluster_permutation(is_a, clusters, rng) -> np.ndarray:
     records (they were sampled at the same places).  Clusters holding one taxon only
     are whole units: their labels are shuffled among those clusters, so a taxon's
     cluster moves to the other taxon as a whole.  With every record in its own
-    cluster this is the ordinary permutation of single records.
+    cluster this is the ordinary permutation of single records.  Every allowed
+    reassignment is equally likely.  Build ``clusters`` with
+    :func:`permutation_units`, so that a cluster holds both taxa only where both
+    were collected at one site.
 
     Parameters
     ----------

@@ -195,7 +195,11 @@ def run_pair(pair: Pair, rng, *, n_replicates=99, grid_cells=24, hypothesis="con
     ba = ov.similarity_test(space, direction="ba", hypothesis=hypothesis,
                             n_replicates=n_replicates, random_state=int(seeds[2]),
                             cluster_km=link)
-    raw = np.array([eq["D"].p_value, ab["D"].p_value, ba["D"].p_value])
+    return _claims(eq["D"].p_value, ab["D"].p_value, ba["D"].p_value)
+
+
+def _claims(p_equivalency, p_ab, p_ba) -> dict:
+    raw = np.array([p_equivalency, p_ab, p_ba])
     holm = ov.holm_adjust(raw)
     return {
         "equivalency": raw[0],
@@ -205,7 +209,6 @@ def run_pair(pair: Pair, rng, *, n_replicates=99, grid_cells=24, hypothesis="con
         # p (over the pair's three p-values here) is below alpha
         "claims_different": bool(holm[0] < ALPHA),
         "claims_similar": bool(min(holm[1], holm[2]) < ALPHA),
-        "D": ov.environmental_overlap(space)[0],
     }
 
 
@@ -220,6 +223,11 @@ def rejection_rates(cube, scenario, process, n_pairs, seed, **kw):
     rng = np.random.default_rng(seed)
     rows = [run_pair(make_pair(cube, scenario, process, rng), rng, **kw)
             for _ in range(n_pairs)]
+    return _rates(rows)
+
+
+def _rates(rows) -> dict:
+    n_pairs = len(rows)
     out = {}
     for key in ("equivalency", "similarity_ab", "similarity_ba"):
         k = sum(r[key] <= ALPHA for r in rows)
@@ -271,3 +279,67 @@ def evaluation_rates(cube, process, n_taxa, seed, *, n=12, window=70, n_backgrou
         hits["jackknife"] += jk.p_value <= ALPHA
         hits["null_model"] += nm.p_value <= ALPHA
     return {k: (v, n_taxa) for k, v in hits.items()}
+
+
+# --- geographic space: tests that refit a model per replicate ------------------------
+#: Family refitted by the geographic-space tests in the calibration (fast,
+#: deterministic: one mean and covariance per fit).
+GEO_FAMILY = "ellipsoid"
+
+
+def geographic_pair(cube, pair: Pair):
+    """Grid, refitting callable, record cells and accessible areas of one pair.
+
+    The grid is the bounding box of the pair's windows, its mask their union (the
+    study area); the model is refitted against the pooled background of both windows,
+    as a run does (``screener.models.mapping.GeographicRefit``).
+    """
+    from screener.models.mapping import GeographicRefit
+
+    xa, xb, ga, gb = (np.asarray(v, int) for v in pair.places)
+    allc = np.vstack([ga, gb])
+    c0, r0 = allc.min(axis=0)
+    c1, r1 = allc.max(axis=0) + 1
+    shape = (r1 - r0, c1 - c0)
+
+    def flat(xy):
+        return np.ravel_multi_index((xy[:, 1] - r0, xy[:, 0] - c0), shape)
+
+    def area(xy):
+        m = np.zeros(shape, bool)
+        m.ravel()[flat(xy)] = True
+        return m
+
+    acc_a, acc_b = area(ga), area(gb)
+    mask = acc_a | acc_b
+    values = cube[r0:r1, c0:c1][mask]
+    refit = GeographicRefit(GEO_FAMILY, {}, np.vstack([pair.background_a,
+                                                       pair.background_b]),
+                            values, mask)
+    return refit, flat(xa), flat(xb), acc_a, acc_b
+
+
+def run_geographic_pair(cube, pair: Pair, rng, *, n_replicates=99,
+                        hypothesis="conserved"):
+    """p-values of the three geographic-space tests and the reading's claims."""
+    refit, ca, cb, acc_a, acc_b = geographic_pair(cube, pair)
+    seeds = rng.integers(2**31, size=3)
+    eq = ov.geographic_equivalency_test(refit, ca, cb, 1.0, n_replicates=n_replicates,
+                                        random_state=int(seeds[0]))
+    a = ov.OverlapTaxon("A", cells=ca, accessible=acc_a)
+    b = ov.OverlapTaxon("B", cells=cb, accessible=acc_b)
+    p = []
+    for direction, seed in (("ab", seeds[1]), ("ba", seeds[2])):
+        tests = ov.OverlapTestParameters(n_replicates=n_replicates, hypothesis=hypothesis,
+                                         random_state=int(seed))
+        p.append(ov.geographic_similarity_test(refit, a, b, 1.0, direction=direction,
+                                               test_parameters=tests)["D"].p_value)
+    return _claims(eq["D"].p_value, *p)
+
+
+def geographic_rates(cube, scenario, process, n_pairs, seed, **kw):
+    """:func:`rejection_rates` of the geographic-space tests."""
+    rng = np.random.default_rng(seed)
+    rows = [run_geographic_pair(cube, make_pair(cube, scenario, process, rng), rng,
+                                **kw) for _ in range(n_pairs)]
+    return _rates(rows)

@@ -452,6 +452,65 @@ def test_equivalency_cannot_reject_with_two_clusters_per_taxon():
     assert len(np.unique(np.round(linked["D"].null, 12))) <= 6
 
 
+def test_equivalency_keeps_neighbouring_sites_of_two_taxa_apart():
+    # A collected at one site, B at another within one link of it: pooled single
+    # linkage made them one "shared" site and shuffled labels record by record
+    # (p <= 0.02 on clearly different niches); they are two units, one per taxon
+    # (site nested in taxon: Anderson & ter Braak 2003, from memory), and two
+    # units can only be swapped, which gives the observed D again: no evidence.
+    rng = np.random.default_rng(24)
+    ra, rb, ba, bb = _pair(rng, shift=2.0, n=12)
+    site = rng.uniform(0, 2.0, (12, 2))
+    xy = np.vstack([site, site + [4.0, 0.0]])
+    from screener.randomisation import spatial_clusters
+
+    assert np.unique(spatial_clusters(xy, 3.0, lonlat=False)).size == 1  # pooled: one
+    places = (xy[:12], xy[12:], rng.uniform(0, 100, (600, 2)),
+              rng.uniform(0, 100, (600, 2)))
+    space = _space(ra, rb, ba, bb, grid_cells=20, places=places, lonlat=False)
+    plain = ov.equivalency_test(space, n_replicates=99, random_state=5)
+    linked = ov.equivalency_test(space, n_replicates=99, random_state=5, cluster_km=3.0)
+    assert plain["D"].p_value <= 0.02
+    assert linked["D"].p_value == 1.0
+    assert_allclose(linked["D"].null, linked["D"].observed, rtol=1e-9)
+
+
+def test_equivalency_p_matches_exact_enumeration_of_the_unit_splits():
+    # Reference: the exact permutation p over every allowed split of whole units
+    # (itertools; Manly 2007, from memory).  Two sites per taxon of unequal sizes:
+    # C(4, 2) = 6 splits, two of them (the observed one and its mirror) give the
+    # observed D again, up to rounding; they must count as ties, or p comes out
+    # 0.01 where the exact p is at least 2/6.
+    from itertools import combinations
+
+    rng = np.random.default_rng(29)  # a draw whose observed split is the least alike
+    ra, rb, ba, bb = _pair(rng, shift=1.5, n=12)
+    centres = np.array([[0, 0], [100, 0], [0, 100], [100, 100]], float)
+    sizes = [9, 3, 7, 5]
+    xy = np.repeat(centres, sizes, axis=0) + rng.uniform(0, 1, (24, 2))
+    places = (xy[:12], xy[12:], rng.uniform(0, 100, (600, 2)),
+              rng.uniform(0, 100, (600, 2)))
+    space = _space(ra, rb, ba, bb, grid_cells=20, places=places, lonlat=False)
+    res = ov.equivalency_test(space, n_replicates=999, random_state=6, cluster_km=3.0)
+    task = ov._EnvTask(
+        nodes=space.nodes, shape=space.z_env.shape, inv_env=space.inverse_env.ravel(),
+        available_cov=space.available_cov,
+        pool=np.vstack([space.a.scores_records, space.b.scores_records]), n_a=12,
+    )
+    unit = np.repeat(np.arange(4), sizes)
+    d_obs = res["D"].observed
+    d_splits = []
+    for units_a in combinations(range(4), 2):
+        is_a = np.isin(unit, units_a)
+        d_splits.append(ov._d_i_or_nan(task.density(task.pool[is_a]),
+                                       task.density(task.pool[~is_a]))[0])
+    exact = np.mean(np.asarray(d_splits) <= d_obs + 1e-9)
+    assert exact >= 2 / 6
+    # Monte Carlo p of 999 replicates within 4 binomial standard errors of it
+    se = math.sqrt(exact * (1 - exact) / 999)
+    assert abs(res["D"].p_value - exact) <= 4 * se + 1 / 1000
+
+
 def test_places_must_match_the_rows():
     rng = np.random.default_rng(23)
     ra, rb, ba, bb = _pair(rng, n=8)
