@@ -5,7 +5,9 @@ builtin, so callers may catch either.  The command line turns a ``ScreenerError`
 into a short message and exit code 2 (bad input); anything else is a bug and is
 shown with a traceback only under ``--debug``.
 
-Messages say what is wrong, where (file, row, layer) and what to do.
+Messages say what is wrong, where (file, row, layer) and what to do.  A public
+function whose parameters changed keeps its old form for one release through
+:func:`accepts_old_form`, warned as :class:`ScreenerDeprecationWarning`.
 """
 
 from __future__ import annotations
