@@ -789,10 +789,12 @@ class OverlapTestParameters:
     random_state : None, int or numpy.random.Generator, default 0
         Root of the replicate seeds, all drawn up front (:func:`spawn_seeds`).
     cluster_km : float, default 0
-        With record coordinates: records chained by gaps of at most this (km) form
-        one spatial cluster, which the environmental tests keep together
-        (:func:`equivalency_test`, :func:`similarity_test`); 0 = every record on its
-        own (the published tests).
+        Records chained by gaps of at most this (km) form one spatial cluster
+        (collecting site), which the tests keep together: in environmental space
+        with record coordinates (:func:`equivalency_test`, :func:`similarity_test`),
+        in geographic space from the records' cells
+        (:func:`geographic_equivalency_test`, :func:`geographic_similarity_test`);
+        0 = every record on its own (the published tests).
     geographic_budget_s : float, default 600
         Skip the geographic tests (p = NaN, logged) when :func:`estimate_seconds`
         puts them above this many seconds; ``inf`` runs them whatever they cost.
@@ -1777,14 +1779,48 @@ def _check_cells(cells, name: str) -> np.ndarray:
     return c.astype(np.intp)
 
 
-def _geo_equivalency_replicate(fit_predict, pool, n_a, weights, seed):
-    perm = np.random.default_rng(seed).permutation(len(pool))
-    map_a = fit_predict(pool[perm[:n_a]])
-    map_b = fit_predict(pool[perm[n_a:]])
+def _geo_equivalency_replicate(fit_predict, pool, n_a, weights, seed, units=None):
+    rng = np.random.default_rng(seed)
+    if units is None:
+        perm = rng.permutation(len(pool))
+        cells_a, cells_b = pool[perm[:n_a]], pool[perm[n_a:]]
+    else:
+        from screener.randomisation import cluster_permutation
+
+        is_a = cluster_permutation(np.arange(len(pool)) < n_a, units, rng)
+        if is_a.sum() < 2 or (~is_a).sum() < 2:
+            return float("nan"), float("nan")
+        cells_a, cells_b = pool[is_a], pool[~is_a]
     try:
-        return geographic_overlap(map_a, map_b, weights)
+        return geographic_overlap(fit_predict(cells_a), fit_predict(cells_b), weights)
     except ValueError:
         return float("nan"), float("nan")
+
+
+def _geo_similarity_draw(fit_predict, map_fixed, weights, cells):
+    try:
+        return geographic_overlap(map_fixed, fit_predict(cells), weights)
+    except ValueError:
+        return float("nan"), float("nan")
+
+
+def _grid_xy(cells, shape) -> np.ndarray:
+    """(column, row) of flat cell indices: positions in cell widths."""
+    rows, cols = np.unravel_index(np.asarray(cells, np.intp), shape)
+    return np.column_stack([cols, rows]).astype(float)
+
+
+def _link_cells(cluster_km: float, cell_area_km2, valid) -> float:
+    """``cluster_km`` in typical cell widths (square root of the median cell area of
+    the ``valid`` cells), the inverse of :func:`screener.randomisation.cluster_link_km`.
+    """
+    areas = np.asarray(cell_area_km2, float)
+    if areas.ndim:
+        areas = areas[np.asarray(valid, bool) & np.isfinite(areas)]
+    width = math.sqrt(float(np.median(areas))) if areas.size else float("nan")
+    if not width > 0:
+        raise InputError("cell_area_km2 must be positive where the maps are valid.")
+    return float(cluster_km) / width
 
 
 def _geo_similarity_replicate(
@@ -1807,8 +1843,16 @@ def geographic_equivalency_test(
     n_replicates: int = DEFAULT_REPLICATES,
     random_state=0,
     executor: Executor | None = None,
+    cluster_km: float = 0.0,
 ) -> dict[str, OverlapTest]:
     """Niche equivalency test in geographic space, refitting a model per replicate.
+
+    With ``cluster_km > 0`` the split keeps the records' collecting sites, as
+    :func:`equivalency_test` does (:func:`screener.randomisation.permutation_units`
+    and :func:`~screener.randomisation.cluster_permutation`), with distances measured
+    between cell centres on the grid in typical cell widths (the square root of the
+    median cell area): sites of one taxon change hands whole, records of a site both
+    taxa share are shuffled among themselves.
 
     Parameters
     ----------
@@ -1822,6 +1866,9 @@ def geographic_equivalency_test(
         Cell areas in km² (weights for D and I).
     n_replicates, random_state, executor
         As :func:`equivalency_test`.
+    cluster_km : float, default 0
+        Longest gap (km) inside a collecting site; 0 = every record on its own (the
+        published test).
 
     Returns
     -------
@@ -1833,14 +1880,27 @@ def geographic_equivalency_test(
     References
     ----------
     .. [1] Warren, D. L., Glor, R. E. & Turelli, M. (2008). Evolution 62, 2868-2883.
+    .. [2] Anderson, M. J. & ter Braak, C. J. F. (2003). Journal of Statistical
+       Computation and Simulation 73, 85-113 (permute the units a factor varies
+       among; from memory).
     """
     ca = _check_cells(cells_a, "cells_a")
     cb = _check_cells(cells_b, "cells_b")
     n = _check_replicates(n_replicates)
     pool = np.concatenate([ca, cb])
-    observed = geographic_overlap(fit_predict(ca), fit_predict(cb), cell_area_km2)
+    map_a = fit_predict(ca)
+    observed = geographic_overlap(map_a, fit_predict(cb), cell_area_km2)
     seeds = spawn_seeds(random_state, n)
-    fn = partial(_geo_equivalency_replicate, fit_predict, pool, len(ca), cell_area_km2)
+    units = None
+    if cluster_km > 0:
+        from screener.randomisation import permutation_units
+
+        shape = np.shape(map_a)
+        link = _link_cells(cluster_km, cell_area_km2, np.isfinite(map_a))
+        units = permutation_units(_grid_xy(ca, shape), _grid_xy(cb, shape), link,
+                                  lonlat=False)
+    fn = partial(_geo_equivalency_replicate, fit_predict, pool, len(ca), cell_area_km2,
+                 units=units)
     values = _resolve_executor(executor).map(fn, seeds)
     return _package(
         values,
@@ -1854,22 +1914,40 @@ def geographic_equivalency_test(
 
 def _geographic_similarity(map_fixed, map_moved, accessible_moved, n_moved, *,
                            fit_predict, weights, direction, tests, random_state,
-                           executor) -> dict[str, OverlapTest]:
-    """The geographic similarity test on maps fitted to the real records."""
-    candidates = np.flatnonzero(np.asarray(accessible_moved, bool).ravel())
+                           executor, cells_moved=None) -> dict[str, OverlapTest]:
+    """The geographic similarity test on maps fitted to the real records; with
+    ``tests.cluster_km > 0`` and ``cells_moved`` the random records keep the moved
+    records' sites (see :func:`geographic_similarity_test`)."""
+    accessible_moved = np.asarray(accessible_moved, bool)
+    candidates = np.flatnonzero(accessible_moved.ravel())
     if candidates.size == 0:
         raise InputError("the accessible area of the moved taxon has no cells.")
     observed = geographic_overlap(map_fixed, map_moved, weights)
     seeds = spawn_seeds(random_state, tests.n_replicates)
-    fn = partial(
-        _geo_similarity_replicate,
-        fit_predict,
-        np.asarray(map_fixed, float),
-        candidates,
-        int(n_moved),
-        weights,
-    )
-    values = _resolve_executor(executor).map(fn, seeds)
+    if tests.cluster_km > 0 and cells_moved is not None:
+        from screener.randomisation import pattern_draws, spatial_clusters
+
+        shape = accessible_moved.shape
+        xy = _grid_xy(cells_moved, shape)
+        link = _link_cells(tests.cluster_km, weights, np.isfinite(map_fixed))
+        draws = pattern_draws(
+            xy, _grid_xy(candidates, shape), tests.n_replicates,
+            random_state=int(seeds[0]), lonlat=False,
+            clusters=spatial_clusters(xy, link, lonlat=False),
+        )
+        fn = partial(_geo_similarity_draw, fit_predict, np.asarray(map_fixed, float),
+                     weights)
+        values = _resolve_executor(executor).map(fn, [candidates[d] for d in draws])
+    else:
+        fn = partial(
+            _geo_similarity_replicate,
+            fit_predict,
+            np.asarray(map_fixed, float),
+            candidates,
+            int(n_moved),
+            weights,
+        )
+        values = _resolve_executor(executor).map(fn, seeds)
     return _package(
         values,
         observed,
@@ -1969,7 +2047,16 @@ def geographic_similarity_test(
     direction : {"ab", "ba"}, default "ab"
         Which taxon's map is kept: "ab" keeps A and moves B's records.
     test_parameters : OverlapTestParameters, optional
-        ``n_replicates``, ``hypothesis`` and ``random_state`` are used.
+        ``n_replicates``, ``hypothesis``, ``random_state`` and ``cluster_km`` are
+        used.  With ``cluster_km > 0`` the random records keep the moved taxon's
+        collecting sites, as in :func:`similarity_test`: each replicate rotates every
+        site (records chained by gaps of at most ``cluster_km``) about its centre,
+        moves it to a random cell of the accessible area and takes the accessible
+        cells nearest to the moved records
+        (:func:`screener.randomisation.pattern_draws`); positions are cell centres in
+        typical cell widths (the square root of the median cell area), so on a
+        longitude/latitude grid far from the equator the shapes are kept in cells,
+        not in km.
     executor : Executor, optional
         As :func:`similarity_test`.
 
@@ -1981,6 +2068,9 @@ def geographic_similarity_test(
     References
     ----------
     .. [1] Warren, D. L., Glor, R. E. & Turelli, M. (2008). Evolution 62, 2868-2883.
+    .. [2] Fortin, M.-J. & Dale, M. R. T. (2005). Spatial Analysis: A Guide for
+       Ecologists. Cambridge University Press (restricted randomisation keeping a
+       pattern's spatial structure; from memory).
     """
     tests = test_parameters or OverlapTestParameters()
     if direction not in ("ab", "ba"):
@@ -2000,7 +2090,7 @@ def geographic_similarity_test(
         fit_predict(cells_fixed), fit_predict(cells_moved), moved.accessible,
         len(cells_moved), fit_predict=fit_predict, weights=cell_area_km2,
         direction=direction, tests=tests, random_state=tests.random_state,
-        executor=executor,
+        executor=executor, cells_moved=cells_moved,
     )
 
 
@@ -2541,7 +2631,7 @@ def _geographic_tests(geo, a, b, w, fit_predict, tests, seeds, ex):
         return
     geo.equivalency = geographic_equivalency_test(
         fit_predict, a.cells, b.cells, w, n_replicates=n, random_state=seeds[0],
-        executor=ex,
+        executor=ex, cluster_km=tests.cluster_km,
     )
     if a.accessible is None or b.accessible is None:
         return
@@ -2550,11 +2640,11 @@ def _geographic_tests(geo, a, b, w, fit_predict, tests, seeds, ex):
     common = dict(tests=tests, executor=ex, fit_predict=fit_predict, weights=w)
     geo.similarity_ab = _geographic_similarity(
         fit_a, fit_b, b.accessible, len(b.cells), direction="ab",
-        random_state=seeds[1], **common,
+        random_state=seeds[1], cells_moved=_check_cells(b.cells, "cells_b"), **common,
     )
     geo.similarity_ba = _geographic_similarity(
         fit_b, fit_a, a.accessible, len(a.cells), direction="ba",
-        random_state=seeds[2], **common,
+        random_state=seeds[2], cells_moved=_check_cells(a.cells, "cells_a"), **common,
     )
 
 

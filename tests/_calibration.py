@@ -320,18 +320,20 @@ def geographic_pair(cube, pair: Pair):
 
 
 def run_geographic_pair(cube, pair: Pair, rng, *, n_replicates=99,
-                        hypothesis="conserved"):
-    """p-values of the three geographic-space tests and the reading's claims."""
+                        hypothesis="conserved", structured=True):
+    """p-values of the three geographic-space tests and the reading's claims
+    (``structured``: the tests keep the records' sites, as a run does)."""
     refit, ca, cb, acc_a, acc_b = geographic_pair(cube, pair)
     seeds = rng.integers(2**31, size=3)
+    link = float(CLUSTER_CELLS) if structured else 0.0
     eq = ov.geographic_equivalency_test(refit, ca, cb, 1.0, n_replicates=n_replicates,
-                                        random_state=int(seeds[0]))
+                                        random_state=int(seeds[0]), cluster_km=link)
     a = ov.OverlapTaxon("A", cells=ca, accessible=acc_a)
     b = ov.OverlapTaxon("B", cells=cb, accessible=acc_b)
     p = []
     for direction, seed in (("ab", seeds[1]), ("ba", seeds[2])):
         tests = ov.OverlapTestParameters(n_replicates=n_replicates, hypothesis=hypothesis,
-                                         random_state=int(seed))
+                                         random_state=int(seed), cluster_km=link)
         p.append(ov.geographic_similarity_test(refit, a, b, 1.0, direction=direction,
                                                test_parameters=tests)["D"].p_value)
     return _claims(eq["D"].p_value, *p)

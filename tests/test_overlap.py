@@ -707,6 +707,78 @@ def test_geographic_similarity_test_takes_the_two_taxa():
                                       1.0, test_parameters=tests)
 
 
+def _two_sites(rows, cols, n, rng):
+    """``n`` distinct cells within 1 cell of (row, col) (one collecting site)."""
+    rr, cc = np.meshgrid(np.arange(rows - 1, rows + 2), np.arange(cols - 1, cols + 2),
+                         indexing="ij")
+    pick = rng.choice(9, n, replace=False)
+    return np.ravel_multi_index((rr.ravel()[pick], cc.ravel()[pick]), _SHAPE)
+
+
+def test_geographic_equivalency_keeping_sites_cannot_reject_two_sites_per_taxon():
+    # Each taxon at two tight sites far apart: record by record the split rejects;
+    # keeping the sites (whole units, Anderson & ter Braak 2003, from memory) there
+    # are C(4, 2) = 6 splits, the observed one and its mirror give the observed D,
+    # so p >= 1/3 up to Monte Carlo noise, and at most 3 distinct null values.
+    rng = np.random.default_rng(31)
+    model = _BumpModel()
+    cells_a = np.concatenate([_two_sites(3, 3, 4, rng), _two_sites(3, 12, 4, rng)])
+    cells_b = np.concatenate([_two_sites(16, 12, 4, rng), _two_sites(16, 21, 4, rng)])
+    plain = ov.geographic_equivalency_test(model, cells_a, cells_b, 1.0,
+                                           n_replicates=99, random_state=4)
+    sites = ov.geographic_equivalency_test(model, cells_a, cells_b, 1.0,
+                                           n_replicates=99, random_state=4,
+                                           cluster_km=2.0)
+    assert plain["D"].p_value <= 0.02
+    assert sites["D"].p_value >= 0.2
+    assert len(np.unique(np.round(sites["D"].null, 9))) <= 3
+    # the link is measured in km: cells of 4 km2 are 2 km wide, so 4 km is the same
+    # 2 cells and gives the same null (D with equal weights does not change)
+    again = ov.geographic_equivalency_test(model, cells_a, cells_b, 4.0,
+                                           n_replicates=99, random_state=4,
+                                           cluster_km=4.0)
+    assert_allclose(again["D"].null, sites["D"].null)
+
+
+def test_geographic_similarity_keeping_sites_moves_whole_sites():
+    # The random records of the moved taxon keep its sites' shapes (Fortin & Dale
+    # 2005, restricted randomisation, from memory): every replicate's cells form
+    # groups whose spread matches the sites', not scattered cells.
+    rng = np.random.default_rng(32)
+    cells_b = np.concatenate([_two_sites(15, 17, 5, rng), _two_sites(6, 20, 5, rng)])
+    cells_a = _two_sites(3, 3, 5, rng)
+    seen = []
+
+    class Recording(_BumpModel):
+        def __call__(self, cells):
+            seen.append(np.asarray(cells).copy())
+            return super().__call__(cells)
+
+    model = Recording()
+    a = ov.OverlapTaxon("A", cells=cells_a, accessible=np.ones(_SHAPE, bool))
+    b = ov.OverlapTaxon("B", cells=cells_b, accessible=np.ones(_SHAPE, bool))
+    tests = ov.OverlapTestParameters(n_replicates=19, random_state=6, cluster_km=2.5)
+    ov.geographic_similarity_test(model, a, b, 1.0, test_parameters=tests)
+    draws = [c for c in seen if len(c) == 10][1:]  # after the observed fit of B
+    assert len(draws) == 19
+    for cells in draws:
+        rows, cols = np.unravel_index(cells, _SHAPE)
+        for part in (slice(0, 5), slice(5, 10)):  # each site lands in one piece
+            spread = np.hypot(rows[part] - rows[part].mean(),
+                              cols[part] - cols[part].mean()).max()
+            # within the 3 x 3 block (2 sqrt 2 from its centroid) plus the landing
+            # tolerance of pattern_draws (2 cells)
+            assert spread <= 2 * np.sqrt(2) + 2.0
+    # without the link the same test draws scattered cells
+    seen.clear()
+    plain = ov.OverlapTestParameters(n_replicates=19, random_state=6)
+    ov.geographic_similarity_test(model, a, b, 1.0, test_parameters=plain)
+    spreads = [np.hypot(*(np.array(np.unravel_index(c[:5], _SHAPE)).T
+                          - np.array(np.unravel_index(c[:5], _SHAPE)).T.mean(0)).T).max()
+               for c in [c for c in seen if len(c) == 10][1:]]
+    assert np.median(spreads) > 4.0
+
+
 def test_old_form_of_environmental_space_gives_the_same_space():
     rng = np.random.default_rng(24)
     ra, rb, ba, bb = _pair(rng, shift=0.6, n=10)
