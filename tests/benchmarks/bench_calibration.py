@@ -170,9 +170,10 @@ _HEADERS = {
 }
 
 
-def _table(kind, new_rows, old_text):
+def _table(kind, new_rows, old_text, order=()):
     """One markdown table: rerun rows replace the page's rows of the same key, the
-    other rows of the page stay (measured at their commit)."""
+    other rows of the page stay (measured at their commit); rows in the plan's
+    ``order`` of keys, others after them."""
     header, key_at = _HEADERS[kind]
     n_cols = header.count("|") - 1
     old = {}
@@ -191,8 +192,10 @@ def _table(kind, new_rows, old_text):
             old[tuple(cells[k] for k in key_at)] = cells
     for cells in new_rows:
         old[tuple(cells[k] for k in key_at)] = cells
+    rank = {tuple(k): i for i, k in enumerate(order)}
+    rows = sorted(old.items(), key=lambda kv: rank.get(kv[0], len(rank)))
     lines = [header, "|" + " --- |" * n_cols]
-    lines += ["| " + " | ".join(cells) + " |" for cells in old.values()]
+    lines += ["| " + " | ".join(cells) + " |" for _, cells in rows]
     return "\n".join(lines) if len(lines) > 2 else ""
 
 
@@ -258,15 +261,17 @@ def main(quick: bool = False, only=()):
     start, end = "<!-- calibration-table:start -->", "<!-- calibration-table:end -->"
     old = text.split(start)[1].split(end)[0] if start in text else ""
     parts = [
-        _table("scenario", env_rows, old),
+        _table("scenario", env_rows, old, [r[:3] for r in PLAN]),
         f"Evaluation ({EVAL_FAMILY} family, 12 records without niche signal, study "
         "area = 1000 background cells of a 70 x 70 window, null model R = 19):",
-        _table("records", eval_rows, old),
+        _table("records", eval_rows, old, [
+            (r[0], r[1], f"clusters kept ({CLUSTER_CELLS} cells)" if r[3]
+             else "published (records independent)") for r in EVAL_PLAN]),
         f"Geographic space ({GEO_FAMILY} family refitted per replicate on the cells "
         f"of the pair's windows, R = {GEO_REPLICATES} replicates per test, same "
         "scenarios and reading as above, the reading over the three geographic "
         "p-values):",
-        _table("geographic scenario", geo_rows, old),
+        _table("geographic scenario", geo_rows, old, [r[:3] for r in GEO_PLAN]),
         f"Settings: alpha = {ALPHA}; environmental space R = {N_REPLICATES} "
         f"replicates per test, {GRID_CELLS} grid cells per axis; spatial clusters of "
         f"records chained within {CLUSTER_CELLS} cells.  The last run took "
