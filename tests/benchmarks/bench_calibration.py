@@ -80,6 +80,7 @@ GEO_PLAN = [
     ("similarity-null", "clustered", "symmetric", 200),
     ("separate-clusters", "clustered", "skewed", 200),
     ("divergent", "dispersed", "skewed", 100),
+    ("divergent", "clustered", "symmetric", 100),
 ]
 #: replicates of each geographic test: 99 as in environmental space, so that the
 #: reading's Holm threshold (alpha / 3 = 0.017) can be reached (1 / 100 = 0.01); each
