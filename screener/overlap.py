@@ -1379,6 +1379,18 @@ class OverlapTest:
         """Smallest p-value these replicates can give, ``1 / (1 + R)``."""
         return 1.0 / (1.0 + self.n_valid) if self.n_valid else float("nan")
 
+    @property
+    def tie_share(self) -> float:
+        """Share of valid replicates that give the observed value again (within
+        :data:`TIE_TOLERANCE`).  A permutation of few units (collecting sites) redraws
+        the observed split often; since ties count as extreme, ``p >= tie_share``
+        whatever the data, and a test with ``tie_share >= alpha`` cannot reject."""
+        null = np.asarray(self.null, float)
+        null = null[np.isfinite(null)]
+        if not null.size:
+            return float("nan")
+        return float(np.mean(np.abs(null - self.observed) <= TIE_TOLERANCE))
+
     def p_text(self) -> str:
         """The p-value to the precision its replicates support, e.g. ``p = 0.012``.
 
@@ -2408,6 +2420,17 @@ class PairComparison:
                 "records (" + "; ".join(shown) + "); few records give the tests "
                 "little power, so this is not evidence that the niches are the same."
             )
+            for sc in self.spaces():
+                t = sc.test("equivalency")
+                if t is not None and t.tie_share >= alpha:
+                    label = ("environmental space" if sc.space == "environmental"
+                             else "geographic space")
+                    parts.append(
+                        f"In {label} {_pct(t.tie_share)} of the equivalency test's "
+                        "random splits gave back the observed split of the records' "
+                        "collecting sites (too few sites per taxon), so that test "
+                        f"could not reach p < {alpha:g} however different the niches."
+                    )
         m = self.n_tests_in_run
         if m and tested:
             kept = len(claims)

@@ -845,6 +845,36 @@ def test_parameter_values_read_a_loaded_project(tmp_path):
     assert ov.EnvironmentalSpaceParameters.from_settings(s).grid_cells == 20
 
 
+def test_reading_says_when_too_few_sites_let_equivalency_reject():
+    # Each taxon's records at one collecting site, clearly different niches: keeping
+    # the sites, the only splits are the observed one and its mirror, so every
+    # replicate ties with the observed D and p = 1 (ties count: p >= tie share).
+    # The reading must say the test could not reject, not leave "p = 1" to be read
+    # as "equivalent".
+    rng = np.random.default_rng(33)
+    ra, rb, ba, bb = _pair(rng, shift=2.0, n=10, n_bg=300)
+    xy_a = rng.uniform(0, 2, (10, 2))
+    xy_b = rng.uniform(0, 2, (10, 2)) + [50.0, 0.0]
+    bg_xy = rng.uniform(0, 60, (300, 2))
+    model = _BumpModel()
+    cells = np.ravel_multi_index(([2, 3, 4], [2, 3, 2]), _SHAPE)
+    a = ov.OverlapTaxon("Alpha", model(cells), env_records=ra, env_background=ba,
+                        xy_records=xy_a, xy_background=bg_xy)
+    b = ov.OverlapTaxon("Beta", model(cells + 5), env_records=rb, env_background=bb,
+                        xy_records=xy_b, xy_background=bg_xy)
+    common = dict(shared=ov.SharedSpace(cell_area_km2=1.0, lonlat=False),
+                  space_parameters=ov.EnvironmentalSpaceParameters(grid_cells=20))
+    sites = ov.compare_pair(a, b, test_parameters=ov.OverlapTestParameters(
+        n_replicates=49, cluster_km=3.0), **common)
+    t = sites.environmental.test("equivalency")
+    assert t.tie_share == 1.0 and t.p_value == 1.0
+    assert "could not reach p < 0.05" in sites.plain_reading()
+    records = ov.compare_pair(a, b, test_parameters=ov.OverlapTestParameters(
+        n_replicates=49), **common)
+    assert records.environmental.test("equivalency").tie_share < 0.05
+    assert "could not reach" not in records.plain_reading()
+
+
 def test_compare_pair_rows_and_reading():
     rng = np.random.default_rng(30)
     ra, rb, ba, bb = _pair(rng, shift=1.5, n=15, n_bg=300)
