@@ -19,6 +19,8 @@ References
 .. [2] Pearson, R. G., Raxworthy, C. J., Nakamura, M. & Peterson, A. T. (2007).
    Predicting species distributions from small numbers of occurrence records.
    Journal of Biogeography 34: 102-117.
+.. [3] Holm, S. (1979). A simple sequentially rejective multiple test procedure.
+   Scandinavian Journal of Statistics 6: 65-70.
 """
 
 from __future__ import annotations
@@ -47,6 +49,9 @@ __all__ = [
 FEW_RECORDS = 15
 #: Held-out AUC below this is of little use for ranking places (common practice).
 USEFUL_AUC = 0.7
+#: Family-wise error rate of "better than chance" on an evidence card, over all the
+#: null-model and jackknife p-values of a taxon (common practice).
+SUPPORT_ALPHA = 0.05
 #: Standard error constant of the Clark-Evans mean nearest-neighbour distance under
 #: complete spatial randomness: 0.26136 / sqrt(n * density) (Clark & Evans 1954).
 _CE_SE = 0.26136
@@ -126,8 +131,9 @@ class TaxonEvidence:
     best_auc : float
         Highest held-out AUC of any family (NaN when none).
     beats_chance : bool or None
-        True when a family's null-model or jackknife test gives p <= 0.05; None when
-        no test was run.
+        True when the smallest of the families' null-model and jackknife p-values stays
+        at or below :data:`SUPPORT_ALPHA` after Holm's correction over all of them
+        (k x the smallest p, for k p-values); None when no test was run.
     supported : str
         "supported", "weakly supported" or "not shown to be better than chance".
     clustering : ClarkEvans or None
@@ -232,7 +238,10 @@ def taxon_evidence(result, taxon: str, *, threshold_name: str = "mtp") -> TaxonE
         )
     best = max((h["auc"] for h in held), default=math.nan)
     ps = [p for h in held for p in (h["null_p"], h["jackknife_p"]) if math.isfinite(p)]
-    beats = (min(ps) <= 0.05) if ps else None
+    # several families and two tests each: a taxon beats chance when the smallest p
+    # survives Holm's correction over all of them (its first step, k x the smallest
+    # p; Holm 1979), not when any one p is small
+    beats = (min(ps) * len(ps) <= SUPPORT_ALPHA) if ps else None
     if not math.isfinite(best) or best < USEFUL_AUC or beats is False:
         supported = (
             "not shown to be better than chance"

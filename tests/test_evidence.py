@@ -65,3 +65,28 @@ def test_taxon_evidence_on_a_synthetic_run():
         assert ev.novel_share == pytest.approx(np.mean(m[suitable] < 0))
         # no test was run in the fixture: neither supported nor refuted by one
         assert ev.beats_chance is None and ev.supported == "weakly supported"
+
+
+def test_better_than_chance_survives_holms_correction_over_the_taxons_p_values():
+    # Two families, each with a null-model and a jackknife p: four p-values. One small
+    # p among four is what chance gives one time in about six at 0.05; the card claims
+    # support only when k x the smallest p (Holm's first step; Holm 1979, Scand. J.
+    # Stat. 6:65) is at most 0.05.
+    import dataclasses
+
+    run = make_run()
+    name = next(iter(run.taxa))
+
+    def card(null_ps, jack_ps):
+        rows = [{"algorithm": f, "method": "jackknife", "auc": 0.9, "omission_mtp": 0.0,
+                 "auc_null_p": pn, "jackknife_p": pj}
+                for f, pn, pj in zip(("ellipsoid", "envelope"), null_ps, jack_ps)]
+        tr = dataclasses.replace(run.taxa[name], evaluation=rows)
+        return taxon_evidence(dataclasses.replace(run, taxa={**run.taxa, name: tr}), name)
+
+    ev = card((0.03, 0.4), (0.5, 0.6))  # 4 x 0.03 = 0.12
+    assert ev.beats_chance is False and ev.supported == "not shown to be better than chance"
+    ev = card((0.01, 0.4), (0.5, 0.6))  # 4 x 0.01 = 0.04
+    assert ev.beats_chance is True and ev.supported == "supported"
+    ev = card((0.01, float("nan")), (float("nan"), float("nan")))  # one test run
+    assert ev.beats_chance is True

@@ -201,3 +201,25 @@ def test_a_wide_table_is_caught_by_the_overflow_check(tmp_path, chromium):
                     "</tr></table></div></section></body></html>", encoding="utf-8")
     got = probe(chromium, page, tmp_path)
     assert got["scrollWidth"] <= got["innerWidth"] and got["overflowing"] == ["s: first"]
+
+
+def test_overlap_summary_claims_what_the_readings_claim():
+    # The summary once counted raw equivalency p <= 0.05 in environmental space while
+    # the readings claim only what survives Holm's correction (Holm 1979, Scand. J.
+    # Stat. 6:65): on the demo it said "1 differ" beside readings that claimed nothing.
+    import dataclasses
+
+    from screener.outputs.report import _overlap_summary
+
+    run = make_run()  # one pair: equivalency p 0.02 (geographic), 0.04 (environmental)
+    assert "of 1 pair(s) of taxa compared, 1 differ" in _overlap_summary(run)
+    ov = run.overlap.copy()
+    ov["equivalency_p_holm"] = [0.096, 0.099]  # raw p small, corrected p not
+    run = dataclasses.replace(run, overlap=ov)
+    text = _overlap_summary(run)
+    assert "0 differ" in text and "Holm-corrected equivalency p below 0.05" in text
+    ov["equivalency_p_holm"] = [0.2, 0.03]  # either space is enough
+    assert "1 differ" in _overlap_summary(dataclasses.replace(run, overlap=ov))
+    # alpha is the run's
+    loose = dataclasses.replace(run, settings={"overlap": {"alpha": 0.1}})
+    assert "1 differ" in _overlap_summary(loose) and "below 0.1 " in _overlap_summary(loose)

@@ -488,21 +488,30 @@ def _float(v) -> float:
 
 
 def _overlap_summary(result) -> str:
+    """One sentence on the pairs: how many the equivalency test finds different, by the
+    same rule as the readings (Holm-corrected p below alpha, in either space)."""
     ov = result.overlap
     if ov is None or not len(ov) or "equivalency_p" not in getattr(ov, "columns", []):
         return "Niche overlap: not computed (one taxon, or no tests run)."
     env = ov[ov["space"] == "environmental"] if "space" in ov.columns else ov
-    n = len(env)
-    p = env["equivalency_p"].astype(float)
-    differ = int((p <= 0.05).sum())
+    alpha = float(((result.settings or {}).get("overlap") or {}).get("alpha")
+                  or default("overlap", "alpha"))
+    # the readings' rule: the Holm-adjusted p (the raw p where no correction was made)
+    column = "equivalency_p_holm" if "equivalency_p_holm" in ov.columns else "equivalency_p"
+    pairs = ov.groupby(["taxon_a", "taxon_b"], sort=False)[column] if {
+        "taxon_a", "taxon_b"} <= set(ov.columns) else None
+    n = pairs.ngroups if pairs is not None else len(env)
+    p = pairs.min().astype(float) if pairs is not None else env[column].astype(float)
+    differ = int((p < alpha).sum())
+    corrected = (f"Holm-corrected equivalency p below {alpha:g} in either space"
+                 if column.endswith("_holm") else f"equivalency p below {alpha:g}")
     txt = (
-        f"Niche overlap: of {n} pair(s) of taxa compared in environmental space, "
-        f"{differ} differ more than random reassignment of their records gives "
-        "(equivalency p &le; 0.05)"
+        f"Niche overlap: of {n} pair(s) of taxa compared, {differ} differ more than "
+        f"random reassignment of their records gives ({corrected})"
     )
     if "D" in env.columns and n:
         txt += (
-            f"; D ranges from {env['D'].astype(float).min():.2f} to "
+            f"; D in environmental space ranges from {env['D'].astype(float).min():.2f} to "
             f"{env['D'].astype(float).max():.2f}"
         )
     return txt + (
