@@ -2455,6 +2455,9 @@ class PairComparison:
             for name, share in ((a, env.analogue_share_a), (b, env.analogue_share_b)):
                 if math.isfinite(share) and share < ANALOGUE_SHARE_WARNING:
                     parts.append(
+                        f"None of {name}'s records lie in environment available to "
+                        "both taxa, so stability, expansion and unfilling say nothing "
+                        "about its records." if _pct(share) == "0 %" else
                         f"Only {_pct(share)} of {name}'s records lie in environment "
                         "available to both taxa, so stability, expansion and "
                         "unfilling describe few of its records."

@@ -1084,3 +1084,18 @@ def test_shared_available_cells_come_from_the_union_or_the_study_area():
     r1 = ov.shared_available_cells(grid, acc_a, acc_b, max_points=5, random_state=3)
     r2 = ov.shared_available_cells(grid, acc_a, acc_b, max_points=5, random_state=3)
     assert len(r1[0]) == 5 and np.array_equal(r1[0], r2[0]) and (acc_a | acc_b)[r1].all()
+
+
+def test_reading_says_none_when_no_record_lies_in_analogue_environment():
+    # niche dynamics (Guisan et al. 2014, TREE 29:260) describe only records in
+    # environment available to both taxa; the reading says how many that is
+    env = ov.SpaceComparison(space="environmental", D=0.2, I=0.4, breadth_a=0.1,
+                             breadth_b=0.1, analogue_share_a=0.23, analogue_share_b=0.0)
+    geo = ov.SpaceComparison(space="geographic", D=0.3, I=0.5, breadth_a=0.1,
+                             breadth_b=0.1)
+    reading = ov.PairComparison(taxon_a="Alpha", taxon_b="Beta", geographic=geo,
+                                environmental=env, space=None, n_replicates=0,
+                                hypothesis="conserved").plain_reading()
+    assert "Only 23 % of Alpha's records lie in environment available" in reading
+    assert "None of Beta's records lie in environment available" in reading
+    assert "0 %" not in reading
