@@ -45,7 +45,11 @@ from screener.isolation import (
 )
 from screener.layers import hillshade
 from screener.models.ensemble import clade_agreement
-from screener.models.mapping import geographic_refit
+from screener.models.mapping import (
+    GEOGRAPHIC_TEST_BUDGET_S,
+    geographic_refit,
+    refit_seconds,
+)
 from screener.models.taxon import fit_taxon, taxon_seed
 from screener.novelty import mess_map
 from screener.outputs.sheets import plan_sampling_points
@@ -62,7 +66,7 @@ from screener.overlap import (
     correct_for_multiplicity,
     shared_available_cells,
 )
-from screener.parallel import Executor, make_executor
+from screener.parallel import Executor, default_n_workers, make_executor
 from screener.progress import Progress
 from screener.project import Settings
 from screener.randomisation import cluster_link_km
@@ -361,18 +365,47 @@ def _versions() -> dict:
 SLOW_FAMILIES = ("ppm", "forest")
 
 
+#: "auto" also runs a run on local processes when its geographic-space overlap tests
+#: are estimated to take at least this many seconds serially (and two or more cores
+#: are free): each replicate refits and maps a model, tens of milliseconds a task
+PARALLEL_OVERLAP_S = 10.0
+
+
+def geographic_test_seconds(intake: Intake) -> float:
+    """Estimated serial seconds of a run's geographic-space overlap tests: pairs x 4
+    maps per replicate x :func:`~screener.models.mapping.refit_seconds` (a fixed cost
+    model, the same on every machine); 0 when they will not run."""
+    s = intake.settings
+    n = len(intake.records.taxa)
+    mode = s.overlap.geographic_tests
+    if n < 2 or mode == "off" or s.overlap.n_replicates <= 0:
+        return 0.0
+    if intake.stack.streamed and mode == "auto":
+        return 0.0
+    per_pair = 4 * s.overlap.n_replicates * refit_seconds(
+        s.models.families[0], int(intake.grid.mask.sum()))
+    if mode == "auto" and per_pair > GEOGRAPHIC_TEST_BUDGET_S:
+        return 0.0  # "auto" skips them (models.mapping.geographic_refit)
+    return n * (n - 1) // 2 * per_pair
+
+
 def resolve_scheduler(scheduler: str, intake: Intake) -> str:
     """Turn ``"auto"`` into "processes" or "serial"; other values pass through.
 
     "auto" picks local processes when tasks are heavy enough to repay the pool's
     start-up and per-task costs: a slow family (ppm, forest) is fitted per replicate,
-    or the layers are streamed from disk (prediction windows).  Otherwise tasks take
-    milliseconds and serial is faster (measured on the demo: see docs/performance.md).
+    the layers are streamed from disk (prediction windows), or the geographic-space
+    overlap tests refit models for at least :data:`PARALLEL_OVERLAP_S` seconds
+    (:func:`geographic_test_seconds`) and two or more cores are free.  Otherwise
+    tasks take milliseconds and serial is faster (measured on the demo: see
+    docs/performance.md).  Results are the same under every scheduler.
     """
     if scheduler != "auto":
         return scheduler
     s = intake.settings
-    heavy = any(f in SLOW_FAMILIES for f in s.models.families) or intake.stack.streamed
+    heavy = (any(f in SLOW_FAMILIES for f in s.models.families) or intake.stack.streamed
+             or (default_n_workers() >= 2
+                 and geographic_test_seconds(intake) >= PARALLEL_OVERLAP_S))
     return "processes" if heavy else "serial"
 
 

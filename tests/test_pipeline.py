@@ -354,17 +354,35 @@ def test_spatial_partitions_with_non_spatial_baseline(tmp_path):
     assert row["jackknife_p"] is None or np.isnan(row["jackknife_p"])
 
 
-def test_auto_scheduler_uses_processes_only_for_heavy_work(tmp_path):
+def test_auto_scheduler_uses_processes_only_for_heavy_work(tmp_path, monkeypatch):
+    from screener import pipeline
     from screener.intake import load_inputs
-    from screener.pipeline import resolve_scheduler
+    from screener.models.mapping import refit_seconds
+    from screener.pipeline import geographic_test_seconds, resolve_scheduler
     from screener.project import load_project
 
+    monkeypatch.setattr(pipeline, "default_n_workers", lambda: 2)
     project = write_demo_scenario(tmp_path / "scen", size="small")
-    s = load_project(project)
+    s = load_project(project).replace("overlap", n_replicates=19)
     intake = load_inputs(s)
+    n_cells = int(intake.grid.mask.sum())
+    # three taxa: 3 pairs x 4 maps x 19 replicates of the ellipsoid family (fixed cost
+    # model): about a second, so serial is faster than starting a pool
+    assert geographic_test_seconds(intake) == pytest.approx(
+        3 * 4 * 19 * refit_seconds("ellipsoid", n_cells))
     assert resolve_scheduler("auto", intake) == "serial"
     heavy = dataclasses.replace(intake, settings=s.replace("models", families=["ellipsoid", "ppm"]))
     assert resolve_scheduler("auto", heavy) == "processes"
+    # the default 999 replicates refit for tens of seconds: worth two processes
+    many = dataclasses.replace(intake, settings=s.replace("overlap", n_replicates=999))
+    assert geographic_test_seconds(many) >= pipeline.PARALLEL_OVERLAP_S
+    assert resolve_scheduler("auto", many) == "processes"
+    # ... but not on one core, nor when the geographic tests are off
+    off = dataclasses.replace(intake, settings=many.settings.replace(
+        "overlap", geographic_tests="off"))
+    assert geographic_test_seconds(off) == 0 and resolve_scheduler("auto", off) == "serial"
+    monkeypatch.setattr(pipeline, "default_n_workers", lambda: 1)
+    assert resolve_scheduler("auto", many) == "serial"
     assert resolve_scheduler("tcp://127.0.0.1:8786", intake) == "tcp://127.0.0.1:8786"
 
 
