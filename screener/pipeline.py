@@ -45,11 +45,7 @@ from screener.isolation import (
 )
 from screener.layers import hillshade
 from screener.models.ensemble import clade_agreement
-from screener.models.mapping import (
-    GEOGRAPHIC_TEST_BUDGET_S,
-    geographic_refit,
-    refit_seconds,
-)
+from screener.models.mapping import geographic_refit, geographic_test_cost
 from screener.models.taxon import fit_taxon, taxon_seed
 from screener.novelty import mess_map
 from screener.outputs.sheets import plan_sampling_points
@@ -372,20 +368,14 @@ PARALLEL_OVERLAP_S = 10.0
 
 
 def geographic_test_seconds(intake: Intake) -> float:
-    """Estimated serial seconds of a run's geographic-space overlap tests: pairs x 4
-    maps per replicate x :func:`~screener.models.mapping.refit_seconds` (a fixed cost
-    model, the same on every machine); 0 when they will not run."""
-    s = intake.settings
+    """Estimated serial seconds of a run's geographic-space overlap tests: pairs x
+    :func:`~screener.models.mapping.geographic_test_cost` (a fixed cost model, the
+    same on every machine); 0 when they will not run."""
     n = len(intake.records.taxa)
-    mode = s.overlap.geographic_tests
-    if n < 2 or mode == "off" or s.overlap.n_replicates <= 0:
+    if n < 2:
         return 0.0
-    if intake.stack.streamed and mode == "auto":
-        return 0.0
-    per_pair = 4 * s.overlap.n_replicates * refit_seconds(
-        s.models.families[0], int(intake.grid.mask.sum()))
-    if mode == "auto" and per_pair > GEOGRAPHIC_TEST_BUDGET_S:
-        return 0.0  # "auto" skips them (models.mapping.geographic_refit)
+    per_pair, _ = geographic_test_cost(intake.settings, int(intake.grid.mask.sum()),
+                                       streamed=intake.stack.streamed)
     return n * (n - 1) // 2 * per_pair
 
 

@@ -75,6 +75,14 @@ def _local_xy(xy, lat0_deg: float | None) -> np.ndarray:
     return np.column_stack([xy[:, 0] * math.cos(math.radians(lat0_deg)), xy[:, 1]])
 
 
+def _plane_km(xy, lonlat: bool) -> np.ndarray:
+    """Positions in km: lon/lat on one local plane around their mean latitude, or x, y
+    in km as given."""
+    if not lonlat:
+        return xy
+    return _local_xy(xy, float(np.mean(xy[:, 1]))) * KM_PER_DEGREE
+
+
 def pattern_draws(presence_xy, pool_xy, n_draws: int, random_state=0, *,
                   lonlat: bool = True, max_tries: int = 200,
                   clusters=None) -> list[np.ndarray]:
@@ -197,10 +205,7 @@ def spatial_clusters(xy, link_km: float, *, lonlat: bool = True) -> np.ndarray:
     xy = _xy(xy, "xy")
     if not link_km > 0:
         return np.arange(len(xy))
-    if lonlat:
-        plane = _local_xy(xy, float(np.mean(xy[:, 1]))) * KM_PER_DEGREE
-    else:
-        plane = xy
+    plane = _plane_km(xy, lonlat)
     pairs = cKDTree(plane).query_pairs(float(link_km), output_type="ndarray")
     n = len(xy)
     graph = coo_matrix(
@@ -255,10 +260,7 @@ def permutation_units(xy_a, xy_b, link_km: float, *, lonlat: bool = True) -> np.
     xy = np.vstack([xa, xb])
     if not link_km > 0:
         return np.arange(len(xy))
-    if lonlat:
-        plane = _local_xy(xy, float(np.mean(xy[:, 1]))) * KM_PER_DEGREE
-    else:
-        plane = xy
+    plane = _plane_km(xy, lonlat)
     n_a = len(xa)
     site_a = spatial_clusters(plane[:n_a], link_km, lonlat=False)
     site_b = spatial_clusters(plane[n_a:], link_km, lonlat=False)

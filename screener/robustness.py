@@ -109,7 +109,7 @@ class RefitPlan:
             The plan's sites by rank (1..n_sites) on their cells, <= 0 elsewhere.
         n_sites : int
         """
-        from screener.models import accepts_random_state
+        from screener.models import accepts_random_state, family_params
 
         family = settings.models.families[0]
         use = settings.thresholds.use
@@ -118,7 +118,7 @@ class RefitPlan:
             grid=stack.grid,
             values=stack.valid_matrix(),
             family=family,
-            params=dict(settings.models.get(family, {}) or {}),
+            params=family_params(settings, family),
             records={k: (t.records.rows, t.records.cols) for k, t in taxa.items()},
             background={k: t.background_env for k, t in taxa.items()},
             relax=settings.thresholds.relax,

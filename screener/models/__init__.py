@@ -23,6 +23,7 @@ __all__ = [
     "training_presence_scores",
     "accepts_random_state",
     "accepts_groups",
+    "family_params",
     "NicheModel",
     "EllipsoidNiche",
     "EnvelopeNiche",
@@ -43,6 +44,11 @@ FAMILIES: dict[str, type] = {
 
 #: The family used when a project names none.
 DEFAULT_FAMILY = "ellipsoid"
+
+
+def family_params(settings, family: str) -> dict:
+    """The ``[models.<family>]`` parameter table of the settings (a fresh dict)."""
+    return dict(settings.models.get(family, {}) or {})
 
 
 def accepts_random_state(family: str) -> bool:

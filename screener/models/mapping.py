@@ -17,9 +17,10 @@ import functools
 import numpy as np
 
 from screener.layers import LayerStack
-from screener.models import accepts_random_state, make_model
+from screener.models import accepts_random_state, family_params, make_model
 
 __all__ = ["predict_map", "outside_map", "GeographicRefit", "geographic_refit",
+           "geographic_test_cost",
            "refit_seconds", "REFIT_COST", "GEOGRAPHIC_TEST_BUDGET_S"]
 
 #: Cost of one refit-and-map of each family on the reference machine (2 cores, the
@@ -169,6 +170,43 @@ class GeographicRefit:
 GEOGRAPHIC_TEST_BUDGET_S = 120.0
 
 
+def geographic_test_cost(settings, n_cells: int, *,
+                         streamed: bool = False) -> tuple[float, str]:
+    """Estimated serial seconds of one pair's geographic-space tests, as the settings
+    ask for them, and why ``"auto"`` skips them.
+
+    Equivalency maps two refits per replicate and each similarity test one more:
+    4 x ``n_replicates`` x :func:`refit_seconds` of the first family over
+    ``n_cells`` valid cells (a fixed cost model, so every choice made from it is the
+    same on every machine).
+
+    Returns
+    -------
+    seconds : float
+        0 when the tests will not run.
+    reason : str
+        Why ``geographic_tests = "auto"`` skipped them (streamed layers, or more than
+        :data:`GEOGRAPHIC_TEST_BUDGET_S`); "" when they run or are off.
+    """
+    mode = settings.overlap.geographic_tests
+    if mode == "off" or settings.overlap.n_replicates <= 0:
+        return 0.0, ""
+    if streamed and mode == "auto":
+        return 0.0, (
+            "geographic-space tests skipped: the grid is streamed from disk and each "
+            "replicate would map it four times. Set [overlap] geographic_tests = \"on\" "
+            "to run them.")
+    family = settings.models.families[0]
+    n_maps = 4 * settings.overlap.n_replicates
+    estimate = refit_seconds(family, n_cells) * n_maps
+    if mode == "auto" and estimate > GEOGRAPHIC_TEST_BUDGET_S:
+        return 0.0, (
+            f"geographic-space tests would take about {estimate / 60:.0f} min "
+            f"(refitting {family} {n_maps} times over {int(n_cells):,} cells); skipped. "
+            "Set [overlap] geographic_tests = \"on\" to run them.")
+    return estimate, ""
+
+
 def geographic_refit(settings, stack: LayerStack, background_a, background_b, *,
                      seed: int) -> tuple[GeographicRefit | None, str]:
     """The refit of one pair's geographic-space tests, as the settings ask for it.
@@ -197,27 +235,14 @@ def geographic_refit(settings, stack: LayerStack, background_a, background_b, *,
     reason : str
         Why "auto" skipped them, for the progress line; "" otherwise.
     """
-    mode = settings.overlap.geographic_tests
-    if mode == "off" or settings.overlap.n_replicates <= 0:
-        return None, ""
+    seconds, skipped = geographic_test_cost(settings, int(stack.grid.mask.sum()),
+                                            streamed=stack.streamed)
+    if not seconds:
+        return None, skipped
     family = settings.models.families[0]
-    params = dict(settings.models.get(family, {}) or {})
+    params = family_params(settings, family)
     if accepts_random_state(family):
         params["random_state"] = seed
-    if stack.streamed and mode == "auto":
-        return None, (
-            "geographic-space tests skipped: the grid is streamed from disk and each "
-            "replicate would map it four times. Set [overlap] geographic_tests = \"on\" "
-            "to run them.")
-    # equivalency needs 2 maps per replicate, each similarity test one more
-    n_maps = 4 * settings.overlap.n_replicates
-    n_cells = int(stack.grid.mask.sum())
-    estimate = refit_seconds(family, n_cells) * n_maps
-    if mode == "auto" and estimate > GEOGRAPHIC_TEST_BUDGET_S:
-        return None, (
-            f"geographic-space tests would take about {estimate / 60:.0f} min "
-            f"(refitting {family} {n_maps} times over {n_cells:,} cells); skipped. "
-            "Set [overlap] geographic_tests = \"on\" to run them.")
     background = np.vstack([background_a, background_b])
     return GeographicRefit(family, params, background, stack.valid_matrix(),
                            stack.grid.mask), ""

@@ -34,6 +34,7 @@ from screener.evaluation import (
 )
 from screener.evaluation import auc as auc_fn
 from screener.layers import LayerStack
+from screener.models import family_params
 from screener.models.base import ClampedModel, training_presence_scores
 from screener.models.ensemble import agreement_map, ensemble_weights, weighted_mean_map
 from screener.models.inspect import permutation_importance, response_curves
@@ -60,10 +61,6 @@ def taxon_seed(random_state: int, taxon: str) -> int:
     ss = np.random.SeedSequence([int(random_state) & 0xFFFFFFFF, zlib.crc32(taxon.encode())])
     return int(ss.generate_state(1)[0])
 
-
-def family_params(settings, family: str) -> dict:
-    """The ``[models.<family>]`` parameter table of the settings (a fresh dict)."""
-    return dict(settings.models.get(family, {}) or {})
 
 
 @dataclass(frozen=True, eq=False)

@@ -498,11 +498,9 @@ def _overlap_summary(result) -> str:
                   or default("overlap", "alpha"))
     # the readings' rule: the Holm-adjusted p (the raw p where no correction was made)
     column = "equivalency_p_holm" if "equivalency_p_holm" in ov.columns else "equivalency_p"
-    pairs = ov.groupby(["taxon_a", "taxon_b"], sort=False)[column] if {
-        "taxon_a", "taxon_b"} <= set(ov.columns) else None
-    n = pairs.ngroups if pairs is not None else len(env)
-    p = pairs.min().astype(float) if pairs is not None else env[column].astype(float)
-    differ = int((p < alpha).sum())
+    # a pair differs when either space's p does (overlap.csv has a row per space)
+    p = ov.groupby(["taxon_a", "taxon_b"], sort=False)[column].min().astype(float)
+    n, differ = len(p), int((p < alpha).sum())
     corrected = (f"Holm-corrected equivalency p below {alpha:g} in either space"
                  if column.endswith("_holm") else f"equivalency p below {alpha:g}")
     txt = (
